@@ -1,0 +1,1 @@
+"""Numba kernels on arrays: numpy and numba only."""

@@ -1,0 +1,156 @@
+"""Hidden-layer activations: each one a forward rule and its backward rule, side by side.
+
+Codes (small ints) select the activation inside two loop kernels, so the whole set compiles to two
+specialisations per dtype instead of two per activation. ``Z`` holds pre-activations, ``A`` outputs.
+All scalar maths runs in float64 and is stored back in the array's dtype.
+"""
+
+from __future__ import annotations
+
+import math
+
+from numba import njit
+
+IDENTITY, SIGMOID, TANH, RELU, LEAKY_RELU, GELU, SOFTPLUS = range(7)
+CODES = {
+    "identity": IDENTITY,
+    "sigmoid": SIGMOID,
+    "tanh": TANH,
+    "relu": RELU,
+    "leaky_relu": LEAKY_RELU,
+    "gelu": GELU,
+    "softplus": SOFTPLUS,
+}
+LEAKY_SLOPE = 0.01
+_GELU_C = math.sqrt(2.0 / math.pi)  # tanh approximation of Hendrycks & Gimpel 2016
+_GELU_K = 0.044715
+
+
+@njit(cache=True, inline="always")
+def sigmoid(z):
+    """σ(z) = 1 / (1 + e^{-z}), evaluated without overflow for either sign of z."""
+    if z >= 0.0:
+        return 1.0 / (1.0 + math.exp(-z))
+    e = math.exp(z)
+    return e / (1.0 + e)
+
+
+@njit(cache=True, inline="always")
+def softplus(z):
+    """log(1 + e^z) = max(z, 0) + log1p(e^{-|z|}), stable for large |z|."""
+    return max(z, 0.0) + math.log1p(math.exp(-abs(z)))
+
+
+@njit(cache=True, inline="always")
+def forward(code, z):
+    """a = f(z) for the activation ``code``."""
+    if code == SIGMOID:
+        return sigmoid(z)
+    if code == TANH:
+        return math.tanh(z)
+    if code == RELU:
+        return max(z, 0.0)
+    if code == LEAKY_RELU:
+        return max(z, 0.0) + LEAKY_SLOPE * min(z, 0.0)
+    if code == GELU:
+        return 0.5 * z * (1.0 + math.tanh(_GELU_C * (z + _GELU_K * z * z * z)))
+    if code == SOFTPLUS:
+        return softplus(z)
+    return z
+
+
+@njit(cache=True, inline="always")
+def derivative(code, z, a):
+    """f'(z), using the stored output a = f(z) where that is cheaper."""
+    if code == SIGMOID:
+        return a * (1.0 - a)  # σ' = σ(1 − σ)
+    if code == TANH:
+        return 1.0 - a * a  # tanh' = 1 − tanh²
+    # Branch-free masks: a data-dependent branch per element costs far more than the multiply.
+    if code == RELU:
+        return (z > 0.0) * 1.0
+    if code == LEAKY_RELU:
+        return LEAKY_SLOPE + (1.0 - LEAKY_SLOPE) * (z > 0.0)
+    if code == GELU:
+        t = math.tanh(_GELU_C * (z + _GELU_K * z * z * z))
+        return 0.5 * (1.0 + t) + 0.5 * z * (1.0 - t * t) * _GELU_C * (1.0 + 3.0 * _GELU_K * z * z)
+    if code == SOFTPLUS:
+        return sigmoid(z)  # d/dz log(1 + e^z) = σ(z)
+    return 1.0
+
+
+@njit(cache=True, inline="always")
+def _forward_rows(Z, b, A, code):
+    n, m = Z.shape
+    for i in range(n):
+        z_row, a_row = Z[i], A[i]
+        for j in range(m):
+            z = z_row[j] + b[j]
+            z_row[j] = z
+            a_row[j] = forward(code, z)
+
+
+@njit(cache=True, inline="always")
+def _backward_rows(Z, A, dA, dZ, code):
+    n, m = Z.shape
+    for i in range(n):
+        z_row, a_row, g_row, d_row = Z[i], A[i], dA[i], dZ[i]
+        for j in range(m):
+            d_row[j] = derivative(code, z_row[j], a_row[j]) * g_row[j]
+
+
+@njit(cache=True)
+def bias_forward(Z, b, A, code):
+    """Z += b (row broadcast), then A = f(Z).
+
+    Z: (n, m) pre-activations, updated in place; b: (m,); A: (n, m) output, may be Z itself.
+    The cheap activations get loops with a constant code, which the compiler vectorises.
+    """
+    if code == RELU:
+        _forward_rows(Z, b, A, RELU)
+    elif code == IDENTITY:
+        _forward_rows(Z, b, A, IDENTITY)
+    elif code == LEAKY_RELU:
+        _forward_rows(Z, b, A, LEAKY_RELU)
+    else:
+        _forward_rows(Z, b, A, code)
+
+
+@njit(cache=True)
+def backward(Z, A, dA, dZ, code):
+    """dZ = f'(Z) ⊙ dA, the delta of a layer from the gradient of its output.
+
+    Z, A: (n, m) pre-activations and outputs of the forward pass; dA: (n, m) ∂loss/∂A;
+    dZ: (n, m) written, may be dA itself.
+    """
+    if code == RELU:
+        _backward_rows(Z, A, dA, dZ, RELU)
+    elif code == IDENTITY:
+        _backward_rows(Z, A, dA, dZ, IDENTITY)
+    elif code == LEAKY_RELU:
+        _backward_rows(Z, A, dA, dZ, LEAKY_RELU)
+    elif code == TANH:
+        _backward_rows(Z, A, dA, dZ, TANH)
+    elif code == SIGMOID:
+        _backward_rows(Z, A, dA, dZ, SIGMOID)
+    else:
+        _backward_rows(Z, A, dA, dZ, code)
+
+
+@njit(cache=True)
+def column_sums(dZ, db):
+    """db_j = Σ_i dZ[i, j]: the bias gradient. dZ: (n, m); db: (m,) overwritten."""
+    n, m = dZ.shape
+    for j in range(m):
+        db[j] = 0.0
+    for i in range(n):
+        for j in range(m):
+            db[j] += dZ[i, j]
+
+
+def code_of(name: str) -> int:
+    """Activation code for a name from :data:`CODES`."""
+    return CODES[name]
+
+
+

@@ -1,0 +1,148 @@
+"""Losses fused with their output gradient.
+
+Each kernel reads the output layer's pre-activations (logits) ``Z`` of n rows, writes the model's outputs
+``O`` and ``dZ = ∂(loss sum)/∂Z · scale``, and returns the *unscaled* loss sum over the n rows (float64).
+``scale`` is 1/G, the inverse global batch, so that summing dZ over all ranks' shards gives the gradient of
+the full-batch mean loss.
+"""
+
+from __future__ import annotations
+
+import math
+
+from numba import njit
+
+from .activations import sigmoid
+
+SOFTMAX_CROSS_ENTROPY, BINARY_CROSS_ENTROPY, SQUARED_ERROR = range(3)
+CODES = {
+    "softmax_cross_entropy": SOFTMAX_CROSS_ENTROPY,
+    "binary_cross_entropy": BINARY_CROSS_ENTROPY,
+    "squared_error": SQUARED_ERROR,
+}
+
+
+@njit(cache=True)
+def softmax_cross_entropy(Z, labels, scale, O, dZ):
+    """Per row: loss = logsumexp(z) − z_y; O = softmax(z); dZ = (O − onehot(y))·scale.
+
+    Z: (n, k) logits; labels: (n,) int64 in [0, k); O, dZ: (n, k). Log-sum-exp is shifted by the row
+    maximum, so no exponential overflows.
+    """
+    n, k = Z.shape
+    total = 0.0
+    for i in range(n):
+        zmax = Z[i, 0]
+        for j in range(1, k):
+            if Z[i, j] > zmax:
+                zmax = Z[i, j]
+        s = 0.0
+        for j in range(k):
+            e = math.exp(Z[i, j] - zmax)
+            O[i, j] = e
+            s += e
+        y = labels[i]
+        total += math.log(s) + zmax - Z[i, y]
+        inv = 1.0 / s
+        for j in range(k):
+            p = O[i, j] * inv
+            O[i, j] = p
+            dZ[i, j] = p * scale
+        dZ[i, y] -= scale
+    return total
+
+
+@njit(cache=True)
+def binary_cross_entropy(Z, T, scale, O, dZ):
+    """Per element, from logits: loss = softplus(z) − t·z; O = σ(z); dZ = (σ(z) − t)·scale.
+
+    Z, T, O, dZ: (n, k); T holds 0/1 (any value in [0, 1] is accepted). softplus is evaluated as
+    max(z, 0) + log1p(e^{−|z|}), exact for large |z|.
+    """
+    n, k = Z.shape
+    total = 0.0
+    for i in range(n):
+        for j in range(k):
+            z = Z[i, j]
+            t = T[i, j]
+            total += max(z, 0.0) + math.log1p(math.exp(-abs(z))) - t * z
+            o = sigmoid(z)
+            O[i, j] = o
+            dZ[i, j] = (o - t) * scale
+    return total
+
+
+@njit(cache=True)
+def squared_error(O, T, scale, dO):
+    """Per row: loss = ½ Σ_k (o_k − t_k)²; dO = (O − T)·scale.
+
+    O, T, dO: (n, k). O are the model's outputs after its output activation (identity unless the model
+    asks otherwise); the caller chains dO through that activation's backward rule, which for a sigmoid
+    output gives the textbook delta (o − t)·o·(1 − o).
+    """
+    n, k = O.shape
+    total = 0.0
+    for i in range(n):
+        for j in range(k):
+            d = O[i, j] - T[i, j]
+            total += 0.5 * d * d
+            dO[i, j] = d * scale
+    return total
+
+
+@njit(cache=True)
+def softmax_rows(Z, O):
+    """O = softmax(Z) per row, shifted by the row maximum. Z, O: (n, k); O may be Z."""
+    n, k = Z.shape
+    for i in range(n):
+        zmax = Z[i, 0]
+        for j in range(1, k):
+            if Z[i, j] > zmax:
+                zmax = Z[i, j]
+        s = 0.0
+        for j in range(k):
+            e = math.exp(Z[i, j] - zmax)
+            O[i, j] = e
+            s += e
+        inv = 1.0 / s
+        for j in range(k):
+            O[i, j] *= inv
+
+
+@njit(cache=True)
+def count_correct(O, labels):
+    """Number of rows whose arg-max output equals the integer label. O: (n, k); labels: (n,)."""
+    n, k = O.shape
+    correct = 0
+    for i in range(n):
+        best = 0
+        for j in range(1, k):
+            if O[i, j] > O[i, best]:
+                best = j
+        if best == labels[i]:
+            correct += 1
+    return correct
+
+
+@njit(cache=True)
+def count_correct_binary(O, T):
+    """Number of elements with (O > ½) == (T > ½). O, T: (n, k)."""
+    n, k = O.shape
+    correct = 0
+    for i in range(n):
+        for j in range(k):
+            if (O[i, j] > 0.5) == (T[i, j] > 0.5):
+                correct += 1
+    return correct
+
+
+@njit(cache=True)
+def squared_error_sum(O, T):
+    """Σ (o − t)² over all elements, float64 (for RMSE). O, T: (n, k)."""
+    n, k = O.shape
+    total = 0.0
+    for i in range(n):
+        for j in range(k):
+            d = O[i, j] - T[i, j]
+            total += d * d
+    return total

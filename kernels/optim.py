@@ -1,0 +1,88 @@
+"""Optimizer updates over flat parameter arrays, one fused pass each.
+
+``params``, ``grads`` and every state array (velocity, Adam's m and v) share one flat layout, so each
+update is a single loop over n elements. Scalars arrive as float64; arrays are float32 or float64.
+``l2`` is coupled L2 decay (g ← g + l2·θ); AdamW's decoupled decay is separate, as its paper has it.
+"""
+
+from __future__ import annotations
+
+import math
+
+from numba import njit
+
+
+@njit(cache=True)
+def sgd(params, grads, lr, l2):
+    """θ ← θ − lr·(g + l2·θ)."""
+    for i in range(params.size):
+        params[i] -= lr * (grads[i] + l2 * params[i])
+
+
+@njit(cache=True)
+def momentum(params, grads, velocity, lr, mu, l2):
+    """Classical momentum (Polyak; Sutskever et al. 2013, eq. 1–2): v ← μv − lr·g; θ ← θ + v."""
+    for i in range(params.size):
+        g = grads[i] + l2 * params[i]
+        v = mu * velocity[i] - lr * g
+        velocity[i] = v
+        params[i] += v
+
+
+@njit(cache=True)
+def nesterov(params, grads, velocity, lr, mu, l2):
+    """Nesterov momentum (Sutskever et al. 2013, eq. 3–4) in look-ahead form.
+
+    The stored parameters are Θ = θ + μv, where the gradient is taken, so no second forward pass is
+    needed (Bengio, Boulanger-Lewandowski & Pascanu 2013): v' = μv − lr·g(Θ); Θ' = Θ − μv + (1 + μ)v'.
+    """
+    for i in range(params.size):
+        g = grads[i] + l2 * params[i]
+        v_old = velocity[i]
+        v = mu * v_old - lr * g
+        velocity[i] = v
+        params[i] += -mu * v_old + (1.0 + mu) * v
+
+
+@njit(cache=True)
+def adam(params, grads, m, v, lr, beta1, beta2, eps, step, l2, decay):
+    """Adam (Kingma & Ba 2015, Algorithm 1) with optional decoupled decay (Loshchilov & Hutter 2019, Alg. 2).
+
+    m ← β1 m + (1 − β1) g;  v ← β2 v + (1 − β2) g²;  m̂ = m / (1 − β1^t);  v̂ = v / (1 − β2^t);
+    θ ← θ − lr·m̂ / (√v̂ + ε) − decay·θ.   ``step`` is t ≥ 1; ``decay`` is λ·η_t (0 for plain Adam).
+    """
+    c1 = 1.0 / (1.0 - beta1**step)
+    c2 = 1.0 / (1.0 - beta2**step)
+    for i in range(params.size):
+        p = params[i]
+        g = grads[i] + l2 * p
+        mi = beta1 * m[i] + (1.0 - beta1) * g
+        vi = beta2 * v[i] + (1.0 - beta2) * g * g
+        m[i] = mi
+        v[i] = vi
+        params[i] = p - lr * (mi * c1) / (math.sqrt(vi * c2) + eps) - decay * p
+
+
+@njit(cache=True)
+def sum_squares(x):
+    """Σ x_i² accumulated in float64 (the square of the global gradient norm). x: (n,)."""
+    total = 0.0
+    for i in range(x.size):
+        total += float(x[i]) * float(x[i])
+    return total
+
+
+@njit(cache=True)
+def scale(x, factor):
+    """x ← factor·x in place (gradient clipping). x: (n,)."""
+    for i in range(x.size):
+        x[i] *= factor
+
+
+@njit(cache=True)
+def any_nonfinite(x):
+    """True if any element of the flat array x is NaN or ±inf."""
+    for i in range(x.size):
+        if not math.isfinite(x[i]):
+            return True
+    return False

@@ -1,0 +1,136 @@
+"""Step timing against the BLAS floor (the same process timing only the GEMMs of the same shapes)."""
+
+from __future__ import annotations
+
+import platform
+import statistics
+import time
+from typing import Any
+
+import numpy as np
+from threadpoolctl import threadpool_info, threadpool_limits
+
+from .comm import Comm
+from .config import job_from_dict
+from .data import Split
+from .trainer import Dataset, Trainer, warm_up_kernels
+
+
+def synthetic_dataset(layers: list[int], loss: str, rows: int, dtype: str, seed: int = 0) -> Dataset:
+    """Random standard-normal inputs and random targets of the right kind, already standardised."""
+    rng = np.random.default_rng(seed)
+    X = rng.standard_normal((rows, layers[0])).astype(dtype)
+    k = layers[-1]
+    if loss == "softmax_cross_entropy":
+        targets = rng.integers(0, k, size=rows).astype(np.int64)
+    elif loss == "binary_cross_entropy":
+        targets = rng.integers(0, 2, size=(rows, k)).astype(dtype)
+    else:
+        targets = rng.standard_normal((rows, k)).astype(dtype)
+    split = Split(train=np.arange(rows, dtype=np.int64), validation=np.zeros(0, dtype=np.int64))
+    return Dataset(X=X, targets=targets, split=split, mean=np.zeros(layers[0]), inv_std=np.ones(layers[0]))
+
+
+def gemm_floor_step(trainer: Trainer) -> float:
+    """Seconds for the GEMMs of one step on this rank's local batch shapes.
+
+    Times the three GEMMs per layer (Z = A W, dW = Aᵀ dZ, dA = dZ Wᵀ), including the first layer's dA,
+    which training skips: the floor is therefore slightly *more* work than the step needs.
+    """
+    ws, model = trainer.ws, trainer.model
+    n = ws.rows
+    grads = trainer.grads
+    dWs, _ = model.views(grads)
+    begin = time.perf_counter()
+    for l in range(model.n_layers):
+        np.matmul(ws.A[l][:n], model.weights[l], out=ws.Z[l][:n])
+    for l in reversed(range(model.n_layers)):
+        dZ = ws.delta(0, n, model.sizes[l + 1])
+        np.matmul(ws.A[l][:n].T, dZ, out=dWs[l])
+        np.matmul(dZ, model.weights[l].T, out=ws.delta(1, n, model.sizes[l]))
+    return time.perf_counter() - begin
+
+
+def run_bench(layers: list[int], batch: int, dtype: str = "float32", threads: int = 1, steps: int = 30,
+              warmup: int = 5, reduction: str = "fast", overlap: bool = True, activation: str = "relu",
+              loss: str = "softmax_cross_entropy", method: str = "sgd", bucket_mb: float = 4.0,
+              exact_chunk: int = 64, comm: Comm | None = None) -> dict[str, Any]:
+    """Median time of full training steps (global batch ``batch`` over all ranks) and of the GEMM floor.
+
+    Step and floor are measured in alternating blocks so that drifting machine load hits both alike.
+    Returns global ``samples_per_s`` (G / median step), ``step_ms``, ``floor_samples_per_s`` and
+    ``ratio_to_floor`` (≤ 1 unless the floor is noisy; 1 means no time outside BLAS).
+    """
+    comm = comm or Comm()
+    job = job_from_dict({
+        "model": {"layers": layers, "activation": activation, "loss": loss, "dtype": dtype},
+        "optimizer": {"method": method, "learning_rate": 1e-4},
+        "run": {"global_batch": batch, "threads": threads, "reduction": reduction, "overlap": overlap,
+                "bucket_mb": bucket_mb, "exact_chunk": exact_chunk if reduction == "exact" else 32,
+                "epochs": 1},
+    })
+    rows = max(4 * batch, 1024)
+    with threadpool_limits(limits=threads, user_api="blas"):
+        trainer = Trainer(job, comm, dataset=synthetic_dataset(layers, loss, rows, dtype))
+        compile_s = warm_up_kernels(trainer)
+        spe = trainer.sampler.steps_per_epoch
+        for s in range(warmup):
+            trainer.step(0, s % spe)
+            gemm_floor_step(trainer)
+        step_times, floor_times = [], []
+        block = 5
+        done = 0
+        while done < steps:
+            todo = min(block, steps - done)
+            comm.barrier()
+            for s in range(todo):
+                t0 = time.perf_counter()
+                trainer.step(0, (done + s) % spe)
+                local = np.array([time.perf_counter() - t0])
+                comm.max_(local)
+                step_times.append(float(local[0]))
+            for _ in range(todo):
+                local = np.array([gemm_floor_step(trainer)])
+                comm.max_(local)
+                floor_times.append(float(local[0]))
+            done += todo
+    step_s = statistics.median(step_times)
+    floor_s = statistics.median(floor_times)
+    n_params = trainer.model.n_params
+    return {
+        "layers": layers,
+        "global_batch": batch,
+        "processes": comm.size,
+        "dtype": dtype,
+        "threads": threads,
+        "reduction": reduction,
+        "overlap": overlap,
+        "params": n_params,
+        "steps": steps,
+        "warmup": warmup,
+        "statistic": "median",
+        "samples_per_s": batch / step_s,
+        "step_ms": step_s * 1e3,
+        "floor_samples_per_s": batch / floor_s,
+        "floor_ms": floor_s * 1e3,
+        "ratio_to_floor": floor_s / step_s,
+        "step_ms_min": min(step_times) * 1e3,
+        "floor_ms_min": min(floor_times) * 1e3,
+        "compile_s": compile_s,
+        "machine": machine(),
+    }
+
+
+def machine() -> dict[str, Any]:
+    """What the numbers came from: CPU, cores, BLAS library, Python and numpy versions."""
+    import os
+
+    blas = [i for i in threadpool_info() if i.get("user_api") == "blas"]
+    return {
+        "cpu": platform.processor() or platform.machine(),
+        "cores": os.cpu_count(),
+        "python": platform.python_version(),
+        "numpy": np.__version__,
+        "blas": [f"{i.get('internal_api')} {i.get('version')} ({i.get('architecture')})" for i in blas],
+        "node": platform.node(),
+    }

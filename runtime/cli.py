@@ -1,0 +1,191 @@
+"""The ``shardmill`` command: train, verify, bench, scale, predict, info, demo.
+
+User errors (a bad job, a missing file, a refused checkpoint) print one line and exit 2, with no
+traceback; our own bugs print the rank and a full traceback and end every rank.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import sys
+from pathlib import Path
+
+from .config import JobError
+from .launch import LAUNCHED, relaunch, strip_ranks
+
+
+def _layers(text: str) -> list[int]:
+    try:
+        layers = [int(x) for x in text.split(",")]
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"must be comma-separated integers like 784,1024,10; got {text!r}") from None
+    if len(layers) < 2 or min(layers) < 1:
+        raise argparse.ArgumentTypeError(f"must be at least two positive integers; got {text!r}")
+    return layers
+
+
+def _positive(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"must be a positive integer; got {text!r}") from None
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"must be a positive integer; got {text!r}")
+    return value
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(prog="shardmill", description="Data-parallel MLP training on CPUs over MPI.")
+    sub = parser.add_subparsers(dest="command", required=True)
+
+    def ranks(p: argparse.ArgumentParser) -> None:
+        p.add_argument("--ranks", type=_positive, default=None,
+                       help="start this many processes with the bundled mpiexec (instead of launching it yourself)")
+
+    p = sub.add_parser("train", help="train a job file")
+    p.add_argument("job", type=Path)
+    p.add_argument("--resume", action="store_true", help="continue from workdir/checkpoints/latest")
+    p.add_argument("--no-progress", action="store_true", help="no progress bar")
+    ranks(p)
+
+    p = sub.add_parser("verify", help="compare the parallel gradient with the serial one on the job's batches")
+    p.add_argument("job", type=Path)
+    p.add_argument("--batches", type=_positive, default=3, help="global batches to compare (default 3)")
+    p.add_argument("--trajectory", type=int, default=0, metavar="N",
+                   help="also train N steps serial and parallel and report the weight divergence per step")
+    p.add_argument("--json", type=Path, default=None, help="write the JSON report here")
+    ranks(p)
+
+    p = sub.add_parser("bench", help="time training steps against the BLAS floor; prints JSON")
+    p.add_argument("--layers", type=_layers, default=[784, 1024, 1024, 10])
+    p.add_argument("--batch", type=_positive, default=512, help="global batch G")
+    p.add_argument("--dtype", choices=("float32", "float64"), default="float32")
+    p.add_argument("--threads", type=_positive, default=1, help="BLAS threads per process")
+    p.add_argument("--steps", type=_positive, default=30)
+    p.add_argument("--warmup", type=int, default=5)
+    p.add_argument("--reduction", choices=("fast", "exact"), default="fast")
+    p.add_argument("--exact-chunk", type=_positive, default=64)
+    p.add_argument("--no-overlap", action="store_true", help="one blocking allreduce after backward")
+    p.add_argument("--bucket-mb", type=float, default=4.0)
+    p.add_argument("--activation", default="relu")
+    p.add_argument("--optimizer", default="sgd", help="update rule timed with the step (default sgd)")
+    p.add_argument("--json", action="store_true", help="print only the JSON object")
+    ranks(p)
+
+    p = sub.add_parser("scale", help="scaling study: run the job at several process counts")
+    p.add_argument("job", type=Path)
+    p.add_argument("--ranks", type=str, default="1,2", help="process counts, e.g. 1,2,4")
+    p.add_argument("--mode", choices=("strong", "weak"), default="strong")
+    p.add_argument("--steps", type=_positive, default=20)
+    p.add_argument("--threads", type=_positive, default=1)
+    p.add_argument("--pin", action="store_true", help="pin rank r to core r")
+    p.add_argument("--network", default=None, help="project to this network, e.g. 100Gb/s,2us")
+    p.add_argument("--project", default="8,16,64,256,1024", help="process counts to project to")
+    p.add_argument("--out", type=Path, default=Path("scaling"))
+
+    p = sub.add_parser("predict", help="outputs of a trained model on new inputs")
+    p.add_argument("checkpoint", type=Path, help="checkpoint directory, workdir, or final.npz")
+    p.add_argument("inputs", type=Path)
+    p.add_argument("--out", type=Path, required=True)
+    p.add_argument("--targets", type=Path, default=None, help="labelled set: also print metrics")
+
+    sub.add_parser("info", help="versions, BLAS, MPI, cores and the Numba cache")
+
+    p = sub.add_parser("demo", help="generate the pump-fault data set, train on several ranks, verify")
+    p.add_argument("--out", type=Path, default=Path("shardmill-demo"))
+    p.add_argument("--ranks", type=_positive, default=None, help="processes (default: cores, at most 4)")
+    p.add_argument("--rows", type=_positive, default=12000)
+    p.add_argument("--epochs", type=_positive, default=8)
+    return parser
+
+
+def main(argv: list[str] | None = None) -> int:
+    argv = list(sys.argv[1:] if argv is None else argv)
+    args = build_parser().parse_args(argv)
+    if args.command in ("train", "verify", "bench") and args.ranks and not os.environ.get(LAUNCHED):
+        return relaunch(args.ranks, strip_ranks(argv))
+    from .comm import run_guarded
+
+    return run_guarded(lambda: dispatch(args), user_errors=(JobError,))
+
+
+def dispatch(args: argparse.Namespace) -> int:
+    if args.command == "train":
+        return cmd_train(args)
+    if args.command == "verify":
+        from .verify import cmd_verify
+
+        return cmd_verify(args)
+    if args.command == "bench":
+        return cmd_bench(args)
+    if args.command == "scale":
+        from .scale import cmd_scale
+
+        return cmd_scale(args)
+    if args.command == "predict":
+        from .predict import cmd_predict
+
+        return cmd_predict(args)
+    if args.command == "info":
+        from .info import cmd_info
+
+        return cmd_info()
+    if args.command == "demo":
+        from .demo import cmd_demo
+
+        return cmd_demo(args)
+    raise AssertionError(args.command)
+
+
+def cmd_train(args: argparse.Namespace) -> int:
+    from .comm import Comm
+    from .config import load_job
+    from .trainer import train
+
+    job = load_job(args.job)
+    comm = Comm()
+    result = train(job, comm, resume=args.resume, progress=not args.no_progress)
+    if comm.rank == 0:
+        for record in result["history"]:
+            print(_epoch_line(record))
+        print(f"done: {result['steps']} steps on {comm.size} process(es); final parameters in "
+              f"{Path(result['workdir']) / 'final.npz'}")
+    return 0
+
+
+def _epoch_line(record: dict) -> str:
+    parts = [f"epoch {record['epoch']:>3}", f"step {record['step']:>6}", f"loss {record['train']['loss']:.4f}"]
+    if "accuracy" in record["train"]:
+        parts.append(f"acc {record['train']['accuracy']:.4f}")
+    val = record.get("validation")
+    if val:
+        parts.append(f"val_loss {val['loss']:.4f}")
+        for key in ("accuracy", "rmse"):
+            if key in val:
+                parts.append(f"val_{key} {val[key]:.4f}")
+    parts.append(f"{record['samples_per_s']:,.0f} samples/s")
+    return "  ".join(parts)
+
+
+def cmd_bench(args: argparse.Namespace) -> int:
+    from .bench import run_bench
+    from .comm import Comm
+    from .config import ACTIVATIONS, METHODS, _choice
+
+    _choice("--activation", args.activation, ACTIVATIONS)
+    _choice("--optimizer", args.optimizer, METHODS)
+    if args.bucket_mb <= 0:
+        raise JobError(f"`--bucket-mb` must be > 0; got {args.bucket_mb}")
+    comm = Comm()
+    result = run_bench(args.layers, args.batch, dtype=args.dtype, threads=args.threads, steps=args.steps,
+                       warmup=args.warmup, reduction=args.reduction, overlap=not args.no_overlap,
+                       activation=args.activation, method=args.optimizer, bucket_mb=args.bucket_mb, exact_chunk=args.exact_chunk,
+                       comm=comm)
+    if comm.rank == 0:
+        if not args.json:
+            print(f"{result['samples_per_s']:,.0f} samples/s, {result['step_ms']:.2f} ms/step, "
+                  f"{result['ratio_to_floor']:.3f} of the BLAS floor", file=sys.stderr)
+        print(json.dumps(result))
+    return 0

@@ -1,0 +1,145 @@
+"""The few MPI operations the runtime needs, on numpy buffers (uppercase mpi4py methods, in place).
+
+A world of size 1 needs no launcher (MPI singleton start). Every rank must call the same collectives in
+the same order; nothing here branches on the rank around a collective.
+"""
+
+from __future__ import annotations
+
+import os
+import sys
+import traceback
+import zlib
+from collections.abc import Callable
+from typing import Any
+
+import numpy as np
+
+os.environ.setdefault("MPI4PY_RC_THREADS", "0")  # no MPI_THREAD_MULTIPLE needed: lighter, faster progress
+from mpi4py import MPI  # noqa: E402
+
+_MPI_TYPES = {np.dtype(np.float32): MPI.FLOAT, np.dtype(np.float64): MPI.DOUBLE, np.dtype(np.int64): MPI.INT64_T}
+
+
+class Comm:
+    """A communicator with in-place sums, non-blocking bucket reductions, max, broadcast and abort."""
+
+    def __init__(self, comm: Any = None) -> None:
+        self.comm = MPI.COMM_WORLD if comm is None else comm
+        self.rank: int = self.comm.Get_rank()
+        self.size: int = self.comm.Get_size()
+
+    @staticmethod
+    def _buffer(array: np.ndarray) -> list:
+        if not array.flags.c_contiguous:
+            raise ValueError("MPI buffers must be contiguous")
+        return [array, _MPI_TYPES[array.dtype]]
+
+    def sum_(self, array: np.ndarray) -> np.ndarray:
+        """In-place SUM allreduce of a contiguous array; returns it."""
+        if self.size > 1:
+            self.comm.Allreduce(MPI.IN_PLACE, self._buffer(array), op=MPI.SUM)
+        return array
+
+    def start_sum_(self, array: np.ndarray) -> Any:
+        """Start a non-blocking in-place SUM allreduce of a contiguous slice; returns a request (or None)."""
+        if self.size == 1:
+            return None
+        return self.comm.Iallreduce(MPI.IN_PLACE, self._buffer(array), op=MPI.SUM)
+
+    @staticmethod
+    def wait(requests: list) -> None:
+        """Wait for every request started by :meth:`start_sum_`."""
+        live = [r for r in requests if r is not None]
+        if live:
+            MPI.Request.Waitall(live)
+
+    def max_(self, array: np.ndarray) -> np.ndarray:
+        """In-place MAX allreduce."""
+        if self.size > 1:
+            self.comm.Allreduce(MPI.IN_PLACE, self._buffer(array), op=MPI.MAX)
+        return array
+
+    def min_(self, array: np.ndarray) -> np.ndarray:
+        """In-place MIN allreduce."""
+        if self.size > 1:
+            self.comm.Allreduce(MPI.IN_PLACE, self._buffer(array), op=MPI.MIN)
+        return array
+
+    def bcast_(self, array: np.ndarray, root: int = 0) -> np.ndarray:
+        """In-place broadcast from ``root``."""
+        if self.size > 1:
+            self.comm.Bcast(self._buffer(array), root=root)
+        return array
+
+    def bcast_object(self, obj: Any, root: int = 0) -> Any:
+        """Broadcast a small control object (start-up only, never in the step)."""
+        return self.comm.bcast(obj, root=root) if self.size > 1 else obj
+
+    def barrier(self) -> None:
+        if self.size > 1:
+            self.comm.Barrier()
+
+    def all_equal(self, array: np.ndarray) -> bool:
+        """True if ``array`` holds the same bytes on every rank (CRC-32 compared by MIN and MAX)."""
+        crc = np.array([zlib.crc32(np.ascontiguousarray(array).view(np.uint8))], dtype=np.int64)
+        low, high = self.min_(crc.copy()), self.max_(crc.copy())
+        return bool(low[0] == high[0])
+
+    def abort(self, code: int = 1) -> None:
+        """End every rank of the job now."""
+        sys.stdout.flush()
+        sys.stderr.flush()
+        self.comm.Abort(code)
+
+
+def run_guarded(main: Callable[[], int], user_errors: tuple[type[BaseException], ...] = ()) -> int:
+    """Run ``main`` so that a failure on any rank ends the whole job with a non-zero exit.
+
+    A user error (bad job, bad data) raised identically on every rank before any collective is printed
+    once, by rank 0, and every rank exits with status 2. Any other exception is printed with the rank and
+    a traceback, and ``MPI_Abort`` ends every rank (no rank is left waiting in a collective).
+    """
+    comm = MPI.COMM_WORLD
+    rank, size = comm.Get_rank(), comm.Get_size()
+    try:
+        return main()
+    except user_errors as err:
+        if rank == 0 or getattr(err, "local", False):
+            prefix = f"[rank {rank}] " if size > 1 and getattr(err, "local", False) else ""
+            print(f"shardmill: error: {prefix}{err}", file=sys.stderr, flush=True)
+        if getattr(err, "local", False) and size > 1:
+            comm.Abort(2)
+        return 2
+    except KeyboardInterrupt:
+        print(f"shardmill: [rank {rank}] interrupted", file=sys.stderr, flush=True)
+        if size > 1:
+            comm.Abort(130)
+        return 130
+    except BaseException as err:  # noqa: BLE001 - any failure must end the job
+        if isinstance(err, SystemExit) and not err.code:
+            raise
+        text = "".join(traceback.format_exception(err))
+        print(f"shardmill: [rank {rank}] failed: {err!r}\n{text}", file=sys.stderr, flush=True)
+        if size > 1:
+            comm.Abort(1)
+        return 1
+
+
+def agree(comm: Comm, error: Exception | None) -> None:
+    """Start-up check point: if ``error`` is set on any rank, every rank raises the same JobError.
+
+    Used where a failure can be local to one rank (a file missing on one node, a bad row in one shard).
+    The message names the first failing rank. Small control message (lowercase allgather), start-up only.
+    """
+    from .config import JobError
+
+    if comm.size == 1:
+        if error is not None:
+            raise error
+        return
+    messages = comm.comm.allgather(None if error is None else str(error))
+    failed = [(r, m) for r, m in enumerate(messages) if m is not None]
+    if failed:
+        rank, text = failed[0]
+        raise JobError(f"[rank {rank}] {text}")

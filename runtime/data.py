@@ -1,0 +1,148 @@
+"""Data sets, the sampler and sharding.
+
+Inputs are read lazily: ``.npy`` files are memory-mapped, so each rank touches only the rows of its shards.
+The sampler draws a seeded permutation per epoch that does not depend on the number of processes; each
+rank takes one contiguous slice of every global batch.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from .config import JobError
+from .kernels import data as data_kernels
+from .kernels import exactsum
+
+_STATS_BLOCK = 1024  # rows per block of the standardisation pass; fixed, so statistics do not depend on P
+
+
+def read_array(path: Path, field_name: str, mmap: bool = True) -> np.ndarray:
+    """Read a .npy (memory-mapped), .npz (its only array, or `x`/`y`) or .csv (comma-separated numbers)."""
+    if not path.is_file():
+        raise JobError(f"`{field_name}` file {str(path)!r} does not exist")
+    suffix = path.suffix.lower()
+    try:
+        if suffix == ".npy":
+            return np.load(path, mmap_mode="r" if mmap else None, allow_pickle=False)
+        if suffix == ".npz":
+            with np.load(path, allow_pickle=False) as archive:
+                keys = list(archive.keys())
+                key = keys[0] if len(keys) == 1 else next((k for k in ("x", "y", "X", "inputs", "targets")
+                                                            if k in keys), None)
+                if key is None:
+                    raise JobError(f"`{field_name}` archive {str(path)!r} holds {keys}; store one array")
+                return archive[key]
+        if suffix == ".csv":
+            return np.loadtxt(path, delimiter=",", ndmin=2, dtype=np.float64)
+    except (ValueError, OSError) as err:
+        if isinstance(err, JobError):
+            raise
+        raise JobError(f"`{field_name}` file {str(path)!r} cannot be read: {err}") from None
+    raise JobError(f"`{field_name}` must be a .npy, .npz or .csv file; got {str(path)!r}")
+
+
+def squeeze_labels(y: np.ndarray) -> np.ndarray:
+    """CSV labels arrive as (n, 1); class labels are (n,)."""
+    return y[:, 0] if y.ndim == 2 and y.shape[1] == 1 else y
+
+
+@dataclass
+class Split:
+    """Row indices (int64, into the full data set) of the training and validation parts."""
+
+    train: np.ndarray
+    validation: np.ndarray
+
+
+def split_rows(n_rows: int, validation_fraction: float, seed: int) -> Split:
+    """A seeded split, the same on every rank and for every P: validation takes the first ⌊f·n⌋ rows of a
+    permutation, training the rest in ascending order."""
+    perm = np.random.default_rng([seed, 7919]).permutation(n_rows)
+    n_val = int(validation_fraction * n_rows)
+    return Split(train=np.sort(perm[n_val:]).astype(np.int64), validation=np.sort(perm[:n_val]).astype(np.int64))
+
+
+def block_range(n_blocks: int, rank: int, size: int) -> tuple[int, int]:
+    """Contiguous share [lo, hi) of n_blocks items for ``rank`` of ``size`` (uneven when size ∤ n_blocks)."""
+    return (rank * n_blocks) // size, ((rank + 1) * n_blocks) // size
+
+
+def column_statistics(X: np.ndarray, rows: np.ndarray, comm) -> tuple[np.ndarray, np.ndarray, int]:
+    """Mean and inverse standard deviation per column over ``rows`` of X, identical on every rank and every P.
+
+    Each rank sums fixed blocks of rows in float64; block sums are accumulated exactly (fixed-point limbs)
+    and reduced with an integer SUM, so the result is independent of how blocks fall onto ranks. Also the
+    finite check of the data: returns the first non-finite row (index into X) or −1. Columns with zero
+    variance get inv_std = 1.
+    """
+    d = X.shape[1]
+    n_blocks = -(-rows.size // _STATS_BLOCK)
+    lo, hi = block_range(n_blocks, comm.rank, comm.size)
+    acc = np.zeros((exactsum.LIMBS, 2 * d), dtype=np.int64)
+    sums = np.empty(2 * d, dtype=np.float64)
+    bad = np.array([np.iinfo(np.int64).max], dtype=np.int64)
+    for block in range(lo, hi):
+        chunk = np.asarray(X[rows[block * _STATS_BLOCK:(block + 1) * _STATS_BLOCK]], dtype=np.float64)
+        finite = np.isfinite(chunk).all(axis=1)
+        if not finite.all():
+            bad[0] = min(bad[0], rows[block * _STATS_BLOCK + int(np.argmin(finite))])
+            continue
+        np.sum(chunk, axis=0, out=sums[:d])
+        np.sum(chunk * chunk, axis=0, out=sums[d:])
+        if not exactsum.accumulate(sums, acc) < exactsum.MAX_ABS:
+            raise JobError("`data.inputs` values are too large to standardise (column sums ≥ 2^31)")
+    comm.min_(bad)
+    comm.sum_(acc)
+    exactsum.to_float(acc, sums)
+    n = max(rows.size, 1)
+    mean = sums[:d] / n
+    var = np.maximum(sums[d:] / n - mean * mean, 0.0)
+    std = np.sqrt(var)
+    inv_std = np.where(std > 1e-12 * np.maximum(1.0, np.abs(mean)), 1.0 / np.where(std > 0, std, 1.0), 1.0)
+    first_bad = -1 if bad[0] == np.iinfo(np.int64).max else int(bad[0])
+    return mean, inv_std, first_bad
+
+
+class Sampler:
+    """The global batches of an epoch: batch s of epoch e is rows ``perm_e[s·G:(s+1)·G]`` of the training set.
+
+    perm_e comes from ``default_rng([seed, e])``, so every rank and every process count P sees the same
+    global batches. The last partial batch of an epoch is dropped.
+    """
+
+    def __init__(self, train_rows: np.ndarray, global_batch: int, seed: int) -> None:
+        if global_batch > train_rows.size:
+            raise JobError(f"`run.global_batch` must be ≤ the {train_rows.size} training rows; got {global_batch}")
+        self.rows = train_rows
+        self.global_batch = global_batch
+        self.seed = seed
+        self._epoch = -1
+        self._perm = train_rows
+
+    @property
+    def steps_per_epoch(self) -> int:
+        return self.rows.size // self.global_batch
+
+    def batch(self, epoch: int, step_in_epoch: int) -> np.ndarray:
+        """The G row indices (into the data set) of one global batch, int64 (G,)."""
+        if epoch != self._epoch:
+            self._perm = self.rows[np.random.default_rng([self.seed, epoch]).permutation(self.rows.size)]
+            self._epoch = epoch
+        G = self.global_batch
+        return self._perm[step_in_epoch * G:(step_in_epoch + 1) * G]
+
+
+def shard(global_rows: np.ndarray, rank: int, size: int) -> np.ndarray:
+    """This rank's contiguous slice [lo, hi) of a global batch (uneven when P ∤ G)."""
+    lo, hi = block_range(global_rows.size, rank, size)
+    return global_rows[lo:hi]
+
+
+def gather(X: np.ndarray, rows: np.ndarray, mean: np.ndarray, inv_std: np.ndarray, out: np.ndarray) -> None:
+    """Copy the standardised rows of X into the batch buffer ``out[:len(rows)]``; raise on a non-finite row."""
+    bad = data_kernels.gather_rows(X, rows, mean, inv_std, out)
+    if bad >= 0:
+        raise JobError(f"`data.inputs` row {int(rows[bad])} holds a non-finite value (NaN or inf)")

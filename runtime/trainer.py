@@ -1,0 +1,400 @@
+"""Data-parallel training: every rank runs the same step on its shard of each global batch.
+
+Read :meth:`Trainer.step` top to bottom: sample → shard → gather → forward → loss → backward (bucket
+launches) → wait → update. Metrics are summed locally and reduced once per epoch.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from threadpoolctl import threadpool_limits
+
+from . import checkpoint
+from .comm import Comm, agree
+from .config import Job, JobError
+from .data import Sampler, Split, block_range, column_statistics, gather, read_array, shard, split_rows, squeeze_labels
+from .exchange import GradientExchange
+from .kernels import exactsum, losses
+from .kernels import optim as kernels_optim
+from .model import MLP
+from .optim import Optimizer
+
+PHASES = ("data", "forward", "backward", "exchange", "update")
+
+
+@dataclass
+class Dataset:
+    """Inputs (possibly memory-mapped), validated targets, the split, and standardisation statistics."""
+
+    X: np.ndarray
+    targets: np.ndarray
+    split: Split
+    mean: np.ndarray
+    inv_std: np.ndarray
+
+
+def model_from_job(job: Job) -> MLP:
+    m = job.model
+    return MLP(m.layers, activation=m.activation, loss=m.loss, dtype=m.dtype, seed=job.run.seed, init=m.init,
+               output=m.output)
+
+
+def load_dataset(job: Job, model: MLP, comm: Comm) -> Dataset:
+    """Open and check the data on every rank; any rank's failure is raised identically on all ranks."""
+    error: Exception | None = None
+    X = targets = None
+    try:
+        if not job.data.inputs or not job.data.targets:
+            raise JobError("`data.inputs` and `data.targets` must both name files")
+        X = np.asarray(read_array(job.path(job.data.inputs), "data.inputs"))
+        y = squeeze_labels(np.asarray(read_array(job.path(job.data.targets), "data.targets", mmap=False)))
+        if X.dtype.kind not in "fiu":
+            raise JobError(f"`data.inputs` must hold numbers; got dtype {X.dtype}")
+        if X.dtype.kind != "f":
+            X = X.astype(np.float64)
+        model.check_inputs(X, "data.inputs")
+        if y.shape[0] != X.shape[0]:
+            raise JobError(f"`data.targets` has {y.shape[0]} rows but `data.inputs` has {X.shape[0]}")
+        targets = model.check_targets(y, X.shape[0], "data.targets")
+    except (JobError, OSError, MemoryError) as err:
+        error = err if isinstance(err, JobError) else JobError(f"data cannot be loaded: {err}")
+    agree(comm, error)
+    split = split_rows(X.shape[0], job.data.validation_fraction, job.run.seed)
+    if split.train.size == 0:
+        raise JobError("`data.validation_fraction` leaves no training rows")
+    mean, inv_std, bad = column_statistics(X, split.train if job.data.standardize else split.train[:0], comm)
+    if bad < 0 and split.validation.size:
+        bad = _first_nonfinite(X, split.validation, comm)
+    if bad >= 0:
+        raise JobError(f"`data.inputs` row {bad} holds a non-finite value (NaN or inf)")
+    if not job.data.standardize:
+        mean, inv_std = np.zeros(X.shape[1]), np.ones(X.shape[1])
+    return Dataset(X=X, targets=targets, split=split, mean=mean, inv_std=inv_std)
+
+
+def _first_nonfinite(X: np.ndarray, rows: np.ndarray, comm: Comm) -> int:
+    lo, hi = block_range(rows.size, comm.rank, comm.size)
+    part = np.asarray(X[rows[lo:hi]])
+    finite = np.isfinite(part).all(axis=1)
+    bad = np.array([rows[lo + int(np.argmin(finite))] if not finite.all() else np.iinfo(np.int64).max])
+    comm.min_(bad)
+    return -1 if bad[0] == np.iinfo(np.int64).max else int(bad[0])
+
+
+@dataclass
+class PhaseTimer:
+    """Seconds spent per phase since the last reset: data, forward, backward, exchange, update."""
+
+    seconds: np.ndarray = field(default_factory=lambda: np.zeros(len(PHASES)))
+    _last: float = 0.0
+
+    def start(self) -> None:
+        self._last = time.perf_counter()
+
+    def lap(self, phase: int) -> None:
+        now = time.perf_counter()
+        self.seconds[phase] += now - self._last
+        self._last = now
+
+
+class Trainer:
+    """Owns the model, data, optimizer, exchange and workspaces of one job on one rank."""
+
+    def __init__(self, job: Job, comm: Comm | None = None, dataset: Dataset | None = None) -> None:
+        self.job = job
+        self.comm = comm or Comm()
+        run = job.run
+        P, G = self.comm.size, run.global_batch
+        if G < P:
+            raise JobError(f"`run.global_batch` must be ≥ the number of processes {P}; got {G}")
+        if run.reduction == "exact" and G // run.exact_chunk < P:
+            raise JobError(f"`run.reduction` = 'exact' needs at least one chunk per process: global_batch / "
+                           f"exact_chunk = {G // run.exact_chunk} chunks < {P} processes")
+        self.model = model_from_job(job)
+        self.data = dataset if dataset is not None else load_dataset(job, self.model, self.comm)
+        self.sampler = Sampler(self.data.split.train, G, run.seed)
+        self.optimizer = Optimizer(job.optimizer, self.model.n_params, self.model.dtype)
+        self.grads = np.zeros_like(self.model.params)
+        self.exact = run.reduction == "exact"
+        rows = run.exact_chunk if self.exact else -(-G // P)
+        self.ws = self.model.workspace(rows)
+        self.batch_targets = np.zeros((rows,) + self.data.targets.shape[1:], dtype=self.data.targets.dtype)
+        self.exchange = GradientExchange(self.comm, self.model, self.grads, run.bucket_mb, run.overlap)
+        if self.exact:
+            self.chunk_grads = np.zeros_like(self.grads)
+            self.limbs = np.zeros((exactsum.LIMBS, self.model.n_params), dtype=np.int64)
+            self.loss_limbs = np.zeros((exactsum.LIMBS, 1), dtype=np.int64)
+            self.loss_value = np.zeros(1, dtype=np.float64)
+        self.step_count = 0  # global steps completed
+        self.total_steps = self.planned_steps()
+        self.timer = PhaseTimer()
+        self.sums = np.zeros(3)  # loss sum, correct, counted (local, since the last reduce)
+        if not self.comm.all_equal(self.model.params):
+            raise RuntimeError("initial parameters differ across ranks")
+
+    def planned_steps(self) -> int:
+        total = self.job.run.epochs * self.sampler.steps_per_epoch
+        return min(total, self.job.run.max_steps) if self.job.run.max_steps else total
+
+    def gather_targets(self, rows: np.ndarray) -> np.ndarray:
+        np.take(self.data.targets, rows, axis=0, out=self.batch_targets[:rows.size])
+        return self.batch_targets
+
+    def compute_shard(self, rows: np.ndarray, grads: np.ndarray, launch: bool) -> float:
+        """Gradient of this rank's rows into ``grads`` (scaled by 1/G); returns the local loss sum."""
+        n, G = rows.size, self.job.run.global_batch
+        gather(self.data.X, rows, self.data.mean, self.data.inv_std, self.ws.inputs)
+        targets = self.gather_targets(rows)
+        self.timer.lap(0)
+        loss_sum = self.ws.forward_loss(n, targets, 1.0 / G)
+        self.sums += (loss_sum, self.count_correct(n, targets), n)
+        self.timer.lap(1)
+        for layer in self.ws.backward(n, grads):
+            if launch:
+                self.exchange.layer_done(layer)
+        self.timer.lap(2)
+        return loss_sum
+
+    def count_correct(self, n: int, targets: np.ndarray) -> int:
+        loss = self.model.loss_code
+        if loss == losses.SOFTMAX_CROSS_ENTROPY:
+            return losses.count_correct(self.ws.O[:n], targets[:n])  # O holds the softmax of this batch
+        if loss == losses.BINARY_CROSS_ENTROPY:
+            return losses.count_correct_binary(self.ws.O[:n], targets[:n])
+        return 0
+
+    def step(self, epoch: int, step_in_epoch: int) -> None:
+        """One global step of G samples, identical in effect on every rank."""
+        self.timer.start()
+        rows = self.sampler.batch(epoch, step_in_epoch)  # sample: the G global indices
+        if self.exact:
+            self.exact_gradient(rows)
+        else:
+            mine = shard(rows, self.comm.rank, self.comm.size)  # shard: contiguous [lo, hi)
+            self.compute_shard(mine, self.grads, launch=True)  # gather, forward, loss, backward + launches
+            self.exchange.wait()  # every bucket reduced: the full-batch mean gradient
+        self.timer.lap(3)
+        self.optimizer.clip(self.grads)
+        self.optimizer.step(self.model.params, self.grads, self.total_steps)  # update
+        self.timer.lap(4)
+        self.step_count += 1
+        every = self.job.run.check_every
+        if every and self.step_count % every == 0 and not self.comm.all_equal(self.model.params):
+            raise RuntimeError(f"parameters drifted apart across ranks at step {self.step_count}")
+
+    def exact_gradient(self, rows: np.ndarray) -> None:
+        """Exact mode: fixed chunks of the global batch, each gradient accumulated exactly (fixed point).
+
+        Chunk k is rows[k·c:(k+1)·c] whatever P is, so every chunk's gradient has the same bits on any rank;
+        integer sums are associative, so the reduced gradient does not depend on P or on reduction order.
+        """
+        c = self.job.run.exact_chunk
+        lo, hi = block_range(rows.size // c, self.comm.rank, self.comm.size)
+        self.limbs.fill(0)
+        self.loss_limbs.fill(0)
+        for k in range(lo, hi):
+            loss_sum = self.compute_shard(rows[k * c:(k + 1) * c], self.chunk_grads, launch=False)
+            self.loss_value[0] = loss_sum
+            largest = exactsum.accumulate(self.chunk_grads, self.limbs)
+            exactsum.accumulate(self.loss_value, self.loss_limbs)
+            if not largest < exactsum.MAX_ABS:
+                raise FloatingPointError(f"gradient element {largest!r} is outside the exact accumulator's "
+                                         f"range (|g| < 2^31)")
+            self.timer.lap(2)
+        self.comm.sum_(self.limbs)
+        exactsum.to_float(self.limbs, self.grads)
+
+    def evaluate(self, rows: np.ndarray) -> dict[str, float]:
+        """Loss and accuracy (or RMSE) over ``rows``, each rank taking a contiguous part; reduced."""
+        lo, hi = block_range(rows.size, self.comm.rank, self.comm.size)
+        part = rows[lo:hi]
+        sums = np.zeros(3)  # loss sum, correct or squared-error sum, rows
+        width = self.ws.rows
+        for start in range(0, part.size, width):
+            chunk = part[start:start + width]
+            n = chunk.size
+            gather(self.data.X, chunk, self.data.mean, self.data.inv_std, self.ws.inputs)
+            targets = self.gather_targets(chunk)
+            sums[0] += self.ws.forward_loss(n, targets, 0.0)
+            if self.model.loss == "squared_error":
+                sums[1] += losses.squared_error_sum(self.ws.O[:n], targets[:n])
+            else:
+                sums[1] += self.count_correct(n, targets)
+            sums[2] += n
+        self.comm.sum_(sums)
+        return self.summarise(sums)
+
+    def summarise(self, sums: np.ndarray) -> dict[str, float]:
+        n = max(sums[2], 1.0)
+        out = {"loss": float(sums[0] / n)}
+        k = self.model.sizes[-1]
+        if self.model.loss == "squared_error":
+            out["rmse"] = float(math.sqrt(sums[1] / (n * k)))
+        elif self.model.loss == "binary_cross_entropy":
+            out["accuracy"] = float(sums[1] / (n * k))
+        else:
+            out["accuracy"] = float(sums[1] / n)
+        return out
+
+    def reduce_phases(self) -> tuple[dict[str, float], dict[str, float]]:
+        """Per-phase seconds since the last call: (max over ranks, mean over ranks)."""
+        high, total = self.timer.seconds.copy(), self.timer.seconds.copy()
+        self.comm.max_(high)
+        self.comm.sum_(total)
+        self.timer.seconds[:] = 0.0
+        mean = total / self.comm.size
+        return dict(zip(PHASES, map(float, high), strict=True)), dict(zip(PHASES, map(float, mean), strict=True))
+
+
+def warm_up_kernels(trainer: Trainer) -> float:
+    """Compile (or load from Numba's disk cache) every kernel the step uses; rank 0 first, then the others.
+
+    Ranks starting together would otherwise all compile and write the cache at once. Works on scratch
+    copies, so the model is untouched. Returns the seconds it took on this rank.
+    """
+    comm = trainer.comm
+    begin = time.perf_counter()
+
+    def run() -> None:
+        rows = trainer.data.split.train[: min(2, trainer.data.split.train.size)]
+        grads = np.zeros_like(trainer.grads)
+        gather(trainer.data.X, rows, trainer.data.mean, trainer.data.inv_std, trainer.ws.inputs)
+        targets = trainer.gather_targets(rows)
+        trainer.ws.forward_loss(rows.size, targets, 1.0)
+        trainer.count_correct(rows.size, targets)
+        for _ in trainer.ws.backward(rows.size, grads):
+            pass
+        scratch = Optimizer(trainer.job.optimizer, grads.size, grads.dtype)
+        scratch.clip(grads)
+        kernels_optim.sum_squares(grads)
+        kernels_optim.scale(grads, 1.0)
+        scratch.step(trainer.model.params.copy(), grads, 1)
+        if trainer.exact:
+            limbs = np.zeros((exactsum.LIMBS, grads.size), dtype=np.int64)
+            exactsum.accumulate(grads, limbs)
+            exactsum.accumulate(np.zeros(1), limbs[:, :1].copy())
+            exactsum.to_float(limbs, grads)
+
+    if comm.rank == 0:
+        run()
+    comm.barrier()
+    if comm.rank != 0:
+        run()
+    return time.perf_counter() - begin
+
+
+def train(job: Job, comm: Comm | None = None, resume: bool = False, progress: bool = True) -> dict[str, Any]:
+    """Train ``job`` on every rank of ``comm`` (MPI.COMM_WORLD by default).
+
+    Rank 0 writes ``workdir/metrics.jsonl`` (one JSON object per epoch), checkpoints and
+    ``workdir/final.npz`` (arrays W0, b0, W1, b1, …). Returns a summary dict on every rank, including
+    the final model under ``"model"``.
+    """
+    comm = comm or Comm()
+    with threadpool_limits(limits=job.run.threads, user_api="blas"):
+        trainer = Trainer(job, comm)
+        return _train_loop(trainer, resume, progress)
+
+
+def _train_loop(trainer: Trainer, resume: bool, progress: bool) -> dict[str, Any]:
+    job, comm, model = trainer.job, trainer.comm, trainer.model
+    workdir = job.workdir
+    lead = comm.rank == 0
+    compile_s = warm_up_kernels(trainer)
+    start_step = 0
+    if resume:
+        start_step = checkpoint.resume(trainer)
+    if lead:
+        workdir.mkdir(parents=True, exist_ok=True)
+    steps_per_epoch = trainer.sampler.steps_per_epoch
+    total = trainer.total_steps
+    history: list[dict[str, Any]] = []
+    bar = _progress_bar(total, start_step, lead and progress)
+    metrics_path = workdir / "metrics.jsonl"
+    epoch_begin = time.perf_counter()
+    epoch_steps = 0
+    step = start_step
+    while step < total:
+        epoch, in_epoch = divmod(step, steps_per_epoch)
+        trainer.step(epoch, in_epoch)
+        step += 1
+        epoch_steps += 1
+        if bar is not None:
+            bar.update(1)
+        end_of_epoch = step % steps_per_epoch == 0 or step == total
+        if job.run.save_every and step % job.run.save_every == 0 and step < total:
+            checkpoint.save(trainer, step)
+        if end_of_epoch:
+            seconds = time.perf_counter() - epoch_begin
+            record = _epoch_record(trainer, epoch, step, epoch_steps, seconds, compile_s)
+            history.append(record)
+            if lead:
+                with open(metrics_path, "a") as out:
+                    out.write(json.dumps(record) + "\n")
+                if bar is not None:
+                    bar.set_postfix(loss=f"{record['train']['loss']:.4g}",
+                                    samples_s=f"{record['samples_per_s']:.0f}")
+            epoch_begin = time.perf_counter()
+            epoch_steps = 0
+    if bar is not None:
+        bar.close()
+    checkpoint.save(trainer, step)
+    if lead:
+        checkpoint.write_final(workdir / "final.npz", trainer)
+    return {"model": model, "history": history, "steps": step, "workdir": str(workdir),
+            "processes": comm.size, "compile_s": compile_s}
+
+
+def _progress_bar(total: int, done: int, show: bool):
+    if not show:
+        return None
+    from tqdm import tqdm
+
+    return tqdm(total=total, initial=done, unit="step", dynamic_ncols=True, disable=None)
+
+
+def _epoch_record(trainer: Trainer, epoch: int, step: int, steps: int, seconds: float,
+                  compile_s: float) -> dict[str, Any]:
+    job, comm = trainer.job, trainer.comm
+    sums = trainer.sums.copy()
+    comm.sum_(sums)
+    trainer.sums[:] = 0.0
+    train_metrics = trainer.summarise(sums)
+    phase_max, phase_mean = trainer.reduce_phases()
+    seconds_max = np.array([seconds])
+    comm.max_(seconds_max)
+    record: dict[str, Any] = {
+        "epoch": epoch + 1,
+        "step": step,
+        "processes": comm.size,
+        "global_batch": job.run.global_batch,
+        "reduction": job.run.reduction,
+        "train": train_metrics,
+        "learning_rate": trainer.optimizer.spec.learning_rate if trainer.optimizer.updates == 0 else
+        _current_lr(trainer),
+        "seconds": float(seconds_max[0]),
+        "samples_per_s": float(steps * job.run.global_batch / max(seconds_max[0], 1e-12)),
+        "phase_seconds_max": phase_max,
+        "phase_seconds_mean": phase_mean,
+        "compile_s": compile_s,
+    }
+    if trainer.data.split.validation.size:
+        record["validation"] = trainer.evaluate(trainer.data.split.validation)
+    return record
+
+
+def _current_lr(trainer: Trainer) -> float:
+    from .optim import learning_rate
+
+    return learning_rate(trainer.optimizer.spec, trainer.optimizer.updates - 1, trainer.total_steps)
+
+
+def final_path(workdir: str | Path) -> Path:
+    return Path(workdir) / "final.npz"

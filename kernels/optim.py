@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import math
 
+import numpy as np
 from numba import njit
 
 
@@ -68,7 +69,8 @@ def sum_squares(x):
     """Σ x_i² accumulated in float64 (the square of the global gradient norm). x: (n,)."""
     total = 0.0
     for i in range(x.size):
-        total += float(x[i]) * float(x[i])
+        xi = np.float64(x[i])  # numba's float() would keep a float32 element in float32
+        total += xi * xi
     return total
 
 

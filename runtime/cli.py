@@ -181,7 +181,8 @@ def cmd_bench(args: argparse.Namespace) -> int:
     comm = Comm()
     result = run_bench(args.layers, args.batch, dtype=args.dtype, threads=args.threads, steps=args.steps,
                        warmup=args.warmup, reduction=args.reduction, overlap=not args.no_overlap,
-                       activation=args.activation, method=args.optimizer, bucket_mb=args.bucket_mb, exact_chunk=args.exact_chunk,
+                       activation=args.activation, method=args.optimizer, bucket_mb=args.bucket_mb,
+                       exact_chunk=args.exact_chunk,
                        comm=comm)
     if comm.rank == 0:
         if not args.json:

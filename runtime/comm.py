@@ -72,6 +72,19 @@ class Comm:
             self.comm.Bcast(self._buffer(array), root=root)
         return array
 
+    def allgather_rows(self, local: np.ndarray, counts: list[int]) -> np.ndarray:
+        """Concatenate every rank's rows (rank order) on every rank. local: (counts[rank], m) float64."""
+        m = local.shape[1]
+        out = np.empty((sum(counts), m), dtype=local.dtype)
+        if self.size == 1:
+            out[...] = local
+            return out
+        sizes = [c * m for c in counts]
+        offsets = [sum(sizes[:r]) for r in range(self.size)]
+        self.comm.Allgatherv(self._buffer(np.ascontiguousarray(local)),
+                             [out, sizes, offsets, _MPI_TYPES[local.dtype]])
+        return out
+
     def bcast_object(self, obj: Any, root: int = 0) -> Any:
         """Broadcast a small control object (start-up only, never in the step)."""
         return self.comm.bcast(obj, root=root) if self.size > 1 else obj

@@ -14,9 +14,8 @@ import numpy as np
 
 from .config import JobError
 from .kernels import data as data_kernels
-from .kernels import exactsum
 
-_STATS_BLOCK = 1024  # rows per block of the standardisation pass; fixed, so statistics do not depend on P
+_STATS_BLOCK = 1024  # smallest block of the standardisation pass; blocks are fixed, so statistics do not depend on P
 
 
 def read_array(path: Path, field_name: str, mmap: bool = True) -> np.ndarray:
@@ -73,33 +72,32 @@ def block_range(n_blocks: int, rank: int, size: int) -> tuple[int, int]:
 def column_statistics(X: np.ndarray, rows: np.ndarray, comm) -> tuple[np.ndarray, np.ndarray, int]:
     """Mean and inverse standard deviation per column over ``rows`` of X, identical on every rank and every P.
 
-    Each rank sums fixed blocks of rows in float64; block sums are accumulated exactly (fixed-point limbs)
-    and reduced with an integer SUM, so the result is independent of how blocks fall onto ranks. Also the
-    finite check of the data: returns the first non-finite row (index into X) or −1. Columns with zero
-    variance get inv_std = 1.
+    The rows are cut into at most 1024 fixed blocks (their size does not depend on P); each rank sums its
+    blocks in float64, every rank receives all block sums (allgather), and all ranks add them in the same
+    fixed order. This pass is also the finite check of the data: returns the first non-finite row (index
+    into X) or −1. Columns with (near) zero variance get inv_std = 1.
     """
     d = X.shape[1]
-    n_blocks = -(-rows.size // _STATS_BLOCK)
+    block = max(_STATS_BLOCK, -(-rows.size // 1024))
+    n_blocks = -(-rows.size // block)
     lo, hi = block_range(n_blocks, comm.rank, comm.size)
-    acc = np.zeros((exactsum.LIMBS, 2 * d), dtype=np.int64)
-    sums = np.empty(2 * d, dtype=np.float64)
+    sums = np.zeros((hi - lo, 2 * d), dtype=np.float64)
     bad = np.array([np.iinfo(np.int64).max], dtype=np.int64)
-    for block in range(lo, hi):
-        chunk = np.asarray(X[rows[block * _STATS_BLOCK:(block + 1) * _STATS_BLOCK]], dtype=np.float64)
+    for k, b in enumerate(range(lo, hi)):
+        chunk = np.asarray(X[rows[b * block:(b + 1) * block]], dtype=np.float64)
         finite = np.isfinite(chunk).all(axis=1)
         if not finite.all():
-            bad[0] = min(bad[0], rows[block * _STATS_BLOCK + int(np.argmin(finite))])
+            bad[0] = min(bad[0], rows[b * block + int(np.argmin(finite))])
             continue
-        np.sum(chunk, axis=0, out=sums[:d])
-        np.sum(chunk * chunk, axis=0, out=sums[d:])
-        if not exactsum.accumulate(sums, acc) < exactsum.MAX_ABS:
-            raise JobError("`data.inputs` values are too large to standardise (column sums ≥ 2^31)")
+        np.sum(chunk, axis=0, out=sums[k, :d])
+        np.sum(chunk * chunk, axis=0, out=sums[k, d:])
     comm.min_(bad)
-    comm.sum_(acc)
-    exactsum.to_float(acc, sums)
+    counts = [block_range(n_blocks, r, comm.size)[1] - block_range(n_blocks, r, comm.size)[0]
+              for r in range(comm.size)]
+    total = comm.allgather_rows(sums, counts).sum(axis=0)
     n = max(rows.size, 1)
-    mean = sums[:d] / n
-    var = np.maximum(sums[d:] / n - mean * mean, 0.0)
+    mean = total[:d] / n
+    var = np.maximum(total[d:] / n - mean * mean, 0.0)
     std = np.sqrt(var)
     inv_std = np.where(std > 1e-12 * np.maximum(1.0, np.abs(mean)), 1.0 / np.where(std > 0, std, 1.0), 1.0)
     first_bad = -1 if bad[0] == np.iinfo(np.int64).max else int(bad[0])

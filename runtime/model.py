@@ -259,11 +259,12 @@ class Workspace:
             act.bias_forward(Z, self._zero_bias, O, act.SIGMOID)
         return O
 
-    def backward(self, n: int, grads: np.ndarray) -> Iterator[int]:
+    def backward(self, n: int, grads: np.ndarray) -> Iterator[tuple[int, np.ndarray]]:
         """Backpropagate the delta left by :meth:`forward_loss`, writing gradients into ``grads``.
 
-        Yields l after layer l's gradients are complete (l = L−1 … 0), so the caller can launch the
-        allreduce of every bucket that has just filled. Per layer:
+        Yields (l, dZ_l) after layer l's gradients are complete (l = L−1 … 0), so the caller can launch the
+        allreduce of every bucket that has just filled; dZ_l (n, fan_out) is valid until the next iteration.
+        Per layer:
         dW_l = A_{l−1}ᵀ dZ_l (BLAS, straight into the grads view); db_l = Σ_rows dZ_l;
         dA_{l−1} = dZ_l W_lᵀ (BLAS); dZ_{l−1} = f'(Z_{l−1}) ⊙ dA_{l−1}.
         """
@@ -279,4 +280,4 @@ class Workspace:
                 np.matmul(dZ, m.weights[l].T, out=dA)
                 act.backward(self.Z[l - 1][:n], self.A[l][:n], dA, dA, m.hidden_codes[l - 1])
                 which = 1 - which
-            yield l
+            yield l, dZ

@@ -156,7 +156,7 @@ class Trainer:
         loss_sum = self.ws.forward_loss(n, targets, 1.0 / G)
         self.sums += (loss_sum, self.count_correct(n, targets), n)
         self.timer.lap(1)
-        for layer in self.ws.backward(n, grads):
+        for layer, _ in self.ws.backward(n, grads):
             if launch:
                 self.exchange.layer_done(layer)
         self.timer.lap(2)
@@ -287,6 +287,7 @@ def warm_up_kernels(trainer: Trainer) -> float:
     comm.barrier()
     if comm.rank != 0:
         run()
+    comm.barrier()  # nobody's first timed step waits for another rank's compilation
     return time.perf_counter() - begin
 
 

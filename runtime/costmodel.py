@@ -1,0 +1,551 @@
+"""Communication cost model for the gradient allreduce.
+
+The model is the α–β–γ model of Thakur, Rabenseifner & Gropp, "Optimization of Collective Communication
+Operations in MPICH", IJHPCA 19(1), 2005: sending one message of n bytes between two processes costs
+α + n·β seconds (α: latency in seconds, β: inverse bandwidth in seconds per byte), and combining n bytes
+with the reduction operator costs n·γ seconds (γ in seconds per byte).
+
+Every allreduce algorithm below costs
+
+    T(p, n) = c_α(p)·α + c_β(p)·n·β + c_γ(p)·n·γ
+
+so one table of coefficients (`_coefficients`) serves the forward model, the choice of the cheapest
+algorithm and the least-squares fit of α and β to measured timings.
+
+The file reads top to bottom: formulas → cheapest algorithm → fitting → network specs → projection →
+measurement with MPI.
+"""
+
+from __future__ import annotations
+
+import difflib
+import math
+import re
+import statistics
+import time
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+ALGORITHMS: tuple[str, ...] = ("ring", "recursive_doubling", "rabenseifner")
+"""Allreduce algorithms the model knows, in the order used to break ties in `best_allreduce`."""
+
+NO_COMMUNICATION = "none"
+"""Algorithm name reported by `best_allreduce` and `project` for p = 1, where nothing is sent."""
+
+ASSUMPTIONS: tuple[str, ...] = (
+    "Every message costs alpha + n*beta seconds (Thakur, Rabenseifner & Gropp 2005): homogeneous links, "
+    "the same latency and bandwidth between every pair of ranks.",
+    "No contention: simultaneous messages do not share links or switches, and each rank sends and receives "
+    "at full bandwidth at the same time.",
+    "One rank per core; a rank's compute does not slow down when others communicate, and intra-node and "
+    "inter-node messages cost the same.",
+    "The reduction cost gamma (seconds per byte) is measured on this machine by a numpy in-place add and "
+    "assumed the same on every rank.",
+    "Messages split evenly: n/p is treated as a real number, so rounding of uneven chunks is ignored.",
+    "For p not a power of two, recursive doubling and Rabenseifner's algorithm first fold the extra ranks "
+    "into partners and send the result back at the end, as the paper describes.",
+    "The library is assumed to pick the cheapest of ring, recursive doubling and Rabenseifner for the "
+    "message size, as MPI libraries switch algorithms by size.",
+    "The whole gradient is one allreduce; bucketing is represented only by the overlap fraction, the share "
+    "of communication hidden behind backward, which is given and not derived from the backward time.",
+    "Strong scaling divides the serial compute time by p perfectly; weak scaling keeps the per-rank compute "
+    "constant. Neither includes load imbalance, data loading or the optimizer step.",
+)
+"""Assumptions of the model, one sentence each, for reports."""
+
+
+# --------------------------------------------------------------------------------------------------------
+# Validation helpers (one error type, messages that say what to type)
+# --------------------------------------------------------------------------------------------------------
+
+
+def _check_algorithm(algorithm: str) -> None:
+    if algorithm in ALGORITHMS:
+        return
+    allowed = ", ".join(ALGORITHMS)
+    close = difflib.get_close_matches(str(algorithm), ALGORITHMS, n=1)
+    hint = f" (did you mean '{close[0]}'?)" if close else ""
+    raise ValueError(f"`algorithm` must be one of {allowed}; got {algorithm!r}{hint}")
+
+
+def _check_processes(p: Any, name: str = "p") -> int:
+    if isinstance(p, bool) or not isinstance(p, (int, np.integer)) or p < 1:
+        raise ValueError(f"`{name}` must be a whole number of processes >= 1; got {p!r}")
+    return int(p)
+
+
+def _check_non_negative(value: Any, name: str) -> float:
+    try:
+        number = float(value)
+    except (TypeError, ValueError):
+        number = math.nan
+    if not math.isfinite(number) or number < 0.0:
+        raise ValueError(f"`{name}` must be a finite number >= 0; got {value!r}")
+    return number
+
+
+# --------------------------------------------------------------------------------------------------------
+# Formulas
+# --------------------------------------------------------------------------------------------------------
+
+
+def _lower_power_of_two(p: int) -> int:
+    return 1 << (p.bit_length() - 1)
+
+
+def _coefficients(algorithm: str, p: int) -> tuple[float, float, float]:
+    """(c_α, c_β, c_γ) such that T = c_α·α + c_β·n·β + c_γ·n·γ for an allreduce on p processes.
+
+    Thakur, Rabenseifner & Gropp 2005 (allreduce, reduce-scatter and allgather sections):
+      ring                 2(p−1)         2(p−1)/p          (p−1)/p
+      recursive_doubling   lg p           lg p              lg p
+      rabenseifner         2 lg p         2(p−1)/p          (p−1)/p
+    For p not a power of two, p' = 2^⌊lg p⌋: the r = p − p' extra ranks send their whole vector to a
+    partner that reduces it (α + nβ + nγ), the algorithm runs on p', and the result goes back (α + nβ).
+    """
+    if p == 1:
+        return 0.0, 0.0, 0.0
+    if algorithm == "ring":
+        # Reduce-scatter ring (p−1 steps of n/p bytes, each reduced) + allgather ring (p−1 steps of n/p).
+        share = (p - 1) / p
+        return 2.0 * (p - 1), 2.0 * share, share
+    core = _lower_power_of_two(p)
+    steps = math.log2(core)
+    if algorithm == "recursive_doubling":
+        # lg p' exchanges of the whole vector, each followed by a reduction of the whole vector.
+        c_alpha, c_beta, c_gamma = steps, steps, steps
+    else:  # rabenseifner
+        # Recursive halving (lg p' steps, n/2, n/4, … bytes, each reduced) + recursive doubling allgather.
+        share = (core - 1) / core
+        c_alpha, c_beta, c_gamma = 2.0 * steps, 2.0 * share, share
+    if core != p:
+        # Fold before (α + nβ + nγ) and send back after (α + nβ).
+        c_alpha, c_beta, c_gamma = c_alpha + 2.0, c_beta + 2.0, c_gamma + 1.0
+    return c_alpha, c_beta, c_gamma
+
+
+def allreduce_time(algorithm: str, p: int, n_bytes: float, alpha: float, beta: float, gamma: float = 0.0) -> float:
+    """Modelled time in seconds of an allreduce of `n_bytes` bytes on `p` processes.
+
+    `alpha` is the latency per message (seconds), `beta` the inverse bandwidth (seconds per byte), `gamma`
+    the reduction cost (seconds per byte). Formulas after Thakur, Rabenseifner & Gropp 2005:
+
+        ring                 2(p−1)α + 2((p−1)/p)·nβ + ((p−1)/p)·nγ
+        recursive_doubling   lg p·α  + lg p·nβ       + lg p·nγ
+        rabenseifner         2 lg p·α + 2((p−1)/p)·nβ + ((p−1)/p)·nγ
+
+    The ring is the paper's ring reduce-scatter followed by its ring allgather and works for every p.
+    For p not a power of two the two recursive algorithms run on p' = 2^⌊lg p⌋ processes, with the paper's
+    extra step: the r = p − p' surplus ranks first send their whole vector to a partner that reduces it
+    (α + nβ + nγ) and receive the result at the end (α + nβ). This adds 2α + 2nβ + nγ, so with p' in place
+    of p in the formulas above:
+
+        recursive_doubling   (lg p' + 2)α  + (lg p' + 2)·nβ         + (lg p' + 1)·nγ
+        rabenseifner         (2 lg p' + 2)α + (2 + 2(p'−1)/p')·nβ   + (1 + (p'−1)/p')·nγ
+
+    The γ term of the second line equals the paper's cost of recursive-halving reduce-scatter for p not a
+    power of two; the paper's β term there, 2nβ, is the same count rounded. The cleverer non-power-of-two
+    schemes of Rabenseifner & Träff (2004) are not modelled. p = 1 costs 0.
+    """
+    _check_algorithm(algorithm)
+    p = _check_processes(p)
+    n_bytes = _check_non_negative(n_bytes, "n_bytes")
+    alpha = _check_non_negative(alpha, "alpha")
+    beta = _check_non_negative(beta, "beta")
+    gamma = _check_non_negative(gamma, "gamma")
+    c_alpha, c_beta, c_gamma = _coefficients(algorithm, p)
+    return c_alpha * alpha + c_beta * n_bytes * beta + c_gamma * n_bytes * gamma
+
+
+def best_allreduce(p: int, n_bytes: float, alpha: float, beta: float, gamma: float = 0.0) -> tuple[str, float]:
+    """The cheapest algorithm for this message size and its time in seconds.
+
+    MPI libraries switch algorithms by message size in the same spirit: latency-bound recursive doubling for
+    short messages, bandwidth-optimal schemes for long ones. Ties go to the earlier name in `ALGORITHMS`.
+    For p = 1 the answer is (`NO_COMMUNICATION`, 0.0).
+    """
+    p = _check_processes(p)
+    if p == 1:
+        return NO_COMMUNICATION, 0.0
+    costs = [(allreduce_time(name, p, n_bytes, alpha, beta, gamma), name) for name in ALGORITHMS]
+    best_time, best_name = min(costs, key=lambda cost: cost[0])  # min keeps the first of equal costs
+    return best_name, best_time
+
+
+# --------------------------------------------------------------------------------------------------------
+# Fitting α and β to measured timings
+# --------------------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class Fit:
+    """α and β fitted to allreduce timings of one algorithm on p processes.
+
+    alpha: latency, seconds. beta: inverse bandwidth, seconds per byte. gamma: the reduction cost that was
+    held fixed, seconds per byte. sizes_bytes / times_s: the data, bytes and seconds. predicted_s: the
+    model at each size, seconds. relative_errors: (predicted − measured) / measured per point. r_squared:
+    1 − SS_res / SS_tot on the times in seconds.
+    """
+
+    alpha: float
+    beta: float
+    gamma: float
+    algorithm: str
+    p: int
+    sizes_bytes: tuple[float, ...]
+    times_s: tuple[float, ...]
+    predicted_s: tuple[float, ...]
+    relative_errors: tuple[float, ...]
+    r_squared: float
+
+    @property
+    def bandwidth_bytes_per_s(self) -> float:
+        """1 / β in bytes per second (inf when β = 0)."""
+        return math.inf if self.beta == 0.0 else 1.0 / self.beta
+
+    @property
+    def max_relative_error(self) -> float:
+        """Largest |relative error| over the points."""
+        return max(abs(error) for error in self.relative_errors)
+
+    @property
+    def rms_relative_error(self) -> float:
+        """Root mean square of the relative errors."""
+        return math.sqrt(sum(error * error for error in self.relative_errors) / len(self.relative_errors))
+
+
+@dataclass(frozen=True)
+class LinearFit:
+    """Plain straight line T = intercept + slope·n fitted to timings.
+
+    intercept: seconds. slope: seconds per byte. relative_errors and r_squared as in `Fit`.
+    """
+
+    intercept: float
+    slope: float
+    sizes_bytes: tuple[float, ...]
+    times_s: tuple[float, ...]
+    predicted_s: tuple[float, ...]
+    relative_errors: tuple[float, ...]
+    r_squared: float
+
+
+def _timing_arrays(sizes_bytes: Iterable[float], times_s: Iterable[float]) -> tuple[np.ndarray, np.ndarray]:
+    sizes = np.asarray(list(sizes_bytes), dtype=np.float64)
+    times = np.asarray(list(times_s), dtype=np.float64)
+    if sizes.ndim != 1 or sizes.shape != times.shape:
+        raise ValueError(
+            f"`sizes_bytes` and `times_s` must be 1-D and of equal length; got {sizes.size} sizes "
+            f"and {times.size} times"
+        )
+    if not (np.all(np.isfinite(sizes)) and np.all(sizes >= 0)):
+        raise ValueError(f"`sizes_bytes` must be finite and >= 0; got {sizes.tolist()}")
+    if not (np.all(np.isfinite(times)) and np.all(times > 0)):
+        raise ValueError(f"`times_s` must be finite and > 0; got {times.tolist()}")
+    if np.unique(sizes).size < 2:
+        raise ValueError(
+            f"fitting a latency and a bandwidth needs at least two distinct message sizes; "
+            f"got {np.unique(sizes).tolist()}"
+        )
+    return sizes, times
+
+
+def _fit_summary(times: np.ndarray, predicted: np.ndarray) -> tuple[tuple[float, ...], float]:
+    relative = (predicted - times) / times
+    total = float(np.sum((times - times.mean()) ** 2))
+    residual = float(np.sum((times - predicted) ** 2))
+    r_squared = 1.0 - residual / total if total > 0.0 else (1.0 if residual == 0.0 else 0.0)
+    return tuple(float(error) for error in relative), r_squared
+
+
+def _relative_least_squares(
+    design: np.ndarray, target: np.ndarray, times: np.ndarray, non_negative: bool
+) -> np.ndarray:
+    """Solve design·x ≈ target with every row divided by its measured time, columns scaled to unit norm.
+
+    Timing noise is roughly multiplicative, so relative residuals weigh short and long messages alike; the
+    column scaling puts α (≈ 1e-6 s) and β (≈ 1e-10 s/byte) on comparable footing for the solver.
+    """
+    rows = design / times[:, None]
+    norms = np.linalg.norm(rows, axis=0)
+    norms[norms == 0.0] = 1.0
+    if non_negative:
+        from scipy.optimize import nnls
+
+        scaled, _ = nnls(rows / norms, target / times)
+    else:
+        scaled, *_ = np.linalg.lstsq(rows / norms, target / times, rcond=None)
+    return scaled / norms
+
+
+def fit_alpha_beta(
+    p: int,
+    sizes_bytes: Sequence[float],
+    times_s: Sequence[float],
+    algorithm: str = "ring",
+    gamma: float = 0.0,
+) -> Fit:
+    """Fit α (seconds) and β (seconds per byte) to allreduce times measured on p processes.
+
+    Least squares on T(n) = c_α(p)·α + c_β(p)·n·β with the known term c_γ(p)·n·γ subtracted first, where the
+    coefficients are those of `allreduce_time` for `algorithm`. Residuals are relative (each point divided
+    by its measured time), and α, β ≥ 0 are enforced with non-negative least squares (scipy.optimize.nnls).
+    `sizes_bytes` in bytes, `times_s` in seconds (e.g. the medians from `measure_allreduce`).
+    Raises ValueError for p = 1 (nothing is communicated, so there is nothing to fit) and for fewer than two
+    distinct sizes.
+    """
+    _check_algorithm(algorithm)
+    p = _check_processes(p)
+    if p == 1:
+        raise ValueError(
+            "cannot fit alpha and beta for p = 1: an allreduce on one process sends no messages; measure with p >= 2"
+        )
+    gamma = _check_non_negative(gamma, "gamma")
+    sizes, times = _timing_arrays(sizes_bytes, times_s)
+    c_alpha, c_beta, c_gamma = _coefficients(algorithm, p)
+    known = c_gamma * sizes * gamma
+    design = np.column_stack([np.full_like(sizes, c_alpha), c_beta * sizes])
+    # The known γ term moves to the target; rows are still weighted by the measured time.
+    alpha, beta = _relative_least_squares(design, times - known, times, non_negative=True)
+    predicted = c_alpha * alpha + c_beta * sizes * beta + known
+    relative, r_squared = _fit_summary(times, predicted)
+    return Fit(
+        alpha=float(alpha),
+        beta=float(beta),
+        gamma=gamma,
+        algorithm=algorithm,
+        p=p,
+        sizes_bytes=tuple(float(size) for size in sizes),
+        times_s=tuple(float(t) for t in times),
+        predicted_s=tuple(float(t) for t in predicted),
+        relative_errors=relative,
+        r_squared=r_squared,
+    )
+
+
+def fit_linear(sizes_bytes: Sequence[float], times_s: Sequence[float]) -> LinearFit:
+    """Fit the plain line T = intercept + slope·n (seconds, seconds per byte) without constraints.
+
+    Same relative residuals as `fit_alpha_beta`; useful to read an effective latency and bandwidth off
+    timings without assuming an algorithm.
+    """
+    sizes, times = _timing_arrays(sizes_bytes, times_s)
+    design = np.column_stack([np.ones_like(sizes), sizes])
+    intercept, slope = _relative_least_squares(design, times, times, non_negative=False)
+    predicted = intercept + slope * sizes
+    relative, r_squared = _fit_summary(times, predicted)
+    return LinearFit(
+        intercept=float(intercept),
+        slope=float(slope),
+        sizes_bytes=tuple(float(size) for size in sizes),
+        times_s=tuple(float(t) for t in times),
+        predicted_s=tuple(float(t) for t in predicted),
+        relative_errors=relative,
+        r_squared=r_squared,
+    )
+
+
+# --------------------------------------------------------------------------------------------------------
+# Network specs such as "100Gb/s,2us"
+# --------------------------------------------------------------------------------------------------------
+
+_BANDWIDTH_UNITS = {"Gb/s": 1e9 / 8.0, "Mb/s": 1e6 / 8.0, "GB/s": 1e9, "MB/s": 1e6}  # bytes per second
+_LATENCY_UNITS = {"ns": 1e-9, "us": 1e-6, "µs": 1e-6, "ms": 1e-3, "s": 1.0}  # seconds
+_QUANTITY = re.compile(r"^\s*([0-9]*\.?[0-9]+(?:[eE][+-]?[0-9]+)?)\s*([A-Za-zµ/]+)\s*$")
+_NETWORK_FORMS = (
+    "'<bandwidth>,<latency>' with bandwidth in Gb/s, Mb/s, GB/s or MB/s (decimal: 1 GB/s = 1e9 bytes/s, "
+    "b = bit, B = byte) and latency in ns, us, ms or s, e.g. '100Gb/s,2us' or '12.5GB/s,1.5us'"
+)
+
+
+def parse_network(spec: str) -> tuple[float, float]:
+    """Parse a network spec such as "100Gb/s,2us" into (alpha seconds, beta seconds per byte).
+
+    The two parts may come in either order; units are case-sensitive because b (bit) and B (byte) differ.
+    Bandwidth must be > 0; latency may be 0. Raises ValueError naming the value and the accepted forms.
+    """
+    if not isinstance(spec, str):
+        raise ValueError(f"network spec must be a string of the form {_NETWORK_FORMS}; got {spec!r}")
+    parts = spec.split(",")
+    if len(parts) != 2:
+        raise ValueError(f"network spec must be {_NETWORK_FORMS}; got {spec!r}")
+    bandwidth: float | None = None
+    latency: float | None = None
+    for part in parts:
+        match = _QUANTITY.match(part)
+        if match is None:
+            raise ValueError(f"cannot read {part.strip()!r} in network spec {spec!r}; expected {_NETWORK_FORMS}")
+        value, unit = float(match.group(1)), match.group(2)
+        if unit in _BANDWIDTH_UNITS:
+            if bandwidth is not None:
+                raise ValueError(f"network spec {spec!r} gives two bandwidths; expected {_NETWORK_FORMS}")
+            bandwidth = value * _BANDWIDTH_UNITS[unit]
+        elif unit in _LATENCY_UNITS:
+            if latency is not None:
+                raise ValueError(f"network spec {spec!r} gives two latencies; expected {_NETWORK_FORMS}")
+            latency = value * _LATENCY_UNITS[unit]
+        else:
+            raise ValueError(
+                f"unit {unit!r} in {part.strip()!r} of network spec {spec!r} is not accepted; expected {_NETWORK_FORMS}"
+            )
+    if bandwidth is None or latency is None:
+        raise ValueError(f"network spec {spec!r} needs one bandwidth and one latency; expected {_NETWORK_FORMS}")
+    if bandwidth <= 0.0:
+        raise ValueError(f"bandwidth in network spec {spec!r} must be > 0; expected {_NETWORK_FORMS}")
+    return latency, 1.0 / bandwidth
+
+
+# --------------------------------------------------------------------------------------------------------
+# Projection of step time and efficiency
+# --------------------------------------------------------------------------------------------------------
+
+
+def project(
+    compute_s: float,
+    grad_bytes: float,
+    ps: Iterable[int],
+    alpha: float,
+    beta: float,
+    gamma: float = 0.0,
+    mode: str = "strong",
+    overlap: float = 0.0,
+) -> list[dict[str, Any]]:
+    """Project the data-parallel step time and efficiency to each process count in `ps`.
+
+    compute_s: seconds of compute per step — in "strong" mode the serial step (the global batch on one
+    process), divided by p; in "weak" mode the per-rank step, the same at every p. grad_bytes: bytes of the
+    gradient allreduced each step. alpha, beta, gamma: seconds, seconds per byte, seconds per byte.
+    overlap ∈ [0, 1]: fraction of the allreduce hidden behind backward.
+
+    For each p, one dict with keys: p, mode, compute_s, algorithm (cheapest by `best_allreduce`),
+    allreduce_s, exposed_comm_s = allreduce_s·(1 − overlap), step_s = compute_s + exposed_comm_s,
+    speedup and efficiency. With T1 = compute_s at p = 1 (no communication) and Tp = step_s:
+    strong — speedup = T1/Tp, efficiency = T1/(p·Tp); weak — speedup = p·T1/Tp (scaled speedup: p times the
+    work in Tp), efficiency = T1/Tp. In both modes efficiency = speedup / p.
+    """
+    compute_s = _check_non_negative(compute_s, "compute_s")
+    if compute_s == 0.0:
+        raise ValueError("`compute_s` must be > 0 to define a speedup; got 0")
+    grad_bytes = _check_non_negative(grad_bytes, "grad_bytes")
+    if mode not in ("strong", "weak"):
+        raise ValueError(f"`mode` must be one of strong, weak; got {mode!r}")
+    overlap = _check_non_negative(overlap, "overlap")
+    if overlap > 1.0:
+        raise ValueError(f"`overlap` must be a fraction in [0, 1]; got {overlap!r}")
+    counts = [_check_processes(p, "ps") for p in ps]
+    if not counts:
+        raise ValueError("`ps` must name at least one process count; got none")
+    serial_s = compute_s  # T1: at p = 1 the step is all compute, in both modes
+    rows = []
+    for p in counts:
+        local_compute_s = compute_s / p if mode == "strong" else compute_s
+        algorithm, allreduce_s = best_allreduce(p, grad_bytes, alpha, beta, gamma)
+        exposed_s = allreduce_s * (1.0 - overlap)
+        step_s = local_compute_s + exposed_s
+        speedup = serial_s / step_s if mode == "strong" else p * serial_s / step_s
+        rows.append(
+            {
+                "p": p,
+                "mode": mode,
+                "compute_s": local_compute_s,
+                "algorithm": algorithm,
+                "allreduce_s": allreduce_s,
+                "exposed_comm_s": exposed_s,
+                "step_s": step_s,
+                "speedup": speedup,
+                "efficiency": speedup / p,
+            }
+        )
+    return rows
+
+
+# --------------------------------------------------------------------------------------------------------
+# Measurement with MPI
+# --------------------------------------------------------------------------------------------------------
+
+
+def measure_allreduce(
+    comm: Any,
+    sizes_bytes: Iterable[float],
+    repeats: int = 10,
+    warmup: int = 2,
+    dtype: Any = np.float32,
+) -> list[dict[str, Any]]:
+    """Time an in-place SUM `Allreduce` for each message size on the mpi4py communicator `comm`.
+
+    Every rank must call this with the same arguments: it runs the same collectives everywhere. Each size is
+    rounded down to whole elements of `dtype` (at least one). Per size: `warmup` untimed calls, then `repeats`
+    timed ones, each after a `Barrier`; a repetition's time is the slowest rank's (MAX allreduce of the local
+    times, outside the timed region). The buffer holds zeros, so repeated sums never overflow or turn
+    subnormal.
+
+    Returns one dict per size on every rank: n_bytes (bytes actually sent), count (elements), dtype, p,
+    repeats, warmup, median_s, min_s (seconds) and times_s (every repetition, seconds).
+    """
+    from mpi4py import MPI  # lazily: the model itself needs no MPI
+
+    repeats = int(repeats)
+    warmup = int(warmup)
+    if repeats < 1:
+        raise ValueError(f"`repeats` must be >= 1; got {repeats!r}")
+    if warmup < 0:
+        raise ValueError(f"`warmup` must be >= 0; got {warmup!r}")
+    itemsize = np.dtype(dtype).itemsize
+    results = []
+    local = np.zeros(1, dtype=np.float64)
+    slowest = np.zeros(1, dtype=np.float64)
+    for size in sizes_bytes:
+        count = max(1, int(_check_non_negative(size, "sizes_bytes")) // itemsize)
+        buffer = np.zeros(count, dtype=dtype)
+        for _ in range(warmup):
+            comm.Allreduce(MPI.IN_PLACE, buffer, op=MPI.SUM)
+        times = []
+        for _ in range(repeats):
+            comm.Barrier()
+            start = MPI.Wtime()
+            comm.Allreduce(MPI.IN_PLACE, buffer, op=MPI.SUM)
+            local[0] = MPI.Wtime() - start
+            comm.Allreduce(local, slowest, op=MPI.MAX)
+            times.append(float(slowest[0]))
+        results.append(
+            {
+                "n_bytes": count * itemsize,
+                "count": count,
+                "dtype": np.dtype(dtype).name,
+                "p": comm.Get_size(),
+                "repeats": repeats,
+                "warmup": warmup,
+                "median_s": statistics.median(times),
+                "min_s": min(times),
+                "times_s": times,
+            }
+        )
+    return results
+
+
+def measure_reduction_gamma(n_bytes: float, repeats: int = 10, warmup: int = 2, dtype: Any = np.float32) -> float:
+    """Estimate γ in seconds per byte: median time of a numpy in-place add `a += b` of `n_bytes` bytes,
+    divided by the bytes reduced. Runs on this process only, no MPI. Choose n_bytes near the gradient
+    bucket size: small sizes measure call overhead, sizes beyond the caches measure memory bandwidth.
+    """
+    repeats = int(repeats)
+    warmup = int(warmup)
+    if repeats < 1:
+        raise ValueError(f"`repeats` must be >= 1; got {repeats!r}")
+    if warmup < 0:
+        raise ValueError(f"`warmup` must be >= 0; got {warmup!r}")
+    itemsize = np.dtype(dtype).itemsize
+    count = max(1, int(_check_non_negative(n_bytes, "n_bytes")) // itemsize)
+    accumulator = np.zeros(count, dtype=dtype)
+    incoming = np.zeros(count, dtype=dtype)
+    for _ in range(warmup):
+        np.add(accumulator, incoming, out=accumulator)
+    times = []
+    for _ in range(repeats):
+        start = time.perf_counter()
+        np.add(accumulator, incoming, out=accumulator)
+        times.append(time.perf_counter() - start)
+    return statistics.median(times) / (count * itemsize)

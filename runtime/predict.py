@@ -1,0 +1,59 @@
+"""``shardmill predict``: outputs of a trained model (a checkpoint directory or final.npz) on new inputs."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import numpy as np
+
+from .checkpoint import CheckpointError, load, resolve
+from .config import JobError
+from .data import read_array, squeeze_labels
+from .model import MLP
+
+
+def load_model(path: Path) -> tuple[MLP, np.ndarray, np.ndarray]:
+    """(model, input_mean, input_inv_std) from ``final.npz``, a checkpoint directory or a workdir."""
+    if path.is_file() and path.suffix == ".npz":
+        with np.load(path, allow_pickle=False) as archive:
+            if "model_json" not in archive.files:
+                raise CheckpointError(f"{str(path)!r} is not a shardmill final.npz (no model_json)")
+            spec = json.loads(str(archive["model_json"]))
+            arrays = {k: archive[k] for k in archive.files}
+    else:
+        state, arrays, _ = load(resolve(path))
+        spec = state["job"]["model"]
+    model = MLP(spec["layers"], activation=spec["activation"], loss=spec["loss"], dtype=spec["dtype"],
+                init=spec.get("init", "auto"), output=spec.get("output", "auto"))
+    for name, view in model.named(model.params).items():
+        if name not in arrays or arrays[name].shape != view.shape:
+            raise CheckpointError(f"{str(path)!r}: tensor {name} is missing or has the wrong shape")
+        view[...] = arrays[name]
+    return model, arrays["input_mean"], arrays["input_inv_std"]
+
+
+def metrics(model: MLP, outputs: np.ndarray, targets: np.ndarray) -> dict[str, float]:
+    """Loss-appropriate metrics of outputs against targets: accuracy for classification, RMSE for regression."""
+    if model.loss == "softmax_cross_entropy":
+        p = np.clip(outputs[np.arange(targets.size), targets].astype(np.float64), 1e-300, None)
+        return {"accuracy": float(np.mean(outputs.argmax(axis=1) == targets)), "loss": float(-np.log(p).mean())}
+    if model.loss == "binary_cross_entropy":
+        return {"accuracy": float(np.mean((outputs > 0.5) == (targets > 0.5)))}
+    return {"rmse": float(np.sqrt(np.mean((outputs - targets) ** 2)))}
+
+
+def cmd_predict(args) -> int:
+    model, mean, inv_std = load_model(Path(args.checkpoint))
+    X = np.asarray(read_array(Path(args.inputs), "inputs"), dtype=np.float64)
+    model.check_inputs(X, "inputs")
+    if not np.all(np.isfinite(X)):
+        raise JobError("`inputs` holds non-finite values (NaN or inf)")
+    outputs = model.predict((X - mean) * inv_std)
+    np.save(args.out, outputs, allow_pickle=False)
+    print(f"wrote {outputs.shape[0]} × {outputs.shape[1]} outputs to {args.out}")
+    if args.targets is not None:
+        y = squeeze_labels(np.asarray(read_array(Path(args.targets), "targets", mmap=False)))
+        targets = model.check_targets(y, X.shape[0], "targets")
+        print(json.dumps(metrics(model, outputs, targets)))
+    return 0

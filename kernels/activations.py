@@ -154,3 +154,22 @@ def code_of(name: str) -> int:
 
 
 
+
+
+@njit(cache=True)
+def unit_activity(Z, threshold, saturated, alive):
+    """Health counts of one layer's pre-activations Z (n, m).
+
+    saturated[0] += number of elements with |z| > threshold (sigmoid/tanh saturation);
+    alive[j] = 1 where some row has z > 0 (a ReLU unit that is zero on every row is dead). alive: (m,) int64.
+    """
+    n, m = Z.shape
+    count = 0
+    for i in range(n):
+        for j in range(m):
+            z = Z[i, j]
+            if abs(z) > threshold:
+                count += 1
+            if z > 0.0:
+                alive[j] = 1
+    saturated[0] += count

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import json
 import math
+import sys
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -21,6 +22,7 @@ from .comm import Comm, agree
 from .config import Job, JobError
 from .data import Sampler, Split, block_range, column_statistics, gather, read_array, shard, split_rows, squeeze_labels
 from .exchange import GradientExchange
+from .health import diagnose, warnings
 from .kernels import exactsum, losses
 from .kernels import optim as kernels_optim
 from .model import MLP
@@ -70,6 +72,8 @@ def load_dataset(job: Job, model: MLP, comm: Comm) -> Dataset:
     if split.train.size == 0:
         raise JobError("`data.validation_fraction` leaves no training rows")
     mean, inv_std, bad = column_statistics(X, split.train if job.data.standardize else split.train[:0], comm)
+    if bad < 0 and not job.data.standardize:  # the statistics pass above checked no training row
+        bad = _first_nonfinite(X, split.train, comm)
     if bad < 0 and split.validation.size:
         bad = _first_nonfinite(X, split.validation, comm)
     if bad >= 0:
@@ -81,9 +85,12 @@ def load_dataset(job: Job, model: MLP, comm: Comm) -> Dataset:
 
 def _first_nonfinite(X: np.ndarray, rows: np.ndarray, comm: Comm) -> int:
     lo, hi = block_range(rows.size, comm.rank, comm.size)
-    part = np.asarray(X[rows[lo:hi]])
-    finite = np.isfinite(part).all(axis=1)
-    bad = np.array([rows[lo + int(np.argmin(finite))] if not finite.all() else np.iinfo(np.int64).max])
+    bad = np.array([np.iinfo(np.int64).max])
+    for start in range(lo, hi, 4096):  # blocks: a rank's part of a memory-mapped set may not fit in memory
+        finite = np.isfinite(np.asarray(X[rows[start:min(start + 4096, hi)]])).all(axis=1)
+        if not finite.all():
+            bad[0] = rows[start + int(np.argmin(finite))]
+            break
     comm.min_(bad)
     return -1 if bad[0] == np.iinfo(np.int64).max else int(bad[0])
 
@@ -136,6 +143,7 @@ class Trainer:
         self.total_steps = self.planned_steps()
         self.timer = PhaseTimer()
         self.sums = np.zeros(3)  # loss sum, correct, counted (local, since the last reduce)
+        self.health: list[dict[str, Any]] = []  # diagnostics records not yet written
         if not self.comm.all_equal(self.model.params):
             raise RuntimeError("initial parameters differ across ranks")
 
@@ -182,9 +190,14 @@ class Trainer:
             self.exchange.wait()  # every bucket reduced: the full-batch mean gradient
         self.timer.lap(3)
         self.optimizer.clip(self.grads)
+        health = self.job.run.health_every and (self.step_count + 1) % self.job.run.health_every == 0
+        before = self.model.params.copy() if health else None
         self.optimizer.step(self.model.params, self.grads, self.total_steps)  # update
         self.timer.lap(4)
         self.step_count += 1
+        if health:
+            n = self.job.run.exact_chunk if self.exact else shard(rows, self.comm.rank, self.comm.size).size
+            self.health.append(diagnose(self.model, self.ws, n, self.grads, before, self.comm, self.step_count))
         every = self.job.run.check_every
         if every and self.step_count % every == 0 and not self.comm.all_equal(self.model.params):
             raise RuntimeError(f"parameters drifted apart across ranks at step {self.step_count}")
@@ -330,6 +343,8 @@ def _train_loop(trainer: Trainer, resume: bool, progress: bool) -> dict[str, Any
         if bar is not None:
             bar.update(1)
         end_of_epoch = step % steps_per_epoch == 0 or step == total
+        if trainer.health:
+            _write_health(trainer, metrics_path, lead)
         if job.run.save_every and step % job.run.save_every == 0 and step < total:
             checkpoint.save(trainer, step)
         if end_of_epoch:
@@ -353,6 +368,17 @@ def _train_loop(trainer: Trainer, resume: bool, progress: bool) -> dict[str, Any
             "processes": comm.size, "compile_s": compile_s}
 
 
+def _write_health(trainer: Trainer, path: Path, lead: bool) -> None:
+    """Append pending health records to metrics.jsonl and print their warnings (rank 0)."""
+    if lead:
+        with open(path, "a") as out:
+            for record in trainer.health:
+                out.write(json.dumps(record) + "\n")
+                for text in warnings(record):
+                    print(f"shardmill: warning: {text}", file=sys.stderr, flush=True)
+    trainer.health.clear()
+
+
 def _progress_bar(total: int, done: int, show: bool):
     if not show:
         return None
@@ -372,6 +398,7 @@ def _epoch_record(trainer: Trainer, epoch: int, step: int, steps: int, seconds: 
     seconds_max = np.array([seconds])
     comm.max_(seconds_max)
     record: dict[str, Any] = {
+        "kind": "epoch",
         "epoch": epoch + 1,
         "step": step,
         "processes": comm.size,

@@ -1,0 +1,76 @@
+"""Training-health diagnostics, cheap enough to run every N steps, reduced across ranks.
+
+Per layer: the gradient norm ‖g_l‖, the update-to-weight ratio ‖Δθ_l‖ / ‖θ_l‖, the fraction of saturated
+sigmoid/tanh units (|z| > 4, where σ' < 0.018 and tanh' < 0.0014) and the fraction of dead ReLU-family units
+(zero on every row of the global batch). Warnings name the layer and the symptom.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Any
+
+import numpy as np
+
+from .comm import Comm
+from .kernels import activations as act
+from .kernels import optim as kernels
+from .model import MLP, Workspace
+
+SATURATION_Z = 4.0
+SATURATED_WARN = 0.5  # fraction of saturated units that earns a warning (common practice: a rule of thumb)
+DEAD_WARN = 0.5
+VANISHING_RATIO = 1e-7  # ‖g_l‖ / ‖θ_l‖ below this: the layer has stopped learning
+
+
+def diagnose(model: MLP, ws: Workspace, n: int, grads: np.ndarray, before: np.ndarray, comm: Comm,
+             step: int) -> dict[str, Any]:
+    """Health of every layer after an update. ``before``: params before the update (flat copy).
+
+    Saturation and dead units come from the pre-activations of this rank's last batch in ``ws`` (n rows),
+    summed (counts) or OR-ed (unit activity, via MAX) over ranks. Gradients and parameters are identical on
+    every rank after the exchange, so their norms need no reduction.
+    """
+    layers = []
+    counts = np.zeros(2 * (model.n_layers - 1))  # saturated elements, rows, per hidden layer
+    alive = [np.zeros(model.sizes[l + 1], dtype=np.int64) for l in range(model.n_layers - 1)]
+    for l in range(model.n_layers - 1):
+        saturated = np.zeros(1, dtype=np.int64)
+        act.unit_activity(ws.Z[l][:n], SATURATION_Z, saturated, alive[l])
+        counts[2 * l], counts[2 * l + 1] = saturated[0], n
+    comm.sum_(counts)
+    for a in alive:
+        comm.max_(a)
+    for l in range(model.n_layers):
+        start, stop = model.slices[l]
+        g = math.sqrt(kernels.sum_squares(grads[start:stop]))
+        w = math.sqrt(kernels.sum_squares(before[start:stop]))
+        delta = model.params[start:stop].astype(np.float64) - before[start:stop]
+        record: dict[str, Any] = {"layer": l, "grad_norm": g, "param_norm": w,
+                                  "update_ratio": float(np.sqrt(delta @ delta)) / w if w > 0 else math.inf}
+        if l < model.n_layers - 1:
+            name = model.activations[l]
+            record["activation"] = name
+            if name in ("sigmoid", "tanh"):
+                record["saturated_fraction"] = counts[2 * l] / max(counts[2 * l + 1] * model.sizes[l + 1], 1)
+            if name in ("relu", "leaky_relu"):
+                record["dead_fraction"] = float(np.mean(alive[l] == 0))
+        layers.append(record)
+    return {"kind": "health", "step": step, "layers": layers}
+
+
+def warnings(record: dict[str, Any]) -> list[str]:
+    """Human-readable warnings for one health record (empty when every layer looks healthy)."""
+    out = []
+    for layer in record["layers"]:
+        l, step = layer["layer"], record["step"]
+        w = layer["param_norm"]
+        if w > 0 and layer["grad_norm"] / w < VANISHING_RATIO:
+            out.append(f"step {step}: layer {l}: gradient vanishing (‖g‖/‖W‖ = {layer['grad_norm'] / w:.2e})")
+        if layer.get("saturated_fraction", 0.0) > SATURATED_WARN:
+            out.append(f"step {step}: layer {l} ({layer['activation']}): {layer['saturated_fraction']:.0%} of "
+                       f"units saturated (|z| > {SATURATION_Z:g}); gradients through them nearly vanish")
+        if layer.get("dead_fraction", 0.0) > DEAD_WARN:
+            out.append(f"step {step}: layer {l} ({layer['activation']}): {layer['dead_fraction']:.0%} of units "
+                       f"dead (zero on every row of the batch)")
+    return out

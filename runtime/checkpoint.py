@@ -112,6 +112,8 @@ def save(trainer: Trainer, step: int) -> Path | None:
     _write_text(pointer, name + "\n")
     os.replace(pointer, root / "latest")
     _fsync_dir(root)
+    for old in sorted(root.glob("step-*"))[:-trainer.job.run.keep_checkpoints]:
+        shutil.rmtree(old, ignore_errors=True)  # only after `latest` points at the new one
     return final
 
 
@@ -196,7 +198,8 @@ def check_compatible(trainer: Trainer, state: dict[str, Any], params: dict, opt:
         ours = trainer.job.as_dict()
         diffs = [f"{s}.{k}" for s in ("model", "data", "optimizer", "run") for k in ours.get(s, {})
                  if k in theirs.get(s, {}) and theirs[s][k] != ours[s][k]
-                 and k not in ("epochs", "max_steps", "save_every", "workdir", "threads", "check_every",
+                 and k not in ("epochs", "max_steps", "save_every", "keep_checkpoints", "workdir", "threads",
+                               "check_every",
                                "health_every", "bucket_mb", "overlap")]
         raise CheckpointError("checkpoint belongs to another job (its job digest differs"
                               + (f"; changed: {', '.join(diffs)}" if diffs else "") + ")")

@@ -107,6 +107,7 @@ class RunSpec:
     bucket_mb: float = 4.0
     overlap: bool = True
     save_every: int = 0
+    keep_checkpoints: int = 3
     workdir: str = "run"
     threads: int = 1
     max_steps: int = 0
@@ -144,8 +145,8 @@ class Job:
     def digest(self) -> str:
         """SHA-256 of what fixes the training trajectory (model, data, optimizer, seed, batch, reduction).
 
-        Left out: epochs, max_steps, save_every, workdir, threads, check and health intervals, bucket size
-        and overlap, so that a job may be resumed with more epochs or a different layout of the run.
+        Left out: epochs, max_steps, save_every, keep_checkpoints, workdir, threads, check and health
+        intervals, bucket size and overlap, so that a job may be resumed with more epochs or a different layout of the run.
         """
         d = self.as_dict()
         run = {k: d["run"][k] for k in ("global_batch", "seed", "reduction", "exact_chunk")}
@@ -242,6 +243,7 @@ def job_from_dict(raw: dict[str, Any], base: str | Path = ".") -> Job:
         bucket_mb=_number("run.bucket_mb", r.get("bucket_mb", 4.0), low=0.0, low_open=True),
         overlap=_flag("run.overlap", r.get("overlap", True)),
         save_every=_number("run.save_every", r.get("save_every", 0), low=0, integer=True),
+        keep_checkpoints=_number("run.keep_checkpoints", r.get("keep_checkpoints", 3), low=1, integer=True),
         workdir=str(r.get("workdir", "run")),
         threads=_number("run.threads", r.get("threads", 1), low=1, integer=True),
         max_steps=_number("run.max_steps", r.get("max_steps", 0), low=0, integer=True),

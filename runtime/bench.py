@@ -31,11 +31,12 @@ def synthetic_dataset(layers: list[int], loss: str, rows: int, dtype: str, seed:
     return Dataset(X=X, targets=targets, split=split, mean=np.zeros(layers[0]), inv_std=np.ones(layers[0]))
 
 
-def gemm_floor_step(trainer: Trainer) -> float:
+def gemm_floor_step(trainer: Trainer, first_layer_dA: bool = True) -> float:
     """Seconds for the GEMMs of one step on this rank's local batch shapes.
 
-    Times the three GEMMs per layer (Z = A W, dW = Aᵀ dZ, dA = dZ Wᵀ), including the first layer's dA,
-    which training skips: the floor is therefore slightly *more* work than the step needs.
+    Times the three GEMMs per layer (Z = A W, dW = Aᵀ dZ, dA = dZ Wᵀ). With ``first_layer_dA`` it includes
+    the first layer's dA (the gradient with respect to the inputs), which training never needs: that floor
+    is *more* work than the step does. Without it, the floor is exactly the GEMMs the step runs.
     """
     ws, model = trainer.ws, trainer.model
     n = ws.rows
@@ -47,7 +48,8 @@ def gemm_floor_step(trainer: Trainer) -> float:
     for l in reversed(range(model.n_layers)):
         dZ = ws.delta(0, n, model.sizes[l + 1])
         np.matmul(ws.A[l][:n].T, dZ, out=dWs[l])
-        np.matmul(dZ, model.weights[l].T, out=ws.delta(1, n, model.sizes[l]))
+        if l > 0 or first_layer_dA:
+            np.matmul(dZ, model.weights[l].T, out=ws.delta(1, n, model.sizes[l]))
     return time.perf_counter() - begin
 
 
@@ -59,7 +61,8 @@ def run_bench(layers: list[int], batch: int, dtype: str = "float32", threads: in
 
     Step and floor are measured in alternating blocks so that drifting machine load hits both alike.
     Returns global ``samples_per_s`` (G / median step), ``step_ms``, ``floor_samples_per_s`` and
-    ``ratio_to_floor`` (≤ 1 unless the floor is noisy; 1 means no time outside BLAS).
+    ``ratio_to_floor`` (floor: three GEMMs per layer), and ``ratio_to_needed_floor`` (floor: only the GEMMs
+    training needs, i.e. without the first layer's input gradient; ≤ 1, and 1 means no time outside BLAS).
     """
     comm = comm or Comm()
     job = job_from_dict({
@@ -77,7 +80,7 @@ def run_bench(layers: list[int], batch: int, dtype: str = "float32", threads: in
         for s in range(warmup):
             trainer.step(0, s % spe)
             gemm_floor_step(trainer)
-        step_times, floor_times = [], []
+        step_times, floor_times, needed_times = [], [], []
         block = 5
         done = 0
         while done < steps:
@@ -90,12 +93,14 @@ def run_bench(layers: list[int], batch: int, dtype: str = "float32", threads: in
                 comm.max_(local)
                 step_times.append(float(local[0]))
             for _ in range(todo):
-                local = np.array([gemm_floor_step(trainer)])
+                local = np.array([gemm_floor_step(trainer), gemm_floor_step(trainer, first_layer_dA=False)])
                 comm.max_(local)
                 floor_times.append(float(local[0]))
+                needed_times.append(float(local[1]))
             done += todo
     step_s = statistics.median(step_times)
     floor_s = statistics.median(floor_times)
+    needed_s = statistics.median(needed_times)
     n_params = trainer.model.n_params
     return {
         "layers": layers,
@@ -114,6 +119,8 @@ def run_bench(layers: list[int], batch: int, dtype: str = "float32", threads: in
         "floor_samples_per_s": batch / floor_s,
         "floor_ms": floor_s * 1e3,
         "ratio_to_floor": floor_s / step_s,
+        "needed_floor_ms": needed_s * 1e3,
+        "ratio_to_needed_floor": needed_s / step_s,
         "step_ms_min": min(step_times) * 1e3,
         "floor_ms_min": min(floor_times) * 1e3,
         "compile_s": compile_s,

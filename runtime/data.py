@@ -143,4 +143,6 @@ def gather(X: np.ndarray, rows: np.ndarray, mean: np.ndarray, inv_std: np.ndarra
     """Copy the standardised rows of X into the batch buffer ``out[:len(rows)]``; raise on a non-finite row."""
     bad = data_kernels.gather_rows(X, rows, mean, inv_std, out)
     if bad >= 0:
-        raise JobError(f"`data.inputs` row {int(rows[bad])} holds a non-finite value (NaN or inf)")
+        error = JobError(f"`data.inputs` row {int(rows[bad])} holds a non-finite value (NaN or inf)")
+        error.local = True  # seen by this rank only, mid-step: run_guarded must end every rank, not just return
+        raise error

@@ -147,8 +147,10 @@ class MLP:
                 raise JobError(f"`{name}` must be integer labels of shape ({n},) for softmax_cross_entropy; "
                                f"got shape {y.shape}")
             if y.dtype.kind == "f":
-                if not np.all(np.isfinite(y)) or np.any(y != np.round(y)):
-                    raise JobError(f"`{name}` must hold whole-number class labels; got non-integer values")
+                wrong = ~np.isfinite(y) | (y != np.round(y))
+                if np.any(wrong):
+                    row = int(np.flatnonzero(wrong)[0])
+                    raise JobError(f"`{name}` must hold whole-number class labels; got {float(y[row])!r} in row {row}")
             elif y.dtype.kind not in "iu":
                 raise JobError(f"`{name}` must hold integer class labels; got dtype {y.dtype}")
             labels = np.asarray(y, dtype=np.int64)
@@ -161,9 +163,12 @@ class MLP:
             raise JobError(f"`{name}` must have shape ({n}, {k}) for {self.loss}; got {y.shape}")
         values = np.asarray(y2, dtype=self.dtype)
         if not np.all(np.isfinite(values)):
-            raise JobError(f"`{name}` holds non-finite values (NaN or inf)")
+            row = int(np.flatnonzero(~np.isfinite(values).all(axis=1))[0])
+            raise JobError(f"`{name}` row {row} holds a non-finite value (NaN or inf)")
         if self.loss == "binary_cross_entropy" and (values.min() < 0 or values.max() > 1):
-            raise JobError(f"`{name}` must hold values in [0, 1] for binary_cross_entropy")
+            row, col = (int(i) for i in np.argwhere((values < 0) | (values > 1))[0])
+            raise JobError(f"`{name}` must hold values in [0, 1] for binary_cross_entropy; got {values[row, col]:g} "
+                           f"in row {row}")
         return values
 
     def loss_and_grad(self, X: np.ndarray, y: np.ndarray) -> tuple[float, np.ndarray]:

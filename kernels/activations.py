@@ -2,7 +2,8 @@
 
 Codes (small ints) select the activation inside two loop kernels, so the whole set compiles to two
 specialisations per dtype instead of two per activation. ``Z`` holds pre-activations, ``A`` outputs.
-All scalar maths runs in float64 and is stored back in the array's dtype.
+Scalar maths runs in the array's precision or higher (Numba promotes where a float64 literal meets it)
+and is stored back in the array's dtype.
 """
 
 from __future__ import annotations

@@ -47,8 +47,9 @@ def cmd_predict(args) -> int:
     model, mean, inv_std = load_model(Path(args.checkpoint))
     X = np.asarray(read_array(Path(args.inputs), "inputs"), dtype=np.float64)
     model.check_inputs(X, "inputs")
-    if not np.all(np.isfinite(X)):
-        raise JobError("`inputs` holds non-finite values (NaN or inf)")
+    finite = np.isfinite(X).all(axis=1)
+    if not finite.all():
+        raise JobError(f"`inputs` row {int(np.argmin(finite))} holds a non-finite value (NaN or inf)")
     outputs = model.predict((X - mean) * inv_std)
     np.save(args.out, outputs, allow_pickle=False)
     print(f"wrote {outputs.shape[0]} × {outputs.shape[1]} outputs to {args.out}")

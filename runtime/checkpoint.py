@@ -80,9 +80,9 @@ def save(trainer: Trainer, step: int) -> Path | None:
     root.mkdir(parents=True, exist_ok=True)
     name = f"step-{step:08d}"
     final = root / name
+    for stale in root.glob(".tmp-step-*"):  # left by a write that was interrupted; one writer per workdir
+        shutil.rmtree(stale, ignore_errors=True)
     tmp = root / f".tmp-{name}-{os.getpid()}"
-    if tmp.exists():
-        shutil.rmtree(tmp)
     tmp.mkdir()
     _write_npz(tmp / "params.npz", model_arrays(trainer))
     _write_npz(tmp / "optimizer.npz", dict(trainer.optimizer.state))

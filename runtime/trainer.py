@@ -141,6 +141,8 @@ class Trainer:
             self.loss_value = np.zeros(1, dtype=np.float64)
         self.step_count = 0  # global steps completed
         self.total_steps = self.planned_steps()
+        # The schedule spans all epochs; run.max_steps only stops early, so a stopped run resumes onto the same curve.
+        self.schedule_steps = run.epochs * self.sampler.steps_per_epoch
         self.timer = PhaseTimer()
         self.sums = np.zeros(3)  # loss sum, correct, counted (local, since the last reduce)
         self.health: list[dict[str, Any]] = []  # diagnostics records not yet written
@@ -192,7 +194,7 @@ class Trainer:
         self.optimizer.clip(self.grads)
         health = self.job.run.health_every and (self.step_count + 1) % self.job.run.health_every == 0
         before = self.model.params.copy() if health else None
-        self.optimizer.step(self.model.params, self.grads, self.total_steps)  # update
+        self.optimizer.step(self.model.params, self.grads, self.schedule_steps)  # update
         self.timer.lap(4)
         self.step_count += 1
         if health:
@@ -421,7 +423,7 @@ def _epoch_record(trainer: Trainer, epoch: int, step: int, steps: int, seconds: 
 def _current_lr(trainer: Trainer) -> float:
     from .optim import learning_rate
 
-    return learning_rate(trainer.optimizer.spec, trainer.optimizer.updates - 1, trainer.total_steps)
+    return learning_rate(trainer.optimizer.spec, trainer.optimizer.updates - 1, trainer.schedule_steps)
 
 
 def final_path(workdir: str | Path) -> Path:

@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import numpy as np
-
 from shardmill.bench import synthetic_dataset
 from shardmill.config import job_from_dict
 from shardmill.health import SATURATION_Z, warnings

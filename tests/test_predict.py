@@ -1,0 +1,100 @@
+"""``shardmill predict``: outputs of a trained model equal an independent NumPy forward pass, from final.npz,
+a checkpoint directory or the workdir, and the printed metrics equal scikit-learn's."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import numpy as np
+import pytest
+import scipy.special
+from conftest import make_classification, run_cli
+from shardmill.config import job_from_dict
+from shardmill.trainer import Trainer, train
+from sklearn.metrics import accuracy_score, log_loss
+
+LAYERS = [6, 16, 8, 3]
+STEPS = 8  # 2 epochs of G = 48 over 192 training rows
+
+
+@pytest.fixture(scope="module")
+def trained(tmp_path_factory) -> dict:
+    """A model trained in this process (one rank), its workdir, the data and the training rows."""
+    path = tmp_path_factory.mktemp("predict")
+    x, y = make_classification(path, rows=240, features=6, classes=3, seed=13)
+    job = job_from_dict({"model": {"layers": LAYERS, "activation": "relu", "dtype": "float64"},
+                         "data": {"inputs": str(x), "targets": str(y), "validation_fraction": 0.2},
+                         "optimizer": {"method": "adam", "learning_rate": 0.01},
+                         "run": {"epochs": 2, "global_batch": 48, "seed": 6, "save_every": 4,
+                                 "workdir": str(path / "run")}})
+    result = train(job, progress=False)
+    assert result["steps"] == STEPS
+    return {"path": path, "x": x, "y": y, "model": result["model"], "workdir": path / "run",
+            "train_rows": Trainer(job).data.split.train}
+
+
+def numpy_forward(arrays: Path, X: np.ndarray, train_rows: np.ndarray) -> np.ndarray:
+    """softmax(relu(relu(X̃ W0 + b0) W1 + b1) W2 + b2) with X̃ standardised by the training rows' mean and std."""
+    mean, std = X[train_rows].mean(axis=0), X[train_rows].std(axis=0)  # numpy: population std (ddof 0)
+    A = (X - mean) / std
+    with np.load(arrays, allow_pickle=False) as archive:
+        layers = [(archive[f"W{l}"], archive[f"b{l}"]) for l in range(len(LAYERS) - 1)]
+    for l, (W, b) in enumerate(layers):
+        Z = A @ W + b
+        A = np.maximum(Z, 0.0) if l < len(layers) - 1 else Z
+    return scipy.special.softmax(A, axis=1)  # scipy.special.softmax
+
+
+def _predict(trained: dict, source: Path, name: str, targets: bool = True):
+    out = trained["path"] / f"{name}.npy"
+    args = ["predict", str(source), str(trained["x"]), "--out", str(out)]
+    if targets:
+        args += ["--targets", str(trained["y"])]
+    proc = run_cli(args, timeout=120)
+    assert proc.returncode == 0, proc.stderr[-3000:]
+    return proc, np.load(out, allow_pickle=False)
+
+
+def test_predict_from_final_matches_independent_forward_pass(trained: dict) -> None:
+    proc, outputs = _predict(trained, trained["workdir"] / "final.npz", "from-final")
+    X, y = np.load(trained["x"]), np.load(trained["y"])
+    assert outputs.shape == (240, 3) and outputs.dtype == np.float64
+    assert f"wrote 240 × 3 outputs to {trained['path'] / 'from-final.npy'}" in proc.stdout
+    expected = numpy_forward(trained["workdir"] / "final.npz", X, trained["train_rows"])
+    np.testing.assert_allclose(outputs, expected, rtol=1e-10, atol=1e-13)
+    # The model returned by training, on inputs standardised with its own statistics, gives the same outputs.
+    with np.load(trained["workdir"] / "final.npz", allow_pickle=False) as archive:
+        standardised = (X - archive["input_mean"]) * archive["input_inv_std"]
+    np.testing.assert_allclose(outputs, trained["model"].predict(standardised), rtol=1e-12, atol=1e-15)
+    np.testing.assert_allclose(outputs.sum(axis=1), 1.0, rtol=0, atol=1e-12)  # softmax rows sum to 1
+    assert outputs.min() >= 0.0 and outputs.max() <= 1.0
+    # Metrics line: scikit-learn's accuracy_score and log_loss of the same outputs.
+    metrics = json.loads(proc.stdout.strip().splitlines()[-1])
+    assert metrics["accuracy"] == pytest.approx(accuracy_score(y, outputs.argmax(axis=1)), abs=1e-12)
+    assert metrics["loss"] == pytest.approx(log_loss(y, outputs, labels=[0, 1, 2]), rel=1e-9)
+    assert metrics["accuracy"] > 0.5  # separable blobs after 8 Adam steps: the model learned something
+
+
+def test_predict_from_checkpoint_and_workdir_equals_final(trained: dict) -> None:
+    _, from_final = _predict(trained, trained["workdir"] / "final.npz", "final-again", targets=False)
+    _, from_checkpoint = _predict(trained, trained["workdir"] / "checkpoints" / f"step-{STEPS:08d}", "from-ckpt")
+    proc, from_workdir = _predict(trained, trained["workdir"], "from-workdir", targets=False)
+    assert np.array_equal(from_checkpoint, from_final) and np.array_equal(from_workdir, from_final)
+    assert not any(line.startswith("{") for line in proc.stdout.splitlines())  # no targets, no metrics
+    # An earlier checkpoint is a different model: its outputs differ, and match its own forward pass.
+    _, early = _predict(trained, trained["workdir"] / "checkpoints" / "step-00000004", "from-early", targets=False)
+    assert np.abs(early - from_final).max() > 1e-6
+    params = trained["workdir"] / "checkpoints" / "step-00000004" / "params.npz"
+    expected = numpy_forward(params, np.load(trained["x"]), trained["train_rows"])
+    np.testing.assert_allclose(early, expected, rtol=1e-10, atol=1e-13)
+
+
+def test_predict_refuses_inputs_of_the_wrong_width(trained: dict) -> None:
+    narrow = trained["path"] / "narrow.npy"
+    np.save(narrow, np.load(trained["x"])[:, :5])
+    proc = run_cli(["predict", str(trained["workdir"] / "final.npz"), str(narrow), "--out",
+                    str(trained["path"] / "never.npy")], timeout=120)
+    assert proc.returncode == 2
+    assert "`inputs` must have shape (n, 6); got (240, 5)" in proc.stderr and "Traceback" not in proc.stderr
+    assert not (trained["path"] / "never.npy").exists()

@@ -84,6 +84,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--network", default=None, help="project to this network, e.g. 100Gb/s,2us")
     p.add_argument("--project", default="8,16,64,256,1024", help="process counts to project to")
     p.add_argument("--out", type=Path, default=Path("scaling"))
+    p.add_argument("--timeout", type=float, default=900.0, help="seconds allowed per process count (default 900)")
+    p.add_argument("--no-progress", action="store_true", help="no progress bar")
 
     p = sub.add_parser("predict", help="outputs of a trained model on new inputs")
     p.add_argument("checkpoint", type=Path, help="checkpoint directory, workdir, or final.npz")

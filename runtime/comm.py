@@ -6,7 +6,6 @@ the same order; nothing here branches on the rank around a collective.
 
 from __future__ import annotations
 
-import os
 import sys
 import traceback
 import zlib
@@ -15,8 +14,9 @@ from typing import Any
 
 import numpy as np
 
-os.environ.setdefault("MPI4PY_RC_THREADS", "0")  # no MPI_THREAD_MULTIPLE needed: lighter, faster progress
-from mpi4py import MPI  # noqa: E402
+# mpi4py's default, MPI_THREAD_MULTIPLE, is kept on purpose: with the MPICH wheel, single-thread mode measured
+# 5.7 ms per 4 MB allreduce at P = 2 against 0.38 ms, and seconds per MB once ranks share a core.
+from mpi4py import MPI
 
 _MPI_TYPES = {np.dtype(np.float32): MPI.FLOAT, np.dtype(np.float64): MPI.DOUBLE, np.dtype(np.int64): MPI.INT64_T}
 

@@ -146,7 +146,8 @@ class Job:
         """SHA-256 of what fixes the training trajectory (model, data, optimizer, seed, batch, reduction).
 
         Left out: epochs, max_steps, save_every, keep_checkpoints, workdir, threads, check and health
-        intervals, bucket size and overlap, so that a job may be resumed with more epochs or a different layout of the run.
+        intervals, bucket size and overlap, so that a job may be resumed with more epochs or a different
+        layout of the run.
         """
         d = self.as_dict()
         run = {k: d["run"][k] for k in ("global_batch", "seed", "reduction", "exact_chunk")}

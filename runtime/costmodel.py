@@ -412,8 +412,12 @@ def project(
     gamma: float = 0.0,
     mode: str = "strong",
     overlap: float = 0.0,
+    replicated_s: float = 0.0,
 ) -> list[dict[str, Any]]:
     """Project the data-parallel step time and efficiency to each process count in `ps`.
+
+    replicated_s: the part of compute_s that every rank repeats in full whatever p is (the optimizer update
+    over all parameters, in plain data parallelism); in strong mode only compute_s − replicated_s is divided by p.
 
     compute_s: seconds of compute per step — in "strong" mode the serial step (the global batch on one
     process), divided by p; in "weak" mode the per-rank step, the same at every p. grad_bytes: bytes of the
@@ -432,6 +436,9 @@ def project(
     grad_bytes = _check_non_negative(grad_bytes, "grad_bytes")
     if mode not in ("strong", "weak"):
         raise ValueError(f"`mode` must be one of strong, weak; got {mode!r}")
+    replicated_s = _check_non_negative(replicated_s, "replicated_s")
+    if replicated_s > compute_s:
+        raise ValueError(f"`replicated_s` must be ≤ compute_s = {compute_s!r}; got {replicated_s!r}")
     overlap = _check_non_negative(overlap, "overlap")
     if overlap > 1.0:
         raise ValueError(f"`overlap` must be a fraction in [0, 1]; got {overlap!r}")
@@ -441,7 +448,7 @@ def project(
     serial_s = compute_s  # T1: at p = 1 the step is all compute, in both modes
     rows = []
     for p in counts:
-        local_compute_s = compute_s / p if mode == "strong" else compute_s
+        local_compute_s = (compute_s - replicated_s) / p + replicated_s if mode == "strong" else compute_s
         algorithm, allreduce_s = best_allreduce(p, grad_bytes, alpha, beta, gamma)
         exposed_s = allreduce_s * (1.0 - overlap)
         step_s = local_compute_s + exposed_s

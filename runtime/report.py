@@ -333,7 +333,8 @@ def _model_section(study: dict[str, Any], figures: set[str]) -> list[str]:
         "### Projection",
         "",
         f"Compute per step {seconds(model['compute_s'])} (P = 1: data + forward + backward + update), "
-        + ("divided by P" if model["mode"] == "strong" else "the same at every P")
+        + (f"divided by P except the {seconds(model.get('replicated_s', 0.0))} update every rank repeats"
+           if model["mode"] == "strong" else "the same at every P")
         + f"; the {size(model['grad_bytes'])} gradient is one allreduce, cheapest algorithm per P, fully exposed. "
         f"Error = (model − measured) / measured step time; largest on measured P: "
         f"{100 * model['max_abs_step_error']:.1f}%.",

@@ -303,7 +303,9 @@ def add_speedup(points: list[dict[str, Any]], mode: str) -> None:
 
 
 EXTRA_ASSUMPTIONS: list[str] = [
-    "Compute per step is the measured P = 1 step's data + forward + backward + update time; the exchange "
+    "Compute per step is the measured P = 1 step's data + forward + backward + update time; in strong "
+    "scaling data, forward and backward divide by P while the update, which every rank repeats over all "
+    "parameters, does not; the exchange "
     "is modelled as fully exposed (overlap 0), an upper bound when buckets overlap with backward.",
     "Alpha and beta come from in-place SUM allreduce medians at the largest measured P on this machine, "
     "with the reduction cost gamma measured separately and held fixed.",
@@ -353,9 +355,11 @@ def communication_model(points: list[dict[str, Any]], raws: dict[int, dict[str, 
     """
     serial = next(point for point in points if point["p"] == 1)
     compute_s = sum(serial["phase_mean_s"][phase] for phase in COMPUTE_PHASES)
+    replicated_s = serial["phase_mean_s"]["update"]  # every rank updates all parameters
     grad_bytes = raws[1]["grad_bytes"]
     comm_ps = [p for p in sorted(raws) if p > 1 and raws[p]["allreduce"]]
-    base = {"compute_s": compute_s, "grad_bytes": grad_bytes, "overlap": 0.0, "mode": mode,
+    base = {"compute_s": compute_s, "replicated_s": replicated_s, "grad_bytes": grad_bytes,
+            "overlap": 0.0, "mode": mode,
             "assumptions": list(costmodel.ASSUMPTIONS) + EXTRA_ASSUMPTIONS}
     if not comm_ps:
         return dict(base, available=False,
@@ -380,7 +384,7 @@ def communication_model(points: list[dict[str, Any]], raws: dict[int, dict[str, 
                          "beta_s_per_byte": network[1]})
     for entry in networks:
         rows = costmodel.project(compute_s, grad_bytes, ps, entry["alpha_s"], entry["beta_s_per_byte"], gamma,
-                                 mode=mode, overlap=0.0)
+                                 mode=mode, overlap=0.0, replicated_s=replicated_s)
         if entry["spec"] is None:  # the measured network: compare where we measured
             for row in rows:
                 point = measured.get(row["p"])

@@ -382,3 +382,13 @@ def test_measure_allreduce_on_two_ranks(tmp_path: Path) -> None:
     assert per_rank[0] == per_rank[1]
     # Lenient on a noisy 2-core machine: 4 MiB must take longer than 256 bytes.
     assert results[-1]["median_s"] > results[0]["median_s"]  # TRG 2005: time grows with n·β
+
+
+def test_replicated_update_is_not_divided_by_p() -> None:
+    # Amdahl 1967: with a serial fraction s of T1 the strong-scaling time is T1·(s + (1 − s)/p).
+    from shardmill.costmodel import project
+
+    rows = project(1.0, 0.0, [1, 4], alpha=0.0, beta=0.0, replicated_s=0.2)
+    assert rows[0]["step_s"] == pytest.approx(1.0)
+    assert rows[1]["step_s"] == pytest.approx(0.2 + 0.8 / 4)
+    assert rows[1]["efficiency"] == pytest.approx(1.0 / (4 * 0.4))

@@ -1,0 +1,202 @@
+"""Shared pieces of the benchmark scripts: one BLAS thread per rank, the machine record, medians, JSON out.
+
+Import this module (and call :func:`pin_blas`) before numpy in every benchmark script: it pins BLAS to one
+thread per process through the environment, for this process and for every process it starts.
+"""
+
+from __future__ import annotations
+
+import datetime
+import json
+import os
+import statistics
+import subprocess
+import sys
+from collections.abc import Callable, Sequence
+from pathlib import Path
+from typing import Any
+
+BLAS_THREAD_VARIABLES = ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS")
+
+
+def pin_blas() -> None:
+    """One BLAS thread per process, for this process and every process it starts. Call before numpy loads.
+
+    OPENBLAS_CORETYPE and OPENBLAS_L2_SIZE, which this machine sets, are left exactly as they are;
+    machine_record() notes them. In-process, threadpoolctl enforces the same limit around the timed code.
+    """
+    for name in BLAS_THREAD_VARIABLES:
+        os.environ[name] = "1"
+
+
+pin_blas()  # importing this module is enough; the explicit call in each script says so where it matters
+
+ROOT = Path(__file__).resolve().parent.parent
+BENCHMARKS = ROOT / "benchmarks"
+MID_MODEL = [784, 1024, 1024, 10]
+NOTED_ENVIRONMENT = ("OPENBLAS_CORETYPE", "OPENBLAS_L2_SIZE", "OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS",
+                     "MKL_NUM_THREADS", "NUMBA_CACHE_DIR")
+
+
+def machine_record() -> dict[str, Any]:
+    """shardmill.bench.machine() plus the date (UTC, ISO 8601) and the BLAS-related environment as set."""
+    from shardmill.bench import machine
+
+    record = machine()
+    record["date"] = datetime.datetime.now(datetime.UTC).isoformat(timespec="seconds")
+    record["environment"] = {name: os.environ[name] for name in NOTED_ENVIRONMENT if name in os.environ}
+    return record
+
+
+def median(values: Sequence[float]) -> float:
+    """Median of a non-empty sequence (statistics.median; mean of the two middle values for even counts)."""
+    return float(statistics.median(values))
+
+
+def time_call(fn: Callable[[], Any]) -> float:
+    """Seconds taken by one call of ``fn`` (time.perf_counter)."""
+    from time import perf_counter
+
+    begin = perf_counter()
+    fn()
+    return perf_counter() - begin
+
+
+def median_time(fn: Callable[[], Any], repeats: int, warmup: int = 2) -> float:
+    """Median seconds of ``repeats`` calls of ``fn`` after ``warmup`` untimed calls."""
+    for _ in range(warmup):
+        fn()
+    return median([time_call(fn) for _ in range(repeats)])
+
+
+class LoadMeter:
+    """CPU time used on this machine by processes other than this one and its children, during a run.
+
+    Reads /proc/stat (Linux) at start and stop: ``background_cpu_fraction`` = (busy CPU time of the whole
+    machine − CPU time of this process and its waited-for children) / (wall time · cores). 0 means the cores
+    were ours alone; on a shared 2-core machine anything above ~0.1 makes absolute times unreliable (ratios
+    measured in alternation suffer less). None where /proc/stat is missing.
+    """
+
+    def __init__(self) -> None:
+        self._start = self._sample()
+
+    @staticmethod
+    def _sample() -> tuple[float, float, float] | None:
+        import resource
+        from time import perf_counter
+
+        try:
+            with open("/proc/stat") as stat:
+                fields = [int(x) for x in stat.readline().split()[1:]]
+        except OSError:
+            return None
+        ticks = os.sysconf("SC_CLK_TCK")
+        busy = (sum(fields[:8]) - fields[3] - fields[4]) / ticks  # all but idle and iowait
+        own = sum(getattr(resource.getrusage(who), f) for who in (resource.RUSAGE_SELF, resource.RUSAGE_CHILDREN)
+                  for f in ("ru_utime", "ru_stime"))
+        return perf_counter(), busy, own
+
+    def stop(self, sum_over_ranks: Callable[[float], float] | None = None) -> dict[str, Any]:
+        """{"background_cpu_fraction": …, "wall_s": …} since construction.
+
+        Under MPI the other ranks are not our children: pass ``sum_over_ranks`` (a SUM allreduce of one
+        float, called on every rank) so that their CPU time counts as ours too.
+        """
+        end = self._sample()
+        own = 0.0 if self._start is None or end is None else end[2] - self._start[2]
+        if sum_over_ranks is not None:
+            own = sum_over_ranks(own)
+        if self._start is None or end is None:
+            return {"background_cpu_fraction": None}
+        wall = end[0] - self._start[0]
+        others = (end[1] - self._start[1]) - own
+        return {"background_cpu_fraction": max(0.0, others) / (wall * (os.cpu_count() or 1)), "wall_s": wall}
+
+
+def busy_fraction(seconds: float = 3.0) -> float | None:
+    """Fraction of all cores busy over the next ``seconds`` (from /proc/stat; None where it is missing)."""
+    from time import sleep
+
+    def sample() -> tuple[int, int] | None:
+        try:
+            with open("/proc/stat") as stat:
+                fields = [int(x) for x in stat.readline().split()[1:]]
+        except OSError:
+            return None
+        idle = fields[3] + fields[4]
+        return sum(fields[:8]) - idle, idle
+
+    first = sample()
+    sleep(seconds)
+    second = sample()
+    if first is None or second is None:
+        return None
+    busy, idle = second[0] - first[0], second[1] - first[1]
+    return busy / max(busy + idle, 1)
+
+
+def wait_until_quiet(limit_s: float, threshold: float = 0.15) -> dict[str, Any]:
+    """Wait (at most ``limit_s`` seconds) until other processes keep less than ``threshold`` of the cores busy.
+
+    Returns what happened: {"waited_s", "busy_fraction", "quiet"}. Used by run_all --wait-quiet on shared
+    machines; the measurement runs anyway when the limit passes, and the JSON says it was not quiet.
+    """
+    from time import perf_counter
+
+    begin = perf_counter()
+    while True:
+        busy = busy_fraction()
+        quiet = busy is None or busy < threshold
+        if quiet or perf_counter() - begin >= limit_s:
+            return {"waited_s": perf_counter() - begin, "busy_fraction": busy, "quiet": quiet}
+        log(f"machine busy ({busy:.0%} of the cores); waiting for a quiet moment")
+
+
+def emit(result: dict[str, Any]) -> None:
+    """Print one JSON object on stdout (the only thing a benchmark script writes there)."""
+    print(json.dumps(result, indent=1, allow_nan=True), flush=True)
+
+
+def child_environment() -> dict[str, str]:
+    """Environment for the processes a benchmark starts: this one, with BLAS pinned and output unbuffered."""
+    return dict(os.environ, **dict.fromkeys(BLAS_THREAD_VARIABLES, "1"), PYTHONUNBUFFERED="1")
+
+
+def mpiexec() -> str:
+    """The launcher shardmill itself uses (SHARDMILL_MPIEXEC, else the bundled one, else PATH)."""
+    from shardmill.launch import find_mpiexec
+
+    return find_mpiexec()
+
+
+def last_json(text: str) -> dict[str, Any]:
+    """The JSON object a child printed on stdout (the last line, or the whole text when it is indented)."""
+    text = text.strip()
+    try:
+        return json.loads(text)
+    except json.JSONDecodeError:
+        return json.loads(text.splitlines()[-1])
+
+
+def run_child(cmd: list[str], timeout: float) -> dict[str, Any]:
+    """Run ``cmd``, return the JSON object it printed; on failure an ``error`` record (never raises).
+
+    stderr of the child is passed through to ours, so progress and warnings stay visible.
+    """
+    try:
+        done = subprocess.run(cmd, stdout=subprocess.PIPE, stderr=sys.stderr, text=True, timeout=timeout,
+                              env=child_environment(), cwd=ROOT)
+    except subprocess.TimeoutExpired:
+        return {"error": f"timed out after {timeout:.0f} s", "command": cmd}
+    if done.returncode != 0:
+        return {"error": f"exit status {done.returncode}", "command": cmd, "stdout_tail": done.stdout[-2000:]}
+    try:
+        return last_json(done.stdout)
+    except (json.JSONDecodeError, IndexError):
+        return {"error": "no JSON on stdout", "command": cmd, "stdout_tail": done.stdout[-2000:]}
+
+
+def log(message: str) -> None:
+    """Progress line on stderr (stdout carries only the JSON)."""
+    print(f"[bench] {message}", file=sys.stderr, flush=True)

@@ -1,0 +1,102 @@
+"""Run the three benchmarks (quick or full) and write one combined JSON with the machine and every target.
+
+Usage::
+
+    python benchmarks/run_all.py                      # full, P = 1, 2 (about 6–7 min on 2 busy cores)
+    python benchmarks/run_all.py --quick              # smoke run, about 1 min
+    python benchmarks/run_all.py --ranks 1,2,4,8,16   # a 16-core machine (under 8 min)
+
+Writes ``benchmarks/results/latest.json`` (``--out`` to change) and prints the same object on stdout.
+Each script runs in its own process with one BLAS thread per rank and its own time limit; a script that
+fails or runs out of time leaves an ``error`` record in its place and the others still run.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+import time
+from pathlib import Path
+from typing import Any
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from common import pin_blas  # noqa: E402
+
+pin_blas()  # before numpy loads OpenBLAS, here and in every child
+from common import BENCHMARKS, LoadMeter, log, machine_record, run_child, wait_until_quiet  # noqa: E402
+
+
+def targets(results: dict[str, Any]) -> list[dict[str, Any]]:
+    """Every target of the issue with the measured value and whether it is met (None: not measured)."""
+    out: list[dict[str, Any]] = []
+    step = results.get("step_vs_floor", {})
+    for row in step.get("summary", []):
+        if row.get("target") is not None:
+            out.append({"name": f"ratio_to_floor {row['model']} {row['dtype']} {row['optimizer']}",
+                        "value": row["ratio_to_floor"], "target": f">= {row['target']}", "met": row["met"]})
+    for row in results.get("exchange_vs_raw", {}).get("summary", []):
+        what = "overlap off" if not row["overlap"] else f"buckets >= {row['bucket_mb']} MB ({row['buckets']})"
+        out.append({"name": f"exchange_over_raw {row['dtype']} {what}", "value": row["exchange_over_raw"],
+                    "target": "<= 1.05", "met": row["met"]})
+    scaling = results.get("strong_scaling", {}).get("ratios", {})
+    for row in scaling.get("strong", []):
+        if "target_at_least" in row:
+            out.append({"name": f"strong scaling efficiency P={row['P']}", "value": row["efficiency"],
+                        "target": f">= {row['target_at_least']}", "met": row["met"]})
+    for row in scaling.get("exact", []):
+        out.append({"name": f"exact_over_fast P={row['P']}", "value": row["exact_over_fast"],
+                    "target": f"<= {row['target_at_most']}", "met": row["met"]})
+    return out
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--quick", action="store_true", help="smoke versions of every script")
+    parser.add_argument("--ranks", default="1,2", help="process counts for strong_scaling (default 1,2)")
+    parser.add_argument("--bind", action="store_true", help="strong_scaling: -bind-to core (MPICH mpiexec)")
+    parser.add_argument("--wait-quiet", type=float, default=0.0, metavar="S",
+                        help="before each script, wait up to S seconds for other processes to leave the cores idle")
+    parser.add_argument("--out", type=Path, default=BENCHMARKS / "results" / "latest.json")
+    args = parser.parse_args(argv)
+    quick = ["--quick"] if args.quick else []
+    py = sys.executable
+    scripts = {
+        "step_vs_floor": ([py, str(BENCHMARKS / "step_vs_floor.py"), *quick], 150 if args.quick else 480),
+        "exchange_vs_raw": ([py, str(BENCHMARKS / "exchange_vs_raw.py"), "--ranks", "2", *quick],
+                            120 if args.quick else 300),
+        "strong_scaling": ([py, str(BENCHMARKS / "strong_scaling.py"), "--ranks", args.ranks, *quick,
+                            *(["--bind"] if args.bind else [])], 300 if args.quick else 600),
+    }
+    meter = LoadMeter()
+    combined: dict[str, Any] = {"benchmark": "run_all", "quick": args.quick, "ranks": args.ranks,
+                                "command": " ".join(["python", "benchmarks/run_all.py", *sys.argv[1:]])}
+    seconds: dict[str, float] = {}
+    waits: dict[str, Any] = {}
+    for name, (cmd, timeout) in scripts.items():
+        if args.wait_quiet > 0:
+            waits[name] = wait_until_quiet(args.wait_quiet)
+        log(f"{name}: {' '.join(cmd[1:])}")
+        begin = time.perf_counter()
+        result = run_child(cmd, timeout)
+        seconds[name] = time.perf_counter() - begin
+        result.pop("machine", None)  # one machine record, at the top level
+        combined[name] = result
+    combined["targets"] = targets(combined)
+    combined["seconds"] = seconds
+    if waits:
+        combined["waited_for_quiet"] = waits
+    combined["load"] = meter.stop()
+    combined["machine"] = machine_record()
+    args.out.parent.mkdir(parents=True, exist_ok=True)
+    text = json.dumps(combined, indent=1, allow_nan=True)
+    args.out.write_text(text + "\n")
+    print(text, flush=True)
+    log(f"wrote {args.out}")
+    for t in combined["targets"]:
+        log(f"{'met   ' if t['met'] else 'MISSED'} {t['name']}: {t['value']:.4f} (target {t['target']})")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

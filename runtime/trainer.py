@@ -223,7 +223,8 @@ class Trainer:
                 raise FloatingPointError(f"gradient element {largest!r} is outside the exact accumulator's "
                                          f"range (|g| < 2^31)")
             self.timer.lap(2)
-        self.comm.sum_(self.limbs)
+        for limb in self.limbs:  # one call per limb row: MPICH slows sharply on single messages past ~22 MB
+            self.comm.sum_(limb)
         exactsum.to_float(self.limbs, self.grads)
 
     def evaluate(self, rows: np.ndarray) -> dict[str, float]:

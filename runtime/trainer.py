@@ -408,8 +408,7 @@ def _epoch_record(trainer: Trainer, epoch: int, step: int, steps: int, seconds: 
         "global_batch": job.run.global_batch,
         "reduction": job.run.reduction,
         "train": train_metrics,
-        "learning_rate": trainer.optimizer.spec.learning_rate if trainer.optimizer.updates == 0 else
-        _current_lr(trainer),
+        "learning_rate": _current_lr(trainer),
         "seconds": float(seconds_max[0]),
         "samples_per_s": float(steps * job.run.global_batch / max(seconds_max[0], 1e-12)),
         "phase_seconds_max": phase_max,
@@ -422,10 +421,10 @@ def _epoch_record(trainer: Trainer, epoch: int, step: int, steps: int, seconds: 
 
 
 def _current_lr(trainer: Trainer) -> float:
+    """The learning rate of the last update (the base rate before any update)."""
     from .optim import learning_rate
 
+    if trainer.optimizer.updates == 0:
+        return trainer.optimizer.spec.learning_rate
     return learning_rate(trainer.optimizer.spec, trainer.optimizer.updates - 1, trainer.schedule_steps)
 
-
-def final_path(workdir: str | Path) -> Path:
-    return Path(workdir) / "final.npz"

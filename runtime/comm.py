@@ -7,6 +7,7 @@ the same order; nothing here branches on the rank around a collective.
 from __future__ import annotations
 
 import sys
+import time
 import traceback
 import zlib
 from collections.abc import Callable
@@ -17,6 +18,11 @@ import numpy as np
 # mpi4py's default, MPI_THREAD_MULTIPLE, is kept on purpose: with the MPICH wheel, single-thread mode measured
 # 5.7 ms per 4 MB allreduce at P = 2 against 0.38 ms, and seconds per MB once ranks share a core.
 from mpi4py import MPI
+
+# Seconds a failing rank waits between writing its message and calling MPI_Abort. Hydra's launcher forwards a
+# rank's stderr and its abort request on separate channels; when the abort wins, the message is lost and the
+# user sees a bare exit code (seen once in CI: exit 2 with empty stderr). Half a second lets it drain.
+ABORT_GRACE_S = 0.5
 
 _MPI_TYPES = {np.dtype(np.float32): MPI.FLOAT, np.dtype(np.float64): MPI.DOUBLE, np.dtype(np.int64): MPI.INT64_T}
 
@@ -100,10 +106,16 @@ class Comm:
         return bool(low[0] == high[0])
 
     def abort(self, code: int = 1) -> None:
-        """End every rank of the job now."""
-        sys.stdout.flush()
-        sys.stderr.flush()
-        self.comm.Abort(code)
+        """End every rank of the job now (after :data:`ABORT_GRACE_S`, so this rank's messages get out)."""
+        abort_world(code, self.comm)
+
+
+def abort_world(code: int, comm: Any = None) -> None:
+    """Flush this rank's output, give the launcher :data:`ABORT_GRACE_S` seconds to forward it, then MPI_Abort."""
+    sys.stdout.flush()
+    sys.stderr.flush()
+    time.sleep(ABORT_GRACE_S)
+    (MPI.COMM_WORLD if comm is None else comm).Abort(code)
 
 
 def run_guarded(main: Callable[[], int], user_errors: tuple[type[BaseException], ...] = ()) -> int:
@@ -122,12 +134,12 @@ def run_guarded(main: Callable[[], int], user_errors: tuple[type[BaseException],
             prefix = f"[rank {rank}] " if size > 1 and getattr(err, "local", False) else ""
             print(f"shardmill: error: {prefix}{err}", file=sys.stderr, flush=True)
         if getattr(err, "local", False) and size > 1:
-            comm.Abort(2)
+            abort_world(2, comm)
         return 2
     except KeyboardInterrupt:
         print(f"shardmill: [rank {rank}] interrupted", file=sys.stderr, flush=True)
         if size > 1:
-            comm.Abort(130)
+            abort_world(130, comm)
         return 130
     except BaseException as err:  # noqa: BLE001 - any failure must end the job
         if isinstance(err, SystemExit) and not err.code:
@@ -135,7 +147,7 @@ def run_guarded(main: Callable[[], int], user_errors: tuple[type[BaseException],
         text = "".join(traceback.format_exception(err))
         print(f"shardmill: [rank {rank}] failed: {err!r}\n{text}", file=sys.stderr, flush=True)
         if size > 1:
-            comm.Abort(1)
+            abort_world(1, comm)
         return 1
 
 

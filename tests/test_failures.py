@@ -129,3 +129,44 @@ def test_parameters_drifting_on_one_rank_stop_the_job_loudly(tmp_path):
     # nudged before step 3, so the check after step 3 is the first to see it (run.check_every = 1)
     assert "parameters drifted apart across ranks at step 3" in proc.stderr, proc.stderr[-2000:]
     assert not out.exists()
+
+
+
+class _FakeWorld:
+    """COMM_WORLD stand-in: rank 1 of 2 that records when Abort is called instead of ending the process."""
+
+    def __init__(self) -> None:
+        self.aborted_at: list[float] = []
+
+    def Get_rank(self) -> int:  # noqa: N802 - mpi4py's names
+        return 1
+
+    def Get_size(self) -> int:  # noqa: N802
+        return 2
+
+    def Abort(self, code: int) -> None:  # noqa: N802
+        self.aborted_at.append(time.perf_counter())
+        raise SystemExit(code)
+
+
+def test_abort_waits_for_the_launcher_to_forward_the_message(monkeypatch, capsys):
+    """The failing rank's message must leave before MPI_Abort (CI once saw exit 2 with empty stderr).
+
+    Hydra forwards stderr and the abort request on separate channels, so ``abort_world`` flushes and then
+    waits ``ABORT_GRACE_S`` before aborting.
+    """
+    from shardmill import comm as comm_module
+
+    world = _FakeWorld()
+    monkeypatch.setattr(comm_module.MPI, "COMM_WORLD", world)
+
+    def failing_main() -> int:
+        raise RuntimeError("planted")
+
+    begin = time.perf_counter()
+    with pytest.raises(SystemExit) as exit_info:
+        comm_module.run_guarded(failing_main)
+    assert exit_info.value.code == 1
+    assert "[rank 1] failed: RuntimeError('planted')" in capsys.readouterr().err
+    assert len(world.aborted_at) == 1
+    assert world.aborted_at[0] - begin >= comm_module.ABORT_GRACE_S

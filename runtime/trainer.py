@@ -213,12 +213,11 @@ class Trainer:
         c = self.job.run.exact_chunk
         lo, hi = block_range(rows.size // c, self.comm.rank, self.comm.size)
         self.limbs.fill(0)
-        self.loss_limbs.fill(0)
         for k in range(lo, hi):
             loss_sum = self.compute_shard(rows[k * c:(k + 1) * c], self.chunk_grads, launch=False)
-            self.loss_value[0] = loss_sum
+            self.loss_value[0] = loss_sum  # the chunk's loss sum: the same bits for every P
             largest = exactsum.accumulate(self.chunk_grads, self.limbs)
-            exactsum.accumulate(self.loss_value, self.loss_limbs)
+            exactsum.accumulate(self.loss_value, self.loss_limbs)  # kept until take_train_sums
             if not largest < exactsum.MAX_ABS:
                 raise FloatingPointError(f"gradient element {largest!r} is outside the exact accumulator's "
                                          f"range (|g| < 2^31)")
@@ -227,24 +226,62 @@ class Trainer:
             self.comm.sum_(limb)
         exactsum.to_float(self.limbs, self.grads)
 
+    def take_train_sums(self) -> np.ndarray:
+        """The training (loss sum, correct, rows) since the last call, summed over ranks; resets them.
+
+        In exact mode the loss sum is the exact sum of the chunks' loss sums, so it does not depend on P;
+        the counts are integers held in float64, exact below 2**53 in any order.
+        """
+        sums = self.sums.copy()
+        self.comm.sum_(sums)
+        self.sums[:] = 0.0
+        if self.exact:
+            sums[0] = self.exact_total(self.loss_limbs)
+        return sums
+
+    def exact_total(self, limbs: np.ndarray) -> float:
+        """Sum a (LIMBS, 1) accumulator over ranks (in place) and return its value as a float64; zeroes it."""
+        self.comm.sum_(limbs.reshape(-1))
+        exactsum.to_float(limbs, self.loss_value)
+        limbs.fill(0)
+        return float(self.loss_value[0])
+
     def evaluate(self, rows: np.ndarray) -> dict[str, float]:
-        """Loss and accuracy (or RMSE) over ``rows``, each rank taking a contiguous part; reduced."""
-        lo, hi = block_range(rows.size, self.comm.rank, self.comm.size)
-        part = rows[lo:hi]
-        sums = np.zeros(3)  # loss sum, correct or squared-error sum, rows
+        """Loss and accuracy (or RMSE) over ``rows``, reduced over ranks.
+
+        Fast mode: each rank takes a contiguous part. Exact mode: the rows are cut into chunks of
+        ``exact_chunk`` whatever P is, each rank takes a contiguous run of chunks, and the chunks' float64
+        sums are added exactly, so the result has the same bits for every P.
+        """
         width = self.ws.rows
+        if self.exact:
+            lo, hi = block_range(-(-rows.size // width), self.comm.rank, self.comm.size)
+            part = rows[lo * width:hi * width]
+        else:
+            lo, hi = block_range(rows.size, self.comm.rank, self.comm.size)
+            part = rows[lo:hi]
+        sums = np.zeros(3)  # loss sum, correct or squared-error sum, rows
+        exact_sums = np.zeros((exactsum.LIMBS, 2), dtype=np.int64) if self.exact else None
         for start in range(0, part.size, width):
             chunk = part[start:start + width]
             n = chunk.size
             gather(self.data.X, chunk, self.data.mean, self.data.inv_std, self.ws.inputs)
             targets = self.gather_targets(chunk)
-            sums[0] += self.ws.forward_loss(n, targets, 0.0)
+            chunk_sums = np.zeros(2)
+            chunk_sums[0] = self.ws.forward_loss(n, targets, 0.0)
             if self.model.loss == "squared_error":
-                sums[1] += losses.squared_error_sum(self.ws.O[:n], targets[:n])
+                chunk_sums[1] = losses.squared_error_sum(self.ws.O[:n], targets[:n])
             else:
-                sums[1] += self.count_correct(n, targets)
+                chunk_sums[1] = self.count_correct(n, targets)
+            if exact_sums is not None:
+                exactsum.accumulate(chunk_sums, exact_sums)
+            else:
+                sums[:2] += chunk_sums
             sums[2] += n
         self.comm.sum_(sums)
+        if exact_sums is not None:
+            self.comm.sum_(exact_sums.reshape(-1))
+            exactsum.to_float(exact_sums, sums[:2])
         return self.summarise(sums)
 
     def summarise(self, sums: np.ndarray) -> dict[str, float]:
@@ -393,10 +430,7 @@ def _progress_bar(total: int, done: int, show: bool):
 def _epoch_record(trainer: Trainer, epoch: int, step: int, steps: int, seconds: float,
                   compile_s: float) -> dict[str, Any]:
     job, comm = trainer.job, trainer.comm
-    sums = trainer.sums.copy()
-    comm.sum_(sums)
-    trainer.sums[:] = 0.0
-    train_metrics = trainer.summarise(sums)
+    train_metrics = trainer.summarise(trainer.take_train_sums())
     phase_max, phase_mean = trainer.reduce_phases()
     seconds_max = np.array([seconds])
     comm.max_(seconds_max)

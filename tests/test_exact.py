@@ -94,6 +94,27 @@ def test_final_parameters_identical_for_every_process_count(runs: dict, data_dir
     assert len({final_digest(data_dir / f"{tag}-{config}", n_layers) for tag in ("p1", "p2", "p3", "p4")}) == 1
 
 
+
+def epoch_metrics(workdir: Path) -> list[dict]:
+    """The logged training and validation metrics of each epoch (timings dropped: they differ run to run)."""
+    records = [json.loads(line) for line in (workdir / "metrics.jsonl").read_text().splitlines()]
+    return [{"epoch": r["epoch"], "train": r["train"], "validation": r["validation"]}
+            for r in records if r["kind"] == "epoch"]
+
+
+@pytest.mark.parametrize("config", CONFIGS)
+def test_logged_losses_and_accuracies_identical_for_every_process_count(runs: dict, data_dir: Path,
+                                                                         config: str) -> None:
+    """Exact mode sums loss values exactly too (DESIGN, exactness model), so the log does not depend on P.
+
+    The floats are compared with ==, not a tolerance: a fast float sum over P-dependent groups of rows differs
+    in the last bits from one P to another.
+    """
+    logs = [epoch_metrics(data_dir / f"{tag}-{config}") for tag in ("p1", "p2", "p3", "p4")]
+    assert len(logs[0]) == EPOCHS and all(0 < e["train"]["loss"] < 5 for e in logs[0])
+    for P, log in zip((2, 3, 4), logs[1:], strict=True):
+        assert log == logs[0], f"{config}: P = {P} logged {log} against P = 1 {logs[0]}"
+
 @pytest.mark.parametrize("config", CONFIGS)
 def test_rerun_gives_the_same_digest(runs: dict, config: str) -> None:
     assert runs["p3-again"][config]["sha256_by_rank"] == runs["p3"][config]["sha256_by_rank"]

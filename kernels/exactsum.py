@@ -58,6 +58,15 @@ _LOW8, _LOW16 = (1 << _SPLIT1) - 1, (1 << _SPLIT2) - 1
 _HIGH_SCALE = 2.0 ** (2 * LIMB_BITS + _SPLIT2 - FRACTION_BITS)  # 2**8
 _MIDDLE_SCALE = 2.0 ** (LIMB_BITS + _SPLIT1 - FRACTION_BITS)  # 2**-40
 _LOW_SCALE = 2.0**-FRACTION_BITS
+# Exact integer <-> float64 conversion through the significand (common practice): for an integer-valued
+# float64 |v| < 2**51, v + 1.5 * 2**52 lies in [2**52, 2**53), where the ulp is 1, so the sum is exact and its
+# bit pattern is that of the constant plus v; for an int64 0 <= k < 2**52, the float64 with the bit pattern of
+# 2**52 plus k is 2**52 + k. Adding the constant to a non-integer rounds it to nearest, ties to even, as rint.
+# Plain conversions need AVX-512 (vcvtqq2pd, vcvtpd2qq) to vectorise; these are adds and integer ops on any CPU.
+_ROUND_MAGIC = 1.5 * 2.0**52
+_ROUND_MAGIC_BITS = np.int64(np.array([_ROUND_MAGIC]).view(np.int64)[0])
+_TWO52 = 2.0**52
+_TWO52_BITS = np.int64(np.array([_TWO52]).view(np.int64)[0])
 
 # Per input dtype: the same-width integer type, and as scalars of that type the bit patterns of MAX_ABS, of +inf
 # and of the magnitude (all bits but the sign).
@@ -162,11 +171,23 @@ def _accumulate(x, bits, acc, limit_bits, magnitude_mask):
         digit2 = np.trunc(top)
         middle = (top - digit2) * _LIMB_SCALE  # |middle| < 2**40, units of 2**-48
         digit1 = np.trunc(middle)
-        digit0 = np.rint((middle - digit1) * _LIMB_SCALE)  # the one rounding, |digit0| <= 2**40
-        acc[0, i] += np.int64(digit0)
-        acc[1, i] += np.int64(digit1)
-        acc[2, i] += np.int64(digit2)
+        # The one rounding (to nearest, ties to even), |digit0| <= 2**40, done by adding the constant.
+        acc[0, i] += _round_to_int((middle - digit1) * _LIMB_SCALE)
+        acc[1, i] += _round_to_int(digit1)
+        acc[2, i] += _round_to_int(digit2)
     return largest
+
+
+@njit(cache=True, inline="always")
+def _round_to_int(v):
+    """rint(v) as an int64 for float64 |v| < 2**51, without a float-to-int conversion instruction."""
+    return np.float64(v + _ROUND_MAGIC).view(np.int64) - _ROUND_MAGIC_BITS
+
+
+@njit(cache=True, inline="always")
+def _exact_float(k):
+    """int64 0 <= k < 2**52 as float64, exactly, without an int-to-float conversion instruction."""
+    return np.int64(k + _TWO52_BITS).view(np.float64) - _TWO52
 
 
 @njit(cache=True)
@@ -189,14 +210,18 @@ def _magnitude(limb0, limb1, limb2):
     (high is a multiple of 2**8, middle < 2**8 a multiple of 2**-40, low < 2**-40). An exact zero has
     sign +1. Integer shifts and masks only, no branches.
     """
-    sign = (_carry(limb0, limb1, limb2)[2] >> 63) | 1  # -1 or +1: lower limbs are worth < 1 unit of limb 2
-    d0, d1, d2 = _carry(sign * limb0, sign * limb1, sign * limb2)
+    negative = _carry(limb0, limb1, limb2)[2] >> 63  # 0 or -1: lower limbs are worth < 1 unit of limb 2
+    sign = negative | 1  # +1 or -1
+    # (x ^ negative) - negative is x or -x: a negation without a 64-bit multiply (none in AVX2).
+    d0, d1, d2 = _carry((limb0 ^ negative) - negative, (limb1 ^ negative) - negative, (limb2 ^ negative) - negative)
     # The magnitude d2 2**80 + d1 2**40 + d0 (units of 2**-88, 0 <= d0, d1 < 2**40, 0 <= d2 < 2**63) cut
     # into 48-bit fields, so each converts to float64 exactly (d2 alone may have more than 53 bits).
     field0 = d0 | ((d1 & _LOW8) << LIMB_BITS)
     field1 = (d1 >> _SPLIT1) | ((d2 & _LOW16) << (LIMB_BITS - _SPLIT1))
     field2 = d2 >> _SPLIT2
-    return sign, np.float64(field2) * _HIGH_SCALE, np.float64(field1) * _MIDDLE_SCALE, np.float64(field0) * _LOW_SCALE
+    # field0 and field1 are < 2**48; field2 < 2**47, because MAX_TERMS keeps |limb2| < 2**63 after the carries.
+    return (sign, _exact_float(field2) * _HIGH_SCALE, _exact_float(field1) * _MIDDLE_SCALE,
+            _exact_float(field0) * _LOW_SCALE)
 
 
 @njit(cache=True)
@@ -210,8 +235,9 @@ def _add_round_to_odd(larger, smaller):
     total = larger + smaller
     error = smaller - (total - larger)  # exact: total + error == larger + smaller
     bits = np.float64(total).view(np.int64)
-    toward_error = ((bits ^ np.float64(error).view(np.int64)) >> 63) | 1  # +1: away from zero, -1: towards it
-    bits += toward_error * (np.int64(error != 0.0) & ~bits & 1)
+    towards_zero = (bits ^ np.float64(error).view(np.int64)) >> 63  # -1: step towards zero, 0: away from it
+    step = np.int64(error != 0.0) & ~bits & 1  # 1 when inexact and the last bit is even
+    bits += (step ^ towards_zero) - towards_zero  # +step or -step, without a multiply
     return np.int64(bits).view(np.float64)
 
 

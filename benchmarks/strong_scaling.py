@@ -11,7 +11,8 @@ reversed every other round, and each variant's figure is the median over rounds.
   overlapped exchange, at P = 2 (and at the largest P);
 * exact mode: step time with ``--reduction exact --exact-chunk 256`` over the fast mode at the same P, target
   ≤ 1.25; plus a breakdown of one exact step on 2 ranks (chunk gradients, fixed-point accumulation, the
-  integer allreduce, conversion back) next to a fast step (one shard gradient, one float allreduce).
+  integer reduce-scatter, conversion back of each rank's slice, the allgather of the gradient) next to a fast
+  step (one shard gradient, one float allreduce).
 
 Usage: ``python benchmarks/strong_scaling.py [--quick] [--ranks 1,2,4,8,16] [--bind]``.
 """
@@ -168,13 +169,17 @@ def breakdown(repetitions: int) -> int:
                 lambda: [exact.compute_shard(c, exact.chunk_grads, launch=False) for c in chunks])
 
             def accumulate_all() -> None:
-                exact.limbs.fill(0)
-                for _ in chunks:
-                    exactsum.accumulate(exact.chunk_grads, exact.limbs)
+                for k in range(len(chunks)):  # as Trainer.exact_gradient: the first chunk overwrites
+                    exactsum.accumulate(exact.chunk_grads, exact.limbs, replace=k == 0)
+
+            def reduce_scatter_limbs() -> None:  # as Trainer.exact_gradient: one call per limb row
+                for limb, mine_limbs in zip(exact.limbs, exact.slice_limbs, strict=True):
+                    comm.reduce_scatter_sum(limb, mine_limbs, exact.slice_counts)
 
             t["exact_accumulate"] = timed(accumulate_all)
-            t["exact_allreduce_limbs"] = timed(lambda: comm.sum_(exact.limbs))
-            t["exact_to_float"] = timed(lambda: exactsum.to_float(exact.limbs, exact.grads))
+            t["exact_reduce_scatter_limbs"] = timed(reduce_scatter_limbs)
+            t["exact_to_float_slice"] = timed(lambda: exactsum.to_float(exact.slice_limbs, exact.grads[exact.slice]))
+            t["exact_allgather_grads"] = timed(lambda: comm.allgather_(exact.grads, exact.slice_counts))
             t["exact_step"] = timed(lambda: exact.step(0, 0))
             t["fast_shard_gradient"] = timed(lambda: fast.compute_shard(mine, fast.grads, launch=False))
             t["fast_allreduce"] = timed(lambda: comm.sum_(fast.grads))

@@ -91,10 +91,12 @@ def zero(acc: np.ndarray) -> None:
     acc.fill(0)
 
 
-def accumulate(x: np.ndarray, acc: np.ndarray) -> float:
+def accumulate(x: np.ndarray, acc: np.ndarray, replace: bool = False) -> float:
     """Add ``x`` into ``acc`` in place, exactly up to the per-input rounding at 2**-88.
 
     x: ``(n,)`` float32 or float64, C-contiguous. acc: ``(LIMBS, n)`` int64, C-contiguous, writable.
+    ``replace=True`` overwrites ``acc`` with the digits of ``x`` instead (the same limbs as zeroing it first,
+    in one write-only pass: a first term needs neither the zeroing nor the read).
 
     Returns max |x| as a float64: finite and ``< MAX_ABS`` when every input was in range; ``inf`` when some
     |x| >= MAX_ABS (including infinities) and no input is NaN; ``nan`` when some input is NaN. After a
@@ -107,7 +109,8 @@ def accumulate(x: np.ndarray, acc: np.ndarray) -> float:
     if not acc.flags.writeable:
         raise ValueError("acc must be writable")
     bits_type, limit_bits, infinity_bits, magnitude_mask = _BIT_PATTERNS[x.dtype]
-    largest_bits = _accumulate(x, x.view(bits_type), acc, limit_bits, magnitude_mask)
+    kernel = _assign if replace else _accumulate
+    largest_bits = kernel(x, x.view(bits_type), acc, limit_bits, magnitude_mask)
     if largest_bits > infinity_bits:
         return math.nan
     if largest_bits >= limit_bits:
@@ -152,9 +155,24 @@ def _describe(a):
     return type(a).__name__
 
 
+@njit(cache=True, inline="always")
+def _digits(x):
+    """The three signed limb digits of float64 |x| < MAX_ABS: (digit0, digit1, digit2) as int64.
+
+    Each step is exact in float64 (scaling by a power of two, trunc, and subtracting the integer part keep a
+    subset of the 53 mantissa bits) except the one rounding of digit0, to nearest, ties to even.
+    """
+    top = x * _TOP_SCALE  # |top| < 2**39, units of 2**-8
+    digit2 = np.trunc(top)
+    middle = (top - digit2) * _LIMB_SCALE  # |middle| < 2**40, units of 2**-48
+    digit1 = np.trunc(middle)
+    # |digit0| <= 2**40; the rounding is done by adding the constant.
+    return _round_to_int((middle - digit1) * _LIMB_SCALE), _round_to_int(digit1), _round_to_int(digit2)
+
+
 @njit(cache=True)
 def _accumulate(x, bits, acc, limit_bits, magnitude_mask):
-    """Digits of x[i] into acc[:, i]; returns the largest |x| as its bit pattern (bits: x viewed as int).
+    """Digits of x[i] added into acc[:, i]; returns the largest |x| as its bit pattern (bits: x viewed as int).
 
     For non-negative IEEE floats the bit patterns, read as integers, order like the values, with NaN above
     infinity. An integer max reduction and compare keep the loop vectorisable without fastmath.
@@ -164,17 +182,24 @@ def _accumulate(x, bits, acc, limit_bits, magnitude_mask):
         magnitude = bits[i] & magnitude_mask
         largest = max(largest, magnitude)
         # Inputs out of range (or NaN) add zero digits: never convert what could overflow an int64.
-        value = np.float64(x[i]) if magnitude < limit_bits else 0.0
-        # Each step is exact in float64: scaling by a power of two, trunc, and subtracting the integer
-        # part (the remainder keeps a subset of the 53 mantissa bits).
-        top = value * _TOP_SCALE  # |top| < 2**39, units of 2**-8
-        digit2 = np.trunc(top)
-        middle = (top - digit2) * _LIMB_SCALE  # |middle| < 2**40, units of 2**-48
-        digit1 = np.trunc(middle)
-        # The one rounding (to nearest, ties to even), |digit0| <= 2**40, done by adding the constant.
-        acc[0, i] += _round_to_int((middle - digit1) * _LIMB_SCALE)
-        acc[1, i] += _round_to_int(digit1)
-        acc[2, i] += _round_to_int(digit2)
+        digit0, digit1, digit2 = _digits(np.float64(x[i]) if magnitude < limit_bits else 0.0)
+        acc[0, i] += digit0
+        acc[1, i] += digit1
+        acc[2, i] += digit2
+    return largest
+
+
+@njit(cache=True)
+def _assign(x, bits, acc, limit_bits, magnitude_mask):
+    """As :func:`_accumulate`, but the digits overwrite acc[:, i]."""
+    largest = bits.dtype.type(0)
+    for i in range(x.shape[0]):
+        magnitude = bits[i] & magnitude_mask
+        largest = max(largest, magnitude)
+        digit0, digit1, digit2 = _digits(np.float64(x[i]) if magnitude < limit_bits else 0.0)
+        acc[0, i] = digit0
+        acc[1, i] = digit1
+        acc[2, i] = digit2
     return largest
 
 

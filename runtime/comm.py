@@ -78,6 +78,25 @@ class Comm:
             self.comm.Bcast(self._buffer(array), root=root)
         return array
 
+    def reduce_scatter_sum(self, send: np.ndarray, recv: np.ndarray, counts: list[int]) -> np.ndarray:
+        """SUM over ranks of ``send`` (sum(counts),), this rank's contiguous part (counts[rank],) into ``recv``.
+
+        Rank r receives elements [sum(counts[:r]), sum(counts[:r+1])) of the sum: half the traffic of an
+        allreduce, which is a reduce-scatter followed by an allgather.
+        """
+        if self.size == 1:
+            recv[...] = send
+        else:
+            self.comm.Reduce_scatter(self._buffer(send), self._buffer(recv), counts, op=MPI.SUM)
+        return recv
+
+    def allgather_(self, array: np.ndarray, counts: list[int]) -> np.ndarray:
+        """In place: every rank's contiguous part of ``array`` (counts[rank] elements, in rank order) to all ranks."""
+        if self.size > 1:
+            offsets = np.cumsum([0] + counts[:-1]).tolist()
+            self.comm.Allgatherv(MPI.IN_PLACE, [array, counts, offsets, _MPI_TYPES[array.dtype]])
+        return array
+
     def allgather_rows(self, local: np.ndarray, counts: list[int]) -> np.ndarray:
         """Concatenate every rank's rows (rank order) on every rank. local: (counts[rank], m) float64."""
         m = local.shape[1]

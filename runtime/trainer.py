@@ -137,6 +137,12 @@ class Trainer:
         if self.exact:
             self.chunk_grads = np.zeros_like(self.grads)
             self.limbs = np.zeros((exactsum.LIMBS, self.model.n_params), dtype=np.int64)
+            # Each rank reads back its own contiguous slice of the reduced limbs (reduce-scatter), then the
+            # float gradient is allgathered: half the integer traffic of an allreduce, and 1/P of the read-back.
+            n, size = self.model.n_params, self.comm.size
+            self.slice_counts = [block_range(n, r, size)[1] - block_range(n, r, size)[0] for r in range(size)]
+            self.slice = slice(*block_range(n, self.comm.rank, size))
+            self.slice_limbs = np.zeros((exactsum.LIMBS, self.slice_counts[self.comm.rank]), dtype=np.int64)
             self.loss_limbs = np.zeros((exactsum.LIMBS, 1), dtype=np.int64)
             self.loss_value = np.zeros(1, dtype=np.float64)
         self.step_count = 0  # global steps completed
@@ -212,19 +218,26 @@ class Trainer:
         """
         c = self.job.run.exact_chunk
         lo, hi = block_range(rows.size // c, self.comm.rank, self.comm.size)
-        self.limbs.fill(0)
+        if hi == lo:  # not reached: Trainer refuses fewer chunks than processes
+            self.limbs.fill(0)
         for k in range(lo, hi):
             loss_sum = self.compute_shard(rows[k * c:(k + 1) * c], self.chunk_grads, launch=False)
             self.loss_value[0] = loss_sum  # the chunk's loss sum: the same bits for every P
-            largest = exactsum.accumulate(self.chunk_grads, self.limbs)
+            # The first chunk overwrites the limbs: no zeroing pass, no read.
+            largest = exactsum.accumulate(self.chunk_grads, self.limbs, replace=k == lo)
             exactsum.accumulate(self.loss_value, self.loss_limbs)  # kept until take_train_sums
             if not largest < exactsum.MAX_ABS:
                 raise FloatingPointError(f"gradient element {largest!r} is outside the exact accumulator's "
                                          f"range (|g| < 2^31)")
             self.timer.lap(2)
-        for limb in self.limbs:  # one call per limb row: MPICH slows sharply on single messages past ~22 MB
-            self.comm.sum_(limb)
-        exactsum.to_float(self.limbs, self.grads)
+        if self.comm.size == 1:
+            exactsum.to_float(self.limbs, self.grads)
+            return
+        # One call per limb row: MPICH slows sharply on single messages past ~22 MB.
+        for limb, mine in zip(self.limbs, self.slice_limbs, strict=True):
+            self.comm.reduce_scatter_sum(limb, mine, self.slice_counts)
+        exactsum.to_float(self.slice_limbs, self.grads[self.slice])
+        self.comm.allgather_(self.grads, self.slice_counts)
 
     def take_train_sums(self) -> np.ndarray:
         """The training (loss sum, correct, rows) since the last call, summed over ranks; resets them.

@@ -274,6 +274,25 @@ def test_order_and_grouping_do_not_change_a_bit(rows_list, random, groups: int, 
     assert read(combined).tolist() == expected
 
 
+
+@pytest.mark.parametrize("dtype", [np.float32, np.float64])
+def test_replace_equals_zeroing_then_adding(dtype) -> None:
+    """accumulate(..., replace=True) overwrites: the same limbs as a fresh accumulator, whatever was there."""
+    rng = np.random.default_rng(11)
+    columns = adversarial_columns(rng, 64).astype(dtype).reshape(-1)
+    x = np.concatenate([columns, np.array([3e9, np.inf, -1.5], dtype=dtype)])  # out of range: zero digits
+    fresh = exactsum.new_accumulator(x.size)
+    expected_return = exactsum.accumulate(x, fresh)
+    stale = rng.integers(-2**40, 2**40, size=fresh.shape)
+    returned = exactsum.accumulate(x, stale, replace=True)
+    assert np.array_equal(stale, fresh) and returned == expected_return == math.inf
+    # the first term replaced, the rest added: the same sum as all added to zero (Python math.fsum)
+    rows = rng.standard_normal((5, 16)).astype(dtype)
+    acc = rng.integers(-2**40, 2**40, size=(exactsum.LIMBS, 16))
+    for k, row in enumerate(rows):
+        exactsum.accumulate(row, acc, replace=k == 0)
+    assert read(acc).tolist() == [math.fsum(quantize(float(v)) for v in rows[:, j]) for j in range(16)]
+
 @pytest.mark.parametrize("dtype", [np.float32, np.float64])
 def test_headroom_for_max_terms(dtype) -> None:
     # MAX_TERMS copies of the largest inputs, added as integers (what MAX_TERMS accumulations, or an

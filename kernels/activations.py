@@ -96,8 +96,14 @@ def _backward_rows(Z, A, dA, dZ, code):
     n, m = Z.shape
     for i in range(n):
         z_row, a_row, g_row, d_row = Z[i], A[i], dA[i], dZ[i]
-        for j in range(m):
-            d_row[j] = derivative(code, z_row[j], a_row[j]) * g_row[j]
+        if code == RELU:
+            # A select in the array's own dtype: the float64 mask of `derivative` would widen float32 rows.
+            zero = g_row.dtype.type(0)
+            for j in range(m):
+                d_row[j] = g_row[j] if z_row[j] > 0 else zero
+        else:
+            for j in range(m):
+                d_row[j] = derivative(code, z_row[j], a_row[j]) * g_row[j]
 
 
 @njit(cache=True)

@@ -92,18 +92,20 @@ def _forward_rows(Z, b, A, code):
 
 
 @njit(cache=True, inline="always")
-def _backward_rows(Z, A, dA, dZ, code):
+def _backward_rows(Z, A, D, code):
+    """D = f'(Z) ⊙ D in place. One array read and written: were dA and dZ two names for one buffer, the
+    compiler's overlap check would fail at run time and take the scalar loop (measured 5× slower)."""
     n, m = Z.shape
     for i in range(n):
-        z_row, a_row, g_row, d_row = Z[i], A[i], dA[i], dZ[i]
+        z_row, a_row, d_row = Z[i], A[i], D[i]
         if code == RELU:
             # A select in the array's own dtype: the float64 mask of `derivative` would widen float32 rows.
-            zero = g_row.dtype.type(0)
+            zero = d_row.dtype.type(0)
             for j in range(m):
-                d_row[j] = g_row[j] if z_row[j] > 0 else zero
+                d_row[j] = d_row[j] if z_row[j] > 0 else zero
         else:
             for j in range(m):
-                d_row[j] = derivative(code, z_row[j], a_row[j]) * g_row[j]
+                d_row[j] = derivative(code, z_row[j], a_row[j]) * d_row[j]
 
 
 @njit(cache=True)
@@ -128,20 +130,23 @@ def backward(Z, A, dA, dZ, code):
     """dZ = f'(Z) ⊙ dA, the delta of a layer from the gradient of its output.
 
     Z, A: (n, m) pre-activations and outputs of the forward pass; dA: (n, m) ∂loss/∂A;
-    dZ: (n, m) written, may be dA itself.
+    dZ: (n, m) written, may be dA itself (the fast case: the step always passes dA twice; otherwise dA is
+    copied into dZ first).
     """
+    if dZ.ctypes.data != dA.ctypes.data:
+        dZ[...] = dA
     if code == RELU:
-        _backward_rows(Z, A, dA, dZ, RELU)
+        _backward_rows(Z, A, dZ, RELU)
     elif code == IDENTITY:
-        _backward_rows(Z, A, dA, dZ, IDENTITY)
+        _backward_rows(Z, A, dZ, IDENTITY)
     elif code == LEAKY_RELU:
-        _backward_rows(Z, A, dA, dZ, LEAKY_RELU)
+        _backward_rows(Z, A, dZ, LEAKY_RELU)
     elif code == TANH:
-        _backward_rows(Z, A, dA, dZ, TANH)
+        _backward_rows(Z, A, dZ, TANH)
     elif code == SIGMOID:
-        _backward_rows(Z, A, dA, dZ, SIGMOID)
+        _backward_rows(Z, A, dZ, SIGMOID)
     else:
-        _backward_rows(Z, A, dA, dZ, code)
+        _backward_rows(Z, A, dZ, code)
 
 
 @njit(cache=True)

@@ -108,14 +108,39 @@ def accumulate(x: np.ndarray, acc: np.ndarray, replace: bool = False) -> float:
     _check_accumulator(acc, x.shape[0])
     if not acc.flags.writeable:
         raise ValueError("acc must be writable")
-    bits_type, limit_bits, infinity_bits, magnitude_mask = _BIT_PATTERNS[x.dtype]
+    bits_type, limit_bits, _, magnitude_mask = _BIT_PATTERNS[x.dtype]
     kernel = _assign if replace else _accumulate
-    largest_bits = kernel(x, x.view(bits_type), acc, limit_bits, magnitude_mask)
+    return _largest(kernel(x, x.view(bits_type), acc, limit_bits, magnitude_mask), x.dtype)
+
+
+def assign_pair(x: np.ndarray, y: np.ndarray, acc: np.ndarray) -> float:
+    """Overwrite ``acc`` with the digits of ``x`` plus those of ``y``, in one write-only pass.
+
+    The same limbs as ``accumulate(x, acc, replace=True)`` then ``accumulate(y, acc)``, without reading and
+    writing the accumulator a second time. x, y: ``(n,)`` of one dtype, C-contiguous; acc as in
+    :func:`accumulate`. Returns max(|x|, |y|) with the same conventions (``inf``, ``nan``).
+    """
+    _check_vector(x, "x")
+    _check_vector(y, "y")
+    if y.dtype != x.dtype:
+        raise TypeError(f"y must have the dtype of x ({x.dtype}); got {y.dtype}")
+    _check_accumulator(acc, x.shape[0])
+    _check_accumulator(acc, y.shape[0])
+    if not acc.flags.writeable:
+        raise ValueError("acc must be writable")
+    bits_type, limit_bits, _, magnitude_mask = _BIT_PATTERNS[x.dtype]
+    return _largest(_assign_pair(x, x.view(bits_type), y, y.view(bits_type), acc, limit_bits, magnitude_mask),
+                    x.dtype)
+
+
+def _largest(largest_bits, dtype) -> float:
+    """The largest magnitude from its bit pattern: nan when a NaN was seen, inf when out of range."""
+    bits_type, limit_bits, infinity_bits, _ = _BIT_PATTERNS[dtype]
     if largest_bits > infinity_bits:
         return math.nan
     if largest_bits >= limit_bits:
         return math.inf
-    return float(np.array([largest_bits], dtype=bits_type).view(x.dtype)[0])
+    return float(np.array([largest_bits], dtype=bits_type).view(dtype)[0])
 
 
 def to_float(acc: np.ndarray, out: np.ndarray) -> None:
@@ -200,6 +225,22 @@ def _assign(x, bits, acc, limit_bits, magnitude_mask):
         acc[0, i] = digit0
         acc[1, i] = digit1
         acc[2, i] = digit2
+    return largest
+
+
+@njit(cache=True)
+def _assign_pair(x, x_bits, y, y_bits, acc, limit_bits, magnitude_mask):
+    """As :func:`_assign` for the digits of x[i] plus those of y[i]; returns the largest |x| or |y| (bits)."""
+    largest = x_bits.dtype.type(0)
+    for i in range(x.shape[0]):
+        x_magnitude = x_bits[i] & magnitude_mask
+        y_magnitude = y_bits[i] & magnitude_mask
+        largest = max(largest, max(x_magnitude, y_magnitude))
+        x0, x1, x2 = _digits(np.float64(x[i]) if x_magnitude < limit_bits else 0.0)
+        y0, y1, y2 = _digits(np.float64(y[i]) if y_magnitude < limit_bits else 0.0)
+        acc[0, i] = x0 + y0
+        acc[1, i] = x1 + y1
+        acc[2, i] = x2 + y2
     return largest
 
 

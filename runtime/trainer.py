@@ -136,6 +136,10 @@ class Trainer:
         self.exchange = GradientExchange(self.comm, self.model, self.grads, run.bucket_mb, run.overlap)
         if self.exact:
             self.chunk_grads = np.zeros_like(self.grads)
+            # A rank with two or more chunks computes its first two into separate buffers and writes their
+            # digits in one pass (exactsum.assign_pair): one read-and-write of the limbs fewer per step.
+            most_chunks = -(-(run.global_batch // run.exact_chunk) // P)
+            self.pair_grads = np.zeros_like(self.grads) if most_chunks >= 2 else None
             self.limbs = np.zeros((exactsum.LIMBS, self.model.n_params), dtype=np.int64)
             # Each rank reads back its own contiguous slice of the reduced limbs (reduce-scatter), then the
             # float gradient is allgathered: half the integer traffic of an allreduce, and 1/P of the read-back.
@@ -220,15 +224,22 @@ class Trainer:
         lo, hi = block_range(rows.size // c, self.comm.rank, self.comm.size)
         if hi == lo:  # not reached: Trainer refuses fewer chunks than processes
             self.limbs.fill(0)
-        for k in range(lo, hi):
-            loss_sum = self.compute_shard(rows[k * c:(k + 1) * c], self.chunk_grads, launch=False)
-            self.loss_value[0] = loss_sum  # the chunk's loss sum: the same bits for every P
-            # The first chunk overwrites the limbs: no zeroing pass, no read.
-            largest = exactsum.accumulate(self.chunk_grads, self.limbs, replace=k == lo)
-            exactsum.accumulate(self.loss_value, self.loss_limbs)  # kept until take_train_sums
-            if not largest < exactsum.MAX_ABS:
-                raise FloatingPointError(f"gradient element {largest!r} is outside the exact accumulator's "
-                                         f"range (|g| < 2^31)")
+
+        def chunk_gradient(k: int, out: np.ndarray) -> None:
+            self.loss_value[0] = self.compute_shard(rows[k * c:(k + 1) * c], out, launch=False)
+            exactsum.accumulate(self.loss_value, self.loss_limbs)  # the chunk's loss sum, kept until take_train_sums
+
+        first = lo
+        if hi - lo >= 2:  # the first two chunks overwrite the limbs in one pass
+            chunk_gradient(lo, self.chunk_grads)
+            chunk_gradient(lo + 1, self.pair_grads)
+            self.check_range(exactsum.assign_pair(self.chunk_grads, self.pair_grads, self.limbs))
+            self.timer.lap(2)
+            first = lo + 2
+        for k in range(first, hi):
+            chunk_gradient(k, self.chunk_grads)
+            # A first chunk overwrites the limbs: no zeroing pass, no read.
+            self.check_range(exactsum.accumulate(self.chunk_grads, self.limbs, replace=k == lo))
             self.timer.lap(2)
         if self.comm.size == 1:
             exactsum.to_float(self.limbs, self.grads)
@@ -238,6 +249,13 @@ class Trainer:
             self.comm.reduce_scatter_sum(limb, mine, self.slice_counts)
         exactsum.to_float(self.slice_limbs, self.grads[self.slice])
         self.comm.allgather_(self.grads, self.slice_counts)
+
+    @staticmethod
+    def check_range(largest: float) -> None:
+        """Stop on a chunk gradient the exact accumulator cannot hold (|g| ≥ 2^31, inf or NaN)."""
+        if not largest < exactsum.MAX_ABS:
+            raise FloatingPointError(f"gradient element {largest!r} is outside the exact accumulator's "
+                                     f"range (|g| < 2^31)")
 
     def take_train_sums(self) -> np.ndarray:
         """The training (loss sum, correct, rows) since the last call, summed over ranks; resets them.

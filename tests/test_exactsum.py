@@ -293,6 +293,27 @@ def test_replace_equals_zeroing_then_adding(dtype) -> None:
         exactsum.accumulate(row, acc, replace=k == 0)
     assert read(acc).tolist() == [math.fsum(quantize(float(v)) for v in rows[:, j]) for j in range(16)]
 
+
+@pytest.mark.parametrize("dtype", [np.float32, np.float64])
+def test_assign_pair_equals_two_single_passes(dtype) -> None:
+    """assign_pair(x, y) gives the limbs of replace-then-add, and the largest |x|, |y| (numpy abs/max)."""
+    rng = np.random.default_rng(12)
+    x = adversarial_columns(rng, 32).astype(dtype).reshape(-1)
+    y = rng.permutation(adversarial_columns(rng, 32).astype(dtype).reshape(-1))
+    expected = exactsum.new_accumulator(x.size)
+    exactsum.accumulate(x, expected, replace=True)
+    exactsum.accumulate(y, expected)
+    acc = rng.integers(-2**40, 2**40, size=expected.shape)
+    assert exactsum.assign_pair(x, y, acc) == float(max(np.abs(x).max(), np.abs(y).max()))
+    assert np.array_equal(acc, expected)
+    # Python math.fsum (Shewchuk 1997) of the two quantised terms
+    pairs = zip(x.tolist(), y.tolist(), strict=True)
+    assert read(acc).tolist() == [math.fsum([quantize(a), quantize(b)]) for a, b in pairs]
+    y[7] = np.nan
+    assert math.isnan(exactsum.assign_pair(x, y, acc))
+    with pytest.raises(TypeError, match="dtype of x"):
+        exactsum.assign_pair(x, y.astype(np.float32 if dtype == np.float64 else np.float64), acc)
+
 @pytest.mark.parametrize("dtype", [np.float32, np.float64])
 def test_headroom_for_max_terms(dtype) -> None:
     # MAX_TERMS copies of the largest inputs, added as integers (what MAX_TERMS accumulations, or an

@@ -168,8 +168,12 @@ def breakdown(repetitions: int) -> int:
             t["exact_chunk_gradients"] = timed(
                 lambda: [exact.compute_shard(c, exact.chunk_grads, launch=False) for c in chunks])
 
-            def accumulate_all() -> None:
-                for k in range(len(chunks)):  # as Trainer.exact_gradient: the first chunk overwrites
+            def accumulate_all() -> None:  # as Trainer.exact_gradient: the first one or two chunks overwrite
+                first = 0
+                if len(chunks) >= 2:
+                    exactsum.assign_pair(exact.chunk_grads, exact.pair_grads, exact.limbs)
+                    first = 2
+                for k in range(first, len(chunks)):
                     exactsum.accumulate(exact.chunk_grads, exact.limbs, replace=k == 0)
 
             def reduce_scatter_limbs() -> None:  # as Trainer.exact_gradient: one call per limb row

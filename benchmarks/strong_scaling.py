@@ -176,12 +176,8 @@ def breakdown(repetitions: int) -> int:
                 for k in range(first, len(chunks)):
                     exactsum.accumulate(exact.chunk_grads, exact.limbs, replace=k == 0)
 
-            def reduce_scatter_limbs() -> None:  # as Trainer.exact_gradient: one call per limb row
-                for limb, mine_limbs in zip(exact.limbs, exact.slice_limbs, strict=True):
-                    comm.reduce_scatter_sum(limb, mine_limbs, exact.slice_counts)
-
             t["exact_accumulate"] = timed(accumulate_all)
-            t["exact_reduce_scatter_limbs"] = timed(reduce_scatter_limbs)
+            t["exact_reduce_scatter_limbs"] = timed(exact.reduce_scatter_limbs)
             t["exact_to_float_slice"] = timed(lambda: exactsum.to_float(exact.slice_limbs, exact.grads[exact.slice]))
             t["exact_allgather_grads"] = timed(lambda: comm.allgather_(exact.grads, exact.slice_counts))
             t["exact_step"] = timed(lambda: exact.step(0, 0))

@@ -143,9 +143,9 @@ class Trainer:
             self.limbs = np.zeros((exactsum.LIMBS, self.model.n_params), dtype=np.int64)
             # Each rank reads back its own contiguous slice of the reduced limbs (reduce-scatter), then the
             # float gradient is allgathered: half the integer traffic of an allreduce, and 1/P of the read-back.
-            n, size = self.model.n_params, self.comm.size
-            self.slice_counts = [block_range(n, r, size)[1] - block_range(n, r, size)[0] for r in range(size)]
-            self.slice = slice(*block_range(n, self.comm.rank, size))
+            bounds = [block_range(self.model.n_params, r, P) for r in range(P)]
+            self.slice_counts = [hi - lo for lo, hi in bounds]
+            self.slice = slice(*bounds[self.comm.rank])
             self.slice_limbs = np.zeros((exactsum.LIMBS, self.slice_counts[self.comm.rank]), dtype=np.int64)
             self.loss_limbs = np.zeros((exactsum.LIMBS, 1), dtype=np.int64)
             self.loss_value = np.zeros(1, dtype=np.float64)
@@ -221,9 +221,7 @@ class Trainer:
         integer sums are associative, so the reduced gradient does not depend on P or on reduction order.
         """
         c = self.job.run.exact_chunk
-        lo, hi = block_range(rows.size // c, self.comm.rank, self.comm.size)
-        if hi == lo:  # not reached: Trainer refuses fewer chunks than processes
-            self.limbs.fill(0)
+        lo, hi = block_range(rows.size // c, self.comm.rank, self.comm.size)  # hi > lo: checked in __init__
 
         def chunk_gradient(k: int, out: np.ndarray) -> None:
             self.loss_value[0] = self.compute_shard(rows[k * c:(k + 1) * c], out, launch=False)
@@ -244,11 +242,17 @@ class Trainer:
         if self.comm.size == 1:
             exactsum.to_float(self.limbs, self.grads)
             return
-        # One call per limb row: MPICH slows sharply on single messages past ~22 MB.
-        for limb, mine in zip(self.limbs, self.slice_limbs, strict=True):
-            self.comm.reduce_scatter_sum(limb, mine, self.slice_counts)
+        self.reduce_scatter_limbs()
         exactsum.to_float(self.slice_limbs, self.grads[self.slice])
         self.comm.allgather_(self.grads, self.slice_counts)
+
+    def reduce_scatter_limbs(self) -> None:
+        """This rank's slice of the limbs summed over ranks, into ``slice_limbs``.
+
+        One call per limb row: MPICH slows sharply on single messages past ~22 MB.
+        """
+        for limb, mine in zip(self.limbs, self.slice_limbs, strict=True):
+            self.comm.reduce_scatter_sum(limb, mine, self.slice_counts)
 
     @staticmethod
     def check_range(largest: float) -> None:
@@ -267,15 +271,14 @@ class Trainer:
         self.comm.sum_(sums)
         self.sums[:] = 0.0
         if self.exact:
-            sums[0] = self.exact_total(self.loss_limbs)
+            self.reduce_exact(self.loss_limbs, sums[:1])
+            self.loss_limbs.fill(0)
         return sums
 
-    def exact_total(self, limbs: np.ndarray) -> float:
-        """Sum a (LIMBS, 1) accumulator over ranks (in place) and return its value as a float64; zeroes it."""
+    def reduce_exact(self, limbs: np.ndarray, out: np.ndarray) -> None:
+        """Sum a small (LIMBS, k) accumulator over ranks, in place, and write its k values into ``out``."""
         self.comm.sum_(limbs.reshape(-1))
-        exactsum.to_float(limbs, self.loss_value)
-        limbs.fill(0)
-        return float(self.loss_value[0])
+        exactsum.to_float(limbs, out)
 
     def evaluate(self, rows: np.ndarray) -> dict[str, float]:
         """Loss and accuracy (or RMSE) over ``rows``, reduced over ranks.
@@ -293,12 +296,12 @@ class Trainer:
             part = rows[lo:hi]
         sums = np.zeros(3)  # loss sum, correct or squared-error sum, rows
         exact_sums = np.zeros((exactsum.LIMBS, 2), dtype=np.int64) if self.exact else None
+        chunk_sums = np.zeros(2)  # this chunk's loss sum and correct or squared-error sum
         for start in range(0, part.size, width):
             chunk = part[start:start + width]
             n = chunk.size
             gather(self.data.X, chunk, self.data.mean, self.data.inv_std, self.ws.inputs)
             targets = self.gather_targets(chunk)
-            chunk_sums = np.zeros(2)
             chunk_sums[0] = self.ws.forward_loss(n, targets, 0.0)
             if self.model.loss == "squared_error":
                 chunk_sums[1] = losses.squared_error_sum(self.ws.O[:n], targets[:n])
@@ -311,8 +314,7 @@ class Trainer:
             sums[2] += n
         self.comm.sum_(sums)
         if exact_sums is not None:
-            self.comm.sum_(exact_sums.reshape(-1))
-            exactsum.to_float(exact_sums, sums[:2])
+            self.reduce_exact(exact_sums, sums[:2])
         return self.summarise(sums)
 
     def summarise(self, sums: np.ndarray) -> dict[str, float]:

@@ -165,7 +165,7 @@ def child_environment() -> dict[str, str]:
 
 def mpiexec() -> str:
     """The launcher shardmill itself uses (SHARDMILL_MPIEXEC, else the bundled one, else PATH)."""
-    from shardmill.launch import find_mpiexec
+    from shardmill.parallel.launch import find_mpiexec
 
     return find_mpiexec()
 

@@ -61,8 +61,8 @@ def measure(comm, dtype: str, bucket_mb: float | None, repetitions: int, warmup:
     from time import perf_counter
 
     from mpi4py import MPI
-    from shardmill.exchange import GradientExchange
     from shardmill.model import MLP
+    from shardmill.parallel.exchange import GradientExchange
 
     model = MLP(MID_MODEL, dtype=dtype)
     grads = np.zeros_like(model.params)
@@ -146,7 +146,7 @@ def main(argv: list[str] | None = None) -> int:
         return relaunch(args.ranks, argv, timeout=300)
 
     from mpi4py import MPI
-    from shardmill.comm import Comm
+    from shardmill.parallel.comm import Comm
 
     comm = Comm()
     meter = LoadMeter()

@@ -34,8 +34,8 @@ pin_blas()  # before numpy loads OpenBLAS
 import numpy as np  # noqa: E402
 from common import LoadMeter, emit, log, machine_record, median, median_time  # noqa: E402
 from shardmill.bench import gemm_floor_step, run_bench, synthetic_dataset  # noqa: E402
-from shardmill.comm import Comm  # noqa: E402
 from shardmill.config import job_from_dict  # noqa: E402
+from shardmill.parallel.comm import Comm  # noqa: E402
 from shardmill.trainer import PHASES, Trainer, warm_up_kernels  # noqa: E402
 from threadpoolctl import threadpool_limits  # noqa: E402
 

@@ -125,10 +125,10 @@ def ratios(results: dict[str, dict[str, Any]], ranks: list[int]) -> dict[str, An
 def breakdown(repetitions: int) -> int:
     """Median ms per part of an exact step and of a fast step, max over ranks; rank 0 prints the JSON."""
     from shardmill.bench import synthetic_dataset
-    from shardmill.comm import Comm
     from shardmill.config import job_from_dict
     from shardmill.data import block_range, shard
     from shardmill.kernels import exactsum
+    from shardmill.parallel.comm import Comm
     from shardmill.trainer import Trainer, warm_up_kernels
     from threadpoolctl import threadpool_limits
 

@@ -12,8 +12,8 @@ from __future__ import annotations
 
 from typing import Any
 
-from .config import Job, JobError, job_from_dict, load_job
-from .model import MLP
+from shardmill.config import Job, JobError, job_from_dict, load_job
+from shardmill.model import MLP
 
 __version__ = "0.1.0"
 __all__ = ["MLP", "Job", "JobError", "job_from_dict", "load_job", "train", "__version__"]
@@ -21,6 +21,6 @@ __all__ = ["MLP", "Job", "JobError", "job_from_dict", "load_job", "train", "__ve
 
 def train(job: Job, resume: bool = False, progress: bool = True) -> dict[str, Any]:
     """Train a job on every rank of MPI.COMM_WORLD (one process without a launcher); see trainer.train."""
-    from .trainer import train as _train
+    from shardmill.trainer import train as _train
 
     return _train(job, resume=resume, progress=progress)

@@ -8,12 +8,11 @@ import time
 from typing import Any
 
 import numpy as np
+from shardmill.config import job_from_dict
+from shardmill.data import Split
+from shardmill.parallel.comm import Comm
+from shardmill.trainer import Dataset, Trainer, warm_up_kernels
 from threadpoolctl import threadpool_info, threadpool_limits
-
-from .comm import Comm
-from .config import job_from_dict
-from .data import Split
-from .trainer import Dataset, Trainer, warm_up_kernels
 
 
 def synthetic_dataset(layers: list[int], loss: str, rows: int, dtype: str, seed: int = 0) -> Dataset:

@@ -22,11 +22,10 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
-
-from .config import JobError
+from shardmill.config import JobError
 
 if TYPE_CHECKING:
-    from .trainer import Trainer
+    from shardmill.trainer import Trainer
 
 FORMAT = "shardmill-checkpoint-1"
 
@@ -161,7 +160,7 @@ def resume(trainer: Trainer) -> int:
     Rank 0 reads and verifies; every rank receives the same arrays by broadcast (node-local disks work).
     Any refusal is raised identically on all ranks.
     """
-    from .comm import agree
+    from shardmill.parallel.comm import agree
 
     comm, model = trainer.comm, trainer.model
     error: Exception | None = None

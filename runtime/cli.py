@@ -12,8 +12,8 @@ import os
 import sys
 from pathlib import Path
 
-from .config import JobError
-from .launch import LAUNCHED, relaunch, strip_ranks
+from shardmill.config import JobError
+from shardmill.parallel.launch import LAUNCHED, relaunch, strip_ranks
 
 
 def _layers(text: str) -> list[int]:
@@ -108,7 +108,7 @@ def main(argv: list[str] | None = None) -> int:
     args = build_parser().parse_args(argv)
     if args.command in ("train", "verify", "bench") and args.ranks and not os.environ.get(LAUNCHED):
         return relaunch(args.ranks, strip_ranks(argv))
-    from .comm import run_guarded
+    from shardmill.parallel.comm import run_guarded
 
     return run_guarded(lambda: dispatch(args), user_errors=(JobError,))
 
@@ -117,34 +117,34 @@ def dispatch(args: argparse.Namespace) -> int:
     if args.command == "train":
         return cmd_train(args)
     if args.command == "verify":
-        from .verify import cmd_verify
+        from shardmill.verify import cmd_verify
 
         return cmd_verify(args)
     if args.command == "bench":
         return cmd_bench(args)
     if args.command == "scale":
-        from .scale import cmd_scale
+        from shardmill.scaling.scale import cmd_scale
 
         return cmd_scale(args)
     if args.command == "predict":
-        from .predict import cmd_predict
+        from shardmill.predict import cmd_predict
 
         return cmd_predict(args)
     if args.command == "info":
-        from .info import cmd_info
+        from shardmill.info import cmd_info
 
         return cmd_info()
     if args.command == "demo":
-        from .demo import cmd_demo
+        from shardmill.demo import cmd_demo
 
         return cmd_demo(args)
     raise AssertionError(args.command)
 
 
 def cmd_train(args: argparse.Namespace) -> int:
-    from .comm import Comm
-    from .config import load_job
-    from .trainer import train
+    from shardmill.config import load_job
+    from shardmill.parallel.comm import Comm
+    from shardmill.trainer import train
 
     job = load_job(args.job)
     comm = Comm()
@@ -172,9 +172,9 @@ def _epoch_line(record: dict) -> str:
 
 
 def cmd_bench(args: argparse.Namespace) -> int:
-    from .bench import run_bench
-    from .comm import Comm
-    from .config import ACTIVATIONS, METHODS, _choice
+    from shardmill.bench import run_bench
+    from shardmill.config import ACTIVATIONS, METHODS, _choice
+    from shardmill.parallel.comm import Comm
 
     _choice("--activation", args.activation, ACTIVATIONS)
     _choice("--optimizer", args.optimizer, METHODS)

@@ -11,9 +11,8 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
-
-from .config import JobError
-from .kernels import data as data_kernels
+from shardmill.config import JobError
+from shardmill.kernels import data as data_kernels
 
 _STATS_BLOCK = 1024  # smallest block of the standardisation pass; blocks are fixed, so statistics do not depend on P
 

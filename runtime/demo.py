@@ -14,8 +14,7 @@ import time
 from pathlib import Path
 
 import numpy as np
-
-from .launch import relaunch
+from shardmill.parallel.launch import relaunch
 
 CLASSES = ("healthy", "cavitation", "bearing_wear", "impeller_imbalance", "seal_leak")
 FEATURES = ("speed_rpm", "load", "flow", "suction_kpa", "discharge_kpa", "motor_current", "power_factor",

@@ -11,11 +11,10 @@ import math
 from typing import Any
 
 import numpy as np
-
-from .comm import Comm
-from .kernels import activations as act
-from .kernels import optim as kernels
-from .model import MLP, Workspace
+from shardmill.kernels import activations as act
+from shardmill.kernels import optim as kernels
+from shardmill.model import MLP, Workspace
+from shardmill.parallel.comm import Comm
 
 SATURATION_Z = 4.0
 SATURATED_WARN = 0.5  # fraction of saturated units that earns a warning (common practice: a rule of thumb)

@@ -10,8 +10,7 @@ import sys
 def numba_cache_dir() -> str:
     """Where Numba keeps compiled kernels: NUMBA_CACHE_DIR if set, else __pycache__ beside kernels/."""
     from numba.core import config
-
-    from . import kernels
+    from shardmill import kernels
 
     if config.CACHE_DIR:
         return str(config.CACHE_DIR)
@@ -24,9 +23,8 @@ def cmd_info() -> int:
     import numpy as np
     import psutil
     from mpi4py import MPI
+    from shardmill import __version__
     from threadpoolctl import threadpool_info
-
-    from . import __version__
 
     lines = [
         f"shardmill {__version__}",

@@ -11,10 +11,9 @@ from __future__ import annotations
 from collections.abc import Iterator
 
 import numpy as np
-
-from .config import ACTIVATIONS, DTYPES, INITS, LOSSES, JobError, _choice
-from .kernels import activations as act
-from .kernels import losses
+from shardmill.config import ACTIVATIONS, DTYPES, INITS, LOSSES, JobError, _choice
+from shardmill.kernels import activations as act
+from shardmill.kernels import losses
 
 RELU_FAMILY = ("relu", "leaky_relu", "gelu", "softplus")
 _IMPLIED_OUTPUT = {"softmax_cross_entropy": "softmax", "binary_cross_entropy": "sigmoid", "squared_error": "identity"}

@@ -5,9 +5,8 @@ from __future__ import annotations
 import math
 
 import numpy as np
-
-from .config import OptimizerSpec
-from .kernels import optim as kernels
+from shardmill.config import OptimizerSpec
+from shardmill.kernels import optim as kernels
 
 STATE_NAMES = {"sgd": (), "momentum": ("velocity",), "nesterov": ("velocity",), "adam": ("m", "v"),
                "adamw": ("m", "v")}

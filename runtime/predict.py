@@ -6,11 +6,10 @@ import json
 from pathlib import Path
 
 import numpy as np
-
-from .checkpoint import CheckpointError, load, resolve
-from .config import JobError
-from .data import read_array, squeeze_labels
-from .model import MLP
+from shardmill.checkpoint import CheckpointError, load, resolve
+from shardmill.config import JobError
+from shardmill.data import read_array, squeeze_labels
+from shardmill.model import MLP
 
 
 def load_model(path: Path) -> tuple[MLP, np.ndarray, np.ndarray]:

@@ -10,25 +10,33 @@ import json
 import math
 import sys
 import time
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
 import numpy as np
+from shardmill import checkpoint
+from shardmill.config import Job, JobError
+from shardmill.data import (
+    Sampler,
+    Split,
+    block_range,
+    column_statistics,
+    gather,
+    read_array,
+    shard,
+    split_rows,
+    squeeze_labels,
+)
+from shardmill.health import diagnose, warnings
+from shardmill.kernels import exactsum, losses
+from shardmill.kernels import optim as kernels_optim
+from shardmill.model import MLP
+from shardmill.optim import Optimizer
+from shardmill.parallel.comm import Comm, agree
+from shardmill.parallel.exchange import GradientExchange
+from shardmill.timing import PHASES, PhaseTimer
 from threadpoolctl import threadpool_limits
-
-from . import checkpoint
-from .comm import Comm, agree
-from .config import Job, JobError
-from .data import Sampler, Split, block_range, column_statistics, gather, read_array, shard, split_rows, squeeze_labels
-from .exchange import GradientExchange
-from .health import diagnose, warnings
-from .kernels import exactsum, losses
-from .kernels import optim as kernels_optim
-from .model import MLP
-from .optim import Optimizer
-
-PHASES = ("data", "forward", "backward", "exchange", "update")
 
 
 @dataclass
@@ -95,22 +103,6 @@ def _first_nonfinite(X: np.ndarray, rows: np.ndarray, comm: Comm) -> int:
     return -1 if bad[0] == np.iinfo(np.int64).max else int(bad[0])
 
 
-@dataclass
-class PhaseTimer:
-    """Seconds spent per phase since the last reset: data, forward, backward, exchange, update."""
-
-    seconds: np.ndarray = field(default_factory=lambda: np.zeros(len(PHASES)))
-    _last: float = 0.0
-
-    def start(self) -> None:
-        self._last = time.perf_counter()
-
-    def lap(self, phase: int) -> None:
-        now = time.perf_counter()
-        self.seconds[phase] += now - self._last
-        self._last = now
-
-
 class Trainer:
     """Owns the model, data, optimizer, exchange and workspaces of one job on one rank."""
 
@@ -172,14 +164,14 @@ class Trainer:
         n, G = rows.size, self.job.run.global_batch
         gather(self.data.X, rows, self.data.mean, self.data.inv_std, self.ws.inputs)
         targets = self.gather_targets(rows)
-        self.timer.lap(0)
+        self.timer.lap("data")
         loss_sum = self.ws.forward_loss(n, targets, 1.0 / G)
         self.sums += (loss_sum, self.count_correct(n, targets), n)
-        self.timer.lap(1)
+        self.timer.lap("forward")
         for layer, _ in self.ws.backward(n, grads):
             if launch:
                 self.exchange.layer_done(layer)
-        self.timer.lap(2)
+        self.timer.lap("backward")
         return loss_sum
 
     def count_correct(self, n: int, targets: np.ndarray) -> int:
@@ -200,12 +192,12 @@ class Trainer:
             mine = shard(rows, self.comm.rank, self.comm.size)  # shard: contiguous [lo, hi)
             self.compute_shard(mine, self.grads, launch=True)  # gather, forward, loss, backward + launches
             self.exchange.wait()  # every bucket reduced: the full-batch mean gradient
-        self.timer.lap(3)
+        self.timer.lap("exchange")
         self.optimizer.clip(self.grads)
         health = self.job.run.health_every and (self.step_count + 1) % self.job.run.health_every == 0
         before = self.model.params.copy() if health else None
         self.optimizer.step(self.model.params, self.grads, self.schedule_steps)  # update
-        self.timer.lap(4)
+        self.timer.lap("update")
         self.step_count += 1
         if health:
             n = self.job.run.exact_chunk if self.exact else shard(rows, self.comm.rank, self.comm.size).size
@@ -232,13 +224,13 @@ class Trainer:
             chunk_gradient(lo, self.chunk_grads)
             chunk_gradient(lo + 1, self.pair_grads)
             self.check_range(exactsum.assign_pair(self.chunk_grads, self.pair_grads, self.limbs))
-            self.timer.lap(2)
+            self.timer.lap("backward")
             first = lo + 2
         for k in range(first, hi):
             chunk_gradient(k, self.chunk_grads)
             # A first chunk overwrites the limbs: no zeroing pass, no read.
             self.check_range(exactsum.accumulate(self.chunk_grads, self.limbs, replace=k == lo))
-            self.timer.lap(2)
+            self.timer.lap("backward")
         if self.comm.size == 1:
             exactsum.to_float(self.limbs, self.grads)
             return
@@ -334,7 +326,7 @@ class Trainer:
         high, total = self.timer.seconds.copy(), self.timer.seconds.copy()
         self.comm.max_(high)
         self.comm.sum_(total)
-        self.timer.seconds[:] = 0.0
+        self.timer.reset()
         mean = total / self.comm.size
         return dict(zip(PHASES, map(float, high), strict=True)), dict(zip(PHASES, map(float, mean), strict=True))
 
@@ -489,7 +481,7 @@ def _epoch_record(trainer: Trainer, epoch: int, step: int, steps: int, seconds: 
 
 def _current_lr(trainer: Trainer) -> float:
     """The learning rate of the last update (the base rate before any update)."""
-    from .optim import learning_rate
+    from shardmill.optim import learning_rate
 
     if trainer.optimizer.updates == 0:
         return trainer.optimizer.spec.learning_rate

@@ -23,13 +23,12 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+from shardmill.config import Job, load_job
+from shardmill.data import block_range, gather, shard
+from shardmill.kernels import activations as act
+from shardmill.parallel.comm import Comm
+from shardmill.trainer import Trainer, warm_up_kernels
 from threadpoolctl import threadpool_limits
-
-from .comm import Comm
-from .config import Job, load_job
-from .data import block_range, gather, shard
-from .kernels import activations as act
-from .trainer import Trainer, warm_up_kernels
 
 Tamper = Callable[[np.ndarray, Comm], None]
 

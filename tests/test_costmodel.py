@@ -20,7 +20,7 @@ import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
-from shardmill.costmodel import (
+from shardmill.scaling.costmodel import (
     ALGORITHMS,
     ASSUMPTIONS,
     NO_COMMUNICATION,
@@ -355,7 +355,7 @@ def test_measure_allreduce_on_two_ranks(tmp_path: Path) -> None:
             f"""
             import json
             from mpi4py import MPI
-            from shardmill.costmodel import measure_allreduce
+            from shardmill.scaling.costmodel import measure_allreduce
 
             world = MPI.COMM_WORLD
             results = measure_allreduce(world, [256, 64 * 1024, 4 * 1024 * 1024], repeats=5, warmup=1)
@@ -386,7 +386,7 @@ def test_measure_allreduce_on_two_ranks(tmp_path: Path) -> None:
 
 def test_replicated_update_is_not_divided_by_p() -> None:
     # Amdahl 1967: with a serial fraction s of T1 the strong-scaling time is T1·(s + (1 − s)/p).
-    from shardmill.costmodel import project
+    from shardmill.scaling.costmodel import project
 
     rows = project(1.0, 0.0, [1, 4], alpha=0.0, beta=0.0, replicated_s=0.2)
     assert rows[0]["step_s"] == pytest.approx(1.0)

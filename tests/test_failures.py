@@ -155,7 +155,7 @@ def test_abort_waits_for_the_launcher_to_forward_the_message(monkeypatch, capsys
     Hydra forwards stderr and the abort request on separate channels, so ``abort_world`` flushes and then
     waits ``ABORT_GRACE_S`` before aborting.
     """
-    from shardmill import comm as comm_module
+    from shardmill.parallel import comm as comm_module
 
     world = _FakeWorld()
     monkeypatch.setattr(comm_module.MPI, "COMM_WORLD", world)

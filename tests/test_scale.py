@@ -210,7 +210,7 @@ def test_fit_and_projection_with_prediction_error(strong) -> None:
 
 def test_report_names_mpi_library_every_p_and_assumptions(strong, weak) -> None:
     from mpi4py import MPI
-    from shardmill.costmodel import ASSUMPTIONS
+    from shardmill.scaling.costmodel import ASSUMPTIONS
 
     library = " ".join(MPI.Get_library_version().splitlines()[0].split())
     for (_, out), batches in ((strong, {1: G, 2: G}), (weak, {1: G, 2: 2 * G})):
@@ -261,7 +261,7 @@ def test_run_past_timeout_is_stopped(tmp_path) -> None:
 
 
 def test_speedup_and_efficiency_by_hand() -> None:
-    from shardmill.scale import add_speedup
+    from shardmill.scaling.scale import add_speedup
 
     def rows() -> list[dict]:
         return [{"p": 1, "step_s": 1.0}, {"p": 2, "step_s": 0.625}, {"p": 4, "step_s": 1.25}]
@@ -280,7 +280,7 @@ def test_speedup_and_efficiency_by_hand() -> None:
 
 def test_allreduce_timing_skips_sizes_past_its_budget() -> None:
     from mpi4py import MPI
-    from shardmill.scale import time_allreduce
+    from shardmill.scaling.scale import time_allreduce
 
     sizes = (4096, 16384, 65536)
     timings, skipped = time_allreduce(MPI.COMM_SELF, sizes, repeats=2, budget_s=0.0, dtype="float32")

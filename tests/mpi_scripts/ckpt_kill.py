@@ -16,8 +16,8 @@ from pathlib import Path
 
 import numpy as np
 from shardmill import checkpoint
-from shardmill.comm import Comm
 from shardmill.config import load_job
+from shardmill.parallel.comm import Comm
 from shardmill.trainer import train
 
 calls = 0

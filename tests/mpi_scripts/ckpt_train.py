@@ -13,8 +13,8 @@ import json
 import sys
 
 import numpy as np
-from shardmill.comm import Comm
 from shardmill.config import job_from_dict
+from shardmill.parallel.comm import Comm
 from shardmill.trainer import train
 
 

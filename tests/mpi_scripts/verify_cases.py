@@ -20,9 +20,9 @@ import sys
 
 import numpy as np
 from mpi4py import MPI
-from shardmill.comm import Comm
 from shardmill.config import job_from_dict
 from shardmill.data import block_range
+from shardmill.parallel.comm import Comm
 from shardmill.trainer import Trainer
 from shardmill.verify import verify
 

@@ -11,8 +11,8 @@ import math
 from pathlib import Path
 from typing import Any
 
-from . import costmodel
-from .trainer import PHASES
+from shardmill.scaling import costmodel
+from shardmill.timing import PHASES
 
 PHASE_COLOURS = {"data": "#8c6d31", "forward": "#3a6ea5", "backward": "#7fa7d1", "exchange": "#c8553d",
                  "update": "#6a994e"}

@@ -176,7 +176,7 @@ def agree(comm: Comm, error: Exception | None) -> None:
     Used where a failure can be local to one rank (a file missing on one node, a bad row in one shard).
     The message names the first failing rank. Small control message (lowercase allgather), start-up only.
     """
-    from .config import JobError
+    from shardmill.config import JobError
 
     if comm.size == 1:
         if error is not None:

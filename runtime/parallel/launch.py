@@ -8,7 +8,7 @@ import subprocess
 import sys
 from pathlib import Path
 
-from .config import JobError
+from shardmill.config import JobError
 
 LAUNCHED = "SHARDMILL_LAUNCHED"
 

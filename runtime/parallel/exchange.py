@@ -9,9 +9,8 @@ blocking allreduce of the whole buffer follows backward instead (for comparison 
 from __future__ import annotations
 
 import numpy as np
-
-from .comm import Comm
-from .model import MLP
+from shardmill.model import MLP
+from shardmill.parallel.comm import Comm
 
 
 class GradientExchange:

@@ -3,7 +3,7 @@
 The story, top to bottom:
 
     cmd_scale                 check the arguments, then for each P start
-      mpiexec -n P python -m shardmill.scale …       (the worker, `run_worker`, at the bottom of this file)
+      mpiexec -n P python -m shardmill.scaling.scale …       (the worker, `run_worker`, at the bottom of this file)
         pin (optional) → Trainer(job) → warm-up → N timed steps → per-rank record → gather to rank 0
         → allreduce timings over MESSAGE_SIZES and the reduction cost γ → rank 0 writes runs/pP.json
     measured_point            one row per P: step time, throughput, speedup, efficiency, imbalance, phases
@@ -32,10 +32,9 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-
-from . import costmodel
-from .config import Job, JobError, load_job
-from .trainer import PHASES
+from shardmill.config import Job, JobError, load_job
+from shardmill.scaling import costmodel
+from shardmill.timing import PHASES
 
 MESSAGE_SIZES: tuple[int, ...] = tuple(4096 * 4**k for k in range(8))
 """Allreduce message sizes timed at every P > 1, bytes: 4 KiB, 16 KiB, …, 64 MiB (eight sizes)."""
@@ -139,7 +138,7 @@ def cmd_scale(args: argparse.Namespace) -> int:
 
     study = build_study(job, Path(args.job), args.mode, args.steps, args.threads, args.pin, raws, project_to,
                         args.network, network)
-    from . import report
+    from shardmill.scaling import report
 
     figures_and_report = report.render(study, out)  # first: it may add a note that the JSON should carry
     written = write_study(study, out) + figures_and_report
@@ -159,10 +158,10 @@ def _progress(total: int, show: bool):
 
 def worker_command(job: Path, p: int, global_batch: int, steps: int, threads: int, pin: bool,
                    result: Path) -> list[str]:
-    """The mpiexec command line of one run: p processes of `python -m shardmill.scale` with these settings."""
-    from .launch import find_mpiexec
+    """The mpiexec command line of one run: p processes of `python -m shardmill.scaling.scale` with these settings."""
+    from shardmill.parallel.launch import find_mpiexec
 
-    command = [find_mpiexec(), "-n", str(p), sys.executable, "-m", "shardmill.scale",
+    command = [find_mpiexec(), "-n", str(p), sys.executable, "-m", "shardmill.scaling.scale",
                "--job", str(job.resolve()), "--global-batch", str(global_batch), "--steps", str(steps),
                "--threads", str(threads), "--result", str(result.resolve())]
     return command + (["--pin"] if pin else [])
@@ -176,7 +175,7 @@ def run_point(job: Path, p: int, global_batch: int, steps: int, threads: int, pi
     group) and raises RunFailed with status 124; a user error in the worker (bad job, too few rows) raises
     RunFailed with status 2 and the worker's message; any other failure shows the end of the log, status 1.
     """
-    from .launch import LAUNCHED
+    from shardmill.parallel.launch import LAUNCHED
 
     result = out / "runs" / f"p{p}.json"
     log_path = out / "logs" / f"p{p}.log"
@@ -411,7 +410,7 @@ def build_study(job: Job, job_path: Path, mode: str, steps: int, threads: int, p
                 raws: dict[int, dict[str, Any]], project_to: list[int], network_spec: str | None,
                 network: tuple[float, float] | None) -> dict[str, Any]:
     """Everything a report needs, as plain JSON values: settings, machine, job, rows, per-rank records, model."""
-    from .bench import machine
+    from shardmill.bench import machine
 
     points = [measured_point(raws[p]) for p in sorted(raws)]
     add_speedup(points, mode)
@@ -577,11 +576,10 @@ def run_worker(job_path: Path, global_batch: int, steps: int, threads: int, pin:
     the allreduce is timed over MESSAGE_SIZES (P > 1) and rank 0 measures γ at the bucket size.
     """
     from mpi4py import MPI
+    from shardmill.data import block_range
+    from shardmill.parallel.comm import Comm
+    from shardmill.trainer import Trainer, warm_up_kernels
     from threadpoolctl import threadpool_limits
-
-    from .comm import Comm
-    from .data import block_range
-    from .trainer import Trainer, warm_up_kernels
 
     comm = Comm()
     pinned = pin_rank(comm.rank, threads) if pin else None
@@ -594,7 +592,7 @@ def run_worker(job_path: Path, global_batch: int, steps: int, threads: int, pin:
         per_epoch = trainer.sampler.steps_per_epoch
         for step in range(WARMUP_STEPS):
             trainer.step(*divmod(step, per_epoch))
-        trainer.timer.seconds[:] = 0.0
+        trainer.timer.reset()
         comm.barrier()
         begin = time.perf_counter()
         for step in range(WARMUP_STEPS, WARMUP_STEPS + steps):
@@ -605,7 +603,7 @@ def run_worker(job_path: Path, global_batch: int, steps: int, threads: int, pin:
         "rank": comm.rank,
         "rows": hi - lo,
         "wall_s": wall_s,
-        "phase_s": dict(zip(PHASES, map(float, trainer.timer.seconds), strict=True)),
+        "phase_s": trainer.timer.as_dict(),
         "compile_s": compile_s,
         **memory(),
         **placement(pinned),
@@ -653,8 +651,8 @@ def thread_level_name(level: int) -> str:
 
 
 def worker_main(argv: list[str] | None = None) -> int:
-    """Entry point of `python -m shardmill.scale` (started by the driver, one process per rank)."""
-    parser = argparse.ArgumentParser(prog="python -m shardmill.scale",
+    """Entry point of `python -m shardmill.scaling.scale` (started by the driver, one process per rank)."""
+    parser = argparse.ArgumentParser(prog="python -m shardmill.scaling.scale",
                                      description="one run of a scaling study (started by `shardmill scale`)")
     parser.add_argument("--job", type=Path, required=True)
     parser.add_argument("--global-batch", type=int, required=True)
@@ -664,7 +662,7 @@ def worker_main(argv: list[str] | None = None) -> int:
     parser.add_argument("--result", type=Path, required=True)
     parser.add_argument("--comm-repeats", type=int, default=5)
     args = parser.parse_args(argv)
-    from .comm import run_guarded
+    from shardmill.parallel.comm import run_guarded
 
     return run_guarded(lambda: run_worker(args.job, args.global_batch, args.steps, args.threads, args.pin,
                                           args.result, args.comm_repeats), user_errors=(JobError,))

@@ -159,7 +159,7 @@ def main(argv: list[str] | None = None) -> int:
             if comm.rank == 0:
                 log(f"exchange {dtype} " + ("overlap off" if bucket_mb is None else f"buckets ≥ {bucket_mb} MB"))
             rows.append(measure(comm, dtype, bucket_mb, repetitions, warmup))
-    load = meter.stop(lambda own: float(comm.sum_(np.array([own]))[0]))
+    load = meter.stop(lambda own: float(comm.allreduce_sum(np.array([own]))[0]))
     if comm.rank == 0:
         emit({
             "benchmark": "exchange_vs_raw",

@@ -179,17 +179,17 @@ def breakdown(repetitions: int) -> int:
             t["exact_accumulate"] = timed(accumulate_all)
             t["exact_reduce_scatter_limbs"] = timed(exact.reduce_scatter_limbs)
             t["exact_to_float_slice"] = timed(lambda: exactsum.to_float(exact.slice_limbs, exact.grads[exact.slice]))
-            t["exact_allgather_grads"] = timed(lambda: comm.allgather_(exact.grads, exact.slice_counts))
+            t["exact_allgather_grads"] = timed(lambda: comm.allgather(exact.grads, exact.slice_counts))
             t["exact_step"] = timed(lambda: exact.step(0, 0))
             t["fast_shard_gradient"] = timed(lambda: fast.compute_shard(mine, fast.grads, launch=False))
-            t["fast_allreduce"] = timed(lambda: comm.sum_(fast.grads))
+            t["fast_allreduce"] = timed(lambda: comm.allreduce_sum(fast.grads))
             t["fast_step"] = timed(lambda: fast.step(0, 0))
             if keep:
                 for name, seconds in t.items():
                     record(name, seconds)
     names = sorted(parts)
     local = np.array([parts[n] for n in names])
-    comm.max_(local)
+    comm.allreduce_max(local)
     if comm.rank == 0:
         ms = {n: median(local[i]) * 1e3 for i, n in enumerate(names)}
         emit({"processes": comm.size, "chunks_per_rank": len(chunks), "rows_per_chunk": EXACT_CHUNK,

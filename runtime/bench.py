@@ -89,11 +89,11 @@ def run_bench(layers: list[int], batch: int, dtype: str = "float32", threads: in
                 t0 = time.perf_counter()
                 trainer.step(0, (done + s) % spe)
                 local = np.array([time.perf_counter() - t0])
-                comm.max_(local)
+                comm.allreduce_max(local)
                 step_times.append(float(local[0]))
             for _ in range(todo):
                 local = np.array([gemm_floor_step(trainer), gemm_floor_step(trainer, first_layer_dA=False)])
-                comm.max_(local)
+                comm.allreduce_max(local)
                 floor_times.append(float(local[0]))
                 needed_times.append(float(local[1]))
             done += todo

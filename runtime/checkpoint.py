@@ -175,15 +175,15 @@ def resume(trainer: Trainer) -> int:
         except CheckpointError as err:
             error = err
     agree(comm, error)
-    state = comm.bcast_object(state)
+    state = comm.broadcast_object(state)
     if comm.rank == 0:
         for name, view in model.named(model.params).items():
             view[...] = params[name]
         for name, array in trainer.optimizer.state.items():
             array[...] = opt[name]
-    comm.bcast_(model.params)
+    comm.broadcast(model.params)
     for array in trainer.optimizer.state.values():
-        comm.bcast_(array)
+        comm.broadcast(array)
     trainer.optimizer.updates = int(state["optimizer_updates"])
     trainer.step_count = int(state["step"])
     return int(state["step"])

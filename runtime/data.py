@@ -90,7 +90,7 @@ def column_statistics(X: np.ndarray, rows: np.ndarray, comm) -> tuple[np.ndarray
             continue
         np.sum(chunk, axis=0, out=sums[k, :d])
         np.sum(chunk * chunk, axis=0, out=sums[k, d:])
-    comm.min_(bad)
+    comm.allreduce_min(bad)
     counts = [block_range(n_blocks, r, comm.size)[1] - block_range(n_blocks, r, comm.size)[0]
               for r in range(comm.size)]
     total = comm.allgather_rows(sums, counts).sum(axis=0)

@@ -37,9 +37,9 @@ def diagnose(model: MLP, ws: Workspace, n: int, grads: np.ndarray, before: np.nd
         saturated = np.zeros(1, dtype=np.int64)
         act.unit_activity(ws.Z[l][:n], SATURATION_Z, saturated, alive[l])
         counts[2 * l], counts[2 * l + 1] = saturated[0], n
-    comm.sum_(counts)
+    comm.allreduce_sum(counts)
     for a in alive:
-        comm.max_(a)
+        comm.allreduce_max(a)
     for l in range(model.n_layers):
         start, stop = model.slices[l]
         g = math.sqrt(kernels.sum_squares(grads[start:stop]))

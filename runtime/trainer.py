@@ -99,7 +99,7 @@ def _first_nonfinite(X: np.ndarray, rows: np.ndarray, comm: Comm) -> int:
         if not finite.all():
             bad[0] = rows[start + int(np.argmin(finite))]
             break
-    comm.min_(bad)
+    comm.allreduce_min(bad)
     return -1 if bad[0] == np.iinfo(np.int64).max else int(bad[0])
 
 
@@ -236,7 +236,7 @@ class Trainer:
             return
         self.reduce_scatter_limbs()
         exactsum.to_float(self.slice_limbs, self.grads[self.slice])
-        self.comm.allgather_(self.grads, self.slice_counts)
+        self.comm.allgather(self.grads, self.slice_counts)
 
     def reduce_scatter_limbs(self) -> None:
         """This rank's slice of the limbs summed over ranks, into ``slice_limbs``.
@@ -260,7 +260,7 @@ class Trainer:
         the counts are integers held in float64, exact below 2**53 in any order.
         """
         sums = self.sums.copy()
-        self.comm.sum_(sums)
+        self.comm.allreduce_sum(sums)
         self.sums[:] = 0.0
         if self.exact:
             self.reduce_exact(self.loss_limbs, sums[:1])
@@ -269,7 +269,7 @@ class Trainer:
 
     def reduce_exact(self, limbs: np.ndarray, out: np.ndarray) -> None:
         """Sum a small (LIMBS, k) accumulator over ranks, in place, and write its k values into ``out``."""
-        self.comm.sum_(limbs.reshape(-1))
+        self.comm.allreduce_sum(limbs.reshape(-1))
         exactsum.to_float(limbs, out)
 
     def evaluate(self, rows: np.ndarray) -> dict[str, float]:
@@ -304,7 +304,7 @@ class Trainer:
             else:
                 sums[:2] += chunk_sums
             sums[2] += n
-        self.comm.sum_(sums)
+        self.comm.allreduce_sum(sums)
         if exact_sums is not None:
             self.reduce_exact(exact_sums, sums[:2])
         return self.summarise(sums)
@@ -324,8 +324,8 @@ class Trainer:
     def reduce_phases(self) -> tuple[dict[str, float], dict[str, float]]:
         """Per-phase seconds since the last call: (max over ranks, mean over ranks)."""
         high, total = self.timer.seconds.copy(), self.timer.seconds.copy()
-        self.comm.max_(high)
-        self.comm.sum_(total)
+        self.comm.allreduce_max(high)
+        self.comm.allreduce_sum(total)
         self.timer.reset()
         mean = total / self.comm.size
         return dict(zip(PHASES, map(float, high), strict=True)), dict(zip(PHASES, map(float, mean), strict=True))
@@ -458,7 +458,7 @@ def _epoch_record(trainer: Trainer, epoch: int, step: int, steps: int, seconds: 
     train_metrics = trainer.summarise(trainer.take_train_sums())
     phase_max, phase_mean = trainer.reduce_phases()
     seconds_max = np.array([seconds])
-    comm.max_(seconds_max)
+    comm.allreduce_max(seconds_max)
     record: dict[str, Any] = {
         "kind": "epoch",
         "epoch": epoch + 1,

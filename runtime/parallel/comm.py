@@ -2,6 +2,11 @@
 
 A world of size 1 needs no launcher (MPI singleton start). Every rank must call the same collectives in
 the same order; nothing here branches on the rank around a collective.
+
+Naming rule: a method is named after the MPI collective, then the reduction (``allreduce_sum``,
+``reduce_scatter_sum``, ``allgather``); it works in place on numpy buffers unless it returns a new array
+(``allgather_rows``); ``start_…`` returns a request; ``…_object`` moves a small picklable control message
+(start-up and reports only, never in the step). Callers use these methods, never the mpi4py communicator.
 """
 
 from __future__ import annotations
@@ -41,13 +46,13 @@ class Comm:
             raise ValueError("MPI buffers must be contiguous")
         return [array, _MPI_TYPES[array.dtype]]
 
-    def sum_(self, array: np.ndarray) -> np.ndarray:
+    def allreduce_sum(self, array: np.ndarray) -> np.ndarray:
         """In-place SUM allreduce of a contiguous array; returns it."""
         if self.size > 1:
             self.comm.Allreduce(MPI.IN_PLACE, self._buffer(array), op=MPI.SUM)
         return array
 
-    def start_sum_(self, array: np.ndarray) -> Any:
+    def start_allreduce_sum(self, array: np.ndarray) -> Any:
         """Start a non-blocking in-place SUM allreduce of a contiguous slice; returns a request (or None)."""
         if self.size == 1:
             return None
@@ -55,24 +60,24 @@ class Comm:
 
     @staticmethod
     def wait(requests: list) -> None:
-        """Wait for every request started by :meth:`start_sum_`."""
+        """Wait for every request started by :meth:`start_allreduce_sum`."""
         live = [r for r in requests if r is not None]
         if live:
             MPI.Request.Waitall(live)
 
-    def max_(self, array: np.ndarray) -> np.ndarray:
+    def allreduce_max(self, array: np.ndarray) -> np.ndarray:
         """In-place MAX allreduce."""
         if self.size > 1:
             self.comm.Allreduce(MPI.IN_PLACE, self._buffer(array), op=MPI.MAX)
         return array
 
-    def min_(self, array: np.ndarray) -> np.ndarray:
+    def allreduce_min(self, array: np.ndarray) -> np.ndarray:
         """In-place MIN allreduce."""
         if self.size > 1:
             self.comm.Allreduce(MPI.IN_PLACE, self._buffer(array), op=MPI.MIN)
         return array
 
-    def bcast_(self, array: np.ndarray, root: int = 0) -> np.ndarray:
+    def broadcast(self, array: np.ndarray, root: int = 0) -> np.ndarray:
         """In-place broadcast from ``root``."""
         if self.size > 1:
             self.comm.Bcast(self._buffer(array), root=root)
@@ -90,7 +95,7 @@ class Comm:
             self.comm.Reduce_scatter(self._buffer(send), self._buffer(recv), counts, op=MPI.SUM)
         return recv
 
-    def allgather_(self, array: np.ndarray, counts: list[int]) -> np.ndarray:
+    def allgather(self, array: np.ndarray, counts: list[int]) -> np.ndarray:
         """In place: every rank's contiguous part of ``array`` (counts[rank] elements, in rank order) to all ranks."""
         if self.size > 1:
             offsets = np.cumsum([0] + counts[:-1]).tolist()
@@ -110,9 +115,17 @@ class Comm:
                              [out, sizes, offsets, _MPI_TYPES[local.dtype]])
         return out
 
-    def bcast_object(self, obj: Any, root: int = 0) -> Any:
+    def broadcast_object(self, obj: Any, root: int = 0) -> Any:
         """Broadcast a small control object (start-up only, never in the step)."""
         return self.comm.bcast(obj, root=root) if self.size > 1 else obj
+
+    def allgather_object(self, obj: Any) -> list[Any]:
+        """Every rank's small control object, in rank order, on every rank (never in the step)."""
+        return self.comm.allgather(obj) if self.size > 1 else [obj]
+
+    def gather_object(self, obj: Any, root: int = 0) -> list[Any] | None:
+        """Every rank's small control object, in rank order, on ``root`` (None elsewhere; never in the step)."""
+        return self.comm.gather(obj, root=root) if self.size > 1 else [obj]
 
     def barrier(self) -> None:
         if self.size > 1:
@@ -121,7 +134,7 @@ class Comm:
     def all_equal(self, array: np.ndarray) -> bool:
         """True if ``array`` holds the same bytes on every rank (CRC-32 compared by MIN and MAX)."""
         crc = np.array([zlib.crc32(np.ascontiguousarray(array).view(np.uint8))], dtype=np.int64)
-        low, high = self.min_(crc.copy()), self.max_(crc.copy())
+        low, high = self.allreduce_min(crc.copy()), self.allreduce_max(crc.copy())
         return bool(low[0] == high[0])
 
     def abort(self, code: int = 1) -> None:
@@ -182,7 +195,7 @@ def agree(comm: Comm, error: Exception | None) -> None:
         if error is not None:
             raise error
         return
-    messages = comm.comm.allgather(None if error is None else str(error))
+    messages = comm.allgather_object(None if error is None else str(error))
     failed = [(r, m) for r, m in enumerate(messages) if m is not None]
     if failed:
         rank, text = failed[0]

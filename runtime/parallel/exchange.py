@@ -36,7 +36,7 @@ class GradientExchange:
         """Backward has finished ``layer``: start the allreduce of the bucket it completes, if any."""
         if self.overlap and layer in self._closing:
             start, stop = self.buckets[self._closing[layer]]
-            self._requests.append(self.comm.start_sum_(self.grads[start:stop]))
+            self._requests.append(self.comm.start_allreduce_sum(self.grads[start:stop]))
 
     def wait(self) -> None:
         """Return once every bucket is reduced (or run the single blocking allreduce without overlap)."""
@@ -44,4 +44,4 @@ class GradientExchange:
             self.comm.wait(self._requests)
             self._requests.clear()
         else:
-            self.comm.sum_(self.grads)
+            self.comm.allreduce_sum(self.grads)

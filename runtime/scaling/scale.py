@@ -608,7 +608,7 @@ def run_worker(job_path: Path, global_batch: int, steps: int, threads: int, pin:
         **memory(),
         **placement(pinned),
     }
-    records = comm.comm.gather(record, root=0)
+    records = comm.gather_object(record)
     dtype = trainer.model.dtype
     timings, skipped = time_allreduce(comm.comm, MESSAGE_SIZES, comm_repeats, COMM_BUDGET_S, dtype) \
         if comm.size > 1 else ([], [])

@@ -28,7 +28,7 @@ def main() -> None:
         job = job_from_dict(run["job"], base=spec["base"])
         result = train(job, comm, resume=run.get("resume", False), progress=False)
         digest = hashlib.sha256(np.ascontiguousarray(result["model"].params).tobytes()).hexdigest()
-        results["runs"][run["name"]] = {"steps": result["steps"], "sha256_by_rank": comm.comm.allgather(digest)}
+        results["runs"][run["name"]] = {"steps": result["steps"], "sha256_by_rank": comm.allgather_object(digest)}
     if comm.rank == 0:
         with open(out_path, "w") as f:
             json.dump(results, f)

@@ -53,7 +53,7 @@ def train_case(trainer: Trainer, steps: int) -> dict:
     digest = hashlib.sha256(np.ascontiguousarray(trainer.model.params).tobytes()).hexdigest()
     return {"params0": named_lists(trainer, params0), "params": named_lists(trainer, trainer.model.params),
             "batches": batches, "mean": trainer.data.mean.tolist(), "inv_std": trainer.data.inv_std.tolist(),
-            "sha256_by_rank": trainer.comm.comm.allgather(digest)}
+            "sha256_by_rank": trainer.comm.allgather_object(digest)}
 
 
 def main() -> None:

@@ -18,20 +18,39 @@ import hashlib
 import json
 import os
 import shutil
+from dataclasses import dataclass
 from pathlib import Path
-from typing import TYPE_CHECKING, Any
+from typing import Any
 
 import numpy as np
-from shardmill.config import JobError
-
-if TYPE_CHECKING:
-    from shardmill.trainer import Trainer
+from shardmill.config import Job, JobError
 
 FORMAT = "shardmill-checkpoint-1"
 
 
 class CheckpointError(JobError):
     """A checkpoint that is missing, truncated, corrupted or belongs to another job."""
+
+
+@dataclass
+class TrainingState:
+    """What a checkpoint holds: plain arrays and numbers (the trainer builds it; nothing here knows the trainer).
+
+    ``params``: {"W0": (fan_in, fan_out), "b0": (fan_out,), …} in the model's dtype; ``optimizer``: the flat
+    state arrays (velocity, or m and v), (n_params,) each; ``step``: global steps completed.
+    """
+
+    params: dict[str, np.ndarray]
+    input_mean: np.ndarray
+    input_inv_std: np.ndarray
+    optimizer: dict[str, np.ndarray]
+    optimizer_updates: int
+    step: int
+    steps_per_epoch: int
+    processes: int
+    job: Job
+    layers: list[int]
+    dtype: str
 
 
 def sha256(path: Path) -> str:
@@ -64,18 +83,19 @@ def _write_text(path: Path, text: str) -> None:
         os.fsync(f.fileno())
 
 
-def model_arrays(trainer: Trainer) -> dict[str, np.ndarray]:
-    arrays = {name: np.ascontiguousarray(view) for name, view in trainer.model.named(trainer.model.params).items()}
-    arrays["input_mean"] = trainer.data.mean
-    arrays["input_inv_std"] = trainer.data.inv_std
+def model_arrays(state: TrainingState) -> dict[str, np.ndarray]:
+    arrays = {name: np.ascontiguousarray(view) for name, view in state.params.items()}
+    arrays["input_mean"] = state.input_mean
+    arrays["input_inv_std"] = state.input_inv_std
     return arrays
 
 
-def save(trainer: Trainer, step: int) -> Path | None:
-    """Write the checkpoint of ``step`` atomically (rank 0 only; parameters are identical on every rank)."""
-    if trainer.comm.rank != 0:
-        return None
-    root = trainer.job.workdir / "checkpoints"
+def save(state: TrainingState, root: Path, keep: int) -> Path:
+    """Write the checkpoint of ``state.step`` atomically under ``root``; keep the newest ``keep`` checkpoints.
+
+    One writer per workdir: the caller writes from one rank (parameters are identical on every rank).
+    """
+    step = state.step
     root.mkdir(parents=True, exist_ok=True)
     name = f"step-{step:08d}"
     final = root / name
@@ -83,25 +103,24 @@ def save(trainer: Trainer, step: int) -> Path | None:
         shutil.rmtree(stale, ignore_errors=True)
     tmp = root / f".tmp-{name}-{os.getpid()}"
     tmp.mkdir()
-    _write_npz(tmp / "params.npz", model_arrays(trainer))
-    _write_npz(tmp / "optimizer.npz", dict(trainer.optimizer.state))
-    spe = trainer.sampler.steps_per_epoch
-    state = {
+    _write_npz(tmp / "params.npz", model_arrays(state))
+    _write_npz(tmp / "optimizer.npz", dict(state.optimizer))
+    spe, job = state.steps_per_epoch, state.job
+    record = {
         "format": FORMAT,
         "step": step,
         "epoch": step // spe,
         "step_in_epoch": step % spe,
-        "sampler": {"seed": trainer.job.run.seed, "global_batch": trainer.job.run.global_batch,
-                    "steps_per_epoch": spe},
-        "optimizer_updates": trainer.optimizer.updates,
-        "processes": trainer.comm.size,
-        "job": trainer.job.as_dict(),
-        "job_digest": trainer.job.digest(),
-        "layers": trainer.model.sizes,
-        "dtype": trainer.model.dtype.name,
+        "sampler": {"seed": job.run.seed, "global_batch": job.run.global_batch, "steps_per_epoch": spe},
+        "optimizer_updates": state.optimizer_updates,
+        "processes": state.processes,
+        "job": job.as_dict(),
+        "job_digest": job.digest(),
+        "layers": state.layers,
+        "dtype": state.dtype,
         "files": {f: sha256(tmp / f) for f in ("params.npz", "optimizer.npz")},
     }
-    _write_text(tmp / "state.json", json.dumps(state, indent=1))
+    _write_text(tmp / "state.json", json.dumps(record, indent=1))
     _fsync_dir(tmp)
     if final.exists():
         shutil.rmtree(final)
@@ -111,7 +130,7 @@ def save(trainer: Trainer, step: int) -> Path | None:
     _write_text(pointer, name + "\n")
     os.replace(pointer, root / "latest")
     _fsync_dir(root)
-    for old in sorted(root.glob("step-*"))[:-trainer.job.run.keep_checkpoints]:
+    for old in sorted(root.glob("step-*"))[:-keep]:
         shutil.rmtree(old, ignore_errors=True)  # only after `latest` points at the new one
     return final
 
@@ -154,67 +173,41 @@ def load(directory: Path) -> tuple[dict[str, Any], dict[str, np.ndarray], dict[s
     return state, loaded[0], loaded[1]
 
 
-def resume(trainer: Trainer) -> int:
-    """Restore params, optimizer state and position from ``workdir/checkpoints/latest``; returns the step.
-
-    Rank 0 reads and verifies; every rank receives the same arrays by broadcast (node-local disks work).
-    Any refusal is raised identically on all ranks.
-    """
-    from shardmill.parallel.comm import agree
-
-    comm, model = trainer.comm, trainer.model
-    error: Exception | None = None
-    state: dict[str, Any] | None = None
-    if comm.rank == 0:
-        try:
-            root = trainer.job.workdir / "checkpoints"
-            if not (root / "latest").is_file():
-                raise CheckpointError(f"nothing to resume: no checkpoint under {str(root)!r}")
-            state, params, opt = load(resolve(root))
-            check_compatible(trainer, state, params, opt)
-        except CheckpointError as err:
-            error = err
-    agree(comm, error)
-    state = comm.broadcast_object(state)
-    if comm.rank == 0:
-        for name, view in model.named(model.params).items():
-            view[...] = params[name]
-        for name, array in trainer.optimizer.state.items():
-            array[...] = opt[name]
-    comm.broadcast(model.params)
-    for array in trainer.optimizer.state.values():
-        comm.broadcast(array)
-    trainer.optimizer.updates = int(state["optimizer_updates"])
-    trainer.step_count = int(state["step"])
-    return int(state["step"])
+def load_latest(workdir: Path) -> tuple[dict[str, Any], dict[str, np.ndarray], dict[str, np.ndarray]]:
+    """Read and verify the checkpoint ``workdir/checkpoints/latest`` points at: (state, params, optimizer)."""
+    root = workdir / "checkpoints"
+    if not (root / "latest").is_file():
+        raise CheckpointError(f"nothing to resume: no checkpoint under {str(root)!r}")
+    return load(resolve(root))
 
 
-def check_compatible(trainer: Trainer, state: dict[str, Any], params: dict, opt: dict) -> None:
-    """Refuse a checkpoint of another model, optimizer or job trajectory, naming what differs."""
-    model = trainer.model
-    if state.get("job_digest") != trainer.job.digest():
+def check_compatible(ours: TrainingState, state: dict[str, Any], params: dict, opt: dict) -> None:
+    """Refuse a checkpoint (``state``, ``params``, ``opt`` as :func:`load` returns them) that another model,
+    optimizer or job trajectory wrote, naming what differs. ``ours``: the state of the run that resumes."""
+    job = ours.job
+    if state.get("job_digest") != job.digest():
         theirs = state.get("job", {})
-        ours = trainer.job.as_dict()
-        diffs = [f"{s}.{k}" for s in ("model", "data", "optimizer", "run") for k in ours.get(s, {})
-                 if k in theirs.get(s, {}) and theirs[s][k] != ours[s][k]
+        ours_job = job.as_dict()
+        diffs = [f"{s}.{k}" for s in ("model", "data", "optimizer", "run") for k in ours_job.get(s, {})
+                 if k in theirs.get(s, {}) and theirs[s][k] != ours_job[s][k]
                  and k not in ("epochs", "max_steps", "save_every", "keep_checkpoints", "workdir", "threads",
                                "check_every",
                                "health_every", "bucket_mb", "overlap")]
         raise CheckpointError("checkpoint belongs to another job (its job digest differs"
                               + (f"; changed: {', '.join(diffs)}" if diffs else "") + ")")
-    for name, view in model.named(model.params).items():
+    for name, view in ours.params.items():
         if name not in params or params[name].shape != view.shape:
             got = params[name].shape if name in params else "missing"
             raise CheckpointError(f"checkpoint tensor {name} has shape {got}; the model needs {view.shape}")
-    for name, array in trainer.optimizer.state.items():
+    for name, array in ours.optimizer.items():
         if name not in opt or opt[name].shape != array.shape:
             raise CheckpointError(f"checkpoint optimizer state {name!r} is missing or has the wrong shape")
 
 
-def write_final(path: Path, trainer: Trainer) -> None:
+def write_final(path: Path, state: TrainingState) -> None:
     """``final.npz``: W0, b0, …, input standardisation, and the model description as a JSON string."""
-    arrays = model_arrays(trainer)
-    arrays["model_json"] = np.array(json.dumps(trainer.job.as_dict()["model"]))
+    arrays = model_arrays(state)
+    arrays["model_json"] = np.array(json.dumps(state.job.as_dict()["model"]))
     tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
     _write_npz(tmp, arrays)
     os.replace(tmp, path)

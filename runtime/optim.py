@@ -38,16 +38,26 @@ class Optimizer:
         self.state = {name: np.zeros(n_params, dtype=dtype) for name in STATE_NAMES[spec.method]}
         self.updates = 0  # updates applied so far (Adam's t before this update)
 
-    def clip(self, grads: np.ndarray) -> None:
-        """Scale grads so their global L2 norm is at most ``clip_global_norm`` (0 = off, and no pass at all)."""
+    @property
+    def clips(self) -> bool:
+        """True when the global-norm clip is on (``clip_global_norm`` > 0)."""
+        return self.spec.clip_global_norm > 0.0
+
+    def clip(self, grads: np.ndarray, sum_squares: float | None = None) -> None:
+        """Scale grads so the global L2 norm is at most ``clip_global_norm`` (0 = off, and no pass at all).
+
+        ``sum_squares``: Σ g² over the whole gradient, every rank's part included (the exchange strategy's
+        ``sum_squares``) when ``grads`` is only the part this rank updates; by default Σ g² of ``grads``.
+        """
+        if not self.clips:
+            return
         limit = self.spec.clip_global_norm
-        if limit > 0.0:
-            norm = math.sqrt(kernels.sum_squares(grads))
-            if norm > limit:
-                kernels.scale(grads, limit / norm)
+        norm = math.sqrt(kernels.sum_squares(grads) if sum_squares is None else sum_squares)
+        if norm > limit:
+            kernels.scale(grads, limit / norm)
 
     def step(self, params: np.ndarray, grads: np.ndarray, total_steps: int) -> float:
-        """Apply one update in place; returns the learning rate used."""
+        """Apply one update in place to ``params`` (and the state) from ``grads``; returns the learning rate used."""
         s = self.spec
         lr = learning_rate(s, self.updates, total_steps)
         self.updates += 1

@@ -1,7 +1,9 @@
 """Data-parallel training: every rank runs the same step on its shard of each global batch.
 
-Read :meth:`Trainer.step` top to bottom: sample → shard → gather → forward → loss → backward (bucket
-launches) → wait → update. Metrics are summed locally and reduced once per epoch.
+Read :meth:`Trainer.step` top to bottom: sample → gradient (this rank's parts: gather → forward → loss →
+backward, each layer handed to the exchange strategy as it completes; then the strategy finishes the sum over
+ranks) → clip → update → publish. The strategy (``shardmill.parallel.exchange``) is the only place the fast
+and exact modes differ. Metrics are summed per part and reduced once per epoch.
 """
 
 from __future__ import annotations
@@ -24,17 +26,16 @@ from shardmill.data import (
     column_statistics,
     gather,
     read_array,
-    shard,
     split_rows,
     squeeze_labels,
 )
 from shardmill.health import diagnose, warnings
-from shardmill.kernels import exactsum, losses
+from shardmill.kernels import losses
 from shardmill.kernels import optim as kernels_optim
 from shardmill.model import MLP
 from shardmill.optim import Optimizer
 from shardmill.parallel.comm import Comm, agree
-from shardmill.parallel.exchange import GradientExchange
+from shardmill.parallel.exchange import strategy as exchange_strategy
 from shardmill.timing import PHASES, PhaseTimer
 from threadpoolctl import threadpool_limits
 
@@ -104,49 +105,31 @@ def _first_nonfinite(X: np.ndarray, rows: np.ndarray, comm: Comm) -> int:
 
 
 class Trainer:
-    """Owns the model, data, optimizer, exchange and workspaces of one job on one rank."""
+    """Owns the model, data, optimizer, exchange strategy and workspaces of one job on one rank."""
 
     def __init__(self, job: Job, comm: Comm | None = None, dataset: Dataset | None = None) -> None:
         self.job = job
         self.comm = comm or Comm()
         run = job.run
-        P, G = self.comm.size, run.global_batch
-        if G < P:
-            raise JobError(f"`run.global_batch` must be ≥ the number of processes {P}; got {G}")
-        if run.reduction == "exact" and G // run.exact_chunk < P:
-            raise JobError(f"`run.reduction` = 'exact' needs at least one chunk per process: global_batch / "
-                           f"exact_chunk = {G // run.exact_chunk} chunks < {P} processes")
+        Strategy = exchange_strategy(run)
+        Strategy.check(run, self.comm.size)  # before any collective, identically on every rank
         self.model = model_from_job(job)
         self.data = dataset if dataset is not None else load_dataset(job, self.model, self.comm)
-        self.sampler = Sampler(self.data.split.train, G, run.seed)
+        self.sampler = Sampler(self.data.split.train, run.global_batch, run.seed)
         self.optimizer = Optimizer(job.optimizer, self.model.n_params, self.model.dtype)
         self.grads = np.zeros_like(self.model.params)
-        self.exact = run.reduction == "exact"
-        rows = run.exact_chunk if self.exact else -(-G // P)
-        self.ws = self.model.workspace(rows)
-        self.batch_targets = np.zeros((rows,) + self.data.targets.shape[1:], dtype=self.data.targets.dtype)
-        self.exchange = GradientExchange(self.comm, self.model, self.grads, run.bucket_mb, run.overlap)
-        if self.exact:
-            self.chunk_grads = np.zeros_like(self.grads)
-            # A rank with two or more chunks computes its first two into separate buffers and writes their
-            # digits in one pass (exactsum.assign_pair): one read-and-write of the limbs fewer per step.
-            most_chunks = -(-(run.global_batch // run.exact_chunk) // P)
-            self.pair_grads = np.zeros_like(self.grads) if most_chunks >= 2 else None
-            self.limbs = np.zeros((exactsum.LIMBS, self.model.n_params), dtype=np.int64)
-            # Each rank reads back its own contiguous slice of the reduced limbs (reduce-scatter), then the
-            # float gradient is allgathered: half the integer traffic of an allreduce, and 1/P of the read-back.
-            bounds = [block_range(self.model.n_params, r, P) for r in range(P)]
-            self.slice_counts = [hi - lo for lo, hi in bounds]
-            self.slice = slice(*bounds[self.comm.rank])
-            self.slice_limbs = np.zeros((exactsum.LIMBS, self.slice_counts[self.comm.rank]), dtype=np.int64)
-            self.loss_limbs = np.zeros((exactsum.LIMBS, 1), dtype=np.int64)
-            self.loss_value = np.zeros(1, dtype=np.float64)
+        self.ws = self.model.workspace(Strategy.part_rows(run, self.comm.size))
+        self.batch_targets = np.zeros((self.ws.rows,) + self.data.targets.shape[1:], dtype=self.data.targets.dtype)
+        self.exchange = Strategy.from_run(self.comm, self.model, self.grads, run)
         self.step_count = 0  # global steps completed
+        self.learning_rate = job.optimizer.learning_rate  # of the last update (the base rate before any)
         self.total_steps = self.planned_steps()
         # The schedule spans all epochs; run.max_steps only stops early, so a stopped run resumes onto the same curve.
         self.schedule_steps = run.epochs * self.sampler.steps_per_epoch
         self.timer = PhaseTimer()
-        self.sums = np.zeros(3)  # loss sum, correct, counted (local, since the last reduce)
+        self.train_sums = self.exchange.metric_sums(3)  # loss sum, correct, rows since the last epoch record
+        self.part_sums = np.zeros(3)
+        self.last_part_rows = 0  # rows of the part whose activations the workspace holds (for health)
         self.health: list[dict[str, Any]] = []  # diagnostics records not yet written
         if not self.comm.all_equal(self.model.params):
             raise RuntimeError("initial parameters differ across ranks")
@@ -159,19 +142,52 @@ class Trainer:
         np.take(self.data.targets, rows, axis=0, out=self.batch_targets[:rows.size])
         return self.batch_targets
 
-    def compute_shard(self, rows: np.ndarray, grads: np.ndarray, launch: bool) -> float:
-        """Gradient of this rank's rows into ``grads`` (scaled by 1/G); returns the local loss sum."""
+    def step(self, epoch: int, step_in_epoch: int) -> None:
+        """One global step of G samples, identical in effect on every rank."""
+        self.timer.start()
+        rows = self.sampler.batch(epoch, step_in_epoch)  # sample: the G global indices
+        self.gradient(rows)  # shard, gather, forward, loss, backward, exchange: the mean gradient
+        owned, params = self.exchange.owned, self.model.params
+        if self.optimizer.clips:
+            self.optimizer.clip(self.grads[owned], self.exchange.sum_squares())
+        health = self.job.run.health_every and (self.step_count + 1) % self.job.run.health_every == 0
+        before = params.copy() if health else None
+        self.learning_rate = self.optimizer.step(params[owned], self.grads[owned], self.schedule_steps)  # update
+        self.exchange.publish(params)
+        self.timer.lap("update")
+        self.step_count += 1
+        if health:
+            self.health.append(diagnose(self.model, self.ws, self.last_part_rows, self.grads, before, self.comm,
+                                        self.step_count))
+        every = self.job.run.check_every
+        if every and self.step_count % every == 0 and not self.comm.all_equal(params):
+            raise RuntimeError(f"parameters drifted apart across ranks at step {self.step_count}")
+
+    def gradient(self, rows: np.ndarray) -> None:
+        """The mean gradient of the global batch ``rows`` over every rank, into ``grads[exchange.owned]``."""
+        for part, part_grads in self.exchange.parts(rows):
+            self.part_gradient(part, part_grads)
+            self.exchange.add(part_grads)
+            self.timer.lap("backward")
+        self.exchange.finish()
+        self.timer.lap("exchange")
+
+    def part_gradient(self, rows: np.ndarray, grads: np.ndarray) -> float:
+        """Gradient of one part's rows into ``grads`` (scaled by 1/G); returns the part's loss sum.
+
+        Backward tells the exchange as each layer's gradient is complete, so it can start sending.
+        """
         n, G = rows.size, self.job.run.global_batch
         gather(self.data.X, rows, self.data.mean, self.data.inv_std, self.ws.inputs)
         targets = self.gather_targets(rows)
         self.timer.lap("data")
         loss_sum = self.ws.forward_loss(n, targets, 1.0 / G)
-        self.sums += (loss_sum, self.count_correct(n, targets), n)
+        self.part_sums[:] = (loss_sum, self.count_correct(n, targets), n)
+        self.train_sums.add(self.part_sums)
+        self.last_part_rows = n
         self.timer.lap("forward")
         for layer, _ in self.ws.backward(n, grads):
-            if launch:
-                self.exchange.layer_done(layer)
-        self.timer.lap("backward")
+            self.exchange.layer_done(layer)
         return loss_sum
 
     def count_correct(self, n: int, targets: np.ndarray) -> int:
@@ -182,113 +198,24 @@ class Trainer:
             return losses.count_correct_binary(self.ws.O[:n], targets[:n])
         return 0
 
-    def step(self, epoch: int, step_in_epoch: int) -> None:
-        """One global step of G samples, identical in effect on every rank."""
-        self.timer.start()
-        rows = self.sampler.batch(epoch, step_in_epoch)  # sample: the G global indices
-        if self.exact:
-            self.exact_gradient(rows)
-        else:
-            mine = shard(rows, self.comm.rank, self.comm.size)  # shard: contiguous [lo, hi)
-            self.compute_shard(mine, self.grads, launch=True)  # gather, forward, loss, backward + launches
-            self.exchange.wait()  # every bucket reduced: the full-batch mean gradient
-        self.timer.lap("exchange")
-        self.optimizer.clip(self.grads)
-        health = self.job.run.health_every and (self.step_count + 1) % self.job.run.health_every == 0
-        before = self.model.params.copy() if health else None
-        self.optimizer.step(self.model.params, self.grads, self.schedule_steps)  # update
-        self.timer.lap("update")
-        self.step_count += 1
-        if health:
-            n = self.job.run.exact_chunk if self.exact else shard(rows, self.comm.rank, self.comm.size).size
-            self.health.append(diagnose(self.model, self.ws, n, self.grads, before, self.comm, self.step_count))
-        every = self.job.run.check_every
-        if every and self.step_count % every == 0 and not self.comm.all_equal(self.model.params):
-            raise RuntimeError(f"parameters drifted apart across ranks at step {self.step_count}")
-
-    def exact_gradient(self, rows: np.ndarray) -> None:
-        """Exact mode: fixed chunks of the global batch, each gradient accumulated exactly (fixed point).
-
-        Chunk k is rows[k·c:(k+1)·c] whatever P is, so every chunk's gradient has the same bits on any rank;
-        integer sums are associative, so the reduced gradient does not depend on P or on reduction order.
-        """
-        c = self.job.run.exact_chunk
-        lo, hi = block_range(rows.size // c, self.comm.rank, self.comm.size)  # hi > lo: checked in __init__
-
-        def chunk_gradient(k: int, out: np.ndarray) -> None:
-            self.loss_value[0] = self.compute_shard(rows[k * c:(k + 1) * c], out, launch=False)
-            exactsum.accumulate(self.loss_value, self.loss_limbs)  # the chunk's loss sum, kept until take_train_sums
-
-        first = lo
-        if hi - lo >= 2:  # the first two chunks overwrite the limbs in one pass
-            chunk_gradient(lo, self.chunk_grads)
-            chunk_gradient(lo + 1, self.pair_grads)
-            self.check_range(exactsum.assign_pair(self.chunk_grads, self.pair_grads, self.limbs))
-            self.timer.lap("backward")
-            first = lo + 2
-        for k in range(first, hi):
-            chunk_gradient(k, self.chunk_grads)
-            # A first chunk overwrites the limbs: no zeroing pass, no read.
-            self.check_range(exactsum.accumulate(self.chunk_grads, self.limbs, replace=k == lo))
-            self.timer.lap("backward")
-        if self.comm.size == 1:
-            exactsum.to_float(self.limbs, self.grads)
-            return
-        self.reduce_scatter_limbs()
-        exactsum.to_float(self.slice_limbs, self.grads[self.slice])
-        self.comm.allgather(self.grads, self.slice_counts)
-
-    def reduce_scatter_limbs(self) -> None:
-        """This rank's slice of the limbs summed over ranks, into ``slice_limbs``.
-
-        One call per limb row: MPICH slows sharply on single messages past ~22 MB.
-        """
-        for limb, mine in zip(self.limbs, self.slice_limbs, strict=True):
-            self.comm.reduce_scatter_sum(limb, mine, self.slice_counts)
-
-    @staticmethod
-    def check_range(largest: float) -> None:
-        """Stop on a chunk gradient the exact accumulator cannot hold (|g| ≥ 2^31, inf or NaN)."""
-        if not largest < exactsum.MAX_ABS:
-            raise FloatingPointError(f"gradient element {largest!r} is outside the exact accumulator's "
-                                     f"range (|g| < 2^31)")
-
     def take_train_sums(self) -> np.ndarray:
         """The training (loss sum, correct, rows) since the last call, summed over ranks; resets them.
 
-        In exact mode the loss sum is the exact sum of the chunks' loss sums, so it does not depend on P;
-        the counts are integers held in float64, exact below 2**53 in any order.
+        Summed as the exchange strategy sums metrics: in exact mode exactly, per fixed chunk, so the logged
+        losses do not depend on P.
         """
-        sums = self.sums.copy()
-        self.comm.allreduce_sum(sums)
-        self.sums[:] = 0.0
-        if self.exact:
-            self.reduce_exact(self.loss_limbs, sums[:1])
-            self.loss_limbs.fill(0)
-        return sums
-
-    def reduce_exact(self, limbs: np.ndarray, out: np.ndarray) -> None:
-        """Sum a small (LIMBS, k) accumulator over ranks, in place, and write its k values into ``out``."""
-        self.comm.allreduce_sum(limbs.reshape(-1))
-        exactsum.to_float(limbs, out)
+        return self.train_sums.reduce()
 
     def evaluate(self, rows: np.ndarray) -> dict[str, float]:
         """Loss and accuracy (or RMSE) over ``rows``, reduced over ranks.
 
-        Fast mode: each rank takes a contiguous part. Exact mode: the rows are cut into chunks of
-        ``exact_chunk`` whatever P is, each rank takes a contiguous run of chunks, and the chunks' float64
-        sums are added exactly, so the result has the same bits for every P.
+        Each rank evaluates the part the exchange strategy gives it (exact mode: whole chunks of
+        ``exact_chunk`` rows whatever P is, summed exactly, so the result has the same bits for every P).
         """
         width = self.ws.rows
-        if self.exact:
-            lo, hi = block_range(-(-rows.size // width), self.comm.rank, self.comm.size)
-            part = rows[lo * width:hi * width]
-        else:
-            lo, hi = block_range(rows.size, self.comm.rank, self.comm.size)
-            part = rows[lo:hi]
-        sums = np.zeros(3)  # loss sum, correct or squared-error sum, rows
-        exact_sums = np.zeros((exactsum.LIMBS, 2), dtype=np.int64) if self.exact else None
-        chunk_sums = np.zeros(2)  # this chunk's loss sum and correct or squared-error sum
+        part = self.exchange.evaluation_rows(rows)
+        sums = self.exchange.metric_sums(3)  # loss sum, correct or squared-error sum, rows
+        chunk_sums = np.zeros(3)
         for start in range(0, part.size, width):
             chunk = part[start:start + width]
             n = chunk.size
@@ -299,15 +226,9 @@ class Trainer:
                 chunk_sums[1] = losses.squared_error_sum(self.ws.O[:n], targets[:n])
             else:
                 chunk_sums[1] = self.count_correct(n, targets)
-            if exact_sums is not None:
-                exactsum.accumulate(chunk_sums, exact_sums)
-            else:
-                sums[:2] += chunk_sums
-            sums[2] += n
-        self.comm.allreduce_sum(sums)
-        if exact_sums is not None:
-            self.reduce_exact(exact_sums, sums[:2])
-        return self.summarise(sums)
+            chunk_sums[2] = n
+            sums.add(chunk_sums)
+        return self.summarise(sums.reduce())
 
     def summarise(self, sums: np.ndarray) -> dict[str, float]:
         n = max(sums[2], 1.0)
@@ -330,6 +251,50 @@ class Trainer:
         mean = total / self.comm.size
         return dict(zip(PHASES, map(float, high), strict=True)), dict(zip(PHASES, map(float, mean), strict=True))
 
+    def training_state(self, step: int) -> checkpoint.TrainingState:
+        """The plain state a checkpoint holds (views of the live arrays, not copies)."""
+        return checkpoint.TrainingState(
+            params=self.model.named(self.model.params), input_mean=self.data.mean, input_inv_std=self.data.inv_std,
+            optimizer=self.optimizer.state, optimizer_updates=self.optimizer.updates, step=step,
+            steps_per_epoch=self.sampler.steps_per_epoch, processes=self.comm.size, job=self.job,
+            layers=self.model.sizes, dtype=self.model.dtype.name)
+
+    def save(self, step: int) -> Path | None:
+        """Checkpoint ``step`` (rank 0 writes; parameters are identical on every rank); returns its folder."""
+        if self.comm.rank != 0:
+            return None
+        return checkpoint.save(self.training_state(step), self.job.workdir / "checkpoints",
+                               self.job.run.keep_checkpoints)
+
+    def resume(self) -> int:
+        """Restore params, optimizer state and position from ``workdir/checkpoints/latest``; returns the step.
+
+        Rank 0 reads and verifies; every rank receives the same arrays by broadcast (node-local disks work).
+        Any refusal is raised identically on all ranks.
+        """
+        comm, model = self.comm, self.model
+        error: Exception | None = None
+        state: dict[str, Any] | None = None
+        if comm.rank == 0:
+            try:
+                state, params, opt = checkpoint.load_latest(self.job.workdir)
+                checkpoint.check_compatible(self.training_state(0), state, params, opt)
+            except checkpoint.CheckpointError as err:
+                error = err
+        agree(comm, error)
+        state = comm.broadcast_object(state)
+        if comm.rank == 0:
+            for name, view in model.named(model.params).items():
+                view[...] = params[name]
+            for name, array in self.optimizer.state.items():
+                array[...] = opt[name]
+        comm.broadcast(model.params)
+        for array in self.optimizer.state.values():
+            comm.broadcast(array)
+        self.optimizer.updates = int(state["optimizer_updates"])
+        self.step_count = int(state["step"])
+        return self.step_count
+
 
 def warm_up_kernels(trainer: Trainer) -> float:
     """Compile (or load from Numba's disk cache) every kernel the step uses; rank 0 first, then the others.
@@ -350,15 +315,10 @@ def warm_up_kernels(trainer: Trainer) -> float:
         for _ in trainer.ws.backward(rows.size, grads):
             pass
         scratch = Optimizer(trainer.job.optimizer, grads.size, grads.dtype)
-        scratch.clip(grads)
         kernels_optim.sum_squares(grads)
         kernels_optim.scale(grads, 1.0)
         scratch.step(trainer.model.params.copy(), grads, 1)
-        if trainer.exact:
-            limbs = np.zeros((exactsum.LIMBS, grads.size), dtype=np.int64)
-            exactsum.accumulate(grads, limbs)
-            exactsum.accumulate(np.zeros(1), limbs[:, :1].copy())
-            exactsum.to_float(limbs, grads)
+        trainer.exchange.warm_up()
 
     if comm.rank == 0:
         run()
@@ -387,9 +347,7 @@ def _train_loop(trainer: Trainer, resume: bool, progress: bool) -> dict[str, Any
     workdir = job.workdir
     lead = comm.rank == 0
     compile_s = warm_up_kernels(trainer)
-    start_step = 0
-    if resume:
-        start_step = checkpoint.resume(trainer)
+    start_step = trainer.resume() if resume else 0
     if lead:
         workdir.mkdir(parents=True, exist_ok=True)
     steps_per_epoch = trainer.sampler.steps_per_epoch
@@ -411,7 +369,7 @@ def _train_loop(trainer: Trainer, resume: bool, progress: bool) -> dict[str, Any
         if trainer.health:
             _write_health(trainer, metrics_path, lead)
         if job.run.save_every and step % job.run.save_every == 0 and step < total:
-            checkpoint.save(trainer, step)
+            trainer.save(step)
         if end_of_epoch:
             seconds = time.perf_counter() - epoch_begin
             record = _epoch_record(trainer, epoch, step, epoch_steps, seconds, compile_s)
@@ -426,9 +384,9 @@ def _train_loop(trainer: Trainer, resume: bool, progress: bool) -> dict[str, Any
             epoch_steps = 0
     if bar is not None:
         bar.close()
-    checkpoint.save(trainer, step)
+    trainer.save(step)
     if lead:
-        checkpoint.write_final(workdir / "final.npz", trainer)
+        checkpoint.write_final(workdir / "final.npz", trainer.training_state(step))
     return {"model": model, "history": history, "steps": step, "workdir": str(workdir),
             "processes": comm.size, "compile_s": compile_s}
 
@@ -467,7 +425,7 @@ def _epoch_record(trainer: Trainer, epoch: int, step: int, steps: int, seconds: 
         "global_batch": job.run.global_batch,
         "reduction": job.run.reduction,
         "train": train_metrics,
-        "learning_rate": _current_lr(trainer),
+        "learning_rate": trainer.learning_rate,
         "seconds": float(seconds_max[0]),
         "samples_per_s": float(steps * job.run.global_batch / max(seconds_max[0], 1e-12)),
         "phase_seconds_max": phase_max,
@@ -477,13 +435,4 @@ def _epoch_record(trainer: Trainer, epoch: int, step: int, steps: int, seconds: 
     if trainer.data.split.validation.size:
         record["validation"] = trainer.evaluate(trainer.data.split.validation)
     return record
-
-
-def _current_lr(trainer: Trainer) -> float:
-    """The learning rate of the last update (the base rate before any update)."""
-    from shardmill.optim import learning_rate
-
-    if trainer.optimizer.updates == 0:
-        return trainer.optimizer.spec.learning_rate
-    return learning_rate(trainer.optimizer.spec, trainer.optimizer.updates - 1, trainer.schedule_steps)
 

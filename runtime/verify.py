@@ -24,7 +24,7 @@ from typing import Any
 
 import numpy as np
 from shardmill.config import Job, load_job
-from shardmill.data import block_range, gather, shard
+from shardmill.data import gather
 from shardmill.kernels import activations as act
 from shardmill.parallel.comm import Comm
 from shardmill.trainer import Trainer, warm_up_kernels
@@ -39,25 +39,10 @@ def gamma(k: int, dtype: np.dtype) -> float:
     return k * u / (1.0 - k * u)
 
 
-def shard_bounds(trainer: Trainer) -> list[tuple[int, int]]:
-    """The [lo, hi) row ranges of the global batch that the ranks compute, in rank order.
-
-    Fast mode: one contiguous shard per rank. Exact mode: the fixed chunks (their shapes do not depend on P).
-    """
-    G, P = trainer.job.run.global_batch, trainer.comm.size
-    if trainer.exact:
-        c = trainer.job.run.exact_chunk
-        return [(k * c, (k + 1) * c) for k in range(G // c)]
-    return [block_range(G, r, P) for r in range(P)]
-
-
 def parallel_gradient(trainer: Trainer, rows: np.ndarray, tamper: Tamper | None = None) -> np.ndarray:
     """The reduced gradient of one global batch exactly as a training step computes it (a new array)."""
-    if trainer.exact:
-        trainer.exact_gradient(rows)
-    else:
-        trainer.compute_shard(shard(rows, trainer.comm.rank, trainer.comm.size), trainer.grads, launch=True)
-        trainer.exchange.wait()
+    trainer.timer.start()
+    trainer.gradient(rows)
     if tamper is not None:
         tamper(trainer.grads, trainer.comm)
     return trainer.grads.copy()
@@ -73,7 +58,9 @@ def serial_gradient(trainer: Trainer, rows: np.ndarray) -> tuple[np.ndarray, np.
     A_full = [np.zeros((G, model.sizes[l]), dtype=model.dtype) for l in range(L)]
     dZ_full = [np.zeros((G, model.sizes[l + 1]), dtype=model.dtype) for l in range(L)]
     scratch = np.zeros_like(trainer.grads)
-    for lo, hi in shard_bounds(trainer):
+    # The parts the ranks computed (fast: one shard per rank; exact: the fixed chunks, whose shapes do not depend
+    # on P), recomputed here with the same shapes.
+    for lo, hi in trainer.exchange.part_bounds(G):
         part = rows[lo:hi]
         n = part.size
         ws = trainer.model.workspace(trainer.ws.rows)

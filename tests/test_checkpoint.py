@@ -177,7 +177,7 @@ def damaged(runs: dict, data_dir: Path, tmp_path: Path):
 def _refused_by_api(raw: dict, pattern: str) -> None:
     trainer = Trainer(job_from_dict(raw))
     with pytest.raises(CheckpointError, match=pattern):
-        checkpoint.resume(trainer)
+        trainer.resume()
 
 
 def _refused_by_cli(folder: Path, raw: dict, fragment: str, processes: int = 1) -> None:
@@ -186,7 +186,7 @@ def _refused_by_cli(folder: Path, raw: dict, fragment: str, processes: int = 1) 
         proc = run_cli(["train", str(job), "--resume", "--no-progress"], timeout=120)
     else:
         proc = run_mpi(processes, ["-m", "shardmill", "train", str(job), "--resume", "--no-progress"], timeout=120)
-    assert proc.returncode == 2, proc.stderr[-3000:]  # user errors exit 2 (STYLE.md)
+    assert proc.returncode == 2, proc.stderr[-3000:]  # user errors exit 2 (DEVELOPERS.md, conventions)
     assert fragment in proc.stderr
     assert proc.stderr.count("shardmill: error:") == 1 and "Traceback" not in proc.stderr
 

@@ -105,7 +105,7 @@ def epoch_metrics(workdir: Path) -> list[dict]:
 @pytest.mark.parametrize("config", CONFIGS)
 def test_logged_losses_and_accuracies_identical_for_every_process_count(runs: dict, data_dir: Path,
                                                                          config: str) -> None:
-    """Exact mode sums loss values exactly too (DESIGN, exactness model), so the log does not depend on P.
+    """Exact mode sums loss values exactly too (README, fast and exact reduction): the log does not depend on P.
 
     The floats are compared with ==, not a tolerance: a fast float sum over P-dependent groups of rows differs
     in the last bits from one P to another.
@@ -147,7 +147,7 @@ def test_batch_not_a_multiple_of_the_chunk_is_refused(data_dir: Path) -> None:
     folder.mkdir()
     job = write_job(folder, raw["model"], raw["run"], raw["optimizer"], raw["data"])
     proc = run_cli(["train", str(job), "--no-progress"], timeout=60)
-    assert proc.returncode == 2  # user errors exit 2 without a traceback (STYLE.md)
+    assert proc.returncode == 2  # user errors exit 2 without a traceback (DEVELOPERS.md, conventions)
     assert "must be a multiple of `run.exact_chunk` = 12" in proc.stderr and "got 50" in proc.stderr
     assert "Traceback" not in proc.stderr
 

@@ -1,9 +1,9 @@
 """Failures under a real mpiexec end the whole job quickly, non-zero, with a message that names the problem.
 
-A data-parallel job must never leave ranks waiting in a collective for a partner that is gone (DESIGN,
-Communication: any uncaught exception on any rank ends the whole job). Each test measures the wall time of
+A data-parallel job must never leave ranks waiting in a collective for a partner that is gone (DEVELOPERS.md,
+conventions: any uncaught exception on any rank ends the whole job). Each test measures the wall time of
 the launcher and requires it under 30 s; ``run_mpi`` also has a hard timeout, so a hang fails instead of
-blocking the suite. User errors exit 2 with one line (STYLE, validation that tells you what to type).
+blocking the suite. User errors exit 2 with one line (DEVELOPERS.md, conventions).
 """
 
 from __future__ import annotations
@@ -62,7 +62,7 @@ def test_non_finite_row_is_named_and_ends_the_job(tmp_path, where, standardize):
     assert seconds < LIMIT_S
     assert proc.returncode == 2, proc.stderr[-2000:]  # a data error is the user's: exit 2
     assert f"row {row} " in proc.stderr and "non-finite" in proc.stderr, proc.stderr[-2000:]
-    assert "Traceback" not in proc.stderr  # one line for user errors (STYLE)
+    assert "Traceback" not in proc.stderr  # one line for user errors (DEVELOPERS.md, conventions)
 
 
 def test_non_finite_value_appearing_mid_run_on_one_rank_ends_the_job(tmp_path):

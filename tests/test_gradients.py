@@ -6,7 +6,7 @@ deltas of squared error with a sigmoid output and of cross-entropy; (d) mean-ove
 float64, and ``predict`` against a NumPy forward pass.
 
 The flat layout is read from the model's public views (``weights[l]``, ``biases[l]`` are views into ``params``);
-the gradient is cut at the same offsets, which checks "grad: flat, same layout as params" (DESIGN.md).
+the gradient is cut at the same offsets, which checks "grad: flat, same layout as params" (DEVELOPERS.md).
 """
 
 from __future__ import annotations

@@ -143,7 +143,7 @@ def test_gradient_batches_and_standardisation_do_not_depend_on_P(runs, data_dir)
         assert np.allclose(first["mean"], train.mean(axis=0), rtol=1e-12, atol=1e-14)
         assert np.allclose(first["inv_std"], 1.0 / train.std(axis=0), rtol=1e-12, atol=0)
         for P in RANKS[1:]:
-            assert runs[P][case]["rows"] == first["rows"]  # the sampler ignores P (DESIGN: same global batches)
+            assert runs[P][case]["rows"] == first["rows"]  # the sampler ignores P (DEVELOPERS.md, the step)
             assert runs[P][case]["mean"] == first["mean"]  # exact statistics: bit-identical for every P
             assert runs[P][case]["inv_std"] == first["inv_std"]
 
@@ -180,7 +180,7 @@ def test_serial_training_matches_independent_adam(runs, data_dir, case):
 @pytest.mark.parametrize("P", [2, 3, 4])
 def test_fast_mode_weights_after_k_steps_match_serial(runs, P):
     serial, parallel = runs[1]["train_fast"], runs[P]["train_fast"]
-    assert parallel["batches"] == serial["batches"]  # same global batches for every P (DESIGN data flow)
+    assert parallel["batches"] == serial["batches"]  # same global batches for every P (DEVELOPERS.md, the step)
     assert parallel["params0"] == serial["params0"]
     # Only the summation order of the allreduce differs (Higham 2002, §4.2): far below 1e-10 after 5 steps.
     assert relative(flat(parallel["params"]), flat(serial["params"])) < 1e-10
@@ -188,11 +188,11 @@ def test_fast_mode_weights_after_k_steps_match_serial(runs, P):
 
 def test_exact_mode_weights_are_bit_identical_for_every_P(runs):
     digests = {P: runs[P]["train_exact"]["sha256_by_rank"][0] for P in RANKS}
-    # Order-independent exact accumulation (DESIGN exactness model): one SHA-256 for P = 1, 2, 3, 4.
+    # Order-independent exact accumulation (README, fast and exact reduction): one SHA-256 for P = 1, 2, 3, 4.
     assert len(set(digests.values())) == 1, digests
     serial = np.asarray(flat(runs[1]["train_exact"]["params"]))
     assert np.array_equal(flat(runs[4]["train_exact"]["params"]), serial)
-    # the digest is the SHA-256 of the flat float64 params, laid out last layer first, W before b (DESIGN)
+    # the digest is the SHA-256 of the flat float64 params, last layer first, W before b (DEVELOPERS.md, the step)
     named = runs[1]["train_exact"]["params"]
     layout = [np.asarray(named[f"{k}{l}"], dtype=np.float64).ravel() for l in reversed(range(len(named) // 2))
               for k in ("W", "b")]
@@ -204,7 +204,7 @@ def test_exact_mode_weights_are_bit_identical_for_every_P(runs):
 def test_parameters_identical_on_every_rank(runs, case, P):
     digests = runs[P][case]["sha256_by_rank"]
     assert len(digests) == P
-    assert len(set(digests)) == 1, digests  # DESIGN: every rank applies the same update to the same gradient
+    assert len(set(digests)) == 1, digests  # DEVELOPERS.md, the step: same update everywhere
 
 
 @pytest.mark.parametrize("P", [2, 3, 4])
@@ -266,7 +266,7 @@ def test_cli_runs_agree_bit_for_bit_with_one_process(cli_runs):
     assert sorted(arrays["serial"]) == ["W0", "W1", "b0", "b1"]
     for name in ("ranks", "mpiexec"):
         for key, value in arrays["serial"].items():
-            # exact reduction (DESIGN exactness model); check_every = 1 also passed on every step of this run
+            # exact reduction (README, fast and exact reduction); check_every = 1 also passed on every step of this run
             assert np.array_equal(arrays[name][key], value), (name, key)
 
 

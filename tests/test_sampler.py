@@ -1,6 +1,6 @@
 """The sampler and sharding: the same global batches for every process count P (no MPI needed).
 
-Properties (DESIGN, one training step): batch s of an epoch is the same G rows whatever P is; rank r takes a
+Properties (DEVELOPERS.md, the step): batch s of an epoch is the same G rows whatever P is; rank r takes a
 contiguous slice of it; slices differ in size by at most one; an epoch visits every training row at most
 once. Sizes are compared with ``numpy.array_split``, an independent block distribution.
 """
@@ -56,7 +56,7 @@ def test_an_epoch_is_a_permutation_of_the_training_rows_without_repeats(setup):
     rows, G, seed, epoch = setup
     sampler = Sampler(rows, G, seed)
     spe = sampler.steps_per_epoch
-    assert spe == rows.size // G  # the last partial batch is dropped (DESIGN data flow)
+    assert spe == rows.size // G  # the last partial batch is dropped (DEVELOPERS.md, the step)
     seen = np.concatenate([sampler.batch(epoch, s) for s in range(spe)])
     assert seen.size == spe * G
     assert np.unique(seen).size == seen.size  # no row twice in one epoch

@@ -1,24 +1,154 @@
-"""The gradient exchange: in-place SUM allreduce of contiguous buckets of the flat gradient buffer.
+"""Exchange strategies: how a step turns this rank's rows into the summed gradient every rank holds.
 
-Layers are laid out last layer first, so backward fills ``grads`` from offset 0 upward. A bucket is a run
-of whole layers of at least ``bucket_mb`` megabytes; it is started (non-blocking) the moment backward has
-finished its last layer, and all buckets are waited for before the update. With ``overlap`` off, one
-blocking allreduce of the whole buffer follows backward instead (for comparison in benchmarks).
+The step calls one interface and does not know the mode (``Trainer.gradient`` and ``Trainer.step``)::
+
+    for part, out in exchange.parts(rows):   # this rank's share of the global batch, and where its gradient goes
+        forward, loss, backward into out      # calling exchange.layer_done(l) as each layer's gradient is complete
+        exchange.add(out)                     # the part's gradient joins this rank's sum
+    exchange.finish()                         # now grads[exchange.owned] holds the global batch's mean gradient
+    clip with exchange.sum_squares(); update params[exchange.owned]
+    exchange.publish(params)                  # every rank holds every parameter again
+
+:class:`BucketExchange` (``run.reduction = "fast"``): one part, this rank's contiguous shard, written straight into
+``grads``; contiguous buckets of whole layers are summed by non-blocking allreduces started as backward finishes
+them. :class:`ExactExchange` (``"exact"``): fixed chunks of the batch, each chunk's gradient added exactly in
+fixed point, so the sum has the same bits for every P. Both leave the whole gradient on every rank, so ``owned`` is
+everything and ``publish`` has nothing to do. A strategy that updates only its own slice fits the same interface:
+``finish`` reduce-scatters, ``owned`` is the slice, ``sum_squares`` adds the slices' sums over ranks, and
+``publish`` allgathers the updated parameters.
+
+Each strategy also says how metrics are summed (:meth:`Exchange.metric_sums`) and which rows a rank evaluates
+(:meth:`Exchange.evaluation_rows`), so that exact mode's logged losses do not depend on P either.
 """
 
 from __future__ import annotations
 
+from collections.abc import Iterator
+
 import numpy as np
+from shardmill.config import JobError, RunSpec
+from shardmill.data import block_range, shard
+from shardmill.kernels import exactsum
+from shardmill.kernels import optim as kernels_optim
 from shardmill.model import MLP
 from shardmill.parallel.comm import Comm
 
 
-class GradientExchange:
-    """Buckets of ``grads`` (a flat array with the params layout) and their in-flight requests."""
+class FloatSums:
+    """Per-part metric sums (k float64 values) added on this rank, summed over ranks by :meth:`reduce`."""
+
+    def __init__(self, comm: Comm, k: int) -> None:
+        self.comm = comm
+        self.values = np.zeros(k)
+
+    def add(self, values: np.ndarray) -> None:
+        """Add one part's sums, (k,) float64."""
+        self.values += values
+
+    def reduce(self) -> np.ndarray:
+        """The sums since the last call over every part of every rank, (k,) float64; starts again from zero."""
+        total = self.comm.allreduce_sum(self.values.copy())
+        self.values[:] = 0.0
+        return total
+
+
+class ExactSums(FloatSums):
+    """Per-part metric sums added exactly (fixed point), so the total has the same bits whatever P is."""
+
+    def __init__(self, comm: Comm, k: int) -> None:
+        super().__init__(comm, k)
+        self.limbs = np.zeros((exactsum.LIMBS, k), dtype=np.int64)
+
+    def add(self, values: np.ndarray) -> None:
+        exactsum.accumulate(values, self.limbs)
+
+    def reduce(self) -> np.ndarray:
+        self.comm.allreduce_sum(self.limbs.reshape(-1))
+        exactsum.to_float(self.limbs, self.values)
+        self.limbs.fill(0)
+        total = self.values.copy()
+        self.values[:] = 0.0
+        return total
+
+
+class Exchange:
+    """The interface the step calls; the defaults are those of a strategy that leaves the whole gradient everywhere.
+
+    ``grads`` is the flat gradient buffer with the params layout, (n_params,) in the model's dtype.
+    """
+
+    def __init__(self, comm: Comm, model: MLP, grads: np.ndarray) -> None:
+        self.comm = comm
+        self.model = model
+        self.grads = grads
+        self.owned = slice(0, grads.size)  # the parameters this rank updates
+
+    @classmethod
+    def from_run(cls, comm: Comm, model: MLP, grads: np.ndarray, run: RunSpec) -> Exchange:
+        """The strategy with the settings of a job's ``[run]`` table."""
+        raise NotImplementedError
+
+    @classmethod
+    def check(cls, run: RunSpec, processes: int) -> None:
+        """Raise JobError, identically on every rank, if the job cannot run on ``processes`` ranks."""
+        if run.global_batch < processes:
+            raise JobError(f"`run.global_batch` must be ≥ the number of processes {processes}; "
+                           f"got {run.global_batch}")
+
+    @staticmethod
+    def part_rows(run: RunSpec, processes: int) -> int:
+        """The most rows of one part: the batch size the workspaces are built for."""
+        raise NotImplementedError
+
+    def part_bounds(self, batch: int) -> list[tuple[int, int]]:
+        """[lo, hi) of every part of a global batch of ``batch`` rows, over all ranks in rank order."""
+        raise NotImplementedError
+
+    def parts(self, rows: np.ndarray) -> Iterator[tuple[np.ndarray, np.ndarray]]:
+        """(part rows, gradient buffer) for each part of this rank's share of the global batch ``rows``."""
+        raise NotImplementedError
+
+    def layer_done(self, layer: int) -> None:
+        """Backward has finished ``layer`` of the current part."""
+
+    def add(self, part_grads: np.ndarray) -> None:
+        """The current part's gradient, complete in ``part_grads``, joins this rank's sum."""
+
+    def finish(self) -> None:
+        """Return once ``grads[owned]`` holds the global batch's mean gradient, summed over ranks."""
+        raise NotImplementedError
+
+    def sum_squares(self) -> float:
+        """Σ g² over the whole reduced gradient (for the global-norm clip), the same on every rank."""
+        return kernels_optim.sum_squares(self.grads[self.owned])
+
+    def publish(self, params: np.ndarray) -> None:
+        """After the update of ``params[owned]``: every rank holds every parameter."""
+
+    def metric_sums(self, k: int) -> FloatSums:
+        """An accumulator of k per-part metric sums (loss, counts), summed over ranks."""
+        return FloatSums(self.comm, k)
+
+    def evaluation_rows(self, rows: np.ndarray) -> np.ndarray:
+        """The rows of an evaluation set that this rank evaluates (a contiguous run of ``rows``)."""
+        lo, hi = block_range(rows.size, self.comm.rank, self.comm.size)
+        return rows[lo:hi]
+
+    def warm_up(self) -> None:
+        """Compile (or load from Numba's cache) the kernels this strategy runs, on scratch buffers."""
+
+
+class BucketExchange(Exchange):
+    """Fast mode: this rank's shard into ``grads``; buckets of whole layers allreduced as backward finishes them.
+
+    Layers are laid out last layer first, so backward fills ``grads`` from offset 0 upward. A bucket is a run of
+    whole layers of at least ``bucket_mb`` megabytes; its non-blocking in-place SUM allreduce starts the moment
+    backward has finished its last layer, and :meth:`finish` waits for them all. With ``overlap`` off, one
+    blocking allreduce of the whole buffer runs in :meth:`finish` instead (for comparison in benchmarks).
+    """
 
     def __init__(self, comm: Comm, model: MLP, grads: np.ndarray, bucket_mb: float, overlap: bool = True) -> None:
-        self.comm = comm
-        self.grads = grads
+        super().__init__(comm, model, grads)
         self.overlap = overlap
         limit = bucket_mb * 1e6
         self.buckets: list[tuple[int, int]] = []  # (start, stop) element offsets
@@ -32,16 +162,158 @@ class GradientExchange:
                 start = stop
         self._requests: list = []
 
+    @classmethod
+    def from_run(cls, comm: Comm, model: MLP, grads: np.ndarray, run: RunSpec) -> BucketExchange:
+        return cls(comm, model, grads, run.bucket_mb, run.overlap)
+
+    @staticmethod
+    def part_rows(run: RunSpec, processes: int) -> int:
+        return -(-run.global_batch // processes)
+
+    def part_bounds(self, batch: int) -> list[tuple[int, int]]:
+        return [block_range(batch, r, self.comm.size) for r in range(self.comm.size)]
+
+    def parts(self, rows: np.ndarray) -> Iterator[tuple[np.ndarray, np.ndarray]]:
+        yield shard(rows, self.comm.rank, self.comm.size), self.grads  # contiguous [lo, hi)
+
     def layer_done(self, layer: int) -> None:
-        """Backward has finished ``layer``: start the allreduce of the bucket it completes, if any."""
+        """Start the allreduce of the bucket ``layer`` completes, if any."""
         if self.overlap and layer in self._closing:
             start, stop = self.buckets[self._closing[layer]]
             self._requests.append(self.comm.start_allreduce_sum(self.grads[start:stop]))
 
-    def wait(self) -> None:
-        """Return once every bucket is reduced (or run the single blocking allreduce without overlap)."""
+    def finish(self) -> None:
+        """Wait for every bucket (or run the single blocking allreduce without overlap)."""
         if self.overlap:
             self.comm.wait(self._requests)
             self._requests.clear()
         else:
             self.comm.allreduce_sum(self.grads)
+
+
+class ExactExchange(Exchange):
+    """Exact mode: fixed chunks of the global batch, each chunk's gradient accumulated exactly in fixed point.
+
+    Chunk k is rows[k·c:(k+1)·c] whatever P is, so every chunk's gradient has the same bits on any rank; each rank
+    takes a contiguous run of chunks. Integer sums are associative, so the reduced gradient depends neither on P
+    nor on the order of reduction. The limbs (3 × 40-bit int64 per value, resolution 2⁻⁸⁸, |g| < 2³¹) are
+    reduce-scattered; each rank reads back its own contiguous slice to floating point, and the float gradient is
+    allgathered: half the integer traffic of an allreduce, and 1/P of the read-back.
+    """
+
+    def __init__(self, comm: Comm, model: MLP, grads: np.ndarray, chunk: int, global_batch: int) -> None:
+        super().__init__(comm, model, grads)
+        P = comm.size
+        self.chunk = chunk
+        self.chunk_grads = np.zeros_like(grads)
+        self.first, self.stop = block_range(global_batch // chunk, comm.rank, P)  # this rank's chunks
+        # A rank with two or more chunks computes its first two into separate buffers and writes their digits
+        # in one pass (exactsum.assign_pair): one read-and-write of the limbs fewer per step.
+        most_chunks = -(-(global_batch // chunk) // P)
+        self.pair_grads = np.zeros_like(grads) if most_chunks >= 2 else None
+        self.limbs = np.zeros((exactsum.LIMBS, grads.size), dtype=np.int64)
+        bounds = [block_range(grads.size, r, P) for r in range(P)]
+        self.slice_counts = [hi - lo for lo, hi in bounds]
+        self.slice = slice(*bounds[comm.rank])  # the part of the sum this rank reads back
+        self.slice_limbs = np.zeros((exactsum.LIMBS, self.slice_counts[comm.rank]), dtype=np.int64)
+        self._current = self.first
+
+    @classmethod
+    def from_run(cls, comm: Comm, model: MLP, grads: np.ndarray, run: RunSpec) -> ExactExchange:
+        return cls(comm, model, grads, run.exact_chunk, run.global_batch)
+
+    @classmethod
+    def check(cls, run: RunSpec, processes: int) -> None:
+        super().check(run, processes)
+        if run.global_batch // run.exact_chunk < processes:
+            raise JobError(f"`run.reduction` = 'exact' needs at least one chunk per process: global_batch / "
+                           f"exact_chunk = {run.global_batch // run.exact_chunk} chunks < {processes} processes")
+
+    @staticmethod
+    def part_rows(run: RunSpec, processes: int) -> int:
+        return run.exact_chunk
+
+    def part_bounds(self, batch: int) -> list[tuple[int, int]]:
+        c = self.chunk
+        return [(k * c, (k + 1) * c) for k in range(batch // c)]
+
+    def _paired(self, k: int) -> bool:
+        """True for this rank's first two chunks when it has two or more: they go into the limbs in one pass."""
+        return self.pair_grads is not None and self.stop - self.first >= 2 and k - self.first < 2
+
+    def parts(self, rows: np.ndarray) -> Iterator[tuple[np.ndarray, np.ndarray]]:
+        c = self.chunk
+        for k in range(self.first, self.stop):
+            self._current = k
+            out = self.pair_grads if self._paired(k) and k == self.first + 1 else self.chunk_grads
+            yield rows[k * c:(k + 1) * c], out
+
+    def add(self, part_grads: np.ndarray) -> None:
+        k = self._current
+        if self._paired(k):
+            if k == self.first + 1:
+                self.check_range(exactsum.assign_pair(self.chunk_grads, self.pair_grads, self.limbs))
+            return  # the first of a pair waits for the second
+        # The first chunk overwrites the limbs: no zeroing pass, no read.
+        self.check_range(exactsum.accumulate(part_grads, self.limbs, replace=k == self.first))
+
+    @staticmethod
+    def check_range(largest: float) -> None:
+        """Stop on a chunk gradient the exact accumulator cannot hold (|g| ≥ 2^31, inf or NaN)."""
+        if not largest < exactsum.MAX_ABS:
+            raise FloatingPointError(f"gradient element {largest!r} is outside the exact accumulator's "
+                                     f"range (|g| < 2^31)")
+
+    def finish(self) -> None:
+        """Reduce-scatter the limbs, read back this rank's slice, allgather the float gradient."""
+        if self.comm.size == 1:
+            exactsum.to_float(self.limbs, self.grads)
+            return
+        self.reduce_scatter_limbs()
+        self.read_back()
+        self.gather()
+
+    def reduce_scatter_limbs(self) -> None:
+        """This rank's slice of the limbs summed over ranks, into ``slice_limbs``.
+
+        One call per limb row: MPICH slows sharply on single messages past ~22 MB.
+        """
+        for limb, mine in zip(self.limbs, self.slice_limbs, strict=True):
+            self.comm.reduce_scatter_sum(limb, mine, self.slice_counts)
+
+    def read_back(self) -> None:
+        """This rank's slice of the summed limbs, correctly rounded into ``grads[slice]``."""
+        exactsum.to_float(self.slice_limbs, self.grads[self.slice])
+
+    def gather(self) -> None:
+        """Every rank's read-back slice to every rank: the whole gradient everywhere."""
+        self.comm.allgather(self.grads, self.slice_counts)
+
+    def metric_sums(self, k: int) -> FloatSums:
+        return ExactSums(self.comm, k)
+
+    def evaluation_rows(self, rows: np.ndarray) -> np.ndarray:
+        """Whole chunks of ``chunk`` rows whatever P is (the last may be short), a contiguous run per rank."""
+        c = self.chunk
+        lo, hi = block_range(-(-rows.size // c), self.comm.rank, self.comm.size)
+        return rows[lo * c:hi * c]
+
+    def warm_up(self) -> None:
+        grads = np.zeros_like(self.grads)
+        limbs = np.zeros_like(self.limbs)
+        exactsum.accumulate(grads, limbs)
+        if self.pair_grads is not None:
+            exactsum.assign_pair(grads, grads.copy(), limbs)
+        exactsum.to_float(limbs, grads)
+        sums = np.zeros((exactsum.LIMBS, 3), dtype=np.int64)  # the metric sums' specialisation (float64)
+        exactsum.accumulate(np.zeros(3), sums)
+        exactsum.to_float(sums, np.zeros(3))
+
+
+STRATEGIES: dict[str, type[Exchange]] = {"fast": BucketExchange, "exact": ExactExchange}
+"""The exchange strategy of each ``run.reduction``."""
+
+
+def strategy(run: RunSpec) -> type[Exchange]:
+    """The exchange strategy class for a job's ``run.reduction``."""
+    return STRATEGIES[run.reduction]

@@ -3,8 +3,8 @@
 Usage: ``python consistency.py SPEC.json OUT.json``. SPEC holds ``{"base": data folder, "cases": [...]}``;
 each case is ``{"name", "kind": "gradient" | "train", "job": {...raw job tables...}, "steps": K}``.
 
-For a gradient case every rank computes its shard of the first global batch (``Trainer.compute_shard`` +
-``exchange.wait``, or ``Trainer.exact_gradient`` in exact mode) and rank 0 records the reduced gradient,
+For a gradient case every rank computes its part of the first global batch as a training step does
+(``Trainer.gradient``: the job's exchange strategy, fast or exact) and rank 0 records the reduced gradient,
 the batch rows, the standardisation and the initial parameters. For a train case the script runs K
 ``Trainer.step`` calls and records the final parameters, the global batches used, and the SHA-256 of the
 parameters on every rank. Only rank 0 writes OUT (JSON; floats round-trip exactly through ``repr``).
@@ -18,7 +18,6 @@ import sys
 
 import numpy as np
 from shardmill.config import job_from_dict
-from shardmill.data import shard
 from shardmill.parallel.comm import Comm
 from shardmill.trainer import Trainer
 
@@ -31,12 +30,7 @@ def gradient_case(trainer: Trainer) -> dict:
     params0 = trainer.model.params.copy()
     rows = trainer.sampler.batch(0, 0)
     trainer.timer.start()
-    if trainer.exact:
-        trainer.exact_gradient(rows)
-    else:
-        mine = shard(rows, trainer.comm.rank, trainer.comm.size)
-        trainer.compute_shard(mine, trainer.grads, launch=True)
-        trainer.exchange.wait()
+    trainer.gradient(rows)
     return {"rows": rows.tolist(), "mean": trainer.data.mean.tolist(), "inv_std": trainer.data.inv_std.tolist(),
             "params": named_lists(trainer, params0), "grads": named_lists(trainer, trainer.grads),
             "train_rows": trainer.data.split.train.tolist()}

@@ -32,7 +32,7 @@ RELATIVE_CHANGE = 1e-3
 def rank_share(ref: Trainer, rows: np.ndarray, rank: int, size: int) -> np.ndarray:
     """Rank ``rank``'s contribution to the reduced gradient of ``rows`` (flat, params layout, model dtype)."""
     G = rows.size
-    if ref.exact:  # exact mode: whole chunks per rank
+    if ref.job.run.reduction == "exact":  # exact mode: whole chunks per rank
         c = ref.job.run.exact_chunk
         lo, hi = (c * k for k in block_range(G // c, rank, size))
     else:

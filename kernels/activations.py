@@ -126,27 +126,24 @@ def bias_forward(Z, b, A, code):
 
 
 @njit(cache=True)
-def backward(Z, A, dA, dZ, code):
-    """dZ = f'(Z) ⊙ dA, the delta of a layer from the gradient of its output.
+def backward(Z, A, D, code):
+    """dZ = f'(Z) ⊙ dA in place, the delta of a layer from the gradient of its output.
 
-    Z, A: (n, m) pre-activations and outputs of the forward pass; dA: (n, m) ∂loss/∂A;
-    dZ: (n, m) written, may be dA itself (the fast case: the step always passes dA twice; otherwise dA is
-    copied into dZ first).
+    Z, A: (n, m) pre-activations and outputs of the forward pass; D: (n, m) holds dA = ∂loss/∂A on entry and
+    dZ = ∂loss/∂Z on exit. One delta argument: see :func:`_backward_rows` for why it is never two.
     """
-    if dZ.ctypes.data != dA.ctypes.data:
-        dZ[...] = dA
     if code == RELU:
-        _backward_rows(Z, A, dZ, RELU)
+        _backward_rows(Z, A, D, RELU)
     elif code == IDENTITY:
-        _backward_rows(Z, A, dZ, IDENTITY)
+        _backward_rows(Z, A, D, IDENTITY)
     elif code == LEAKY_RELU:
-        _backward_rows(Z, A, dZ, LEAKY_RELU)
+        _backward_rows(Z, A, D, LEAKY_RELU)
     elif code == TANH:
-        _backward_rows(Z, A, dZ, TANH)
+        _backward_rows(Z, A, D, TANH)
     elif code == SIGMOID:
-        _backward_rows(Z, A, dZ, SIGMOID)
+        _backward_rows(Z, A, D, SIGMOID)
     else:
-        _backward_rows(Z, A, dZ, code)
+        _backward_rows(Z, A, D, code)
 
 
 @njit(cache=True)
@@ -163,9 +160,6 @@ def column_sums(dZ, db):
 def code_of(name: str) -> int:
     """Activation code for a name from :data:`CODES`."""
     return CODES[name]
-
-
-
 
 
 @njit(cache=True)

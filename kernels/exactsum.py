@@ -86,11 +86,6 @@ def new_accumulator(n: int) -> np.ndarray:
     return np.zeros((LIMBS, n), dtype=np.int64)
 
 
-def zero(acc: np.ndarray) -> None:
-    """Reset an accumulator (int64, ``(LIMBS, n)``) to the value 0 in place."""
-    acc.fill(0)
-
-
 def accumulate(x: np.ndarray, acc: np.ndarray, replace: bool = False) -> float:
     """Add ``x`` into ``acc`` in place, exactly up to the per-input rounding at 2**-88.
 

@@ -79,12 +79,3 @@ def scale(x, factor):
     """x ← factor·x in place (gradient clipping). x: (n,)."""
     for i in range(x.size):
         x[i] *= factor
-
-
-@njit(cache=True)
-def any_nonfinite(x):
-    """True if any element of the flat array x is NaN or ±inf."""
-    for i in range(x.size):
-        if not math.isfinite(x[i]):
-            return True
-    return False

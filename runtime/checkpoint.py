@@ -186,13 +186,7 @@ def check_compatible(ours: TrainingState, state: dict[str, Any], params: dict, o
     optimizer or job trajectory wrote, naming what differs. ``ours``: the state of the run that resumes."""
     job = ours.job
     if state.get("job_digest") != job.digest():
-        theirs = state.get("job", {})
-        ours_job = job.as_dict()
-        diffs = [f"{s}.{k}" for s in ("model", "data", "optimizer", "run") for k in ours_job.get(s, {})
-                 if k in theirs.get(s, {}) and theirs[s][k] != ours_job[s][k]
-                 and k not in ("epochs", "max_steps", "save_every", "keep_checkpoints", "workdir", "threads",
-                               "check_every",
-                               "health_every", "bucket_mb", "overlap")]
+        diffs = job.trajectory_differences(state.get("job", {}))
         raise CheckpointError("checkpoint belongs to another job (its job digest differs"
                               + (f"; changed: {', '.join(diffs)}" if diffs else "") + ")")
     for name, view in ours.params.items():

@@ -1,8 +1,10 @@
-"""The job file: schema, defaults and the one validation pass that runs before anything else.
+"""The job file: one table of every key, and the one validation pass that runs before anything else.
 
-A job is TOML with four tables, ``[model]``, ``[data]``, ``[optimizer]`` and ``[run]``. Every key is
-checked here, on every rank alike, so a bad job fails identically everywhere before any collective.
-Errors are :class:`JobError` with a message of the shape
+A job is TOML with four tables, ``[model]``, ``[data]``, ``[optimizer]`` and ``[run]``. :data:`SCHEMA` lists
+every key once: its type, default, what is allowed, what it means, and whether it fixes the training trajectory
+(enters the job digest). The spec dataclasses, the validation, :meth:`Job.digest`, the command line's choices and
+the defaults table in README.md are all read from it. Every key is checked here, on every rank alike, so a bad job
+fails identically everywhere before any collective. Errors are :class:`JobError` with a message of the shape
 "`optimizer.method` must be one of adam, adamw, momentum, nesterov, sgd; got 'adma' (did you mean 'adam'?)".
 """
 
@@ -13,8 +15,9 @@ import difflib
 import hashlib
 import json
 import math
+import numbers
 import tomllib
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, make_dataclass
 from pathlib import Path
 from typing import Any
 
@@ -25,10 +28,123 @@ INITS = ("he", "glorot")
 METHODS = ("sgd", "momentum", "nesterov", "adam", "adamw")
 SCHEDULES = ("constant", "step", "cosine")
 REDUCTIONS = ("fast", "exact")
+# The output activation each loss implies; only squared_error lets the job choose another (`model.output`).
+IMPLIED_OUTPUT = {"softmax_cross_entropy": "softmax", "binary_cross_entropy": "sigmoid", "squared_error": "identity"}
 
 
 class JobError(ValueError):
     """A job (or command-line value) that cannot run; the message names the field, the value and what is allowed."""
+
+
+class LocalJobError(JobError):
+    """A user error that one rank found on its own, mid-step (a bad row in its shard): the other ranks cannot know,
+    so the job must end on every rank (``run_guarded`` aborts) instead of returning as a start-up error does."""
+
+
+class _Required:
+    def __repr__(self) -> str:
+        return "REQUIRED"
+
+
+REQUIRED: Any = _Required()  # the default of a key the job must give
+
+
+@dataclass(frozen=True)
+class Key:
+    """One key of the job file.
+
+    ``kind`` says how the value is checked: ``choice`` (one of ``choices``), ``integer`` / ``number`` (within
+    ``low`` … ``high``; ``low_open`` excludes ``low``), ``flag`` (true or false), ``file`` (a path string),
+    ``text`` (anything, kept as a string), ``layers`` (the widths), ``names`` (one of ``choices`` or a list of
+    them) and ``output`` (allowed values depend on ``model.loss``: checked after the table pass).
+    ``trajectory``: the key enters :meth:`Job.digest`, so a checkpoint resumes only with the same value.
+    ``allowed``: the README's "allowed" cell where the kind alone does not say it.
+    """
+
+    path: str
+    kind: str
+    default: Any
+    meaning: str
+    choices: tuple[str, ...] = ()
+    low: float | None = None
+    high: float | None = None
+    low_open: bool = False
+    trajectory: bool = True
+    allowed: str = ""
+
+    @property
+    def section(self) -> str:
+        return self.path.split(".")[0]
+
+    @property
+    def name(self) -> str:
+        return self.path.split(".")[1]
+
+
+SCHEMA: tuple[Key, ...] = (
+    Key("model.layers", "layers", REQUIRED, "widths, inputs first, outputs last"),
+    Key("model.activation", "names", "relu", "hidden activation: one name, or a list with one per hidden layer",
+        choices=ACTIVATIONS),
+    Key("model.loss", "choice", "softmax_cross_entropy",
+        "softmax_cross_entropy: integer labels (n,); binary_cross_entropy (from logits): 0/1 targets (n, k); "
+        "squared_error: targets (n, k)", choices=LOSSES),
+    Key("model.dtype", "choice", "float32", "floating-point type of parameters and arithmetic, end to end",
+        choices=DTYPES),
+    Key("model.init", "choice", "auto", "initial weights: he N(0, 2/fan_in), glorot U(±√(6/(fan_in + fan_out))); "
+        "auto is he when every hidden activation is relu, leaky_relu, gelu or softplus, else glorot",
+        choices=INITS + ("auto",)),
+    Key("model.output", "output", "auto", "output activation; softmax_cross_entropy implies softmax, "
+        "binary_cross_entropy sigmoid, squared_error identity unless chosen here", choices=ACTIVATIONS + ("auto",),
+        allowed="auto; with squared_error also " + ", ".join(sorted(ACTIVATIONS))),
+    Key("data.inputs", "file", "", "inputs (n, d): .npy (memory-mapped), .npz or .csv, relative to the job file; "
+        "needed to train", allowed="a .npy, .npz or .csv path"),
+    Key("data.targets", "file", "", "targets, one row per input row (see `model.loss`); needed to train",
+        allowed="a .npy, .npz or .csv path"),
+    Key("data.validation_fraction", "number", 0.1, "share of the rows held out for validation",
+        low=0.0, high=0.9),
+    Key("data.standardize", "flag", True, "scale each input column by the mean and standard deviation of the "
+        "training rows (identical on every rank)"),
+    Key("optimizer.method", "choice", "adam", "update rule", choices=METHODS),
+    Key("optimizer.learning_rate", "number", 1e-3, "peak learning rate", low=0.0, low_open=True),
+    Key("optimizer.weight_decay", "number", 0.0, "coupled L2 for sgd, momentum, nesterov and adam; for adamw the "
+        "decoupled λ of Loshchilov & Hutter (θ shrinks by λ·η_t per step, not by learning_rate·λ)", low=0.0),
+    Key("optimizer.momentum", "number", 0.9, "momentum μ (momentum and nesterov)", low=0.0, high=0.999999),
+    Key("optimizer.beta1", "number", 0.9, "Adam's β1 (adam and adamw)", low=0.0, high=0.999999),
+    Key("optimizer.beta2", "number", 0.999, "Adam's β2 (adam and adamw)", low=0.0, high=0.999999999),
+    Key("optimizer.eps", "number", 1e-8, "Adam's ε (adam and adamw)", low=0.0, low_open=True),
+    Key("optimizer.schedule", "choice", "constant", "learning-rate schedule after warm-up: constant, step "
+        "(× step_factor every step_every steps) or cosine (down to 0 at the last step of the run)", choices=SCHEDULES),
+    Key("optimizer.warmup", "integer", 0, "steps of linear warm-up", low=0),
+    Key("optimizer.step_every", "integer", 1000, "steps between decays of the step schedule", low=1),
+    Key("optimizer.step_factor", "number", 0.1, "learning-rate factor per decay of the step schedule",
+        low=0.0, high=1.0, low_open=True),
+    Key("optimizer.clip_global_norm", "number", 0.0, "largest global gradient norm; 0 = no clipping", low=0.0),
+    Key("run.epochs", "integer", 1, "passes over the training rows", low=1, trajectory=False),
+    Key("run.global_batch", "integer", 256, "samples per step G, whatever the number of processes", low=1),
+    Key("run.seed", "integer", 0, "seed of the initial weights, the split and the batch order", low=0),
+    Key("run.reduction", "choice", "fast", "gradient sum: fast (MPI's order) or exact (bit-identical for every "
+        "process count)", choices=REDUCTIONS),
+    Key("run.exact_chunk", "integer", 32, "exact mode: rows per fixed chunk; global_batch must be a multiple",
+        low=1),
+    Key("run.bucket_mb", "number", 4.0, "smallest gradient bucket of the overlapped allreduce, MB (10⁶ bytes)",
+        low=0.0, low_open=True, trajectory=False),
+    Key("run.overlap", "flag", True, "start each bucket's allreduce while backward runs; false: one blocking "
+        "allreduce after backward", trajectory=False),
+    Key("run.save_every", "integer", 0, "steps between checkpoints; 0 = only at the end", low=0, trajectory=False),
+    Key("run.keep_checkpoints", "integer", 3, "newest checkpoints kept; older ones are removed once `latest` has "
+        "moved on",
+        low=1, trajectory=False),
+    Key("run.workdir", "text", "run", "folder for metrics.jsonl, checkpoints/ and final.npz, relative to the job "
+        "file", trajectory=False, allowed="a folder path"),
+    Key("run.threads", "integer", 1, "BLAS threads per process", low=1, trajectory=False),
+    Key("run.max_steps", "integer", 0, "stop after this many steps; 0 = run all epochs", low=0, trajectory=False),
+    Key("run.check_every", "integer", 0, "steps between checks that every rank holds the same parameters; "
+        "0 = off", low=0, trajectory=False),
+    Key("run.health_every", "integer", 0, "steps between training-health diagnostics; 0 = off", low=0,
+        trajectory=False),
+)
+KEYS: dict[str, Key] = {key.path: key for key in SCHEMA}
+SECTIONS: tuple[str, ...] = ("model", "data", "optimizer", "run")
 
 
 def _hint(value: object, allowed: tuple[str, ...] | list[str]) -> str:
@@ -63,56 +179,87 @@ def _flag(path: str, value: object) -> bool:
     return value
 
 
-@dataclass
-class ModelSpec:
-    layers: list[int]
-    activation: list[str]
-    loss: str = "softmax_cross_entropy"
-    dtype: str = "float32"
-    init: str = "auto"
-    output: str = "auto"
+def _layers(path: str, value: object) -> list[int]:
+    # numbers.Integral also admits numpy integers, so MLP(np.array([...])) works; they are stored as int.
+    if (not isinstance(value, list) or len(value) < 2
+            or not all(isinstance(n, numbers.Integral) and not isinstance(n, bool) and n >= 1 for n in value)):
+        raise JobError(f"`{path}` must be a list of at least two positive integers "
+                       f"(inputs, hidden…, outputs); got {value!r}")
+    return [int(n) for n in value]
 
 
-@dataclass
-class DataSpec:
-    inputs: str = ""
-    targets: str = ""
-    validation_fraction: float = 0.1
-    standardize: bool = True
+def _names(key: Key, value: object) -> str | list[str]:
+    if isinstance(value, (list, tuple)):
+        return [_choice(key.path, name, key.choices) for name in value]
+    return _choice(key.path, value, key.choices)
 
 
-@dataclass
-class OptimizerSpec:
-    method: str = "adam"
-    learning_rate: float = 1e-3
-    weight_decay: float = 0.0
-    momentum: float = 0.9
-    beta1: float = 0.9
-    beta2: float = 0.999
-    eps: float = 1e-8
-    schedule: str = "constant"
-    warmup: int = 0
-    step_every: int = 1000
-    step_factor: float = 0.1
-    clip_global_norm: float = 0.0
+def _file(path: str, value: object) -> str:
+    if not isinstance(value, str):
+        raise JobError(f"`{path}` must be a file path (.npy, .npz or .csv); got {value!r}")
+    return value
 
 
-@dataclass
-class RunSpec:
-    epochs: int = 1
-    global_batch: int = 256
-    seed: int = 0
-    reduction: str = "fast"
-    exact_chunk: int = 32
-    bucket_mb: float = 4.0
-    overlap: bool = True
-    save_every: int = 0
-    keep_checkpoints: int = 3
-    workdir: str = "run"
-    threads: int = 1
-    max_steps: int = 0
-    check_every: int = 0
-    health_every: int = 0
+def _check(key: Key, value: object) -> Any:
+    """The value of ``key`` checked against its row of the table, in the type the spec holds."""
+    if key.kind == "choice":
+        return _choice(key.path, value, key.choices)
+    if key.kind in ("integer", "number"):
+        return _number(key.path, value, low=key.low, high=key.high, low_open=key.low_open,
+                       integer=key.kind == "integer")
+    if key.kind == "flag":
+        return _flag(key.path, value)
+    if key.kind == "file":
+        return _file(key.path, value)
+    if key.kind == "text":
+        return str(value)
+    if key.kind == "layers":
+        return _layers(key.path, value)
+    if key.kind == "names":
+        return _names(key, value)
+    if key.kind == "output":
+        return value
+    raise AssertionError(key.kind)
+
+
+def choices(path: str) -> tuple[str, ...]:
+    """The allowed names of a key with a fixed set of them, e.g. ``choices("model.dtype")``."""
+    if not KEYS[path].choices:
+        raise KeyError(f"{path} takes no names")
+    return KEYS[path].choices
+
+
+def check_choice(path: str, value: object, name: str | None = None) -> str:
+    """``value`` if it is one of ``choices(path)``, else a JobError naming ``name`` (default ``path``)."""
+    return _choice(name or path, value, choices(path))
+
+
+_PYTHON_TYPES = {"layers": list[int], "names": list[str], "choice": str, "output": str, "integer": int,
+                 "number": float, "flag": bool, "file": str, "text": str}
+
+
+def _spec_class(name: str, section: str, doc: str) -> type:
+    """A dataclass with one field per key of ``section``, in table order, defaulting as the table says.
+
+    ``names`` keys get no default: their validated value, one name per hidden layer, depends on ``model.layers``.
+    """
+    fields: list[tuple[str, Any] | tuple[str, Any, Any]] = []
+    for key in SCHEMA:
+        if key.section == section:
+            kind = _PYTHON_TYPES[key.kind]
+            given = key.default is REQUIRED or key.kind == "names"
+            fields.append((key.name, kind) if given else (key.name, kind, field(default=key.default)))
+    cls = make_dataclass(name, fields, namespace={"__doc__": doc})
+    cls.__module__ = __name__
+    return cls
+
+
+ModelSpec = _spec_class("ModelSpec", "model", "The validated ``[model]`` table; activation is one name per hidden "
+                        "layer, init and output may still be 'auto' (MLP resolves them).")
+DataSpec = _spec_class("DataSpec", "data", "The validated ``[data]`` table.")
+OptimizerSpec = _spec_class("OptimizerSpec", "optimizer", "The validated ``[optimizer]`` table.")
+RunSpec = _spec_class("RunSpec", "run", "The validated ``[run]`` table.")
+_SPECS = {"model": ModelSpec, "data": DataSpec, "optimizer": OptimizerSpec, "run": RunSpec}
 
 
 @dataclass
@@ -135,122 +282,80 @@ class Job:
         return self.path(self.run.workdir)
 
     def as_dict(self) -> dict[str, Any]:
-        return {
-            "model": dict(vars(self.model)),
-            "data": dict(vars(self.data)),
-            "optimizer": dict(vars(self.optimizer)),
-            "run": dict(vars(self.run)),
-        }
+        return {section: dict(vars(getattr(self, section))) for section in SECTIONS}
 
     def digest(self) -> str:
-        """SHA-256 of what fixes the training trajectory (model, data, optimizer, seed, batch, reduction).
+        """SHA-256 of what fixes the training trajectory: every key marked ``trajectory`` in :data:`SCHEMA`.
 
-        Left out: epochs, max_steps, save_every, keep_checkpoints, workdir, threads, check and health
-        intervals, bucket size and overlap, so that a job may be resumed with more epochs or a different
-        layout of the run.
+        Left out are the keys a job may change on resume (more epochs, another layout of the run): see
+        :func:`resumable_keys`.
         """
         d = self.as_dict()
-        run = {k: d["run"][k] for k in ("global_batch", "seed", "reduction", "exact_chunk")}
-        blob = json.dumps({"model": d["model"], "data": d["data"], "optimizer": d["optimizer"], "run": run},
-                          sort_keys=True)
-        return hashlib.sha256(blob.encode()).hexdigest()
+        kept = {s: {k: v for k, v in d[s].items() if KEYS[f"{s}.{k}"].trajectory} for s in SECTIONS}
+        return hashlib.sha256(json.dumps(kept, sort_keys=True).encode()).hexdigest()
+
+    def trajectory_differences(self, other: dict[str, Any]) -> list[str]:
+        """Paths of the digest's keys whose value in ``other`` (a job as :meth:`as_dict` wrote it) differs.
+
+        Keys that ``other`` lacks are not compared. The reason a checkpoint of another job is refused.
+        """
+        ours = self.as_dict()
+        return [key.path for key in SCHEMA
+                if key.trajectory and key.name in other.get(key.section, {})
+                and other[key.section][key.name] != ours[key.section][key.name]]
 
 
-_SECTIONS = {"model": ModelSpec, "data": DataSpec, "optimizer": OptimizerSpec, "run": RunSpec}
+def resumable_keys() -> tuple[str, ...]:
+    """Paths of the keys left out of :meth:`Job.digest`: a checkpoint resumes with other values of these."""
+    return tuple(key.path for key in SCHEMA if not key.trajectory)
 
 
-def _check_keys(section: str, table: object, allowed: list[str]) -> dict:
+def _check_keys(section: str, table: object) -> dict:
     if not isinstance(table, dict):
         raise JobError(f"`{section}` must be a table; got {table!r}")
-    for key in table:
-        if key not in allowed:
-            raise JobError(f"`{section}.{key}` is not a known key; allowed: {', '.join(allowed)}"
-                           f"{_hint(key, allowed)}")
+    allowed = [key.name for key in SCHEMA if key.section == section]
+    for name in table:
+        if name not in allowed:
+            raise JobError(f"`{section}.{name}` is not a known key; allowed: {', '.join(allowed)}"
+                           f"{_hint(name, allowed)}")
     return table
+
+
+def _section(section: str, table: dict) -> dict[str, Any]:
+    """The table-driven pass over one section: every key checked, absent ones take the table's default."""
+    return {key.name: _check(key, table.get(key.name, None if key.default is REQUIRED else key.default))
+            for key in SCHEMA if key.section == section}
+
+
+def model_spec(table: dict[str, Any]) -> ModelSpec:
+    """Validate a ``[model]`` table (as read from TOML, or MLP's arguments) and fill in defaults."""
+    m = _section("model", _check_keys("model", table))
+    n_hidden = len(m["layers"]) - 2
+    act = m["activation"]
+    if isinstance(act, list) and len(act) != n_hidden:
+        raise JobError(f"`model.activation` must be one name or a list of {n_hidden} names (one per hidden "
+                       f"layer); got a list of {len(act)}")
+    m["activation"] = act if isinstance(act, list) else [act] * n_hidden
+    loss, output = m["loss"], m["output"]
+    if loss == "squared_error":
+        _choice("model.output", output, KEYS["model.output"].choices)
+    elif output not in ("auto", IMPLIED_OUTPUT[loss]):
+        raise JobError(f"`model.output` is implied by `model.loss` = {loss!r}; leave it out; got {output!r}")
+    return ModelSpec(**m)
 
 
 def job_from_dict(raw: dict[str, Any], base: str | Path = ".") -> Job:
     """Validate a job given as nested dicts (as read from TOML) and fill in defaults."""
     raw = copy.deepcopy(raw)
     for section in raw:
-        if section not in _SECTIONS:
-            raise JobError(f"`{section}` is not a known table; allowed: {', '.join(_SECTIONS)}"
-                           f"{_hint(section, list(_SECTIONS))}")
+        if section not in SECTIONS:
+            raise JobError(f"`{section}` is not a known table; allowed: {', '.join(SECTIONS)}"
+                           f"{_hint(section, list(SECTIONS))}")
     if "model" not in raw:
         raise JobError("`model` table is missing; it needs at least `model.layers`")
-    tables = {s: _check_keys(s, raw.get(s, {}), list(cls.__dataclass_fields__)) for s, cls in _SECTIONS.items()}
-
-    m = tables["model"]
-    layers = m.get("layers")
-    if (not isinstance(layers, list) or len(layers) < 2
-            or not all(isinstance(n, int) and not isinstance(n, bool) and n >= 1 for n in layers)):
-        raise JobError(f"`model.layers` must be a list of at least two positive integers "
-                       f"(inputs, hidden…, outputs); got {layers!r}")
-    n_hidden = len(layers) - 2
-    act = m.get("activation", "relu")
-    acts = act if isinstance(act, list) else [act] * n_hidden
-    if isinstance(act, list) and len(act) != n_hidden:
-        raise JobError(f"`model.activation` must be one name or a list of {n_hidden} names (one per hidden "
-                       f"layer); got a list of {len(act)}")
-    acts = [_choice("model.activation", a, ACTIVATIONS) for a in acts]
-    if not isinstance(act, list):
-        _choice("model.activation", act, ACTIVATIONS)
-    loss = _choice("model.loss", m.get("loss", "softmax_cross_entropy"), LOSSES)
-    dtype = _choice("model.dtype", m.get("dtype", "float32"), DTYPES)
-    init = _choice("model.init", m.get("init", "auto"), INITS + ("auto",))
-    output = m.get("output", "auto")
-    if loss == "squared_error":
-        output = _choice("model.output", output, ACTIVATIONS + ("auto",))
-    elif output not in ("auto", {"softmax_cross_entropy": "softmax", "binary_cross_entropy": "sigmoid"}[loss]):
-        raise JobError(f"`model.output` is implied by `model.loss` = {loss!r}; leave it out; got {output!r}")
-    model = ModelSpec(layers=list(layers), activation=acts, loss=loss, dtype=dtype, init=init, output=output)
-
-    d = tables["data"]
-    data = DataSpec(
-        inputs=str(d.get("inputs", "")),
-        targets=str(d.get("targets", "")),
-        validation_fraction=_number("data.validation_fraction", d.get("validation_fraction", 0.1),
-                                    low=0.0, high=0.9),
-        standardize=_flag("data.standardize", d.get("standardize", True)),
-    )
-    for key in ("inputs", "targets"):
-        if key in d and not isinstance(d[key], str):
-            raise JobError(f"`data.{key}` must be a file path (.npy, .npz or .csv); got {d[key]!r}")
-
-    o = tables["optimizer"]
-    optimizer = OptimizerSpec(
-        method=_choice("optimizer.method", o.get("method", "adam"), METHODS),
-        learning_rate=_number("optimizer.learning_rate", o.get("learning_rate", 1e-3), low=0.0, low_open=True),
-        weight_decay=_number("optimizer.weight_decay", o.get("weight_decay", 0.0), low=0.0),
-        momentum=_number("optimizer.momentum", o.get("momentum", 0.9), low=0.0, high=0.999999),
-        beta1=_number("optimizer.beta1", o.get("beta1", 0.9), low=0.0, high=0.999999),
-        beta2=_number("optimizer.beta2", o.get("beta2", 0.999), low=0.0, high=0.999999999),
-        eps=_number("optimizer.eps", o.get("eps", 1e-8), low=0.0, low_open=True),
-        schedule=_choice("optimizer.schedule", o.get("schedule", "constant"), SCHEDULES),
-        warmup=_number("optimizer.warmup", o.get("warmup", 0), low=0, integer=True),
-        step_every=_number("optimizer.step_every", o.get("step_every", 1000), low=1, integer=True),
-        step_factor=_number("optimizer.step_factor", o.get("step_factor", 0.1), low=0.0, high=1.0,
-                            low_open=True),
-        clip_global_norm=_number("optimizer.clip_global_norm", o.get("clip_global_norm", 0.0), low=0.0),
-    )
-
-    r = tables["run"]
-    run = RunSpec(
-        epochs=_number("run.epochs", r.get("epochs", 1), low=1, integer=True),
-        global_batch=_number("run.global_batch", r.get("global_batch", 256), low=1, integer=True),
-        seed=_number("run.seed", r.get("seed", 0), low=0, integer=True),
-        reduction=_choice("run.reduction", r.get("reduction", "fast"), REDUCTIONS),
-        exact_chunk=_number("run.exact_chunk", r.get("exact_chunk", 32), low=1, integer=True),
-        bucket_mb=_number("run.bucket_mb", r.get("bucket_mb", 4.0), low=0.0, low_open=True),
-        overlap=_flag("run.overlap", r.get("overlap", True)),
-        save_every=_number("run.save_every", r.get("save_every", 0), low=0, integer=True),
-        keep_checkpoints=_number("run.keep_checkpoints", r.get("keep_checkpoints", 3), low=1, integer=True),
-        workdir=str(r.get("workdir", "run")),
-        threads=_number("run.threads", r.get("threads", 1), low=1, integer=True),
-        max_steps=_number("run.max_steps", r.get("max_steps", 0), low=0, integer=True),
-        check_every=_number("run.check_every", r.get("check_every", 0), low=0, integer=True),
-        health_every=_number("run.health_every", r.get("health_every", 0), low=0, integer=True),
-    )
+    tables = {s: _check_keys(s, raw.get(s, {})) for s in SECTIONS}
+    model = model_spec(tables["model"])
+    data, optimizer, run = (_SPECS[s](**_section(s, tables[s])) for s in ("data", "optimizer", "run"))
     if run.reduction == "exact" and run.global_batch % run.exact_chunk:
         raise JobError(f"`run.global_batch` must be a multiple of `run.exact_chunk` = {run.exact_chunk} when "
                        f"`run.reduction` = 'exact'; got {run.global_batch}")
@@ -267,3 +372,53 @@ def load_job(path: str | Path) -> Job:
     except tomllib.TOMLDecodeError as err:
         raise JobError(f"job file {str(path)!r} is not valid TOML: {err}") from None
     return job_from_dict(raw, base=path.parent)
+
+
+# --- the defaults table in README.md -----------------------------------------------------------------------------
+README_BEGIN = "<!-- job keys: generated by shardmill.config.defaults_markdown(), do not edit by hand -->"
+README_END = "<!-- end of job keys -->"
+
+
+def _toml(value: object) -> str:
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    return json.dumps(value) if isinstance(value, str) else repr(value)
+
+
+def _allowed(key: Key) -> str:
+    if key.allowed:
+        return key.allowed
+    if key.kind == "choice":
+        return ", ".join(sorted(key.choices))
+    if key.kind == "names":
+        return ", ".join(sorted(key.choices)) + "; or a list of them"
+    if key.kind == "flag":
+        return "true, false"
+    if key.kind == "layers":
+        return "a list of ≥ 2 positive integers"
+    integer = "integer " if key.kind == "integer" else ""
+    if key.high is None:
+        return f"{integer}{'>' if key.low_open else '≥'} {key.low:g}"
+    return f"{integer}{'(' if key.low_open else '['}{key.low:g}, {key.high:.12g}]"  # :g would show 0.999999999 as 1
+
+
+def defaults_markdown() -> str:
+    """Every job key as a Markdown table (key, default, allowed, meaning): the block between README's markers."""
+    rows = ["| key | default | allowed | meaning |", "|---|---|---|---|"]
+    for key in SCHEMA:
+        mark = "" if key.trajectory else " †"
+        default = "required" if key.default is REQUIRED else f"`{_toml(key.default)}`"
+        rows.append(f"| `{key.path}`{mark} | {default} | {_allowed(key)} | {key.meaning} |")
+    rows.append("")
+    rows.append("† may differ between a checkpoint and the job that resumes it; every other key enters the job "
+                "digest and must match.")
+    return "\n".join(rows) + "\n"
+
+
+def write_defaults_markdown(readme: str | Path) -> None:
+    """Replace the block between :data:`README_BEGIN` and :data:`README_END` in ``readme`` by the current table."""
+    readme = Path(readme)
+    text = readme.read_text()
+    head, rest = text.split(README_BEGIN + "\n", 1)
+    _, tail = rest.split(README_END, 1)
+    readme.write_text(head + README_BEGIN + "\n" + defaults_markdown() + README_END + tail)

@@ -11,7 +11,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
-from shardmill.config import JobError
+from shardmill.config import JobError, LocalJobError
 from shardmill.kernels import data as data_kernels
 
 _STATS_BLOCK = 1024  # smallest block of the standardisation pass; blocks are fixed, so statistics do not depend on P
@@ -142,6 +142,4 @@ def gather(X: np.ndarray, rows: np.ndarray, mean: np.ndarray, inv_std: np.ndarra
     """Copy the standardised rows of X into the batch buffer ``out[:len(rows)]``; raise on a non-finite row."""
     bad = data_kernels.gather_rows(X, rows, mean, inv_std, out)
     if bad >= 0:
-        error = JobError(f"`data.inputs` row {int(rows[bad])} holds a non-finite value (NaN or inf)")
-        error.local = True  # seen by this rank only, mid-step: run_guarded must end every rank, not just return
-        raise error
+        raise LocalJobError(f"`data.inputs` row {int(rows[bad])} holds a non-finite value (NaN or inf)")

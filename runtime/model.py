@@ -11,12 +11,11 @@ from __future__ import annotations
 from collections.abc import Iterator
 
 import numpy as np
-from shardmill.config import ACTIVATIONS, DTYPES, INITS, LOSSES, JobError, _choice
+from shardmill.config import IMPLIED_OUTPUT, JobError, model_spec
 from shardmill.kernels import activations as act
 from shardmill.kernels import losses
 
 RELU_FAMILY = ("relu", "leaky_relu", "gelu", "softplus")
-_IMPLIED_OUTPUT = {"softmax_cross_entropy": "softmax", "binary_cross_entropy": "sigmoid", "squared_error": "identity"}
 
 
 class MLP:
@@ -39,28 +38,19 @@ class MLP:
     def __init__(self, layers: list[int], activation: str | list[str] = "relu",
                  loss: str = "softmax_cross_entropy", dtype: str = "float32", seed: int = 0,
                  init: str = "auto", output: str = "auto") -> None:
-        if len(layers) < 2 or any(int(n) < 1 for n in layers):
-            raise JobError(f"`model.layers` must be at least two positive integers; got {list(layers)!r}")
-        self.sizes = [int(n) for n in layers]
-        n_hidden = len(self.sizes) - 2
-        names = [activation] * n_hidden if isinstance(activation, str) else list(activation)
-        if len(names) != n_hidden:
-            raise JobError(f"`model.activation` must be one name or {n_hidden} names; got {activation!r}")
-        self.activations = [_choice("model.activation", a, ACTIVATIONS) for a in names]
-        self.loss = _choice("model.loss", loss, LOSSES)
-        self.dtype = np.dtype(_choice("model.dtype", dtype, DTYPES))
-        if output == "auto":
-            output = _IMPLIED_OUTPUT[self.loss]
-        if self.loss == "squared_error":
-            _choice("model.output", output, ACTIVATIONS)
-        elif output != _IMPLIED_OUTPUT[self.loss]:
-            raise JobError(f"`model.output` is implied by `model.loss` = {self.loss!r}; got {output!r}")
-        self.output = output
-        if init == "auto":
-            init = "he" if self.activations and all(a in RELU_FAMILY for a in self.activations) else "glorot"
-        self.init = _choice("model.init", init, INITS)
+        # The same checks and messages as the job file's [model] table (config.model_spec).
+        spec = model_spec({"layers": list(layers), "activation": activation, "loss": loss, "dtype": dtype,
+                           "init": init, "output": output})
+        self.sizes = spec.layers
+        self.activations = spec.activation
+        self.loss = spec.loss
+        self.dtype = np.dtype(spec.dtype)
+        self.output = IMPLIED_OUTPUT[self.loss] if spec.output == "auto" else spec.output
+        self.init = spec.init
+        if self.init == "auto":
+            self.init = "he" if self.activations and all(a in RELU_FAMILY for a in self.activations) else "glorot"
         self.hidden_codes = [act.code_of(a) for a in self.activations]
-        self.output_code = act.code_of(output) if self.loss == "squared_error" else act.IDENTITY
+        self.output_code = act.code_of(self.output) if self.loss == "squared_error" else act.IDENTITY
         self.loss_code = losses.CODES[self.loss]
 
         # Layout: last layer first, W before b within a layer.
@@ -249,7 +239,7 @@ class Workspace:
         if m.loss_code == losses.BINARY_CROSS_ENTROPY:
             return losses.binary_cross_entropy(Z, targets[:n], scale, O, dZ)
         total = losses.squared_error(O, targets[:n], scale, dZ)
-        act.backward(Z, O, dZ, dZ, m.output_code)
+        act.backward(Z, O, dZ, m.output_code)
         return total
 
     def forward_outputs(self, n: int) -> np.ndarray:
@@ -282,6 +272,6 @@ class Workspace:
             if l > 0:
                 dA = self.delta(1 - which, n, m.sizes[l])
                 np.matmul(dZ, m.weights[l].T, out=dA)
-                act.backward(self.Z[l - 1][:n], self.A[l][:n], dA, dA, m.hidden_codes[l - 1])
+                act.backward(self.Z[l - 1][:n], self.A[l][:n], dA, m.hidden_codes[l - 1])
                 which = 1 - which
             yield l, dZ

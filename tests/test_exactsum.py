@@ -353,16 +353,13 @@ def test_returns_largest_magnitude(dtype) -> None:
     assert exactsum.accumulate(x[:0], exactsum.new_accumulator(0)) == 0.0
 
 
-def test_exact_cancellation_gives_positive_zero_and_zero_resets() -> None:
+def test_exact_cancellation_gives_positive_zero() -> None:
     x = np.array([1e9, -0.0, 1e-20, 2.0**-88])
     acc = exactsum.new_accumulator(4)
     exactsum.accumulate(x, acc)
     exactsum.accumulate(-x, acc)
     result = read(acc)
     assert result.tobytes() == np.zeros(4).tobytes()  # IEEE 754: exact zero sum is +0 (round to nearest)
-    exactsum.accumulate(x, acc)
-    exactsum.zero(acc)
-    assert not acc.any()
 
 
 def test_rejects_mismatched_arrays() -> None:

@@ -95,17 +95,20 @@ def test_bias_forward(name, dtype, n, m, seed, alias):
 @pytest.mark.parametrize("dtype", DTYPES)
 @pytest.mark.parametrize("name", list(act.CODES))
 @SETTINGS
-@given(n=sizes, m=sizes, seed=seeds, alias=st.booleans())
-def test_backward(name, dtype, n, m, seed, alias):
+@given(n=sizes, m=sizes, seed=seeds)
+def test_backward(name, dtype, n, m, seed):
     rng = np.random.default_rng(seed)
     Z, dA = random(rng, (n, m), dtype), random(rng, (n, m), dtype)
     A = np_forward(name, Z.astype(np.float64)).astype(dtype)  # the forward pass's stored outputs
     expected = np_derivative(name, Z.astype(np.float64)) * dA.astype(np.float64)  # dZ = f'(Z)·dA, chain rule
-    dZ = dA if alias else np.full((n, m), np.nan, dtype=dtype)
-    act.backward(Z, A, dA, dZ, act.code_of(name))
+    Z_before, A_before = Z.copy(), A.copy()
+    D = dA.copy()  # dA on entry, dZ on exit
+    act.backward(Z, A, D, act.code_of(name))
     # σ' and tanh' come from the stored float32 A (one extra rounding, amplified in 1 − a²): looser for float32
     rtol = 5e-5 if dtype == np.float32 else 1e-12
-    np.testing.assert_allclose(dZ, expected, rtol=rtol, atol=10 * ATOL[dtype])
+    np.testing.assert_allclose(D, expected, rtol=rtol, atol=10 * ATOL[dtype])
+    np.testing.assert_array_equal(Z, Z_before)  # only the delta is written
+    np.testing.assert_array_equal(A, A_before)
 
 
 @pytest.mark.parametrize("name", list(act.CODES))
@@ -306,17 +309,6 @@ def test_sum_squares_and_scale(dtype, n, seed, factor):
     expected = (x.astype(np.float64) * factor).astype(dtype)  # one rounding of the float64 product
     optim_kernels.scale(x, factor)
     np.testing.assert_array_equal(x, expected)
-
-
-@pytest.mark.parametrize("dtype", DTYPES)
-@SETTINGS
-@given(n=sizes, seed=seeds, where=st.integers(min_value=-1, max_value=16),
-       value=st.sampled_from([np.nan, np.inf, -np.inf]))
-def test_any_nonfinite(dtype, n, seed, where, value):
-    x = np.random.default_rng(seed).standard_normal(n).astype(dtype)
-    if 0 <= where < n:
-        x[where] = value
-    assert optim_kernels.any_nonfinite(x) == (not np.isfinite(x).all())  # numpy.isfinite
 
 
 @pytest.mark.parametrize("dtype", DTYPES)

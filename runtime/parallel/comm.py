@@ -23,6 +23,7 @@ import numpy as np
 # mpi4py's default, MPI_THREAD_MULTIPLE, is kept on purpose: with the MPICH wheel, single-thread mode measured
 # 5.7 ms per 4 MB allreduce at P = 2 against 0.38 ms, and seconds per MB once ranks share a core.
 from mpi4py import MPI
+from shardmill.config import JobError, LocalJobError
 
 # Seconds a failing rank waits between writing its message and calling MPI_Abort. Hydra's launcher forwards a
 # rank's stderr and its abort request on separate channels; when the abort wins, the message is lost and the
@@ -162,10 +163,11 @@ def run_guarded(main: Callable[[], int], user_errors: tuple[type[BaseException],
     try:
         return main()
     except user_errors as err:
-        if rank == 0 or getattr(err, "local", False):
-            prefix = f"[rank {rank}] " if size > 1 and getattr(err, "local", False) else ""
+        local = isinstance(err, LocalJobError)  # seen by this rank only: the others may be waiting for it
+        if rank == 0 or local:
+            prefix = f"[rank {rank}] " if size > 1 and local else ""
             print(f"shardmill: error: {prefix}{err}", file=sys.stderr, flush=True)
-        if getattr(err, "local", False) and size > 1:
+        if local and size > 1:
             abort_world(2, comm)
         return 2
     except KeyboardInterrupt:
@@ -189,8 +191,6 @@ def agree(comm: Comm, error: Exception | None) -> None:
     Used where a failure can be local to one rank (a file missing on one node, a bad row in one shard).
     The message names the first failing rank. Small control message (lowercase allgather), start-up only.
     """
-    from shardmill.config import JobError
-
     if comm.size == 1:
         if error is not None:
             raise error

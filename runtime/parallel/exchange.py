@@ -57,7 +57,7 @@ class ExactSums(FloatSums):
 
     def __init__(self, comm: Comm, k: int) -> None:
         super().__init__(comm, k)
-        self.limbs = np.zeros((exactsum.LIMBS, k), dtype=np.int64)
+        self.limbs = exactsum.new_accumulator(k)
 
     def add(self, values: np.ndarray) -> None:
         exactsum.accumulate(values, self.limbs)
@@ -211,11 +211,11 @@ class ExactExchange(Exchange):
         # in one pass (exactsum.assign_pair): one read-and-write of the limbs fewer per step.
         most_chunks = -(-(global_batch // chunk) // P)
         self.pair_grads = np.zeros_like(grads) if most_chunks >= 2 else None
-        self.limbs = np.zeros((exactsum.LIMBS, grads.size), dtype=np.int64)
+        self.limbs = exactsum.new_accumulator(grads.size)
         bounds = [block_range(grads.size, r, P) for r in range(P)]
         self.slice_counts = [hi - lo for lo, hi in bounds]
         self.slice = slice(*bounds[comm.rank])  # the part of the sum this rank reads back
-        self.slice_limbs = np.zeros((exactsum.LIMBS, self.slice_counts[comm.rank]), dtype=np.int64)
+        self.slice_limbs = exactsum.new_accumulator(self.slice_counts[comm.rank])
         self._current = self.first
 
     @classmethod
@@ -305,7 +305,7 @@ class ExactExchange(Exchange):
         if self.pair_grads is not None:
             exactsum.assign_pair(grads, grads.copy(), limbs)
         exactsum.to_float(limbs, grads)
-        sums = np.zeros((exactsum.LIMBS, 3), dtype=np.int64)  # the metric sums' specialisation (float64)
+        sums = exactsum.new_accumulator(3)  # the metric sums' specialisation (float64)
         exactsum.accumulate(np.zeros(3), sums)
         exactsum.to_float(sums, np.zeros(3))
 

@@ -3,9 +3,9 @@
 Prints one JSON object (rank 0). The buffer is a ``grads`` array with the mid model's layout
 (784-1024-1024-10, 1,863,690 parameters). One repetition of each contender:
 
-* exchange: fill ``grads``; barrier; start the clock; ``GradientExchange.layer_done(l)`` for every layer in
-  backward order (l = L−1 … 0), which starts each bucket's non-blocking allreduce as it closes; ``wait()``;
-  stop the clock. With overlap off, ``wait()`` is one blocking allreduce of the whole buffer.
+* exchange: fill ``grads``; barrier; start the clock; ``BucketExchange.layer_done(l)`` for every layer in
+  backward order (l = L−1 … 0), which starts each bucket's non-blocking allreduce as it closes; ``finish()``;
+  stop the clock. With overlap off, ``finish()`` is one blocking allreduce of the whole buffer.
 * raw: fill the same ``grads``; barrier; start the clock; ``comm.Allreduce(MPI.IN_PLACE, grads)``; stop.
 
 The fill is outside the clock for both. Each repetition's time is the maximum over ranks; the two contenders
@@ -23,17 +23,15 @@ from __future__ import annotations
 
 import argparse
 import os
-import subprocess
 import sys
 from pathlib import Path
 from typing import Any
 
-sys.path.insert(0, str(Path(__file__).resolve().parent))
-from common import pin_blas  # noqa: E402
-
-pin_blas()  # before numpy loads OpenBLAS
-import numpy as np  # noqa: E402
-from common import MID_MODEL, LoadMeter, child_environment, emit, log, machine_record, median, mpiexec  # noqa: E402
+import numpy as np
+from shardmill.benchsupport import MID_MODEL, LoadMeter, emit, log, machine_record
+from shardmill.parallel.launch import run_for_status
+from shardmill.timing import median, slowest_call
+from threadpoolctl import threadpool_limits
 
 TARGET = 1.05  # exchange / raw, from the issue
 # 0.01 MB closes a bucket after every layer (3 buckets); 4 MB (the default) gives 2; 64 MB one bucket.
@@ -47,22 +45,16 @@ def launched_by_mpi() -> bool:
 
 
 def relaunch(ranks: int, argv: list[str], timeout: float) -> int:
-    cmd = [mpiexec(), "-n", str(ranks), sys.executable, str(Path(__file__).resolve()), *argv]
-    log(f"starting {' '.join(cmd)}")
-    try:
-        return subprocess.run(cmd, env=child_environment(), timeout=timeout).returncode
-    except subprocess.TimeoutExpired:
-        log(f"exchange benchmark ran past {timeout:.0f} s and was stopped")
-        return 124
+    """This script on ``ranks`` processes under the bundled mpiexec (one BLAS thread each); its exit status."""
+    log(f"starting this script on {ranks} processes")
+    return run_for_status(ranks, [str(Path(__file__).resolve()), *argv], timeout=timeout)
 
 
 def measure(comm, dtype: str, bucket_mb: float | None, repetitions: int, warmup: int) -> dict[str, Any]:
     """One configuration: overlap off when bucket_mb is None, else buckets of at least bucket_mb MB."""
-    from time import perf_counter
-
     from mpi4py import MPI
     from shardmill.model import MLP
-    from shardmill.parallel.exchange import GradientExchange
+    from shardmill.parallel.exchange import BucketExchange
 
     model = MLP(MID_MODEL, dtype=dtype)
     grads = np.zeros_like(model.params)
@@ -71,45 +63,40 @@ def measure(comm, dtype: str, bucket_mb: float | None, repetitions: int, warmup:
     fill = base * (comm.rank + 1)
     expected = base * (comm.size * (comm.size + 1) // 2)
     overlap = bucket_mb is not None
-    exchange = GradientExchange(comm, model, grads, bucket_mb if overlap else 4.0, overlap=overlap)
+    exchange = BucketExchange(comm, model, grads, bucket_mb if overlap else 4.0, overlap=overlap)
     layers = list(reversed(range(model.n_layers)))
     raw = comm.comm
 
-    def run_exchange() -> float:
-        np.copyto(grads, fill)
-        raw.Barrier()
-        begin = perf_counter()
+    def exchange_round() -> None:
         for l in layers:
             exchange.layer_done(l)
-        exchange.wait()
-        return perf_counter() - begin
+        exchange.finish()
 
-    def run_raw() -> float:
-        np.copyto(grads, fill)
-        raw.Barrier()
-        begin = perf_counter()
+    def raw_round() -> None:
         raw.Allreduce(MPI.IN_PLACE, grads)
-        return perf_counter() - begin
 
-    run_exchange()
+    def timed(fn) -> float:
+        """Seconds of one round, the slowest rank's, after a barrier; the fill stays outside the clock."""
+        np.copyto(grads, fill)
+        return slowest_call(comm, fn)
+
+    timed(exchange_round)
     exchange_ok = bool(np.array_equal(grads, expected))
-    run_raw()
+    timed(raw_round)
     raw_ok = bool(np.array_equal(grads, expected))
     for _ in range(warmup):
-        run_exchange()
-        run_raw()
-    local = np.zeros((2, repetitions))
-    for r in range(repetitions):
+        timed(exchange_round)
+        timed(raw_round)
+    slowest = np.zeros((2, repetitions))
+    for r in range(repetitions):  # the two take turns: which one goes first alternates
         if r % 2 == 0:
-            local[0, r] = run_exchange()
-            local[1, r] = run_raw()
+            slowest[0, r] = timed(exchange_round)
+            slowest[1, r] = timed(raw_round)
         else:
-            local[1, r] = run_raw()
-            local[0, r] = run_exchange()
-    slowest = local.copy()
-    raw.Allreduce(MPI.IN_PLACE, slowest, op=MPI.MAX)  # each repetition's time is its slowest rank's
+            slowest[1, r] = timed(raw_round)
+            slowest[0, r] = timed(exchange_round)
     ok = np.array([exchange_ok and raw_ok], dtype=np.int64)
-    raw.Allreduce(MPI.IN_PLACE, ok, op=MPI.MIN)
+    comm.allreduce_min(ok)
     ex_ms, raw_ms = median(slowest[0]) * 1e3, median(slowest[1]) * 1e3
     sizes = [(stop - start) * grads.itemsize for start, stop in exchange.buckets] if overlap else [grads.nbytes]
     return {
@@ -154,11 +141,12 @@ def main(argv: list[str] | None = None) -> int:
     warmup = 3 if args.quick else 5
     dtypes = ("float32",) if args.quick else ("float32", "float64")
     rows = []
-    for dtype in dtypes:
-        for bucket_mb in (None, *BUCKET_MB):
-            if comm.rank == 0:
-                log(f"exchange {dtype} " + ("overlap off" if bucket_mb is None else f"buckets ≥ {bucket_mb} MB"))
-            rows.append(measure(comm, dtype, bucket_mb, repetitions, warmup))
+    with threadpool_limits(limits=1, user_api="blas"):  # also when started by hand under mpiexec
+        for dtype in dtypes:
+            for bucket_mb in (None, *BUCKET_MB):
+                if comm.rank == 0:
+                    log(f"exchange {dtype} " + ("overlap off" if bucket_mb is None else f"buckets ≥ {bucket_mb} MB"))
+                rows.append(measure(comm, dtype, bucket_mb, repetitions, warmup))
     load = meter.stop(lambda own: float(comm.allreduce_sum(np.array([own]))[0]))
     if comm.rank == 0:
         emit({
@@ -167,7 +155,7 @@ def main(argv: list[str] | None = None) -> int:
             "processes": comm.size,
             "layers": MID_MODEL,
             "how": ("fill outside the clock; barrier; time the exchange (layer_done for every layer in backward "
-                    "order, then wait) and, taking turns with it, a raw mpi4py Allreduce(MPI.IN_PLACE) of the same "
+                    "order, then finish) and, taking turns with it, a raw mpi4py Allreduce(MPI.IN_PLACE) of the same "
                     "buffer; per repetition the maximum over ranks; median over repetitions."),
             "mpi": {"version": ".".join(map(str, MPI.Get_version())),
                     "library": MPI.Get_library_version().strip().splitlines()[0]},

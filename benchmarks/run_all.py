@@ -20,11 +20,9 @@ import time
 from pathlib import Path
 from typing import Any
 
-sys.path.insert(0, str(Path(__file__).resolve().parent))
-from common import pin_blas  # noqa: E402
+from shardmill.benchsupport import LoadMeter, log, machine_record, run_child, wait_until_quiet
 
-pin_blas()  # before numpy loads OpenBLAS, here and in every child
-from common import BENCHMARKS, LoadMeter, log, machine_record, run_child, wait_until_quiet  # noqa: E402
+BENCHMARKS = Path(__file__).resolve().parent
 
 
 def targets(results: dict[str, Any]) -> list[dict[str, Any]]:
@@ -60,12 +58,11 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--out", type=Path, default=BENCHMARKS / "results" / "latest.json")
     args = parser.parse_args(argv)
     quick = ["--quick"] if args.quick else []
-    py = sys.executable
-    scripts = {
-        "step_vs_floor": ([py, str(BENCHMARKS / "step_vs_floor.py"), *quick], 150 if args.quick else 480),
-        "exchange_vs_raw": ([py, str(BENCHMARKS / "exchange_vs_raw.py"), "--ranks", "2", *quick],
+    scripts = {  # python arguments of each script (one BLAS thread, see run_child) and its time limit, seconds
+        "step_vs_floor": ([str(BENCHMARKS / "step_vs_floor.py"), *quick], 150 if args.quick else 480),
+        "exchange_vs_raw": ([str(BENCHMARKS / "exchange_vs_raw.py"), "--ranks", "2", *quick],
                             120 if args.quick else 300),
-        "strong_scaling": ([py, str(BENCHMARKS / "strong_scaling.py"), "--ranks", args.ranks, *quick,
+        "strong_scaling": ([str(BENCHMARKS / "strong_scaling.py"), "--ranks", args.ranks, *quick,
                             *(["--bind"] if args.bind else [])], 300 if args.quick else 600),
     }
     meter = LoadMeter()
@@ -76,7 +73,7 @@ def main(argv: list[str] | None = None) -> int:
     for name, (cmd, timeout) in scripts.items():
         if args.wait_quiet > 0:
             waits[name] = wait_until_quiet(args.wait_quiet)
-        log(f"{name}: {' '.join(cmd[1:])}")
+        log(f"{name}: {' '.join(cmd)}")
         begin = time.perf_counter()
         result = run_child(cmd, timeout)
         seconds[name] = time.perf_counter() - begin

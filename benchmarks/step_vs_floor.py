@@ -24,20 +24,16 @@ import argparse
 import sys
 import time
 from collections.abc import Callable
-from pathlib import Path
 from typing import Any
 
-sys.path.insert(0, str(Path(__file__).resolve().parent))
-from common import pin_blas  # noqa: E402
-
-pin_blas()  # before numpy loads OpenBLAS
-import numpy as np  # noqa: E402
-from common import LoadMeter, emit, log, machine_record, median, median_time  # noqa: E402
-from shardmill.bench import gemm_floor_step, run_bench, synthetic_dataset  # noqa: E402
-from shardmill.config import job_from_dict  # noqa: E402
-from shardmill.parallel.comm import Comm  # noqa: E402
-from shardmill.trainer import PHASES, Trainer, warm_up_kernels  # noqa: E402
-from threadpoolctl import threadpool_limits  # noqa: E402
+import numpy as np
+from shardmill.bench import gemm_floor_step, run_bench, synthetic_dataset
+from shardmill.benchsupport import LoadMeter, emit, log, machine_record
+from shardmill.config import job_from_dict
+from shardmill.parallel.comm import Comm
+from shardmill.timing import median, median_time
+from shardmill.trainer import PHASES, Trainer, warm_up_kernels
+from threadpoolctl import threadpool_limits
 
 MODELS = {
     "small": ([64, 256, 256, 8], 64),
@@ -318,7 +314,7 @@ def main(argv: list[str] | None = None) -> int:
         "processes": 1,
         "how": ("run_bench: warm-up steps untimed, then step and GEMM floor in alternating blocks of 5, median of "
                 "each. paired: shardmill step, plain NumPy step, floor and needed floor in alternating blocks "
-                "of 5 after warm-up, median of each. One BLAS thread (threadpoolctl and OPENBLAS_NUM_THREADS=1). "
+                "of 5 after warm-up, median of each. One BLAS thread (threadpoolctl). "
                 "Ratios are floor / step: 1 means no time outside the GEMMs."),
         "targets": {"ratio_to_floor_small_at_least": TARGETS["small"], "ratio_to_floor_mid_at_least": TARGETS["mid"],
                     "plain_numpy_expected_about": PLAIN_NUMPY_EXPECTED},

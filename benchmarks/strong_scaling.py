@@ -26,12 +26,10 @@ import time
 from pathlib import Path
 from typing import Any
 
-sys.path.insert(0, str(Path(__file__).resolve().parent))
-from common import pin_blas  # noqa: E402
-
-pin_blas()  # before numpy loads OpenBLAS
-import numpy as np  # noqa: E402
-from common import MID_MODEL, LoadMeter, emit, log, machine_record, median, mpiexec, run_child  # noqa: E402
+import numpy as np
+from shardmill.benchsupport import MID_MODEL, LoadMeter, emit, log, machine_record, run_child
+from shardmill.scaling.study import add_speedup
+from shardmill.timing import median
 
 BATCH = 512
 EXACT_CHUNK = 256  # 2 chunks of G = 512: P ≤ 2. Chunk 64 measured 1.53× fast mode at P = 1 (8 accumulations per step)
@@ -51,12 +49,14 @@ def variants(ranks: list[int]) -> list[dict[str, Any]]:
     return out
 
 
-def bench_command(v: dict[str, Any], steps: int, warmup: int, bind: bool) -> list[str]:
+BIND = ("-bind-to", "core")  # MPICH Hydra's option: one core per rank
+
+
+def bench_args(v: dict[str, Any], steps: int, warmup: int) -> list[str]:
+    """``-m shardmill bench …`` for one variant (started under mpiexec on v["P"] ranks by run_rounds)."""
     layers = ",".join(map(str, MID_MODEL))
-    launcher = [mpiexec(), "-n", str(v["P"])] + (["-bind-to", "core"] if bind else [])
-    return [*launcher, sys.executable, "-m", "shardmill", "bench", "--layers", layers, "--batch", str(v["G"]),
-            "--dtype", "float32", "--threads", "1", "--steps", str(steps), "--warmup", str(warmup), "--json",
-            *v["flags"]]
+    return ["-m", "shardmill", "bench", "--layers", layers, "--batch", str(v["G"]), "--dtype", "float32",
+            "--threads", "1", "--steps", str(steps), "--warmup", str(warmup), "--json", *v["flags"]]
 
 
 def key(v: dict[str, Any]) -> str:
@@ -71,7 +71,7 @@ def run_rounds(todo: list[dict[str, Any]], rounds: int, steps: int, warmup: int,
         order = todo if r % 2 == 0 else list(reversed(todo))
         for v in order:
             log(f"round {r + 1}/{rounds}: {key(v)} (G = {v['G']} {' '.join(v['flags'])})")
-            out = run_child(bench_command(v, steps, warmup, bind), timeout)
+            out = run_child(bench_args(v, steps, warmup), timeout, ranks=v["P"], launcher_args=BIND if bind else ())
             out.pop("machine", None)
             results[key(v)]["runs"].append(out)
     for entry in results.values():
@@ -88,31 +88,39 @@ def run_rounds(todo: list[dict[str, Any]], rounds: int, steps: int, warmup: int,
 
 
 def ratios(results: dict[str, dict[str, Any]], ranks: list[int]) -> dict[str, Any]:
-    def step(kind: str, P: int) -> float | None:
-        return results.get(f"{kind}_P{P}", {}).get("step_ms")
+    """Speedup and efficiency (shardmill.scaling.study.add_speedup, the formulas `shardmill scale` uses),
+    overlap and exact-mode ratios from the per-variant medians."""
+    def measured(kind: str, field: str, P: int) -> float | None:
+        return results.get(f"{kind}_P{P}", {}).get(field)
 
-    def floor(kind: str, P: int) -> float | None:
-        return results.get(f"{kind}_P{P}", {}).get("floor_ms")
+    def scaled(times: dict[int, float | None], mode: str) -> dict[int, dict[str, Any]]:
+        points = [{"p": P, "step_s": t} for P, t in times.items() if t]
+        if not any(point["p"] == 1 for point in points):
+            return {}
+        add_speedup(points, mode)
+        return {point["p"]: point for point in points}
 
+    T1 = measured("strong", "step_ms", 1)
+    strong = scaled({P: measured("strong", "step_ms", P) for P in ranks}, "strong")
+    floors = scaled({P: measured("strong", "floor_ms", P) for P in ranks}, "strong")
+    weak = scaled({P: measured("weak", "step_ms", P) if P > 1 else T1 for P in ranks}, "weak")
     out: dict[str, Any] = {"strong": [], "weak": [], "overlap": [], "exact": []}
-    T1, F1 = step("strong", 1), floor("strong", 1)
     for P in ranks:
-        TP, FP = step("strong", P), floor("strong", P)
-        if T1 and TP:
-            row = {"P": P, "step_ms": TP, "speedup": T1 / TP, "efficiency": T1 / (P * TP),
-                   "floor_efficiency": F1 / (P * FP) if F1 and FP else None,
+        if P in strong:
+            row = {"P": P, "step_ms": strong[P]["step_s"], "speedup": strong[P]["speedup"],
+                   "efficiency": strong[P]["efficiency"], "floor_efficiency": floors.get(P, {}).get("efficiency"),
                    "ratio_to_floor": results[f"strong_P{P}"]["ratio_to_floor"]}
             if P == 2:
                 row["target_at_least"] = TARGETS["strong_efficiency_at_2_at_least"]
                 row["met"] = row["efficiency"] >= row["target_at_least"]
             out["strong"].append(row)
-        WP = step("weak", P) if P > 1 else T1
-        if T1 and WP:
-            out["weak"].append({"P": P, "global_batch": BATCH * P, "step_ms": WP, "efficiency": T1 / WP})
-        off, on = step("no_overlap", P), step("strong", P)
+        if P in weak:
+            out["weak"].append({"P": P, "global_batch": BATCH * P, "step_ms": weak[P]["step_s"],
+                                "efficiency": weak[P]["efficiency"]})
+        off, on = measured("no_overlap", "step_ms", P), measured("strong", "step_ms", P)
         if off and on:
             out["overlap"].append({"P": P, "no_overlap_ms": off, "overlap_ms": on, "no_overlap_over_overlap": off / on})
-        exact, fast = step("exact", P), step("strong", P)
+        exact, fast = measured("exact", "step_ms", P), on
         if exact and fast:
             target = TARGETS["exact_over_fast_at_most"]
             out["exact"].append({"P": P, "exact_ms": exact, "fast_ms": fast, "exact_over_fast": exact / fast,
@@ -126,8 +134,6 @@ def breakdown(repetitions: int) -> int:
     """Median ms per part of an exact step and of a fast step, max over ranks; rank 0 prints the JSON."""
     from shardmill.bench import synthetic_dataset
     from shardmill.config import job_from_dict
-    from shardmill.data import block_range, shard
-    from shardmill.kernels import exactsum
     from shardmill.parallel.comm import Comm
     from shardmill.trainer import Trainer, warm_up_kernels
     from threadpoolctl import threadpool_limits
@@ -135,11 +141,12 @@ def breakdown(repetitions: int) -> int:
     comm = Comm()
     dataset = synthetic_dataset(MID_MODEL, "softmax_cross_entropy", 4 * BATCH, "float32")
 
-    def trainer(reduction: str) -> Trainer:
+    def trainer(reduction: str, overlap: bool = True) -> Trainer:
         job = job_from_dict({
             "model": {"layers": MID_MODEL, "dtype": "float32"},
             "optimizer": {"method": "sgd", "learning_rate": 1e-4},
-            "run": {"global_batch": BATCH, "reduction": reduction, "exact_chunk": EXACT_CHUNK, "epochs": 1},
+            "run": {"global_batch": BATCH, "reduction": reduction, "exact_chunk": EXACT_CHUNK, "epochs": 1,
+                    "overlap": overlap},
         })
         t = Trainer(job, comm, dataset=dataset)
         warm_up_kernels(t)
@@ -157,32 +164,33 @@ def breakdown(repetitions: int) -> int:
         parts.setdefault(name, []).append(seconds)
 
     with threadpool_limits(limits=1, user_api="blas"):
+        # The parts of a step are timed one by one through the exchange strategies' own methods.
         exact, fast = trainer("exact"), trainer("fast")
+        blocking = trainer("fast", overlap=False)  # its finish() is one blocking allreduce, timed on its own
         rows = exact.sampler.batch(0, 0)
-        lo, hi = block_range(rows.size // EXACT_CHUNK, comm.rank, comm.size)
-        chunks = [rows[k * EXACT_CHUNK:(k + 1) * EXACT_CHUNK] for k in range(lo, hi)]
-        mine = shard(rows, comm.rank, comm.size)
+        ex = exact.exchange
+        chunks = list(ex.parts(rows))
+        mine, _ = next(blocking.exchange.parts(rows))
+
+        def chunk_gradients() -> None:
+            for part, out in ex.parts(rows):
+                exact.part_gradient(part, out)
+
+        def accumulate_all() -> None:  # the strategy's own add: the first one or two chunks overwrite the limbs
+            for _, out in ex.parts(rows):
+                ex.add(out)
+
         for rep in range(repetitions + 2):
             keep = rep >= 2  # two warm-up repetitions
             t = {}
-            t["exact_chunk_gradients"] = timed(
-                lambda: [exact.compute_shard(c, exact.chunk_grads, launch=False) for c in chunks])
-
-            def accumulate_all() -> None:  # as Trainer.exact_gradient: the first one or two chunks overwrite
-                first = 0
-                if len(chunks) >= 2:
-                    exactsum.assign_pair(exact.chunk_grads, exact.pair_grads, exact.limbs)
-                    first = 2
-                for k in range(first, len(chunks)):
-                    exactsum.accumulate(exact.chunk_grads, exact.limbs, replace=k == 0)
-
+            t["exact_chunk_gradients"] = timed(chunk_gradients)
             t["exact_accumulate"] = timed(accumulate_all)
-            t["exact_reduce_scatter_limbs"] = timed(exact.reduce_scatter_limbs)
-            t["exact_to_float_slice"] = timed(lambda: exactsum.to_float(exact.slice_limbs, exact.grads[exact.slice]))
-            t["exact_allgather_grads"] = timed(lambda: comm.allgather(exact.grads, exact.slice_counts))
+            t["exact_reduce_scatter_limbs"] = timed(ex.reduce_scatter_limbs)
+            t["exact_to_float_slice"] = timed(ex.read_back)
+            t["exact_allgather_grads"] = timed(ex.gather)
             t["exact_step"] = timed(lambda: exact.step(0, 0))
-            t["fast_shard_gradient"] = timed(lambda: fast.compute_shard(mine, fast.grads, launch=False))
-            t["fast_allreduce"] = timed(lambda: comm.allreduce_sum(fast.grads))
+            t["fast_shard_gradient"] = timed(lambda: blocking.part_gradient(mine, blocking.grads))
+            t["fast_allreduce"] = timed(blocking.exchange.finish)
             t["fast_step"] = timed(lambda: fast.step(0, 0))
             if keep:
                 for name, seconds in t.items():
@@ -194,7 +202,7 @@ def breakdown(repetitions: int) -> int:
         ms = {n: median(local[i]) * 1e3 for i, n in enumerate(names)}
         emit({"processes": comm.size, "chunks_per_rank": len(chunks), "rows_per_chunk": EXACT_CHUNK,
               "fast_rows_per_rank": int(mine.size), "repetitions": repetitions, "median_ms": ms,
-              "limb_bytes": int(exact.limbs.nbytes), "grad_bytes": int(fast.grads.nbytes),
+              "limb_bytes": int(ex.limbs.nbytes), "grad_bytes": int(fast.grads.nbytes),
               "how": "each part timed alone after a barrier, max over ranks per repetition, median"})
     return 0
 
@@ -225,9 +233,8 @@ def main(argv: list[str] | None = None) -> int:
     split = None
     if 2 in ranks and (os.cpu_count() or 1) >= 1:
         log("breakdown of an exact step and a fast step on 2 ranks")
-        launcher = [mpiexec(), "-n", "2"] + (["-bind-to", "core"] if args.bind else [])
-        split = run_child([*launcher, sys.executable, str(Path(__file__).resolve()), "--breakdown",
-                           str(5 if args.quick else 20)], args.timeout)
+        split = run_child([str(Path(__file__).resolve()), "--breakdown", str(5 if args.quick else 20)],
+                          args.timeout, ranks=2, launcher_args=BIND if args.bind else ())
     emit({
         "benchmark": "strong_scaling",
         "quick": args.quick,

@@ -2,17 +2,16 @@
 
 from __future__ import annotations
 
-import platform
-import statistics
-import time
 from typing import Any
 
 import numpy as np
+from shardmill.benchsupport import machine
 from shardmill.config import job_from_dict
 from shardmill.data import Split
 from shardmill.parallel.comm import Comm
+from shardmill.timing import median, slowest_call, time_call
 from shardmill.trainer import Dataset, Trainer, warm_up_kernels
-from threadpoolctl import threadpool_info, threadpool_limits
+from threadpoolctl import threadpool_limits
 
 
 def synthetic_dataset(layers: list[int], loss: str, rows: int, dtype: str, seed: int = 0) -> Dataset:
@@ -41,15 +40,17 @@ def gemm_floor_step(trainer: Trainer, first_layer_dA: bool = True) -> float:
     n = ws.rows
     grads = trainer.grads
     dWs, _ = model.views(grads)
-    begin = time.perf_counter()
-    for l in range(model.n_layers):
-        np.matmul(ws.A[l][:n], model.weights[l], out=ws.Z[l][:n])
-    for l in reversed(range(model.n_layers)):
-        dZ = ws.delta(0, n, model.sizes[l + 1])
-        np.matmul(ws.A[l][:n].T, dZ, out=dWs[l])
-        if l > 0 or first_layer_dA:
-            np.matmul(dZ, model.weights[l].T, out=ws.delta(1, n, model.sizes[l]))
-    return time.perf_counter() - begin
+
+    def gemms() -> None:
+        for l in range(model.n_layers):
+            np.matmul(ws.A[l][:n], model.weights[l], out=ws.Z[l][:n])
+        for l in reversed(range(model.n_layers)):
+            dZ = ws.delta(0, n, model.sizes[l + 1])
+            np.matmul(ws.A[l][:n].T, dZ, out=dWs[l])
+            if l > 0 or first_layer_dA:
+                np.matmul(dZ, model.weights[l].T, out=ws.delta(1, n, model.sizes[l]))
+
+    return time_call(gemms)
 
 
 def run_bench(layers: list[int], batch: int, dtype: str = "float32", threads: int = 1, steps: int = 30,
@@ -58,7 +59,9 @@ def run_bench(layers: list[int], batch: int, dtype: str = "float32", threads: in
               exact_chunk: int = 64, comm: Comm | None = None) -> dict[str, Any]:
     """Median time of full training steps (global batch ``batch`` over all ranks) and of the GEMM floor.
 
-    Step and floor are measured in alternating blocks so that drifting machine load hits both alike.
+    Step and floor are measured in alternating blocks so that drifting machine load hits both alike. Each
+    step starts after a barrier and counts as the slowest rank's seconds (``shardmill.timing.slowest_call``);
+    the floors are each rank's own GEMMs, the slowest rank's per repetition.
     Returns global ``samples_per_s`` (G / median step), ``step_ms``, ``floor_samples_per_s`` and
     ``ratio_to_floor`` (floor: three GEMMs per layer), and ``ratio_to_needed_floor`` (floor: only the GEMMs
     training needs, i.e. without the first layer's input gradient; ≤ 1, and 1 means no time outside BLAS).
@@ -84,22 +87,17 @@ def run_bench(layers: list[int], batch: int, dtype: str = "float32", threads: in
         done = 0
         while done < steps:
             todo = min(block, steps - done)
-            comm.barrier()
             for s in range(todo):
-                t0 = time.perf_counter()
-                trainer.step(0, (done + s) % spe)
-                local = np.array([time.perf_counter() - t0])
-                comm.allreduce_max(local)
-                step_times.append(float(local[0]))
+                step_times.append(slowest_call(comm, lambda k=done + s: trainer.step(0, k % spe)))
             for _ in range(todo):
                 local = np.array([gemm_floor_step(trainer), gemm_floor_step(trainer, first_layer_dA=False)])
                 comm.allreduce_max(local)
                 floor_times.append(float(local[0]))
                 needed_times.append(float(local[1]))
             done += todo
-    step_s = statistics.median(step_times)
-    floor_s = statistics.median(floor_times)
-    needed_s = statistics.median(needed_times)
+    step_s = median(step_times)
+    floor_s = median(floor_times)
+    needed_s = median(needed_times)
     n_params = trainer.model.n_params
     return {
         "layers": layers,
@@ -126,17 +124,3 @@ def run_bench(layers: list[int], batch: int, dtype: str = "float32", threads: in
         "machine": machine(),
     }
 
-
-def machine() -> dict[str, Any]:
-    """What the numbers came from: CPU, cores, BLAS library, Python and numpy versions."""
-    import os
-
-    blas = [i for i in threadpool_info() if i.get("user_api") == "blas"]
-    return {
-        "cpu": platform.processor() or platform.machine(),
-        "cores": os.cpu_count(),
-        "python": platform.python_version(),
-        "numpy": np.__version__,
-        "blas": [f"{i.get('internal_api')} {i.get('version')} ({i.get('architecture')})" for i in blas],
-        "node": platform.node(),
-    }

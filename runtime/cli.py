@@ -12,7 +12,7 @@ import os
 import sys
 from pathlib import Path
 
-from shardmill.config import JobError
+from shardmill.config import JobError, choices
 from shardmill.parallel.launch import LAUNCHED, relaunch, strip_ranks
 
 
@@ -61,11 +61,11 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("bench", help="time training steps against the BLAS floor; prints JSON")
     p.add_argument("--layers", type=_layers, default=[784, 1024, 1024, 10])
     p.add_argument("--batch", type=_positive, default=512, help="global batch G")
-    p.add_argument("--dtype", choices=("float32", "float64"), default="float32")
+    p.add_argument("--dtype", choices=choices("model.dtype"), default="float32")
     p.add_argument("--threads", type=_positive, default=1, help="BLAS threads per process")
     p.add_argument("--steps", type=_positive, default=30)
     p.add_argument("--warmup", type=int, default=5)
-    p.add_argument("--reduction", choices=("fast", "exact"), default="fast")
+    p.add_argument("--reduction", choices=choices("run.reduction"), default="fast")
     p.add_argument("--exact-chunk", type=_positive, default=64)
     p.add_argument("--no-overlap", action="store_true", help="one blocking allreduce after backward")
     p.add_argument("--bucket-mb", type=float, default=4.0)
@@ -123,7 +123,7 @@ def dispatch(args: argparse.Namespace) -> int:
     if args.command == "bench":
         return cmd_bench(args)
     if args.command == "scale":
-        from shardmill.scaling.scale import cmd_scale
+        from shardmill.scaling.driver import cmd_scale
 
         return cmd_scale(args)
     if args.command == "predict":
@@ -173,11 +173,11 @@ def _epoch_line(record: dict) -> str:
 
 def cmd_bench(args: argparse.Namespace) -> int:
     from shardmill.bench import run_bench
-    from shardmill.config import ACTIVATIONS, METHODS, _choice
+    from shardmill.config import check_choice
     from shardmill.parallel.comm import Comm
 
-    _choice("--activation", args.activation, ACTIVATIONS)
-    _choice("--optimizer", args.optimizer, METHODS)
+    check_choice("model.activation", args.activation, name="--activation")
+    check_choice("optimizer.method", args.optimizer, name="--optimizer")
     if args.bucket_mb <= 0:
         raise JobError(f"`--bucket-mb` must be > 0; got {args.bucket_mb}")
     comm = Comm()

@@ -1,8 +1,14 @@
-"""Where the time of a training step goes: named phases, timed with ``time.perf_counter``."""
+"""Time measured one way everywhere: the phases of a training step, and repeat-and-median of any call.
+
+All clocks are ``time.perf_counter`` (seconds). A timing over MPI ranks is the slowest rank's, after a barrier.
+"""
 
 from __future__ import annotations
 
+import statistics
 import time
+from collections.abc import Callable, Sequence
+from typing import Any
 
 import numpy as np
 
@@ -36,3 +42,53 @@ class PhaseTimer:
     def as_dict(self) -> dict[str, float]:
         """{phase: seconds} of the totals so far."""
         return dict(zip(PHASES, map(float, self.seconds), strict=True))
+
+
+# --------------------------------------------------------------------------------------------------------
+# Repeat and take the median: the one way shardmill times a piece of code (bench, scale, benchmarks)
+# --------------------------------------------------------------------------------------------------------
+
+
+def median(values: Sequence[float]) -> float:
+    """Median of a non-empty sequence (the mean of the two middle values for an even count)."""
+    return float(statistics.median(values))
+
+
+def time_call(fn: Callable[[], Any]) -> float:
+    """Seconds taken by one call of ``fn`` (time.perf_counter)."""
+    begin = time.perf_counter()
+    fn()
+    return time.perf_counter() - begin
+
+
+def slowest_call(comm: Any, fn: Callable[[], Any]) -> float:
+    """Seconds of one call of ``fn`` on every rank at once: barrier, time, the slowest rank's seconds.
+
+    ``comm`` is a :class:`shardmill.parallel.comm.Comm`; every rank gets the same value (one MAX allreduce,
+    outside the timed region), so decisions taken on it agree across ranks.
+    """
+    comm.barrier()
+    seconds = np.array([time_call(fn)])
+    comm.allreduce_max(seconds)
+    return float(seconds[0])
+
+
+def repeat_times(fn: Callable[[], Any], repeats: int, warmup: int = 2, comm: Any = None) -> list[float]:
+    """Seconds of each of ``repeats`` calls of ``fn`` after ``warmup`` untimed ones.
+
+    With ``comm`` (a Comm) each timed call is :func:`slowest_call`: all ranks call this with the same counts.
+    """
+    if repeats < 1:
+        raise ValueError(f"`repeats` must be >= 1; got {repeats!r}")
+    if warmup < 0:
+        raise ValueError(f"`warmup` must be >= 0; got {warmup!r}")
+    for _ in range(warmup):
+        fn()
+    if comm is None:
+        return [time_call(fn) for _ in range(repeats)]
+    return [slowest_call(comm, fn) for _ in range(repeats)]
+
+
+def median_time(fn: Callable[[], Any], repeats: int, warmup: int = 2, comm: Any = None) -> float:
+    """Median seconds of :func:`repeat_times` (``comm``: the slowest rank's seconds per call)."""
+    return median(repeat_times(fn, repeats, warmup, comm))

@@ -16,7 +16,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from conftest import make_classification, run_cli, run_mpi, write_job
+from helpers import make_classification, run_cli, run_mpi, write_job
 from shardmill import checkpoint
 from shardmill.checkpoint import CheckpointError
 from shardmill.config import job_from_dict, load_job

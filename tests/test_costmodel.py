@@ -9,15 +9,12 @@ from __future__ import annotations
 
 import json
 import math
-import os
-import shutil
-import subprocess
-import sys
 import textwrap
 from pathlib import Path
 
 import numpy as np
 import pytest
+from helpers import run_mpi
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from shardmill.scaling.costmodel import (
@@ -29,10 +26,10 @@ from shardmill.scaling.costmodel import (
     best_allreduce,
     fit_alpha_beta,
     fit_linear,
-    measure_reduction_gamma,
     parse_network,
     project,
 )
+from shardmill.scaling.measure import measure_reduction_gamma
 
 MIB = 1 << 20
 ALPHA = 2e-6
@@ -337,25 +334,15 @@ def test_measure_reduction_gamma_is_plausible() -> None:
     assert 1e-13 < gamma < 1e-8
 
 
-def _mpiexec() -> str | None:
-    beside = Path(sys.executable).parent / "mpiexec"
-    if beside.exists():
-        return str(beside)
-    return shutil.which("mpiexec")
-
-
 @pytest.mark.mpi
 def test_measure_allreduce_on_two_ranks(tmp_path: Path) -> None:
-    mpiexec = _mpiexec()
-    if mpiexec is None:
-        pytest.skip("mpiexec not found beside the Python interpreter or on PATH")
     script = tmp_path / "measure.py"
     script.write_text(
         textwrap.dedent(
             f"""
             import json
             from mpi4py import MPI
-            from shardmill.scaling.costmodel import measure_allreduce
+            from shardmill.scaling.measure import measure_allreduce
 
             world = MPI.COMM_WORLD
             results = measure_allreduce(world, [256, 64 * 1024, 4 * 1024 * 1024], repeats=5, warmup=1)
@@ -364,13 +351,7 @@ def test_measure_allreduce_on_two_ranks(tmp_path: Path) -> None:
             """
         )
     )
-    completed = subprocess.run(
-        [mpiexec, "-n", "2", sys.executable, str(script)],
-        capture_output=True,
-        text=True,
-        timeout=60,
-        env={**os.environ, "OMP_NUM_THREADS": "1"},
-    )
+    completed = run_mpi(2, [str(script)], timeout=60)
     assert completed.returncode == 0, completed.stdout + completed.stderr
     per_rank = [json.loads((tmp_path / f"rank{rank}.json").read_text()) for rank in (0, 1)]
     results = per_rank[0]

@@ -13,7 +13,7 @@ import json
 import numpy as np
 import pytest
 import shardmill as sm
-from conftest import write_job
+from helpers import write_job
 from shardmill.data import split_rows
 from sklearn.datasets import load_digits
 

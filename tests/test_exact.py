@@ -14,7 +14,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from conftest import make_classification, run_cli, run_mpi, write_job
+from helpers import make_classification, run_cli, run_mpi, write_job
 from shardmill.config import JobError, job_from_dict
 from shardmill.trainer import model_from_job
 

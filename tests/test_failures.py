@@ -14,7 +14,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from conftest import make_classification, run_cli, run_mpi, write_job
+from helpers import make_classification, run_cli, run_mpi, write_job
 from shardmill.data import split_rows
 
 pytestmark = pytest.mark.mpi

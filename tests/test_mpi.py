@@ -15,7 +15,7 @@ import autograd.numpy as anp
 import numpy as np
 import pytest
 from autograd import grad
-from conftest import make_classification, run_cli, run_mpi, write_job
+from helpers import make_classification, run_cli, run_mpi, write_job
 
 pytestmark = pytest.mark.mpi
 

@@ -9,7 +9,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 import scipy.special
-from conftest import make_classification, run_cli
+from helpers import make_classification, run_cli
 from shardmill.config import job_from_dict
 from shardmill.trainer import Trainer, train
 from sklearn.metrics import accuracy_score, log_loss

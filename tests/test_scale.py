@@ -19,7 +19,7 @@ import statistics
 from pathlib import Path
 
 import pytest
-from conftest import make_classification, run_cli, write_job
+from helpers import make_classification, run_cli, write_job
 
 pytestmark = pytest.mark.mpi
 
@@ -261,7 +261,7 @@ def test_run_past_timeout_is_stopped(tmp_path) -> None:
 
 
 def test_speedup_and_efficiency_by_hand() -> None:
-    from shardmill.scaling.scale import add_speedup
+    from shardmill.scaling.study import add_speedup
 
     def rows() -> list[dict]:
         return [{"p": 1, "step_s": 1.0}, {"p": 2, "step_s": 0.625}, {"p": 4, "step_s": 1.25}]
@@ -280,7 +280,7 @@ def test_speedup_and_efficiency_by_hand() -> None:
 
 def test_allreduce_timing_skips_sizes_past_its_budget() -> None:
     from mpi4py import MPI
-    from shardmill.scaling.scale import time_allreduce
+    from shardmill.scaling.measure import time_allreduce
 
     sizes = (4096, 16384, 65536)
     timings, skipped = time_allreduce(MPI.COMM_SELF, sizes, repeats=2, budget_s=0.0, dtype="float32")

@@ -17,7 +17,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 import shardmill as sm
-from conftest import make_classification, run_cli, write_job
+from helpers import make_classification, run_cli, write_job
 from shardmill.config import JobError, job_from_dict
 from shardmill.data import split_rows
 

@@ -18,7 +18,7 @@ import autograd.numpy as anp
 import numpy as np
 import pytest
 from autograd import grad
-from conftest import make_classification, run_mpi, write_job
+from helpers import make_classification, run_mpi, write_job
 from shardmill.config import job_from_dict
 from shardmill.trainer import Trainer
 from shardmill.verify import gamma, serial_gradient

@@ -1,50 +1,159 @@
-"""Starting shardmill under the bundled (or site) ``mpiexec`` for ``--ranks P``."""
+"""The one place that finds and starts ``mpiexec``: for ``--ranks P``, the scaling study, the benchmarks and the tests.
+
+Three steps, one function each: :func:`find_mpiexec` (which launcher, with its own arguments),
+:func:`rank_environment` (what every started process sees: BLAS threads, unbuffered output, the
+:data:`LAUNCHED` marker) and :func:`mpiexec_command` (the command line); :func:`run_command` runs a command
+with a time limit and ends the whole run, ranks included, when the limit passes.
+"""
 
 from __future__ import annotations
 
 import os
+import shlex
 import shutil
+import signal
 import subprocess
 import sys
+import time
+from collections.abc import Callable, Mapping, Sequence
 from pathlib import Path
+from typing import IO, Any
 
 from shardmill.config import JobError
 
 LAUNCHED = "SHARDMILL_LAUNCHED"
+"""Set in the environment of processes shardmill started under mpiexec, so they do not start mpiexec again."""
+
+MPIEXEC_VARIABLE = "SHARDMILL_MPIEXEC"
+"""A site launcher with its own arguments, e.g. ``mpiexec -bind-to core`` (split like a shell would)."""
+
+BLAS_THREAD_VARIABLES = ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS")
+"""The variables OpenBLAS, OpenMP builds and MKL read for their thread count when they load."""
+
+POLL_S = 0.2
+"""Seconds between looks at a running command (time limit, progress callback)."""
 
 
-def find_mpiexec() -> str:
-    """The ``mpiexec`` beside this Python (the MPICH wheel puts it there), else the first on PATH.
-
-    Set SHARDMILL_MPIEXEC to use a site launcher (e.g. ``srun`` wrappers are better called directly).
+def find_mpiexec() -> list[str]:
+    """The launcher as command words: SHARDMILL_MPIEXEC (with any arguments it carries), else the ``mpiexec``
+    beside this Python (the MPICH wheel puts it there), else the first on PATH. JobError when there is none.
     """
-    chosen = os.environ.get("SHARDMILL_MPIEXEC")
+    chosen = os.environ.get(MPIEXEC_VARIABLE, "").strip()
     if chosen:
-        return chosen
+        return shlex.split(chosen)
     beside = Path(sys.executable).parent / "mpiexec"
     if beside.exists():
-        return str(beside)
+        return [str(beside)]
     found = shutil.which("mpiexec")
     if not found:
-        raise JobError("`--ranks` needs mpiexec: install the `mpich` wheel or set SHARDMILL_MPIEXEC")
-    return found
+        raise JobError(f"`--ranks` needs mpiexec: install the `mpich` wheel or set {MPIEXEC_VARIABLE}")
+    return [found]
 
 
-def mpiexec_command(ranks: int, args: list[str]) -> list[str]:
-    """Command line that runs ``python -m shardmill ARGS`` on ``ranks`` processes."""
-    return [find_mpiexec(), "-n", str(ranks), sys.executable, "-m", "shardmill", *args]
+def rank_environment(threads: int | None = 1, launched: bool = True,
+                     base: Mapping[str, str] | None = None) -> dict[str, str]:
+    """Environment of a started process: ``base`` (default: this one's) plus what every process we start needs.
+
+    ``threads``: BLAS threads per process, set in every BLAS thread variable (None leaves them as they are,
+    so a job's ``run.threads`` decides). Output is unbuffered, so a rank's last line is not lost when the
+    job aborts. ``launched`` sets the :data:`LAUNCHED` marker (a process under mpiexec must not start it again).
+    """
+    env = dict(os.environ if base is None else base)
+    if threads is not None:
+        env.update(dict.fromkeys(BLAS_THREAD_VARIABLES, str(threads)))
+    env["PYTHONUNBUFFERED"] = "1"
+    if launched:
+        env[LAUNCHED] = "1"
+    return env
+
+
+def mpiexec_command(ranks: int, python_args: Sequence[str], launcher_args: Sequence[str] = ()) -> list[str]:
+    """``mpiexec -n RANKS [LAUNCHER_ARGS] python PYTHON_ARGS``, with this interpreter and the launcher found above.
+
+    ``python_args`` starts with a script path or ``-m module``; ``launcher_args`` are mpiexec's own
+    options, e.g. ``("-bind-to", "core")`` for MPICH's Hydra.
+    """
+    if ranks < 1:
+        raise JobError(f"`--ranks` must be ≥ 1; got {ranks}")
+    return [*find_mpiexec(), "-n", str(ranks), *launcher_args, sys.executable, *python_args]
+
+
+def run_command(command: Sequence[str], env: Mapping[str, str], timeout: float | None = None,
+                stdout: int | IO[Any] | None = None, stderr: int | IO[Any] | None = None,
+                cwd: str | Path | None = None, own_group: bool = True,
+                while_running: Callable[[float], None] | None = None) -> subprocess.CompletedProcess:
+    """Run ``command`` to its end and return it completed (text output where ``stdout``/``stderr`` is PIPE).
+
+    ``stdout``/``stderr`` as for subprocess (None: ours, PIPE: captured, a file, STDOUT). ``while_running`` is
+    called with the seconds elapsed every POLL_S seconds. With ``own_group`` the command runs in its own
+    session, so that on a time limit, Ctrl-C or any exception here the launcher *and every rank* are ended
+    (SIGTERM to the group, SIGKILL if it lingers); without, only the process itself is killed (the ``--ranks``
+    path keeps the terminal's group, so Ctrl-C reaches mpiexec as typed). Past ``timeout`` seconds the run is
+    stopped and ``subprocess.TimeoutExpired`` raised.
+    """
+    process = subprocess.Popen(list(command), stdout=stdout, stderr=stderr, text=True, env=dict(env), cwd=cwd,
+                               start_new_session=own_group)
+    begin = time.perf_counter()
+    try:
+        while True:
+            try:
+                out, err = process.communicate(timeout=POLL_S)  # retrying loses no output (subprocess docs)
+                break
+            except subprocess.TimeoutExpired:
+                elapsed = time.perf_counter() - begin
+                if timeout is not None and elapsed > timeout:
+                    raise subprocess.TimeoutExpired(process.args, timeout) from None
+                if while_running is not None:
+                    while_running(elapsed)
+    finally:
+        if process.poll() is None:
+            _stop(process, own_group)
+    return subprocess.CompletedProcess(process.args, process.returncode, out, err)
+
+
+def _stop(process: subprocess.Popen, own_group: bool) -> None:
+    """End the launcher and (with its own group) its ranks: SIGTERM, then SIGKILL if it lingers."""
+    for sig in (signal.SIGTERM, signal.SIGKILL):
+        try:
+            if own_group:
+                os.killpg(process.pid, sig)
+            else:
+                process.send_signal(sig)
+        except ProcessLookupError:
+            return
+        try:
+            process.communicate(timeout=5)
+            return
+        except subprocess.TimeoutExpired:
+            continue
+
+
+def run_ranks(ranks: int, python_args: Sequence[str], threads: int | None = 1, launcher_args: Sequence[str] = (),
+              timeout: float | None = None, **options: Any) -> subprocess.CompletedProcess:
+    """``python PYTHON_ARGS`` on ``ranks`` processes under mpiexec, environment from :func:`rank_environment`.
+
+    ``options`` go to :func:`run_command` (stdout, stderr, cwd, own_group, while_running); ``env`` there
+    adds to the environment. Raises ``subprocess.TimeoutExpired`` past ``timeout`` seconds.
+    """
+    env = rank_environment(threads) | dict(options.pop("env", None) or {})
+    return run_command(mpiexec_command(ranks, python_args, launcher_args), env, timeout=timeout, **options)
+
+
+def run_for_status(ranks: int, python_args: Sequence[str], timeout: float | None = None, **options: Any) -> int:
+    """:func:`run_ranks` with output passed through; returns the exit status, 124 (and says so) past ``timeout``."""
+    try:
+        return run_ranks(ranks, python_args, timeout=timeout, **options).returncode
+    except subprocess.TimeoutExpired:
+        print(f"shardmill: error: the {ranks}-process job ran past {timeout:g} s and was stopped", file=sys.stderr)
+        return 124
 
 
 def relaunch(ranks: int, args: list[str], timeout: float | None = None) -> int:
-    """Run ``shardmill ARGS`` on ``ranks`` processes and return the job's exit status."""
-    if ranks < 1:
-        raise JobError(f"`--ranks` must be ≥ 1; got {ranks}")
-    env = dict(os.environ, **{LAUNCHED: "1"})
-    try:
-        return subprocess.run(mpiexec_command(ranks, args), env=env, timeout=timeout).returncode
-    except subprocess.TimeoutExpired:
-        print(f"shardmill: error: the {ranks}-process job ran past {timeout} s and was stopped", file=sys.stderr)
-        return 124
+    """Run ``shardmill ARGS`` on ``ranks`` processes and return the job's exit status (``--ranks P``).
+
+    BLAS threads are left to the job (``run.threads``), and the run stays in the terminal's process group.
+    """
+    return run_for_status(ranks, ["-m", "shardmill", *args], timeout=timeout, threads=None, own_group=False)
 
 
 def strip_ranks(argv: list[str]) -> list[str]:

@@ -12,8 +12,8 @@ Every allreduce algorithm below costs
 so one table of coefficients (`_coefficients`) serves the forward model, the choice of the cheapest
 algorithm and the least-squares fit of α and β to measured timings.
 
-The file reads top to bottom: formulas → cheapest algorithm → fitting → network specs → projection →
-measurement with MPI.
+The file reads top to bottom: formulas → cheapest algorithm → fitting → network specs → projection. It needs
+no MPI; the timings it is fitted to come from `measure.py`.
 """
 
 from __future__ import annotations
@@ -21,8 +21,6 @@ from __future__ import annotations
 import difflib
 import math
 import re
-import statistics
-import time
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
 from typing import Any
@@ -467,92 +465,3 @@ def project(
             }
         )
     return rows
-
-
-# --------------------------------------------------------------------------------------------------------
-# Measurement with MPI
-# --------------------------------------------------------------------------------------------------------
-
-
-def measure_allreduce(
-    comm: Any,
-    sizes_bytes: Iterable[float],
-    repeats: int = 10,
-    warmup: int = 2,
-    dtype: Any = np.float32,
-) -> list[dict[str, Any]]:
-    """Time an in-place SUM `Allreduce` for each message size on the mpi4py communicator `comm`.
-
-    Every rank must call this with the same arguments: it runs the same collectives everywhere. Each size is
-    rounded down to whole elements of `dtype` (at least one). Per size: `warmup` untimed calls, then `repeats`
-    timed ones, each after a `Barrier`; a repetition's time is the slowest rank's (MAX allreduce of the local
-    times, outside the timed region). The buffer holds zeros, so repeated sums never overflow or turn
-    subnormal.
-
-    Returns one dict per size on every rank: n_bytes (bytes actually sent), count (elements), dtype, p,
-    repeats, warmup, median_s, min_s (seconds) and times_s (every repetition, seconds).
-    """
-    from mpi4py import MPI  # lazily: the model itself needs no MPI
-
-    repeats = int(repeats)
-    warmup = int(warmup)
-    if repeats < 1:
-        raise ValueError(f"`repeats` must be >= 1; got {repeats!r}")
-    if warmup < 0:
-        raise ValueError(f"`warmup` must be >= 0; got {warmup!r}")
-    itemsize = np.dtype(dtype).itemsize
-    results = []
-    local = np.zeros(1, dtype=np.float64)
-    slowest = np.zeros(1, dtype=np.float64)
-    for size in sizes_bytes:
-        count = max(1, int(_check_non_negative(size, "sizes_bytes")) // itemsize)
-        buffer = np.zeros(count, dtype=dtype)
-        for _ in range(warmup):
-            comm.Allreduce(MPI.IN_PLACE, buffer, op=MPI.SUM)
-        times = []
-        for _ in range(repeats):
-            comm.Barrier()
-            start = MPI.Wtime()
-            comm.Allreduce(MPI.IN_PLACE, buffer, op=MPI.SUM)
-            local[0] = MPI.Wtime() - start
-            comm.Allreduce(local, slowest, op=MPI.MAX)
-            times.append(float(slowest[0]))
-        results.append(
-            {
-                "n_bytes": count * itemsize,
-                "count": count,
-                "dtype": np.dtype(dtype).name,
-                "p": comm.Get_size(),
-                "repeats": repeats,
-                "warmup": warmup,
-                "median_s": statistics.median(times),
-                "min_s": min(times),
-                "times_s": times,
-            }
-        )
-    return results
-
-
-def measure_reduction_gamma(n_bytes: float, repeats: int = 10, warmup: int = 2, dtype: Any = np.float32) -> float:
-    """Estimate γ in seconds per byte: median time of a numpy in-place add `a += b` of `n_bytes` bytes,
-    divided by the bytes reduced. Runs on this process only, no MPI. Choose n_bytes near the gradient
-    bucket size: small sizes measure call overhead, sizes beyond the caches measure memory bandwidth.
-    """
-    repeats = int(repeats)
-    warmup = int(warmup)
-    if repeats < 1:
-        raise ValueError(f"`repeats` must be >= 1; got {repeats!r}")
-    if warmup < 0:
-        raise ValueError(f"`warmup` must be >= 0; got {warmup!r}")
-    itemsize = np.dtype(dtype).itemsize
-    count = max(1, int(_check_non_negative(n_bytes, "n_bytes")) // itemsize)
-    accumulator = np.zeros(count, dtype=dtype)
-    incoming = np.zeros(count, dtype=dtype)
-    for _ in range(warmup):
-        np.add(accumulator, incoming, out=accumulator)
-    times = []
-    for _ in range(repeats):
-        start = time.perf_counter()
-        np.add(accumulator, incoming, out=accumulator)
-        times.append(time.perf_counter() - start)
-    return statistics.median(times) / (count * itemsize)

@@ -1,4 +1,4 @@
-"""Rendering a scaling study (the dict of `scale.build_study`): the printed table, PNG figures and report.md.
+"""Rendering a scaling study (the dict of `study.build_study`): the printed table, PNG figures and report.md.
 
 Figures need matplotlib (the optional `plots` extra); without it they are skipped with a note and the
 report is written all the same. Figures are drawn on `matplotlib.figure.Figure` directly (no pyplot, no

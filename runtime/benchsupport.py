@@ -1,7 +1,8 @@
-"""Shared pieces of the benchmark scripts: one BLAS thread per rank, the machine record, medians, JSON out.
+"""What the benchmark scripts share: the machine record, the load meter, JSON out, children that print JSON.
 
-Import this module (and call :func:`pin_blas`) before numpy in every benchmark script: it pins BLAS to one
-thread per process through the environment, for this process and for every process it starts.
+The scripts under ``benchmarks/`` import this from the installed package (no path tricks). Timing itself is
+``shardmill.timing`` (repeat, median, slowest rank); starting ranks is ``shardmill.parallel.launch``, which
+also pins BLAS to one thread in every child it starts.
 """
 
 from __future__ import annotations
@@ -9,64 +10,44 @@ from __future__ import annotations
 import datetime
 import json
 import os
-import statistics
+import platform
 import subprocess
 import sys
 from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import Any
 
-BLAS_THREAD_VARIABLES = ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS")
+import numpy as np
+from shardmill.parallel.launch import BLAS_THREAD_VARIABLES, mpiexec_command, rank_environment, run_command
 
-
-def pin_blas() -> None:
-    """One BLAS thread per process, for this process and every process it starts. Call before numpy loads.
-
-    OPENBLAS_CORETYPE and OPENBLAS_L2_SIZE, which this machine sets, are left exactly as they are;
-    machine_record() notes them. In-process, threadpoolctl enforces the same limit around the timed code.
-    """
-    for name in BLAS_THREAD_VARIABLES:
-        os.environ[name] = "1"
-
-
-pin_blas()  # importing this module is enough; the explicit call in each script says so where it matters
-
-ROOT = Path(__file__).resolve().parent.parent
-BENCHMARKS = ROOT / "benchmarks"
 MID_MODEL = [784, 1024, 1024, 10]
-NOTED_ENVIRONMENT = ("OPENBLAS_CORETYPE", "OPENBLAS_L2_SIZE", "OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS",
-                     "MKL_NUM_THREADS", "NUMBA_CACHE_DIR")
+"""The reference mid model of the benchmarks (layer widths, input first)."""
+
+NOTED_ENVIRONMENT = ("OPENBLAS_CORETYPE", "OPENBLAS_L2_SIZE", *BLAS_THREAD_VARIABLES, "NUMBA_CACHE_DIR")
+"""Environment variables the machine record notes when they are set."""
+
+
+def machine() -> dict[str, Any]:
+    """What the numbers came from: CPU, cores, BLAS library, Python and numpy versions."""
+    from threadpoolctl import threadpool_info
+
+    blas = [i for i in threadpool_info() if i.get("user_api") == "blas"]
+    return {
+        "cpu": platform.processor() or platform.machine(),
+        "cores": os.cpu_count(),
+        "python": platform.python_version(),
+        "numpy": np.__version__,
+        "blas": [f"{i.get('internal_api')} {i.get('version')} ({i.get('architecture')})" for i in blas],
+        "node": platform.node(),
+    }
 
 
 def machine_record() -> dict[str, Any]:
-    """shardmill.bench.machine() plus the date (UTC, ISO 8601) and the BLAS-related environment as set."""
-    from shardmill.bench import machine
-
+    """machine() plus the date (UTC, ISO 8601) and the BLAS-related environment as set."""
     record = machine()
     record["date"] = datetime.datetime.now(datetime.UTC).isoformat(timespec="seconds")
     record["environment"] = {name: os.environ[name] for name in NOTED_ENVIRONMENT if name in os.environ}
     return record
-
-
-def median(values: Sequence[float]) -> float:
-    """Median of a non-empty sequence (statistics.median; mean of the two middle values for even counts)."""
-    return float(statistics.median(values))
-
-
-def time_call(fn: Callable[[], Any]) -> float:
-    """Seconds taken by one call of ``fn`` (time.perf_counter)."""
-    from time import perf_counter
-
-    begin = perf_counter()
-    fn()
-    return perf_counter() - begin
-
-
-def median_time(fn: Callable[[], Any], repeats: int, warmup: int = 2) -> float:
-    """Median seconds of ``repeats`` calls of ``fn`` after ``warmup`` untimed calls."""
-    for _ in range(warmup):
-        fn()
-    return median([time_call(fn) for _ in range(repeats)])
 
 
 class LoadMeter:
@@ -158,18 +139,6 @@ def emit(result: dict[str, Any]) -> None:
     print(json.dumps(result, indent=1, allow_nan=True), flush=True)
 
 
-def child_environment() -> dict[str, str]:
-    """Environment for the processes a benchmark starts: this one, with BLAS pinned and output unbuffered."""
-    return dict(os.environ, **dict.fromkeys(BLAS_THREAD_VARIABLES, "1"), PYTHONUNBUFFERED="1")
-
-
-def mpiexec() -> str:
-    """The launcher shardmill itself uses (SHARDMILL_MPIEXEC, else the bundled one, else PATH)."""
-    from shardmill.parallel.launch import find_mpiexec
-
-    return find_mpiexec()
-
-
 def last_json(text: str) -> dict[str, Any]:
     """The JSON object a child printed on stdout (the last line, or the whole text when it is indented)."""
     text = text.strip()
@@ -179,22 +148,28 @@ def last_json(text: str) -> dict[str, Any]:
         return json.loads(text.splitlines()[-1])
 
 
-def run_child(cmd: list[str], timeout: float) -> dict[str, Any]:
-    """Run ``cmd``, return the JSON object it printed; on failure an ``error`` record (never raises).
+def run_child(python_args: Sequence[str], timeout: float, ranks: int | None = None,
+              launcher_args: Sequence[str] = (), cwd: str | Path | None = None) -> dict[str, Any]:
+    """Run ``python PYTHON_ARGS`` (under mpiexec on ``ranks`` processes when given) with BLAS pinned to one thread;
+    return the JSON object it printed, or an ``error`` record on failure (never raises).
 
     stderr of the child is passed through to ours, so progress and warnings stay visible.
     """
+    if ranks is None:
+        command = [sys.executable, *python_args]
+    else:
+        command = mpiexec_command(ranks, python_args, launcher_args)
+    env = rank_environment(threads=1, launched=ranks is not None)
     try:
-        done = subprocess.run(cmd, stdout=subprocess.PIPE, stderr=sys.stderr, text=True, timeout=timeout,
-                              env=child_environment(), cwd=ROOT)
+        done = run_command(command, env, timeout=timeout, stdout=subprocess.PIPE, cwd=cwd)
     except subprocess.TimeoutExpired:
-        return {"error": f"timed out after {timeout:.0f} s", "command": cmd}
+        return {"error": f"timed out after {timeout:.0f} s", "command": command}
     if done.returncode != 0:
-        return {"error": f"exit status {done.returncode}", "command": cmd, "stdout_tail": done.stdout[-2000:]}
+        return {"error": f"exit status {done.returncode}", "command": command, "stdout_tail": done.stdout[-2000:]}
     try:
         return last_json(done.stdout)
     except (json.JSONDecodeError, IndexError):
-        return {"error": "no JSON on stdout", "command": cmd, "stdout_tail": done.stdout[-2000:]}
+        return {"error": "no JSON on stdout", "command": command, "stdout_tail": done.stdout[-2000:]}
 
 
 def log(message: str) -> None:

@@ -1,0 +1,176 @@
+"""`shardmill scale`: check the arguments, run the worker at each process count, then build and write the study.
+
+    cmd_scale                 check the arguments, then for each P
+      run_point               mpiexec -n P python -m shardmill.scaling.worker … (the one launcher), log to
+                              out/logs/pP.log, stop it past --timeout, read out/runs/pP.json
+    study.build_study         rows per P, communication model, projection
+    study.write_study         scaling.json, scaling.csv; report.render draws the PNGs and report.md
+"""
+
+from __future__ import annotations
+
+import argparse
+import contextlib
+import json
+import signal
+import subprocess
+import sys
+import threading
+from collections.abc import Iterator
+from pathlib import Path
+from typing import Any
+
+from shardmill.config import Job, JobError, load_job
+from shardmill.parallel.launch import run_ranks
+from shardmill.scaling import costmodel
+from shardmill.scaling.study import build_study, write_study
+
+
+class RunFailed(Exception):
+    """A worker run that did not finish: carries the exit status the command should return."""
+
+    def __init__(self, message: str, code: int) -> None:
+        super().__init__(message)
+        self.code = code
+
+
+def parse_counts(text: str, option: str) -> list[int]:
+    """Comma-separated process counts such as "1,2,4" as a sorted list of distinct ints ≥ 1."""
+    try:
+        counts = [int(part) for part in str(text).split(",") if part.strip()]
+    except ValueError:
+        counts = []
+    if not counts or min(counts) < 1:
+        raise JobError(f"`{option}` must be comma-separated process counts ≥ 1 like 1,2,4; got {text!r}")
+    return sorted(set(counts))
+
+
+def parse_network_option(spec: str | None) -> tuple[float, float] | None:
+    """`--network` as (alpha seconds, beta seconds per byte), or None when not given; JobError if unreadable."""
+    if spec is None:
+        return None
+    try:
+        return costmodel.parse_network(spec)
+    except ValueError as err:
+        raise JobError(f"`--network`: {err}") from None
+
+
+def global_batch_at(job: Job, p: int, mode: str) -> int:
+    """The global batch of the run on p processes: G (strong) or G·p (weak, G per rank)."""
+    return job.run.global_batch if mode == "strong" else job.run.global_batch * p
+
+
+def cmd_scale(args: argparse.Namespace) -> int:
+    """`shardmill scale JOB --ranks 1,2,4 --mode strong|weak --out DIR`: run, measure, model, report."""
+    from mpi4py import MPI
+
+    ranks = parse_counts(args.ranks, "--ranks")
+    if 1 not in ranks:
+        raise JobError(f"`--ranks` must include 1, the serial baseline of speedup and efficiency; got {args.ranks!r}")
+    project_to = parse_counts(args.project, "--project")
+    network = parse_network_option(args.network)
+    if MPI.COMM_WORLD.Get_size() > 1:
+        raise JobError("`shardmill scale` starts its own mpiexec runs; start it as one process, without mpiexec")
+    job = load_job(args.job)
+    if args.mode == "strong" and job.run.global_batch < max(ranks):
+        raise JobError(f"`run.global_batch` = {job.run.global_batch} is smaller than the largest process count "
+                       f"{max(ranks)}; strong scaling needs at least one sample per rank")
+    timeout = float(getattr(args, "timeout", 900.0))
+    if not timeout > 0:
+        raise JobError(f"`--timeout` must be > 0 seconds; got {timeout:g}")
+    out = Path(args.out)
+    (out / "runs").mkdir(parents=True, exist_ok=True)
+    (out / "logs").mkdir(parents=True, exist_ok=True)
+
+    raws: dict[int, dict[str, Any]] = {}
+    bar = _progress(len(ranks), show=not getattr(args, "no_progress", False))
+    try:
+        for p in ranks:
+            raws[p] = run_point(Path(args.job), p, global_batch_at(job, p, args.mode), args.steps, args.threads,
+                                args.pin, out, timeout, bar)
+            bar.update(1)
+    except RunFailed as failure:
+        bar.close()
+        print(f"shardmill: error: {failure}", file=sys.stderr, flush=True)
+        return failure.code
+    bar.close()
+
+    study = build_study(job, Path(args.job), args.mode, args.steps, args.threads, args.pin, raws, project_to,
+                        args.network, network)
+    from shardmill.scaling import report
+
+    figures_and_report = report.render(study, out)  # first: it may add a note that the JSON should carry
+    written = write_study(study, out) + figures_and_report
+    print(report.text_table(study))
+    for note in study["notes"]:
+        print(f"note: {note}", file=sys.stderr)
+    print("wrote " + ", ".join(str(path) for path in written))
+    return 0
+
+
+def _progress(total: int, show: bool):
+    from tqdm import tqdm
+
+    return tqdm(total=total, desc="scale", unit="run", file=sys.stderr, dynamic_ncols=True,
+                disable=None if show else True)
+
+
+def worker_args(job: Path, global_batch: int, steps: int, threads: int, pin: bool, result: Path) -> list[str]:
+    """Python arguments of one run: `-m shardmill.scaling.worker` with these settings (paths made absolute)."""
+    args = ["-m", "shardmill.scaling.worker", "--job", str(job.resolve()), "--global-batch", str(global_batch),
+            "--steps", str(steps), "--threads", str(threads), "--result", str(result.resolve())]
+    return args + (["--pin"] if pin else [])
+
+
+def run_point(job: Path, p: int, global_batch: int, steps: int, threads: int, pin: bool, out: Path,
+              timeout: float, bar: Any = None) -> dict[str, Any]:
+    """Run the worker on p processes and return what its rank 0 wrote (see `worker.run_worker`).
+
+    Output of all ranks goes to out/logs/pP.log. A run past `timeout` seconds is stopped (its whole process
+    group) and raises RunFailed with status 124; a user error in the worker (bad job, too few rows) raises
+    RunFailed with status 2 and the worker's message; any other failure shows the end of the log, status 1.
+    """
+    result = out / "runs" / f"p{p}.json"
+    log_path = out / "logs" / f"p{p}.log"
+    result.unlink(missing_ok=True)
+
+    def show(elapsed: float) -> None:
+        if bar is not None:
+            bar.set_postfix_str(f"P={p} G={global_batch} {elapsed:.0f} s", refresh=True)
+
+    with open(log_path, "w") as log, _sigterm_as_interrupt():
+        try:
+            done = run_ranks(p, worker_args(job, global_batch, steps, threads, pin, result), threads=threads,
+                             timeout=timeout, stdout=log, stderr=subprocess.STDOUT, while_running=show)
+        except subprocess.TimeoutExpired:
+            raise RunFailed(f"the {p}-process run ran past {timeout:g} s and was stopped; see {log_path}",
+                            124) from None
+    if done.returncode != 0 or not result.is_file():
+        text = log_path.read_text(errors="replace")
+        errors = [line for line in text.splitlines() if line.startswith("shardmill: error:")]
+        if done.returncode == 2 and errors:
+            message = errors[0].removeprefix("shardmill: error:").strip()
+            raise RunFailed(f"the {p}-process run stopped: {message}", 2)
+        tail = "\n".join(text.splitlines()[-20:])
+        raise RunFailed(f"the {p}-process run failed with exit status {done.returncode}; end of {log_path}:\n"
+                        f"{tail}", 1)
+    return json.loads(result.read_text())
+
+
+@contextlib.contextmanager
+def _sigterm_as_interrupt() -> Iterator[None]:
+    """SIGTERM (a batch system ending us) raises KeyboardInterrupt here, so the launcher's clean-up ends the run
+    (it has its own session and would outlive us otherwise). Signal handlers can only be set in the main thread.
+    """
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+    previous = signal.signal(signal.SIGTERM, _interrupt)
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGTERM, previous)
+
+
+def _interrupt(signum: int, frame: Any) -> None:
+    raise KeyboardInterrupt(f"signal {signum}")

@@ -1,0 +1,178 @@
+"""One run of a scaling study on P processes: what `mpiexec -n P python -m shardmill.scaling.worker …` runs.
+
+    pin (optional) → Trainer(job) → warm-up → N timed steps → per-rank record → gather to rank 0
+    → allreduce timings over MESSAGE_SIZES and the reduction cost γ → rank 0 writes runs/pP.json
+
+Started by the driver (`driver.run_point`), one process per rank; reads the job, writes one JSON file.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import sys
+import time
+from pathlib import Path
+from typing import Any
+
+from shardmill.config import JobError, load_job
+from shardmill.scaling.measure import COMM_BUDGET_S, MESSAGE_SIZES, measure_reduction_gamma, time_allreduce
+
+WARMUP_STEPS = 2
+"""Untimed training steps after the kernel warm-up (first-touch of buffers, MPI connection set-up)."""
+
+
+def pin_rank(rank: int, threads: int) -> list[int] | None:
+    """Pin this process and all its threads to `threads` cores starting at rank·threads, modulo the allowed cores.
+
+    With one thread per rank this is rank r → core r mod cores. Returns the cores, or None where the
+    platform cannot set affinity (psutil has no cpu_affinity there).
+    """
+    import psutil
+
+    process = psutil.Process()
+    if not hasattr(process, "cpu_affinity"):
+        return None
+    allowed = sorted(process.cpu_affinity())
+    cores = sorted({allowed[(rank * threads + k) % len(allowed)] for k in range(threads)})
+    process.cpu_affinity(cores)
+    # Threads started before now (MPI, BLAS pools) keep their old mask; new ones inherit the process's.
+    if hasattr(os, "sched_setaffinity"):
+        for thread in process.threads():
+            try:
+                os.sched_setaffinity(thread.id, cores)
+            except OSError:
+                pass
+    return cores
+
+
+def placement(pinned: list[int] | None) -> dict[str, Any]:
+    """Where this rank runs: cpu (last CPU it ran on, or None), affinity (allowed CPUs), pinned (bool)."""
+    import psutil
+
+    process = psutil.Process()
+    cpu = process.cpu_num() if hasattr(process, "cpu_num") else None
+    affinity = sorted(process.cpu_affinity()) if hasattr(process, "cpu_affinity") else None
+    return {"cpu": cpu, "affinity": affinity, "pinned": pinned is not None, "pinned_cores": pinned}
+
+
+def memory() -> dict[str, int]:
+    """rss_bytes (now, psutil) and peak_rss_bytes (resource.getrusage maxrss: KiB on Linux, bytes on macOS)."""
+    import psutil
+
+    rss = int(psutil.Process().memory_info().rss)
+    try:
+        import resource
+
+        peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+        peak = int(peak if sys.platform == "darwin" else peak * 1024)
+    except ImportError:  # no resource module (Windows): the current RSS is the best we have
+        peak = rss
+    return {"rss_bytes": rss, "peak_rss_bytes": max(peak, rss)}
+
+
+def run_worker(job_path: Path, global_batch: int, steps: int, threads: int, pin: bool, result: Path,
+               comm_repeats: int = 5) -> int:
+    """Time `steps` training steps of the job on every rank of MPI.COMM_WORLD; rank 0 writes `result` (JSON).
+
+    Pinning happens before the trainer is built. After the kernel warm-up and WARMUP_STEPS untimed steps
+    the phase timer is reset and the timed steps run between a barrier and the last step's end. Then every
+    rank's record is gathered once to rank 0 (lowercase gather: a small control message after timing),
+    the allreduce is timed over MESSAGE_SIZES (P > 1) and rank 0 measures γ at the bucket size.
+    """
+    from mpi4py import MPI
+    from shardmill.data import block_range
+    from shardmill.parallel.comm import Comm
+    from shardmill.trainer import Trainer, warm_up_kernels
+    from threadpoolctl import threadpool_limits
+
+    comm = Comm()
+    pinned = pin_rank(comm.rank, threads) if pin else None
+    job = load_job(job_path)
+    job.run.global_batch = global_batch
+    job.run.threads = threads
+    with threadpool_limits(limits=threads, user_api="blas"):
+        trainer = Trainer(job, comm)
+        compile_s = warm_up_kernels(trainer)
+        per_epoch = trainer.sampler.steps_per_epoch
+        for step in range(WARMUP_STEPS):
+            trainer.step(*divmod(step, per_epoch))
+        trainer.timer.reset()
+        comm.barrier()
+        begin = time.perf_counter()
+        for step in range(WARMUP_STEPS, WARMUP_STEPS + steps):
+            trainer.step(*divmod(step, per_epoch))  # wraps around the epoch when steps exceed it
+        wall_s = time.perf_counter() - begin
+    lo, hi = block_range(global_batch, comm.rank, comm.size)
+    record = {
+        "rank": comm.rank,
+        "rows": hi - lo,
+        "wall_s": wall_s,
+        "phase_s": trainer.timer.as_dict(),
+        "compile_s": compile_s,
+        **memory(),
+        **placement(pinned),
+    }
+    records = comm.gather_object(record)
+    dtype = trainer.model.dtype
+    timings, skipped = time_allreduce(comm, MESSAGE_SIZES, comm_repeats, COMM_BUDGET_S, dtype) \
+        if comm.size > 1 else ([], [])
+    if comm.rank == 0:
+        gamma_bytes = int(job.run.bucket_mb * 1e6)
+        gamma = measure_reduction_gamma(gamma_bytes, repeats=comm_repeats, warmup=1, dtype=dtype)
+        import mpi4py
+
+        payload = {
+            "p": comm.size,
+            "global_batch": global_batch,
+            "steps": steps,
+            "warmup_steps": WARMUP_STEPS,
+            "threads": threads,
+            "params": trainer.model.n_params,
+            "grad_bytes": trainer.model.n_params * dtype.itemsize,
+            "ranks": records,
+            "allreduce": timings,
+            "allreduce_skipped_bytes": skipped,
+            "mpi_thread_level": thread_level_name(MPI.Query_thread()),
+            "gamma_s_per_byte": gamma,
+            "gamma_bytes": gamma_bytes,
+            "mpi_library": " ".join(MPI.Get_library_version().strip().splitlines()[0].split()),
+            "mpi4py": mpi4py.__version__,
+        }
+        partial = result.with_suffix(".tmp")
+        partial.write_text(json.dumps(payload, allow_nan=False))
+        partial.replace(result)
+    comm.barrier()
+    return 0
+
+
+def thread_level_name(level: int) -> str:
+    """MPI's thread support level as a word: single, funneled, serialized or multiple."""
+    from mpi4py import MPI
+
+    names = {MPI.THREAD_SINGLE: "single", MPI.THREAD_FUNNELED: "funneled", MPI.THREAD_SERIALIZED: "serialized",
+             MPI.THREAD_MULTIPLE: "multiple"}
+    return names.get(level, str(level))
+
+
+def worker_main(argv: list[str] | None = None) -> int:
+    """Entry point of `python -m shardmill.scaling.worker` (started by the driver, one process per rank)."""
+    parser = argparse.ArgumentParser(prog="python -m shardmill.scaling.worker",
+                                     description="one run of a scaling study (started by `shardmill scale`)")
+    parser.add_argument("--job", type=Path, required=True)
+    parser.add_argument("--global-batch", type=int, required=True)
+    parser.add_argument("--steps", type=int, required=True)
+    parser.add_argument("--threads", type=int, default=1)
+    parser.add_argument("--pin", action="store_true")
+    parser.add_argument("--result", type=Path, required=True)
+    parser.add_argument("--comm-repeats", type=int, default=5)
+    args = parser.parse_args(argv)
+    from shardmill.parallel.comm import run_guarded
+
+    return run_guarded(lambda: run_worker(args.job, args.global_batch, args.steps, args.threads, args.pin,
+                                          args.result, args.comm_repeats), user_errors=(JobError,))
+
+
+if __name__ == "__main__":
+    raise SystemExit(worker_main())

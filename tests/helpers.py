@@ -1,0 +1,81 @@
+"""Test helpers: tiny data sets, job files, and running shardmill (one process, or under a real mpiexec).
+
+Processes start through ``shardmill.parallel.launch``, the launcher shardmill itself uses (SHARDMILL_MPIEXEC,
+else the bundled mpiexec, else PATH), with one BLAS thread each and unbuffered output. Every run has a time
+limit; past it the whole run (launcher and ranks) is ended and ``subprocess.TimeoutExpired`` raised, so a
+hang fails the test instead of reading as an exit status.
+"""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+from shardmill.config import JobError
+from shardmill.parallel.launch import find_mpiexec, rank_environment, run_command, run_ranks
+
+
+def mpiexec() -> list[str]:
+    """The launcher's command words (see ``shardmill.parallel.launch.find_mpiexec``); skips the test without one."""
+    try:
+        return find_mpiexec()
+    except JobError:
+        pytest.skip("no mpiexec available")
+
+
+def run_mpi(n: int, args: list[str], timeout: float = 120, cwd: str | Path | None = None,
+            env: dict | None = None) -> subprocess.CompletedProcess:
+    """Run ``python ARGS`` on n processes under mpiexec; returns the completed process (text output).
+
+    ARGS starts with a script path or ``-m shardmill``; ``env`` adds to the environment. Raises on timeout.
+    """
+    mpiexec()
+    return run_ranks(n, args, threads=1, timeout=timeout, cwd=cwd, env=env, stdout=subprocess.PIPE,
+                     stderr=subprocess.PIPE)
+
+
+def run_cli(args: list[str], timeout: float = 120, cwd: str | Path | None = None) -> subprocess.CompletedProcess:
+    """Run ``python -m shardmill ARGS`` in one process (no launcher); raises on timeout."""
+    return run_command([sys.executable, "-m", "shardmill", *args], rank_environment(threads=1, launched=False),
+                       timeout=timeout, cwd=cwd, stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+
+
+def make_classification(path: Path, rows: int = 240, features: int = 6, classes: int = 3, seed: int = 0,
+                        dtype=np.float64) -> tuple[Path, Path]:
+    """Random Gaussian-blob inputs and labels saved as x.npy / y.npy (test data only)."""
+    rng = np.random.default_rng(seed)
+    centres = rng.normal(0, 2, size=(classes, features))
+    y = rng.integers(0, classes, size=rows)
+    X = (centres[y] + rng.normal(size=(rows, features))).astype(dtype)
+    path.mkdir(parents=True, exist_ok=True)
+    np.save(path / "x.npy", X)
+    np.save(path / "y.npy", y.astype(np.int64))
+    return path / "x.npy", path / "y.npy"
+
+
+def write_job(path: Path, model: dict, run: dict, optimizer: dict | None = None, data: dict | None = None) -> Path:
+    """Write a TOML job file from dicts (strings, numbers, booleans and lists only)."""
+
+    def value(v) -> str:
+        if isinstance(v, bool):
+            return "true" if v else "false"
+        if isinstance(v, str):
+            return json.dumps(v)
+        if isinstance(v, list):
+            return "[" + ", ".join(value(x) for x in v) + "]"
+        return repr(v)
+
+    tables = {"model": model, "data": data or {"inputs": "x.npy", "targets": "y.npy", "validation_fraction": 0.2},
+              "optimizer": optimizer or {"method": "sgd", "learning_rate": 0.05}, "run": run}
+    lines = []
+    for name, table in tables.items():
+        lines.append(f"[{name}]")
+        lines += [f"{k} = {value(v)}" for k, v in table.items()]
+        lines.append("")
+    job = path / "job.toml"
+    job.write_text("\n".join(lines))
+    return job

@@ -1,0 +1,125 @@
+"""The one launcher: which mpiexec, with which arguments and environment, and how a run past its limit ends.
+
+A stand-in launcher (a small Python script that writes down its arguments and environment) shows the exact
+command line without starting MPI; one test also runs the real mpiexec behind an ``env`` wrapper.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import pytest
+from helpers import mpiexec
+from shardmill.parallel.launch import (
+    BLAS_THREAD_VARIABLES,
+    LAUNCHED,
+    find_mpiexec,
+    rank_environment,
+    relaunch,
+    run_command,
+    run_for_status,
+    run_ranks,
+)
+
+RECORDER = """\
+import json, os, sys
+with open(os.environ["RECORD_TO"], "w") as out:
+    json.dump({"argv": sys.argv[1:], "env": dict(os.environ)}, out)
+"""
+
+
+def stand_in(tmp_path: Path) -> tuple[Path, Path]:
+    """An executable stand-in for mpiexec that records its arguments and environment to record.json."""
+    script = tmp_path / "fake mpiexec"  # a space in the path: it must survive the shell-style split
+    script.write_text(f"#!{sys.executable}\n{RECORDER}")
+    script.chmod(0o755)
+    return script, tmp_path / "record.json"
+
+
+def test_launcher_arguments_in_the_variable_come_first(tmp_path, monkeypatch) -> None:
+    script, record = stand_in(tmp_path)
+    # POSIX shell quoting, as shlex.split documents it (Python docs, shlex): quotes keep words together.
+    monkeypatch.setenv("SHARDMILL_MPIEXEC", f"'{script}' -bind-to core --label \"two words\"")
+    monkeypatch.setenv("RECORD_TO", str(record))
+    assert find_mpiexec() == [str(script), "-bind-to", "core", "--label", "two words"]
+    done = run_ranks(3, ["-c", "pass"], threads=2, launcher_args=["-ppn", "1"], timeout=60)
+    assert done.returncode == 0
+    seen = json.loads(record.read_text())
+    assert seen["argv"] == ["-bind-to", "core", "--label", "two words", "-n", "3", "-ppn", "1",
+                            sys.executable, "-c", "pass"]
+    for name in BLAS_THREAD_VARIABLES:
+        assert seen["env"][name] == "2"
+    assert seen["env"]["PYTHONUNBUFFERED"] == "1" and seen["env"][LAUNCHED] == "1"
+
+
+def test_ranks_option_leaves_blas_threads_to_the_job(tmp_path, monkeypatch) -> None:
+    script, record = stand_in(tmp_path)
+    monkeypatch.setenv("SHARDMILL_MPIEXEC", f"'{script}'")
+    monkeypatch.setenv("RECORD_TO", str(record))
+    monkeypatch.setenv("OPENBLAS_NUM_THREADS", "3")
+    assert relaunch(2, ["train", "job.toml"]) == 0
+    seen = json.loads(record.read_text())
+    assert seen["argv"] == ["-n", "2", sys.executable, "-m", "shardmill", "train", "job.toml"]
+    assert seen["env"]["OPENBLAS_NUM_THREADS"] == "3" and seen["env"][LAUNCHED] == "1"
+
+
+def test_without_the_variable_the_bundled_mpiexec_is_used(monkeypatch) -> None:
+    monkeypatch.delenv("SHARDMILL_MPIEXEC", raising=False)
+    beside = Path(sys.executable).parent / "mpiexec"
+    if not beside.exists():
+        pytest.skip("no mpiexec beside this interpreter (the MPICH wheel puts one there)")
+    assert find_mpiexec() == [str(beside)]
+
+
+def test_environment_without_marker_or_thread_count() -> None:
+    env = rank_environment(threads=None, launched=False, base={"OPENBLAS_NUM_THREADS": "8"})
+    assert env == {"OPENBLAS_NUM_THREADS": "8", "PYTHONUNBUFFERED": "1"}
+
+
+@pytest.mark.mpi
+def test_real_mpiexec_behind_an_env_wrapper(monkeypatch) -> None:
+    # env(1) from POSIX: `env NAME=VALUE command …` runs the command with NAME added to its environment.
+    real = mpiexec()
+    monkeypatch.setenv("SHARDMILL_MPIEXEC", " ".join(["env", "SHARDMILL_PROBE=seen", *real]))
+    done = run_ranks(2, ["-c", "import os; print(os.environ['SHARDMILL_PROBE'], os.environ['SHARDMILL_LAUNCHED'])"],
+                     timeout=60, stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+    assert done.returncode == 0, done.stderr
+    assert done.stdout.split("\n")[:2] == ["seen 1", "seen 1"]  # one line per rank
+
+
+def _gone(pid: int, within_s: float = 10.0) -> bool:
+    end = time.monotonic() + within_s
+    while time.monotonic() < end:
+        try:
+            os.kill(pid, 0)
+        except ProcessLookupError:
+            return True
+        time.sleep(0.1)
+    return False
+
+
+def test_run_past_its_limit_ends_the_whole_group(tmp_path) -> None:
+    pid_file = tmp_path / "grandchild.pid"
+    # The command starts a grandchild (as mpiexec starts ranks) and both sleep far past the limit.
+    code = ("import subprocess, sys, time; "
+            "p = subprocess.Popen([sys.executable, '-c', 'import time; time.sleep(60)']); "
+            f"open({str(pid_file)!r}, 'w').write(str(p.pid)); time.sleep(60)")
+    begin = time.perf_counter()
+    with pytest.raises(subprocess.TimeoutExpired):
+        run_command([sys.executable, "-c", code], rank_environment(launched=False), timeout=1.0)
+    assert time.perf_counter() - begin < 20
+    assert pid_file.exists() and _gone(int(pid_file.read_text()))
+
+
+def test_status_past_the_limit_is_124_with_a_message(tmp_path, monkeypatch, capsys) -> None:
+    script = tmp_path / "slow-mpiexec"
+    script.write_text(f"#!{sys.executable}\nimport time\ntime.sleep(60)\n")
+    script.chmod(0o755)
+    monkeypatch.setenv("SHARDMILL_MPIEXEC", str(script))
+    assert run_for_status(2, ["-c", "pass"], timeout=0.5) == 124  # 124: timeout(1)'s status, GNU coreutils
+    assert "the 2-process job ran past 0.5 s and was stopped" in capsys.readouterr().err

@@ -26,10 +26,9 @@ import time
 from pathlib import Path
 from typing import Any
 
-import numpy as np
 from shardmill.benchsupport import MID_MODEL, LoadMeter, emit, log, machine_record, run_child
 from shardmill.scaling.study import add_speedup
-from shardmill.timing import median
+from shardmill.timing import median, slowest_call
 
 BATCH = 512
 EXACT_CHUNK = 256  # 2 chunks of G = 512: P ≤ 2. Chunk 64 measured 1.53× fast mode at P = 1 (8 accumulations per step)
@@ -153,10 +152,7 @@ def breakdown(repetitions: int) -> int:
         return t
 
     def timed(fn) -> float:
-        comm.barrier()
-        begin = time.perf_counter()
-        fn()
-        return time.perf_counter() - begin
+        return slowest_call(comm, fn)  # barrier, time, the slowest rank's seconds
 
     parts: dict[str, list[float]] = {}
 
@@ -195,11 +191,8 @@ def breakdown(repetitions: int) -> int:
             if keep:
                 for name, seconds in t.items():
                     record(name, seconds)
-    names = sorted(parts)
-    local = np.array([parts[n] for n in names])
-    comm.allreduce_max(local)
     if comm.rank == 0:
-        ms = {n: median(local[i]) * 1e3 for i, n in enumerate(names)}
+        ms = {n: median(parts[n]) * 1e3 for n in sorted(parts)}
         emit({"processes": comm.size, "chunks_per_rank": len(chunks), "rows_per_chunk": EXACT_CHUNK,
               "fast_rows_per_rank": int(mine.size), "repetitions": repetitions, "median_ms": ms,
               "limb_bytes": int(ex.limbs.nbytes), "grad_bytes": int(fast.grads.nbytes),

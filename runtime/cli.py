@@ -12,7 +12,7 @@ import os
 import sys
 from pathlib import Path
 
-from shardmill.config import JobError, choices
+from shardmill.config import JobError, choices, default
 from shardmill.parallel.launch import LAUNCHED, relaunch, strip_ranks
 
 
@@ -61,15 +61,15 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("bench", help="time training steps against the BLAS floor; prints JSON")
     p.add_argument("--layers", type=_layers, default=[784, 1024, 1024, 10])
     p.add_argument("--batch", type=_positive, default=512, help="global batch G")
-    p.add_argument("--dtype", choices=choices("model.dtype"), default="float32")
-    p.add_argument("--threads", type=_positive, default=1, help="BLAS threads per process")
+    p.add_argument("--dtype", choices=choices("model.dtype"), default=default("model.dtype"))
+    p.add_argument("--threads", type=_positive, default=default("run.threads"), help="BLAS threads per process")
     p.add_argument("--steps", type=_positive, default=30)
     p.add_argument("--warmup", type=int, default=5)
-    p.add_argument("--reduction", choices=choices("run.reduction"), default="fast")
+    p.add_argument("--reduction", choices=choices("run.reduction"), default=default("run.reduction"))
     p.add_argument("--exact-chunk", type=_positive, default=64)
     p.add_argument("--no-overlap", action="store_true", help="one blocking allreduce after backward")
-    p.add_argument("--bucket-mb", type=float, default=4.0)
-    p.add_argument("--activation", default="relu")
+    p.add_argument("--bucket-mb", type=float, default=default("run.bucket_mb"))
+    p.add_argument("--activation", default=default("model.activation"))
     p.add_argument("--optimizer", default="sgd", help="update rule timed with the step (default sgd)")
     p.add_argument("--json", action="store_true", help="print only the JSON object")
     ranks(p)

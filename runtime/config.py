@@ -229,6 +229,11 @@ def choices(path: str) -> tuple[str, ...]:
     return KEYS[path].choices
 
 
+def default(path: str) -> Any:
+    """The default of a job key, e.g. ``default("run.bucket_mb")`` (for command-line options that mirror one)."""
+    return KEYS[path].default
+
+
 def check_choice(path: str, value: object, name: str | None = None) -> str:
     """``value`` if it is one of ``choices(path)``, else a JobError naming ``name`` (default ``path``)."""
     return _choice(name or path, value, choices(path))

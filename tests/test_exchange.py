@@ -1,0 +1,72 @@
+"""The exchange strategies on one process: what the step's single interface computes in each mode.
+
+ExactExchange: the gradient it leaves must be the correctly rounded sum of the chunk gradients, element by element,
+whether a rank's first two chunks go into the limbs in one pass or not (1, 2 and 3 chunks). The reference is
+``math.fsum`` (Python's exactly rounded floating-point sum, Shewchuk's algorithm), independent of our limbs.
+BucketExchange: buckets are contiguous runs of whole layers in backward order that tile the gradient buffer.
+Both strategies give the same gradient up to summation order as ``MLP.loss_and_grad`` on the whole batch.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+from helpers import make_classification
+from shardmill.config import job_from_dict
+from shardmill.data import gather
+from shardmill.model import MLP
+from shardmill.parallel.comm import Comm
+from shardmill.parallel.exchange import BucketExchange, ExactExchange
+from shardmill.trainer import Trainer
+
+
+def trainer(folder, reduction: str, global_batch: int, chunk: int = 8, dtype: str = "float64") -> Trainer:
+    make_classification(folder, rows=120, features=5, classes=3, seed=3)
+    job = job_from_dict({"model": {"layers": [5, 7, 3], "activation": "tanh", "dtype": dtype},
+                         "data": {"inputs": str(folder / "x.npy"), "targets": str(folder / "y.npy")},
+                         "run": {"global_batch": global_batch, "reduction": reduction, "exact_chunk": chunk}})
+    return Trainer(job, Comm())
+
+
+@pytest.mark.parametrize("dtype", ["float32", "float64"])
+@pytest.mark.parametrize("chunks", [1, 2, 3])
+def test_exact_gradient_is_the_correctly_rounded_sum_of_the_chunks(tmp_path, chunks, dtype):
+    t = trainer(tmp_path, "exact", global_batch=8 * chunks, dtype=dtype)
+    assert isinstance(t.exchange, ExactExchange)
+    rows = t.sampler.batch(0, 0)
+    parts = []
+    for part, _ in t.exchange.parts(rows):  # each chunk's gradient alone, as the step computes it
+        out = np.zeros_like(t.grads)
+        t.part_gradient(part, out)
+        parts.append(out.astype(np.float64))
+    t.timer.start()
+    t.gradient(rows)
+    expected = np.array([math.fsum(column) for column in np.stack(parts).T])  # Shewchuk / Python's math.fsum
+    np.testing.assert_array_equal(t.grads, expected.astype(t.grads.dtype))
+
+
+def test_buckets_tile_the_gradient_in_backward_order_with_whole_layers():
+    model = MLP([30, 40, 50, 20, 4], seed=0)
+    grads = np.zeros_like(model.params)
+    exchange = BucketExchange(Comm(), model, grads, bucket_mb=0.004)  # 4000 bytes: several buckets
+    starts = [start for start, _ in exchange.buckets]
+    stops = [stop for _, stop in exchange.buckets]
+    assert starts[0] == 0 and stops[-1] == grads.size and starts[1:] == stops[:-1]  # contiguous, tiling
+    layer_ends = {model.slices[l][1] for l in range(model.n_layers)}
+    assert set(stops) <= layer_ends  # a bucket ends where a layer ends: whole layers only
+    for start, stop in exchange.buckets[:-1]:
+        assert (stop - start) * grads.itemsize >= 4000  # only the last (first layer's) bucket may be smaller
+
+
+@pytest.mark.parametrize("reduction", ["fast", "exact"])
+def test_strategy_gradient_matches_the_whole_batch_gradient(tmp_path, reduction):
+    t = trainer(tmp_path, reduction, global_batch=24)
+    rows = t.sampler.batch(0, 0)
+    t.timer.start()
+    t.gradient(rows)
+    X = np.zeros((rows.size, 5))
+    gather(t.data.X, rows, t.data.mean, t.data.inv_std, X)
+    _, whole = t.model.loss_and_grad(X, t.data.targets[rows])  # one serial pass over all rows
+    np.testing.assert_allclose(t.grads, whole, rtol=1e-12, atol=1e-15)  # float64: summation order only

@@ -86,10 +86,12 @@ def test_real_mpiexec_behind_an_env_wrapper(monkeypatch) -> None:
     # env(1) from POSIX: `env NAME=VALUE command …` runs the command with NAME added to its environment.
     real = mpiexec()
     monkeypatch.setenv("SHARDMILL_MPIEXEC", " ".join(["env", "SHARDMILL_PROBE=seen", *real]))
-    done = run_ranks(2, ["-c", "import os; print(os.environ['SHARDMILL_PROBE'], os.environ['SHARDMILL_LAUNCHED'])"],
-                     timeout=60, stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+    # One write(2) per rank: print() of two values unbuffered is several writes, and the ranks' output interleaves.
+    probe = ("import os; e = os.environ; "
+             "os.write(1, (e['SHARDMILL_PROBE'] + ' ' + e['SHARDMILL_LAUNCHED'] + '\\n').encode())")
+    done = run_ranks(2, ["-c", probe], timeout=60, stdout=subprocess.PIPE, stderr=subprocess.PIPE)
     assert done.returncode == 0, done.stderr
-    assert done.stdout.split("\n")[:2] == ["seen 1", "seen 1"]  # one line per rank
+    assert done.stdout.splitlines() == ["seen 1", "seen 1"]  # one line per rank
 
 
 def _gone(pid: int, within_s: float = 10.0) -> bool:

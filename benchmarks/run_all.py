@@ -26,7 +26,7 @@ BENCHMARKS = Path(__file__).resolve().parent
 
 
 def targets(results: dict[str, Any]) -> list[dict[str, Any]]:
-    """Every target of the issue with the measured value and whether it is met (None: not measured)."""
+    """Every benchmark target with the measured value and whether it is met (None: not measured)."""
     out: list[dict[str, Any]] = []
     step = results.get("step_vs_floor", {})
     for row in step.get("summary", []):

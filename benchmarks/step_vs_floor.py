@@ -31,8 +31,8 @@ from shardmill.bench import gemm_floor_step, run_bench, synthetic_dataset
 from shardmill.benchsupport import LoadMeter, emit, log, machine_record
 from shardmill.config import job_from_dict
 from shardmill.parallel.comm import Comm
-from shardmill.timing import median, median_time
-from shardmill.trainer import PHASES, Trainer, warm_up_kernels
+from shardmill.timing import PHASES, median, median_time
+from shardmill.trainer import Trainer, warm_up_kernels
 from threadpoolctl import threadpool_limits
 
 MODELS = {
@@ -40,9 +40,9 @@ MODELS = {
     "mid": ([784, 1024, 1024, 10], 512),
     "large": ([512, 4096, 4096, 16], 1024),
 }
-# Targets from the issue, on ratio_to_floor as run_bench reports it (SGD rows).
+# Our targets, on ratio_to_floor as run_bench reports it (SGD rows).
 TARGETS = {"small": 0.85, "mid": 0.95}
-PLAIN_NUMPY_EXPECTED = 0.8  # what the issue expects a plain NumPy step to reach, for the table only
+PLAIN_NUMPY_EXPECTED = 0.8  # what we expected a plain NumPy step to reach, for the table only
 BLOCK = 1  # repetitions per turn in the paired measurement: round robin, the fairest under bursty load
 
 
@@ -253,7 +253,7 @@ def kernel_times(trainer: Trainer, repeats: int) -> dict[str, float]:
             if l > 0:
                 Z, A = ws.Z[l - 1][:n], ws.A[l][:n]
                 g = ws.delta(1, n, model.sizes[l])
-                back += median_time(lambda Z=Z, A=A, g=g, l=l: act.backward(Z, A, g, g, model.hidden_codes[l - 1]),
+                back += median_time(lambda Z=Z, A=A, g=g, l=l: act.backward(Z, A, g, model.hidden_codes[l - 1]),
                                     repeats)
         out["bias_gradient_column_sums"] = sums
         out["activation_backward"] = back

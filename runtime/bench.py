@@ -5,9 +5,9 @@ from __future__ import annotations
 from typing import Any
 
 import numpy as np
-from shardmill.benchsupport import machine
-from shardmill.config import job_from_dict
+from shardmill.config import default, job_from_dict
 from shardmill.data import Split
+from shardmill.info import machine
 from shardmill.parallel.comm import Comm
 from shardmill.timing import median, slowest_call, time_call
 from shardmill.trainer import Dataset, Trainer, warm_up_kernels
@@ -53,15 +53,16 @@ def gemm_floor_step(trainer: Trainer, first_layer_dA: bool = True) -> float:
     return time_call(gemms)
 
 
-def run_bench(layers: list[int], batch: int, dtype: str = "float32", threads: int = 1, steps: int = 30,
-              warmup: int = 5, reduction: str = "fast", overlap: bool = True, activation: str = "relu",
-              loss: str = "softmax_cross_entropy", method: str = "sgd", bucket_mb: float = 4.0,
+def run_bench(layers: list[int], batch: int, dtype: str = default("model.dtype"), threads: int = default("run.threads"),
+              steps: int = 30, warmup: int = 5, reduction: str = default("run.reduction"),
+              overlap: bool = default("run.overlap"), activation: str = default("model.activation"),
+              loss: str = default("model.loss"), method: str = "sgd", bucket_mb: float = default("run.bucket_mb"),
               exact_chunk: int = 64, comm: Comm | None = None) -> dict[str, Any]:
     """Median time of full training steps (global batch ``batch`` over all ranks) and of the GEMM floor.
 
-    Step and floor are measured in alternating blocks so that drifting machine load hits both alike. Each
-    step starts after a barrier and counts as the slowest rank's seconds (``shardmill.timing.slowest_call``);
-    the floors are each rank's own GEMMs, the slowest rank's per repetition.
+    Step and floor are measured in alternating blocks so that drifting machine load hits both alike. A block
+    of steps starts after a barrier; each step counts as the slowest rank's seconds
+    (``shardmill.timing.slowest_call``); the floors are each rank's own GEMMs, the slowest rank's per repetition.
     Returns global ``samples_per_s`` (G / median step), ``step_ms``, ``floor_samples_per_s`` and
     ``ratio_to_floor`` (floor: three GEMMs per layer), and ``ratio_to_needed_floor`` (floor: only the GEMMs
     training needs, i.e. without the first layer's input gradient; ≤ 1, and 1 means no time outside BLAS).
@@ -71,8 +72,7 @@ def run_bench(layers: list[int], batch: int, dtype: str = "float32", threads: in
         "model": {"layers": layers, "activation": activation, "loss": loss, "dtype": dtype},
         "optimizer": {"method": method, "learning_rate": 1e-4},
         "run": {"global_batch": batch, "threads": threads, "reduction": reduction, "overlap": overlap,
-                "bucket_mb": bucket_mb, "exact_chunk": exact_chunk if reduction == "exact" else 32,
-                "epochs": 1},
+                "bucket_mb": bucket_mb, "exact_chunk": exact_chunk, "epochs": 1},
     })
     rows = max(4 * batch, 1024)
     with threadpool_limits(limits=threads, user_api="blas"):
@@ -87,8 +87,9 @@ def run_bench(layers: list[int], batch: int, dtype: str = "float32", threads: in
         done = 0
         while done < steps:
             todo = min(block, steps - done)
+            comm.barrier()  # one per block, as steps follow each other in training
             for s in range(todo):
-                step_times.append(slowest_call(comm, lambda k=done + s: trainer.step(0, k % spe)))
+                step_times.append(slowest_call(comm, lambda k=done + s: trainer.step(0, k % spe), barrier=False))
             for _ in range(todo):
                 local = np.array([gemm_floor_step(trainer), gemm_floor_step(trainer, first_layer_dA=False)])
                 comm.allreduce_max(local)

@@ -10,14 +10,13 @@ from __future__ import annotations
 import datetime
 import json
 import os
-import platform
 import subprocess
 import sys
 from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import Any
 
-import numpy as np
+from shardmill.info import machine
 from shardmill.parallel.launch import BLAS_THREAD_VARIABLES, mpiexec_command, rank_environment, run_command
 
 MID_MODEL = [784, 1024, 1024, 10]
@@ -25,21 +24,6 @@ MID_MODEL = [784, 1024, 1024, 10]
 
 NOTED_ENVIRONMENT = ("OPENBLAS_CORETYPE", "OPENBLAS_L2_SIZE", *BLAS_THREAD_VARIABLES, "NUMBA_CACHE_DIR")
 """Environment variables the machine record notes when they are set."""
-
-
-def machine() -> dict[str, Any]:
-    """What the numbers came from: CPU, cores, BLAS library, Python and numpy versions."""
-    from threadpoolctl import threadpool_info
-
-    blas = [i for i in threadpool_info() if i.get("user_api") == "blas"]
-    return {
-        "cpu": platform.processor() or platform.machine(),
-        "cores": os.cpu_count(),
-        "python": platform.python_version(),
-        "numpy": np.__version__,
-        "blas": [f"{i.get('internal_api')} {i.get('version')} ({i.get('architecture')})" for i in blas],
-        "node": platform.node(),
-    }
 
 
 def machine_record() -> dict[str, Any]:

@@ -5,6 +5,23 @@ from __future__ import annotations
 import os
 import platform
 import sys
+from typing import Any
+
+
+def machine() -> dict[str, Any]:
+    """What the numbers came from: CPU, cores, BLAS library, Python and numpy versions."""
+    import numpy as np
+    from threadpoolctl import threadpool_info
+
+    blas = [i for i in threadpool_info() if i.get("user_api") == "blas"]
+    return {
+        "cpu": platform.processor() or platform.machine(),
+        "cores": os.cpu_count(),
+        "python": platform.python_version(),
+        "numpy": np.__version__,
+        "blas": [f"{i.get('internal_api')} {i.get('version')} ({i.get('architecture')})" for i in blas],
+        "node": platform.node(),
+    }
 
 
 def numba_cache_dir() -> str:

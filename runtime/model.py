@@ -11,7 +11,7 @@ from __future__ import annotations
 from collections.abc import Iterator
 
 import numpy as np
-from shardmill.config import IMPLIED_OUTPUT, JobError, model_spec
+from shardmill.config import IMPLIED_OUTPUT, JobError, default, model_spec
 from shardmill.kernels import activations as act
 from shardmill.kernels import losses
 
@@ -35,9 +35,9 @@ class MLP:
     output: for squared_error only, an activation applied to the output layer (default identity).
     """
 
-    def __init__(self, layers: list[int], activation: str | list[str] = "relu",
-                 loss: str = "softmax_cross_entropy", dtype: str = "float32", seed: int = 0,
-                 init: str = "auto", output: str = "auto") -> None:
+    def __init__(self, layers: list[int], activation: str | list[str] = default("model.activation"),
+                 loss: str = default("model.loss"), dtype: str = default("model.dtype"), seed: int = 0,
+                 init: str = default("model.init"), output: str = default("model.output")) -> None:
         # The same checks and messages as the job file's [model] table (config.model_spec).
         spec = model_spec({"layers": list(layers), "activation": activation, "loss": loss, "dtype": dtype,
                            "init": init, "output": output})

@@ -44,9 +44,7 @@ class PhaseTimer:
         return dict(zip(PHASES, map(float, self.seconds), strict=True))
 
 
-# --------------------------------------------------------------------------------------------------------
-# Repeat and take the median: the one way shardmill times a piece of code (bench, scale, benchmarks)
-# --------------------------------------------------------------------------------------------------------
+# Repeat and take the median: the one way shardmill times a piece of code (bench, scale, benchmarks).
 
 
 def median(values: Sequence[float]) -> float:
@@ -61,13 +59,15 @@ def time_call(fn: Callable[[], Any]) -> float:
     return time.perf_counter() - begin
 
 
-def slowest_call(comm: Any, fn: Callable[[], Any]) -> float:
+def slowest_call(comm: Any, fn: Callable[[], Any], barrier: bool = True) -> float:
     """Seconds of one call of ``fn`` on every rank at once: barrier, time, the slowest rank's seconds.
 
     ``comm`` is a :class:`shardmill.parallel.comm.Comm`; every rank gets the same value (one MAX allreduce,
-    outside the timed region), so decisions taken on it agree across ranks.
+    outside the timed region), so decisions taken on it agree across ranks. ``barrier=False`` for calls in a
+    row after one barrier (each call's MAX allreduce already lines the ranks up again).
     """
-    comm.barrier()
+    if barrier:
+        comm.barrier()
     seconds = np.array([time_call(fn)])
     comm.allreduce_max(seconds)
     return float(seconds[0])

@@ -172,8 +172,8 @@ class Trainer:
         self.exchange.finish()
         self.timer.lap("exchange")
 
-    def part_gradient(self, rows: np.ndarray, grads: np.ndarray) -> float:
-        """Gradient of one part's rows into ``grads`` (scaled by 1/G); returns the part's loss sum.
+    def part_gradient(self, rows: np.ndarray, grads: np.ndarray) -> None:
+        """Gradient of one part's rows into ``grads`` (scaled by 1/G); the loss and counts join ``train_sums``.
 
         Backward tells the exchange as each layer's gradient is complete, so it can start sending.
         """
@@ -188,7 +188,6 @@ class Trainer:
         self.timer.lap("forward")
         for layer, _ in self.ws.backward(n, grads):
             self.exchange.layer_done(layer)
-        return loss_sum
 
     def count_correct(self, n: int, targets: np.ndarray) -> int:
         loss = self.model.loss_code

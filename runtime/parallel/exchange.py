@@ -79,7 +79,6 @@ class Exchange:
 
     def __init__(self, comm: Comm, model: MLP, grads: np.ndarray) -> None:
         self.comm = comm
-        self.model = model
         self.grads = grads
         self.owned = slice(0, grads.size)  # the parameters this rank updates
 

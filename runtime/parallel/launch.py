@@ -46,7 +46,7 @@ def find_mpiexec() -> list[str]:
         return [str(beside)]
     found = shutil.which("mpiexec")
     if not found:
-        raise JobError(f"`--ranks` needs mpiexec: install the `mpich` wheel or set {MPIEXEC_VARIABLE}")
+        raise JobError(f"starting ranks needs mpiexec: install the `mpich` wheel or set {MPIEXEC_VARIABLE}")
     return [found]
 
 

@@ -75,7 +75,7 @@ def _check_processes(p: Any, name: str = "p") -> int:
     return int(p)
 
 
-def _check_non_negative(value: Any, name: str) -> float:
+def check_non_negative(value: Any, name: str) -> float:
     try:
         number = float(value)
     except (TypeError, ValueError):
@@ -150,10 +150,10 @@ def allreduce_time(algorithm: str, p: int, n_bytes: float, alpha: float, beta: f
     """
     _check_algorithm(algorithm)
     p = _check_processes(p)
-    n_bytes = _check_non_negative(n_bytes, "n_bytes")
-    alpha = _check_non_negative(alpha, "alpha")
-    beta = _check_non_negative(beta, "beta")
-    gamma = _check_non_negative(gamma, "gamma")
+    n_bytes = check_non_negative(n_bytes, "n_bytes")
+    alpha = check_non_negative(alpha, "alpha")
+    beta = check_non_negative(beta, "beta")
+    gamma = check_non_negative(gamma, "gamma")
     c_alpha, c_beta, c_gamma = _coefficients(algorithm, p)
     return c_alpha * alpha + c_beta * n_bytes * beta + c_gamma * n_bytes * gamma
 
@@ -301,7 +301,7 @@ def fit_alpha_beta(
         raise ValueError(
             "cannot fit alpha and beta for p = 1: an allreduce on one process sends no messages; measure with p >= 2"
         )
-    gamma = _check_non_negative(gamma, "gamma")
+    gamma = check_non_negative(gamma, "gamma")
     sizes, times = _timing_arrays(sizes_bytes, times_s)
     c_alpha, c_beta, c_gamma = _coefficients(algorithm, p)
     known = c_gamma * sizes * gamma
@@ -428,16 +428,16 @@ def project(
     strong — speedup = T1/Tp, efficiency = T1/(p·Tp); weak — speedup = p·T1/Tp (scaled speedup: p times the
     work in Tp), efficiency = T1/Tp. In both modes efficiency = speedup / p.
     """
-    compute_s = _check_non_negative(compute_s, "compute_s")
+    compute_s = check_non_negative(compute_s, "compute_s")
     if compute_s == 0.0:
         raise ValueError("`compute_s` must be > 0 to define a speedup; got 0")
-    grad_bytes = _check_non_negative(grad_bytes, "grad_bytes")
+    grad_bytes = check_non_negative(grad_bytes, "grad_bytes")
     if mode not in ("strong", "weak"):
         raise ValueError(f"`mode` must be one of strong, weak; got {mode!r}")
-    replicated_s = _check_non_negative(replicated_s, "replicated_s")
+    replicated_s = check_non_negative(replicated_s, "replicated_s")
     if replicated_s > compute_s:
         raise ValueError(f"`replicated_s` must be ≤ compute_s = {compute_s!r}; got {replicated_s!r}")
-    overlap = _check_non_negative(overlap, "overlap")
+    overlap = check_non_negative(overlap, "overlap")
     if overlap > 1.0:
         raise ValueError(f"`overlap` must be a fraction in [0, 1]; got {overlap!r}")
     counts = [_check_processes(p, "ps") for p in ps]

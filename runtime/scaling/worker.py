@@ -82,7 +82,6 @@ def run_worker(job_path: Path, global_batch: int, steps: int, threads: int, pin:
     the allreduce is timed over MESSAGE_SIZES (P > 1) and rank 0 measures γ at the bucket size.
     """
     from mpi4py import MPI
-    from shardmill.data import block_range
     from shardmill.parallel.comm import Comm
     from shardmill.trainer import Trainer, warm_up_kernels
     from threadpoolctl import threadpool_limits
@@ -104,10 +103,10 @@ def run_worker(job_path: Path, global_batch: int, steps: int, threads: int, pin:
         for step in range(WARMUP_STEPS, WARMUP_STEPS + steps):
             trainer.step(*divmod(step, per_epoch))  # wraps around the epoch when steps exceed it
         wall_s = time.perf_counter() - begin
-    lo, hi = block_range(global_batch, comm.rank, comm.size)
+    rows = sum(part.size for part, _ in trainer.exchange.parts(trainer.sampler.batch(0, 0)))  # this rank's rows
     record = {
         "rank": comm.rank,
-        "rows": hi - lo,
+        "rows": rows,
         "wall_s": wall_s,
         "phase_s": trainer.timer.as_dict(),
         "compile_s": compile_s,

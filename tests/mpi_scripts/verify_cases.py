@@ -30,7 +30,11 @@ RELATIVE_CHANGE = 1e-3
 
 
 def rank_share(ref: Trainer, rows: np.ndarray, rank: int, size: int) -> np.ndarray:
-    """Rank ``rank``'s contribution to the reduced gradient of ``rows`` (flat, params layout, model dtype)."""
+    """Rank ``rank``'s contribution to the reduced gradient of ``rows`` (flat, params layout, model dtype).
+
+    Written out here on purpose, not taken from the exchange strategy: the tamper must not share code with
+    what it checks (fast: a contiguous shard per rank; exact: a contiguous run of whole chunks per rank).
+    """
     G = rows.size
     if ref.job.run.reduction == "exact":  # exact mode: whole chunks per rank
         c = ref.job.run.exact_chunk

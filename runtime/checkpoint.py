@@ -37,7 +37,8 @@ class TrainingState:
     """What a checkpoint holds: plain arrays and numbers (the trainer builds it; nothing here knows the trainer).
 
     ``params``: {"W0": (fan_in, fan_out), "b0": (fan_out,), …} in the model's dtype; ``optimizer``: the flat
-    state arrays (velocity, or m and v), (n_params,) each; ``step``: global steps completed.
+    state arrays (velocity, or m and v), (n_params,) each — full size whatever the update (a sharded run gathers
+    its slices), so a run saved at P resumes at any P′ with either update; ``step``: global steps completed.
     """
 
     params: dict[str, np.ndarray]
@@ -181,20 +182,21 @@ def load_latest(workdir: Path) -> tuple[dict[str, Any], dict[str, np.ndarray], d
     return load(resolve(root))
 
 
-def check_compatible(ours: TrainingState, state: dict[str, Any], params: dict, opt: dict) -> None:
+def check_compatible(job: Job, shapes: dict[str, tuple[int, ...]], optimizer_shapes: dict[str, tuple[int, ...]],
+                     state: dict[str, Any], params: dict, opt: dict) -> None:
     """Refuse a checkpoint (``state``, ``params``, ``opt`` as :func:`load` returns them) that another model,
-    optimizer or job trajectory wrote, naming what differs. ``ours``: the state of the run that resumes."""
-    job = ours.job
+    optimizer or job trajectory wrote, naming what differs. ``job``, ``shapes`` (W0, b0, …) and
+    ``optimizer_shapes`` (full size, as saved) describe the run that resumes."""
     if state.get("job_digest") != job.digest():
         diffs = job.trajectory_differences(state.get("job", {}))
         raise CheckpointError("checkpoint belongs to another job (its job digest differs"
                               + (f"; changed: {', '.join(diffs)}" if diffs else "") + ")")
-    for name, view in ours.params.items():
-        if name not in params or params[name].shape != view.shape:
+    for name, shape in shapes.items():
+        if name not in params or params[name].shape != shape:
             got = params[name].shape if name in params else "missing"
-            raise CheckpointError(f"checkpoint tensor {name} has shape {got}; the model needs {view.shape}")
-    for name, array in ours.optimizer.items():
-        if name not in opt or opt[name].shape != array.shape:
+            raise CheckpointError(f"checkpoint tensor {name} has shape {got}; the model needs {shape}")
+    for name, shape in optimizer_shapes.items():
+        if name not in opt or opt[name].shape != shape:
             raise CheckpointError(f"checkpoint optimizer state {name!r} is missing or has the wrong shape")
 
 

@@ -128,6 +128,9 @@ SCHEMA: tuple[Key, ...] = (
         low=1),
     Key("run.bucket_mb", "number", 4.0, "smallest gradient bucket of the overlapped allreduce, MB (10⁶ bytes)",
         low=0.0, low_open=True, trajectory=False),
+    Key("run.update", "choice", "replicated", "replicated: every rank updates every parameter; sharded: the "
+        "gradient is reduce-scattered, each rank updates its own contiguous slice (optimizer state 1/P per rank) "
+        "and the parameters are allgathered", choices=("replicated", "sharded"), trajectory=False),
     Key("run.overlap", "flag", True, "start each bucket's allreduce while backward runs; false: one blocking "
         "allreduce after backward", trajectory=False),
     Key("run.save_every", "integer", 0, "steps between checkpoints; 0 = only at the end", low=0, trajectory=False),

@@ -22,13 +22,14 @@ DEAD_WARN = 0.5
 VANISHING_RATIO = 1e-7  # ‖g_l‖ / ‖θ_l‖ below this: the layer has stopped learning
 
 
-def diagnose(model: MLP, ws: Workspace, n: int, grads: np.ndarray, before: np.ndarray, comm: Comm,
+def diagnose(model: MLP, ws: Workspace, n: int, grad_squares: np.ndarray, before: np.ndarray, comm: Comm,
              step: int) -> dict[str, Any]:
-    """Health of every layer after an update. ``before``: params before the update (flat copy).
+    """Health of every layer after an update. ``grad_squares``: Σ g² of the reduced gradient per layer, (L,)
+    float64, the same on every rank; ``before``: params before the update (flat copy).
 
     Saturation and dead units come from the pre-activations of this rank's last batch in ``ws`` (n rows),
-    summed (counts) or OR-ed (unit activity, via MAX) over ranks. Gradients and parameters are identical on
-    every rank after the exchange, so their norms need no reduction.
+    summed (counts) or OR-ed (unit activity, via MAX) over ranks. Parameters are identical on every rank after
+    the update, so their norms need no reduction.
     """
     layers = []
     counts = np.zeros(2 * (model.n_layers - 1))  # saturated elements, rows, per hidden layer
@@ -42,7 +43,7 @@ def diagnose(model: MLP, ws: Workspace, n: int, grads: np.ndarray, before: np.nd
         comm.allreduce_max(a)
     for l in range(model.n_layers):
         start, stop = model.slices[l]
-        g = math.sqrt(kernels.sum_squares(grads[start:stop]))
+        g = math.sqrt(grad_squares[l])
         w = math.sqrt(kernels.sum_squares(before[start:stop]))
         delta = model.params[start:stop].astype(np.float64) - before[start:stop]
         record: dict[str, Any] = {"layer": l, "grad_norm": g, "param_norm": w,

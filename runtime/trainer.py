@@ -116,11 +116,12 @@ class Trainer:
         self.model = model_from_job(job)
         self.data = dataset if dataset is not None else load_dataset(job, self.model, self.comm)
         self.sampler = Sampler(self.data.split.train, run.global_batch, run.seed)
-        self.optimizer = Optimizer(job.optimizer, self.model.n_params, self.model.dtype)
         self.grads = np.zeros_like(self.model.params)
         self.ws = self.model.workspace(Strategy.part_rows(run, self.comm.size))
         self.batch_targets = np.zeros((self.ws.rows,) + self.data.targets.shape[1:], dtype=self.data.targets.dtype)
         self.exchange = Strategy.from_run(self.comm, self.model, self.grads, run)
+        # State for the parameters this rank updates: all of them, or its slice when the update is sharded.
+        self.optimizer = Optimizer(job.optimizer, self.exchange.owned_size, self.model.dtype)
         self.step_count = 0  # global steps completed
         self.learning_rate = job.optimizer.learning_rate  # of the last update (the base rate before any)
         self.total_steps = self.planned_steps()
@@ -147,17 +148,18 @@ class Trainer:
         self.timer.start()
         rows = self.sampler.batch(epoch, step_in_epoch)  # sample: the G global indices
         self.gradient(rows)  # shard, gather, forward, loss, backward, exchange: the mean gradient
-        owned, params = self.exchange.owned, self.model.params
+        params, gradient = self.model.params, self.exchange.owned_gradient()  # gradient: of params[owned]
         if self.optimizer.clips:
-            self.optimizer.clip(self.grads[owned], self.exchange.sum_squares())
+            self.optimizer.clip(gradient, self.exchange.sum_squares())
         health = self.job.run.health_every and (self.step_count + 1) % self.job.run.health_every == 0
+        grad_squares = self.exchange.layer_sum_squares(self.model.slices) if health else None
         before = params.copy() if health else None
-        self.learning_rate = self.optimizer.step(params[owned], self.grads[owned], self.schedule_steps)  # update
-        self.exchange.publish(params)
+        self.learning_rate = self.optimizer.step(params[self.exchange.owned], gradient, self.schedule_steps)
+        self.exchange.publish(params)  # every rank holds every parameter again
         self.timer.lap("update")
         self.step_count += 1
         if health:
-            self.health.append(diagnose(self.model, self.ws, self.last_part_rows, self.grads, before, self.comm,
+            self.health.append(diagnose(self.model, self.ws, self.last_part_rows, grad_squares, before, self.comm,
                                         self.step_count))
         every = self.job.run.check_every
         if every and self.step_count % every == 0 and not self.comm.all_equal(params):
@@ -251,19 +253,26 @@ class Trainer:
         return dict(zip(PHASES, map(float, high), strict=True)), dict(zip(PHASES, map(float, mean), strict=True))
 
     def training_state(self, step: int) -> checkpoint.TrainingState:
-        """The plain state a checkpoint holds (views of the live arrays, not copies)."""
+        """The plain state a checkpoint holds: views of the parameters, the optimizer state at full size.
+
+        Collective (every rank calls it): a sharded update's state slices are gathered.
+        """
+        optimizer = {name: self.exchange.full(array) for name, array in self.optimizer.state.items()}
         return checkpoint.TrainingState(
             params=self.model.named(self.model.params), input_mean=self.data.mean, input_inv_std=self.data.inv_std,
-            optimizer=self.optimizer.state, optimizer_updates=self.optimizer.updates, step=step,
+            optimizer=optimizer, optimizer_updates=self.optimizer.updates, step=step,
             steps_per_epoch=self.sampler.steps_per_epoch, processes=self.comm.size, job=self.job,
             layers=self.model.sizes, dtype=self.model.dtype.name)
 
-    def save(self, step: int) -> Path | None:
-        """Checkpoint ``step`` (rank 0 writes; parameters are identical on every rank); returns its folder."""
-        if self.comm.rank != 0:
-            return None
-        return checkpoint.save(self.training_state(step), self.job.workdir / "checkpoints",
-                               self.job.run.keep_checkpoints)
+    def save(self, step: int) -> checkpoint.TrainingState:
+        """Checkpoint ``step``: every rank calls it, rank 0 writes (parameters are identical on every rank).
+
+        Returns the state it saved.
+        """
+        state = self.training_state(step)
+        if self.comm.rank == 0:
+            checkpoint.save(state, self.job.workdir / "checkpoints", self.job.run.keep_checkpoints)
+        return state
 
     def resume(self) -> int:
         """Restore params, optimizer state and position from ``workdir/checkpoints/latest``; returns the step.
@@ -277,7 +286,9 @@ class Trainer:
         if comm.rank == 0:
             try:
                 state, params, opt = checkpoint.load_latest(self.job.workdir)
-                checkpoint.check_compatible(self.training_state(0), state, params, opt)
+                shapes = {name: view.shape for name, view in model.named(model.params).items()}
+                optimizer_shapes = {name: (model.n_params,) for name in self.optimizer.state}
+                checkpoint.check_compatible(self.job, shapes, optimizer_shapes, state, params, opt)
             except checkpoint.CheckpointError as err:
                 error = err
         agree(comm, error)
@@ -285,11 +296,10 @@ class Trainer:
         if comm.rank == 0:
             for name, view in model.named(model.params).items():
                 view[...] = params[name]
-            for name, array in self.optimizer.state.items():
-                array[...] = opt[name]
         comm.broadcast(model.params)
-        for array in self.optimizer.state.values():
-            comm.broadcast(array)
+        for name, array in self.optimizer.state.items():  # saved at full size; this rank keeps what it updates
+            full = opt[name] if comm.rank == 0 else np.zeros(model.n_params, dtype=array.dtype)
+            array[...] = comm.broadcast(np.ascontiguousarray(full, dtype=array.dtype))[self.exchange.owned]
         self.optimizer.updates = int(state["optimizer_updates"])
         self.step_count = int(state["step"])
         return self.step_count
@@ -383,9 +393,9 @@ def _train_loop(trainer: Trainer, resume: bool, progress: bool) -> dict[str, Any
             epoch_steps = 0
     if bar is not None:
         bar.close()
-    trainer.save(step)
+    state = trainer.save(step)
     if lead:
-        checkpoint.write_final(workdir / "final.npz", trainer.training_state(step))
+        checkpoint.write_final(workdir / "final.npz", state)
     return {"model": model, "history": history, "steps": step, "workdir": str(workdir),
             "processes": comm.size, "compile_s": compile_s}
 

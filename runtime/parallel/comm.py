@@ -41,6 +41,14 @@ class Comm:
         self.rank: int = self.comm.Get_rank()
         self.size: int = self.comm.Get_size()
 
+    def duplicate(self) -> Comm:
+        """A Comm over a duplicate of this communicator (MPI_Comm_dup): every rank calls it at the same point.
+
+        Collectives on the duplicate never match collectives on this one, so a second thread (``progress.py``)
+        can run its own sequence of collectives while this thread runs another (MPI_THREAD_MULTIPLE).
+        """
+        return Comm(self.comm.Dup())
+
     @staticmethod
     def _buffer(array: np.ndarray) -> list:
         if not array.flags.c_contiguous:
@@ -95,6 +103,13 @@ class Comm:
         else:
             self.comm.Reduce_scatter(self._buffer(send), self._buffer(recv), counts, op=MPI.SUM)
         return recv
+
+    def start_reduce_scatter_sum(self, send: np.ndarray, recv: np.ndarray, counts: list[int]) -> Any:
+        """Start a non-blocking :meth:`reduce_scatter_sum` (``send`` and ``recv`` must not overlap); a request."""
+        if self.size == 1:
+            recv[...] = send
+            return None
+        return self.comm.Ireduce_scatter(self._buffer(send), self._buffer(recv), counts, op=MPI.SUM)
 
     def allgather(self, array: np.ndarray, counts: list[int]) -> np.ndarray:
         """In place: every rank's contiguous part of ``array`` (counts[rank] elements, in rank order) to all ranks."""

@@ -23,7 +23,9 @@ Each strategy also says how metrics are summed (:meth:`Exchange.metric_sums`) an
 
 from __future__ import annotations
 
+import math
 from collections.abc import Iterator
+from typing import Any
 
 import numpy as np
 from shardmill.config import JobError, RunSpec
@@ -32,6 +34,34 @@ from shardmill.kernels import exactsum
 from shardmill.kernels import optim as kernels_optim
 from shardmill.model import MLP
 from shardmill.parallel.comm import Comm
+
+BLOCK = 256
+"""Owned slices start at multiples of BLOCK elements, so that the fixed blocks of exact mode's sum of squares never
+straddle two ranks (each block's sum then has the same bits whatever P is)."""
+
+
+def owner_bounds(n: int, processes: int) -> list[tuple[int, int]]:
+    """[lo, hi) of the contiguous slice of an n-element flat array that each rank owns, in rank order.
+
+    Whole blocks of :data:`BLOCK` elements, as even as they come (a rank may own nothing in a tiny model).
+    """
+    blocks = -(-n // BLOCK)
+    return [(min(lo * BLOCK, n), min(hi * BLOCK, n)) for lo, hi in (block_range(blocks, r, processes)
+                                                                    for r in range(processes))]
+
+
+def block_sums_of_squares(values: np.ndarray) -> np.ndarray:
+    """Σ v² of each consecutive block of :data:`BLOCK` elements (the last may be short), float64, (blocks,).
+
+    Each block is summed alone in float64, so a block has the same sum wherever it lies in a slice.
+    """
+    squares = values.astype(np.float64)
+    squares *= squares
+    full = values.size // BLOCK
+    sums = [squares[:full * BLOCK].reshape(full, BLOCK).sum(axis=1)]
+    if values.size % BLOCK:
+        sums.append(np.array([squares[full * BLOCK:].sum()]))
+    return np.concatenate(sums)
 
 
 class FloatSums:
@@ -82,6 +112,20 @@ class Exchange:
         self.grads = grads
         self.owned = slice(0, grads.size)  # the parameters this rank updates
 
+    @property
+    def sharded(self) -> bool:
+        """True when this rank updates only a slice of the parameters (and keeps optimizer state for it alone)."""
+        return (self.owned.start, self.owned.stop) != (0, self.grads.size)
+
+    @property
+    def owned_size(self) -> int:
+        """Number of parameters this rank updates: the length of its optimizer state arrays."""
+        return self.owned.stop - self.owned.start
+
+    def owned_gradient(self) -> np.ndarray:
+        """After :meth:`finish`: the summed gradient of ``params[owned]``, (owned_size,) in the model's dtype."""
+        return self.grads[self.owned]
+
     @classmethod
     def from_run(cls, comm: Comm, model: MLP, grads: np.ndarray, run: RunSpec) -> Exchange:
         """The strategy with the settings of a job's ``[run]`` table."""
@@ -119,10 +163,26 @@ class Exchange:
 
     def sum_squares(self) -> float:
         """Σ g² over the whole reduced gradient (for the global-norm clip), the same on every rank."""
-        return kernels_optim.sum_squares(self.grads[self.owned])
+        total = np.array([kernels_optim.sum_squares(self.owned_gradient())])
+        if self.sharded:
+            self.comm.allreduce_sum(total)
+        return float(total[0])
+
+    def layer_sum_squares(self, slices: list[tuple[int, int]]) -> np.ndarray:
+        """Σ g² of the reduced gradient over each [start, stop) of ``slices`` (the layers), float64, every rank."""
+        gradient, lo, hi = self.owned_gradient(), self.owned.start, self.owned.stop
+        out = np.array([kernels_optim.sum_squares(gradient[min(max(a, lo), hi) - lo:max(min(b, hi), lo) - lo])
+                        for a, b in slices])
+        if self.sharded:
+            self.comm.allreduce_sum(out)
+        return out
 
     def publish(self, params: np.ndarray) -> None:
         """After the update of ``params[owned]``: every rank holds every parameter."""
+
+    def full(self, owned_values: np.ndarray) -> np.ndarray:
+        """Every rank's ``owned`` part of a params-layout array, joined: (n_params,) on every rank (collective)."""
+        return owned_values
 
     def metric_sums(self, k: int) -> FloatSums:
         """An accumulator of k per-part metric sums (loss, counts), summed over ranks."""
@@ -176,18 +236,70 @@ class BucketExchange(Exchange):
         yield shard(rows, self.comm.rank, self.comm.size), self.grads  # contiguous [lo, hi)
 
     def layer_done(self, layer: int) -> None:
-        """Start the allreduce of the bucket ``layer`` completes, if any."""
+        """Start the reduction of the bucket ``layer`` completes, if any."""
         if self.overlap and layer in self._closing:
-            start, stop = self.buckets[self._closing[layer]]
-            self._requests.append(self.comm.start_allreduce_sum(self.grads[start:stop]))
+            self._requests.append(self.start_bucket(*self.buckets[self._closing[layer]]))
+
+    def start_bucket(self, start: int, stop: int) -> Any:
+        """Start the non-blocking in-place SUM allreduce of ``grads[start:stop]``; returns its request."""
+        return self.comm.start_allreduce_sum(self.grads[start:stop])
+
+    def reduce_all(self) -> None:
+        """The blocking path (overlap off): one in-place SUM allreduce of the whole gradient."""
+        self.comm.allreduce_sum(self.grads)
 
     def finish(self) -> None:
-        """Wait for every bucket (or run the single blocking allreduce without overlap)."""
+        """Wait for every bucket (or run the single blocking reduction without overlap)."""
         if self.overlap:
             self.comm.wait(self._requests)
             self._requests.clear()
         else:
-            self.comm.allreduce_sum(self.grads)
+            self.reduce_all()
+
+
+class ShardedExchange(BucketExchange):
+    """Fast mode with a sharded update: buckets are reduce-scattered, each rank updates its own slice.
+
+    Each rank owns a contiguous slice of the flat parameters (:func:`owner_bounds`). As backward completes a bucket
+    of whole layers, a non-blocking reduce-scatter sums it over ranks and delivers to each rank the part of the
+    bucket inside its slice, into ``summed`` (the owned gradient). Each rank clips and updates only its slice, with
+    optimizer state for that slice alone ((P−1)/P less memory per rank), and :meth:`publish` allgathers the updated
+    slices so every rank holds every parameter. Traffic: a reduce-scatter and an allgather, as an allreduce, but
+    the update is divided by P instead of repeated on every rank.
+    """
+
+    def __init__(self, comm: Comm, model: MLP, grads: np.ndarray, bucket_mb: float, overlap: bool = True) -> None:
+        super().__init__(comm, model, grads, bucket_mb, overlap)
+        bounds = owner_bounds(grads.size, comm.size)
+        self.counts = [hi - lo for lo, hi in bounds]  # elements each rank owns
+        self.owned = slice(*bounds[comm.rank])
+        self.summed = np.zeros(self.owned_size, dtype=grads.dtype)  # the owned slice of the summed gradient
+        self._bucket_counts = [[max(0, min(stop, hi) - max(start, lo)) for lo, hi in bounds]
+                               for start, stop in self.buckets]
+
+    def _received(self, start: int, stop: int) -> np.ndarray:
+        """The view of ``summed`` that receives this rank's part of ``grads[start:stop]``."""
+        lo = self.owned.start
+        return self.summed[min(max(start, lo), self.owned.stop) - lo:max(min(stop, self.owned.stop), lo) - lo]
+
+    def start_bucket(self, start: int, stop: int) -> Any:
+        counts = self._bucket_counts[self.buckets.index((start, stop))]
+        return self.comm.start_reduce_scatter_sum(self.grads[start:stop], self._received(start, stop), counts)
+
+    def reduce_all(self) -> None:
+        self.comm.reduce_scatter_sum(self.grads, self.summed, self.counts)
+
+    def owned_gradient(self) -> np.ndarray:
+        return self.summed
+
+    def publish(self, params: np.ndarray) -> None:
+        """Every rank's updated slice to every rank (in-place allgather of the parameters)."""
+        self.comm.allgather(params, self.counts)
+
+    def full(self, owned_values: np.ndarray) -> np.ndarray:
+        out = np.zeros(self.grads.size, dtype=owned_values.dtype)
+        out[self.owned] = owned_values
+        return self.comm.allgather(out, self.counts)
 
 
 class ExactExchange(Exchange):
@@ -200,7 +312,8 @@ class ExactExchange(Exchange):
     allgathered: half the integer traffic of an allreduce, and 1/P of the read-back.
     """
 
-    def __init__(self, comm: Comm, model: MLP, grads: np.ndarray, chunk: int, global_batch: int) -> None:
+    def __init__(self, comm: Comm, model: MLP, grads: np.ndarray, chunk: int, global_batch: int,
+                 sharded: bool = False) -> None:
         super().__init__(comm, model, grads)
         P = comm.size
         self.chunk = chunk
@@ -211,15 +324,17 @@ class ExactExchange(Exchange):
         most_chunks = -(-(global_batch // chunk) // P)
         self.pair_grads = np.zeros_like(grads) if most_chunks >= 2 else None
         self.limbs = exactsum.new_accumulator(grads.size)
-        bounds = [block_range(grads.size, r, P) for r in range(P)]
+        bounds = owner_bounds(grads.size, P)
         self.slice_counts = [hi - lo for lo, hi in bounds]
         self.slice = slice(*bounds[comm.rank])  # the part of the sum this rank reads back
+        if sharded:  # this rank updates only the slice it read back; the parameters are allgathered instead
+            self.owned = self.slice
         self.slice_limbs = exactsum.new_accumulator(self.slice_counts[comm.rank])
         self._current = self.first
 
     @classmethod
     def from_run(cls, comm: Comm, model: MLP, grads: np.ndarray, run: RunSpec) -> ExactExchange:
-        return cls(comm, model, grads, run.exact_chunk, run.global_batch)
+        return cls(comm, model, grads, run.exact_chunk, run.global_batch, sharded=run.update == "sharded")
 
     @classmethod
     def check(cls, run: RunSpec, processes: int) -> None:
@@ -270,7 +385,8 @@ class ExactExchange(Exchange):
             return
         self.reduce_scatter_limbs()
         self.read_back()
-        self.gather()
+        if not self.sharded:
+            self.gather()
 
     def reduce_scatter_limbs(self) -> None:
         """This rank's slice of the limbs summed over ranks, into ``slice_limbs``.
@@ -287,6 +403,32 @@ class ExactExchange(Exchange):
     def gather(self) -> None:
         """Every rank's read-back slice to every rank: the whole gradient everywhere."""
         self.comm.allgather(self.grads, self.slice_counts)
+
+    def sum_squares(self) -> float:
+        """Σ g² with the same bits for every P and either update: fixed blocks, then an exactly rounded total.
+
+        Each block of :data:`BLOCK` elements lies in one rank's slice and is summed alone; ``math.fsum`` of the
+        block sums is correctly rounded, so the order in which they arrive does not matter.
+        """
+        sums = block_sums_of_squares(self.owned_gradient())
+        if self.sharded:
+            blocks = [-(-count // BLOCK) for count in self.slice_counts]
+            every = np.zeros(sum(blocks))
+            lo = sum(blocks[:self.comm.rank])
+            every[lo:lo + sums.size] = sums
+            sums = self.comm.allgather(every, blocks)
+        return math.fsum(sums)
+
+    def publish(self, params: np.ndarray) -> None:
+        if self.sharded:
+            self.comm.allgather(params, self.slice_counts)
+
+    def full(self, owned_values: np.ndarray) -> np.ndarray:
+        if not self.sharded:
+            return owned_values
+        out = np.zeros(self.grads.size, dtype=owned_values.dtype)
+        out[self.owned] = owned_values
+        return self.comm.allgather(out, self.slice_counts)
 
     def metric_sums(self, k: int) -> FloatSums:
         return ExactSums(self.comm, k)
@@ -309,10 +451,8 @@ class ExactExchange(Exchange):
         exactsum.to_float(sums, np.zeros(3))
 
 
-STRATEGIES: dict[str, type[Exchange]] = {"fast": BucketExchange, "exact": ExactExchange}
-"""The exchange strategy of each ``run.reduction``."""
-
-
 def strategy(run: RunSpec) -> type[Exchange]:
-    """The exchange strategy class for a job's ``run.reduction``."""
-    return STRATEGIES[run.reduction]
+    """The exchange strategy class for a job's ``run.reduction`` and ``run.update``."""
+    if run.reduction == "exact":
+        return ExactExchange  # it reads run.update itself: exact mode reduce-scatters either way
+    return ShardedExchange if run.update == "sharded" else BucketExchange

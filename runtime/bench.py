@@ -57,7 +57,8 @@ def run_bench(layers: list[int], batch: int, dtype: str = default("model.dtype")
               steps: int = 30, warmup: int = 5, reduction: str = default("run.reduction"),
               overlap: bool = default("run.overlap"), activation: str = default("model.activation"),
               loss: str = default("model.loss"), method: str = "sgd", bucket_mb: float = default("run.bucket_mb"),
-              exact_chunk: int = 64, comm: Comm | None = None) -> dict[str, Any]:
+              exact_chunk: int = 64, update: str = default("run.update"),
+              comm: Comm | None = None) -> dict[str, Any]:
     """Median time of full training steps (global batch ``batch`` over all ranks) and of the GEMM floor.
 
     Step and floor are measured in alternating blocks so that drifting machine load hits both alike. A block
@@ -72,7 +73,7 @@ def run_bench(layers: list[int], batch: int, dtype: str = default("model.dtype")
         "model": {"layers": layers, "activation": activation, "loss": loss, "dtype": dtype},
         "optimizer": {"method": method, "learning_rate": 1e-4},
         "run": {"global_batch": batch, "threads": threads, "reduction": reduction, "overlap": overlap,
-                "bucket_mb": bucket_mb, "exact_chunk": exact_chunk, "epochs": 1},
+                "bucket_mb": bucket_mb, "exact_chunk": exact_chunk, "update": update, "epochs": 1},
     })
     rows = max(4 * batch, 1024)
     with threadpool_limits(limits=threads, user_api="blas"):
@@ -107,6 +108,7 @@ def run_bench(layers: list[int], batch: int, dtype: str = default("model.dtype")
         "dtype": dtype,
         "threads": threads,
         "reduction": reduction,
+        "update": update,
         "overlap": overlap,
         "params": n_params,
         "steps": steps,

@@ -66,6 +66,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--steps", type=_positive, default=30)
     p.add_argument("--warmup", type=int, default=5)
     p.add_argument("--reduction", choices=choices("run.reduction"), default=default("run.reduction"))
+    p.add_argument("--update", choices=choices("run.update"), default=default("run.update"),
+                   help="replicated: every rank updates everything; sharded: each rank its own slice")
     p.add_argument("--exact-chunk", type=_positive, default=64)
     p.add_argument("--no-overlap", action="store_true", help="one blocking allreduce after backward")
     p.add_argument("--bucket-mb", type=float, default=default("run.bucket_mb"))
@@ -184,7 +186,7 @@ def cmd_bench(args: argparse.Namespace) -> int:
     result = run_bench(args.layers, args.batch, dtype=args.dtype, threads=args.threads, steps=args.steps,
                        warmup=args.warmup, reduction=args.reduction, overlap=not args.no_overlap,
                        activation=args.activation, method=args.optimizer, bucket_mb=args.bucket_mb,
-                       exact_chunk=args.exact_chunk,
+                       exact_chunk=args.exact_chunk, update=args.update,
                        comm=comm)
     if comm.rank == 0:
         if not args.json:

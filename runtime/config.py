@@ -71,6 +71,8 @@ class Key:
     low_open: bool = False
     trajectory: bool = True
     allowed: str = ""
+    digest_default: bool = True  # False for a key added later: at its default it stays out of the digest, so
+    # checkpoints written before the key existed still resume
 
     @property
     def section(self) -> str:
@@ -124,6 +126,10 @@ SCHEMA: tuple[Key, ...] = (
     Key("run.seed", "integer", 0, "seed of the initial weights, the split and the batch order", low=0),
     Key("run.reduction", "choice", "fast", "gradient sum: fast (MPI's order) or exact (bit-identical for every "
         "process count)", choices=REDUCTIONS),
+    Key("run.exact_format", "choice", "wide", "exact mode's accumulator: wide (3 int64 per value, resolution "
+        "2⁻⁸⁸, correctly rounded) or compact (1 int64 per value on a per-bucket scale; a third of the traffic, "
+        "error within K·2^(h−51) of each bucket's largest value)", choices=("wide", "compact"),
+        digest_default=False),
     Key("run.exact_chunk", "integer", 32, "exact mode: rows per fixed chunk; global_batch must be a multiple",
         low=1),
     Key("run.bucket_mb", "number", 4.0, "smallest gradient bucket of the overlapped allreduce, MB (10⁶ bytes)",
@@ -299,7 +305,8 @@ class Job:
         :func:`resumable_keys`.
         """
         d = self.as_dict()
-        kept = {s: {k: v for k, v in d[s].items() if KEYS[f"{s}.{k}"].trajectory} for s in SECTIONS}
+        kept = {s: {k: v for k, v in d[s].items() if KEYS[f"{s}.{k}"].trajectory
+                    and (KEYS[f"{s}.{k}"].digest_default or v != KEYS[f"{s}.{k}"].default)} for s in SECTIONS}
         return hashlib.sha256(json.dumps(kept, sort_keys=True).encode()).hexdigest()
 
     def trajectory_differences(self, other: dict[str, Any]) -> list[str]:

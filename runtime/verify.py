@@ -82,16 +82,22 @@ def serial_gradient(trainer: Trainer, rows: np.ndarray) -> tuple[np.ndarray, np.
     return grad, bound
 
 
-def compare(model, parallel: np.ndarray, serial: np.ndarray, abs_sums: np.ndarray, G: int) -> list[dict[str, Any]]:
-    """Per tensor: max |Δ|, max |Δ|/|serial|, and max |Δ| / (2·γ_{G−1}·Σ|x|)."""
+def compare(model, parallel: np.ndarray, serial: np.ndarray, abs_sums: np.ndarray, G: int,
+            conversion: np.ndarray | float = 0.0) -> list[dict[str, Any]]:
+    """Per tensor: max |Δ|, max |Δ|/|serial|, and max |Δ| / (2·γ_{G−1}·Σ|x| + conversion).
+
+    ``conversion``: what the exchange's own rounding may add per element (the compact exact format's grid).
+    """
     g = 2.0 * gamma(G - 1, model.dtype)
     rows = []
     diff = np.abs(parallel.astype(np.float64) - serial.astype(np.float64))
+    extra = np.broadcast_to(np.asarray(conversion, dtype=np.float64), diff.shape)
     named_diff, named_ser, named_abs = model.named(diff), model.named(serial), model.named(abs_sums)
+    named_extra = model.named(np.ascontiguousarray(extra))
     tiny = float(np.finfo(model.dtype).tiny)
     for name in model.names():
         d, s, a = named_diff[name].ravel(), named_ser[name].ravel(), named_abs[name].ravel()
-        bound = g * a
+        bound = g * a + named_extra[name].ravel()
         with np.errstate(divide="ignore", invalid="ignore"):
             ratio = np.where(bound > 0, d / np.where(bound > 0, bound, 1.0), np.where(d > 0, np.inf, 0.0))
             rel = d / np.maximum(np.abs(s).astype(np.float64), tiny)
@@ -116,13 +122,16 @@ def verify(job: Job, comm: Comm | None = None, batches: int = 3, trajectory: int
         report: dict[str, Any] = {"processes": comm.size, "global_batch": job.run.global_batch,
                                   "reduction": job.run.reduction, "dtype": trainer.model.dtype.name,
                                   "bound": "2·γ_{G−1}·Σ|x_i| (Higham 2002, §4.2)", "batches": []}
+        if job.run.reduction == "exact" and job.run.exact_format == "compact":
+            report["bound"] += " + K·2^(−S_b−1) (compact exact format: K chunks on bucket b's grid)"
         for k in range(batches):
             rows = trainer.sampler.batch(0, k)
             parallel = parallel_gradient(trainer, rows, tamper)
             if comm.rank == 0:
                 serial, abs_sums = serial_gradient(trainer, rows)
-                report["batches"].append({"batch": k, "tensors": compare(trainer.model, parallel, serial,
-                                                                          abs_sums, rows.size)})
+                tensors = compare(trainer.model, parallel, serial, abs_sums, rows.size,
+                                  trainer.exchange.conversion_bound())
+                report["batches"].append({"batch": k, "tensors": tensors})
         if trajectory > 0:
             report["trajectory"] = _trajectory(job, comm, trajectory)
     if comm.rank != 0:

@@ -64,6 +64,15 @@ for update in ("replicated", "sharded"):
 CASES += [
     {"name": "wide_fast_sharded_no_overlap", "kind": "train", "steps": STEPS,
      "job": job(WIDE, "tanh", {"global_batch": 10, "update": "sharded", "overlap": False}, CLIPPED)},
+    {"name": "train_exact_compact", "kind": "train", "steps": STEPS,
+     "job": job(LAYERS, "tanh", {"global_batch": 12, "reduction": "exact", "exact_chunk": 3, "exact_format": "compact"},
+                ADAM)},
+    {"name": "wide_exact_compact_sharded", "kind": "train", "steps": STEPS,
+     "job": job(WIDE, "tanh", {"global_batch": 12, "reduction": "exact", "exact_chunk": 3, "exact_format": "compact",
+                               "update": "sharded", "check_every": 1}, CLIPPED)},
+    {"name": "wide_exact_compact_replicated", "kind": "train", "steps": STEPS,
+     "job": job(WIDE, "tanh", {"global_batch": 12, "reduction": "exact", "exact_chunk": 3, "exact_format": "compact"},
+                CLIPPED)},
     {"name": "train_exact_sharded", "kind": "train", "steps": STEPS,
      "job": job(LAYERS, "tanh", {"global_batch": 12, "reduction": "exact", "exact_chunk": 3, "update": "sharded"},
                 ADAM)},
@@ -218,7 +227,7 @@ def test_exact_mode_weights_are_bit_identical_for_every_P(runs):
 
 
 @pytest.mark.parametrize("case", ["train_fast", "train_fast_no_overlap", "train_exact", "wide_fast_sharded",
-                                  "wide_exact_sharded", "train_exact_sharded"])
+                                  "wide_exact_sharded", "train_exact_sharded", "wide_exact_compact_sharded"])
 @pytest.mark.parametrize("P", RANKS)
 def test_parameters_identical_on_every_rank(runs, case, P):
     digests = runs[P][case]["sha256_by_rank"]
@@ -252,6 +261,18 @@ def test_sharded_exact_update_is_bit_identical_to_replicated_for_every_P(runs):
     for replicated, sharded in pairs:
         digests = {runs[P][case]["sha256_by_rank"][0] for P in RANKS for case in (replicated, sharded)}
         assert len(digests) == 1, (replicated, digests)
+
+
+def test_compact_exact_format_is_bit_identical_for_every_P_and_close_to_the_wide_one(runs):
+    # One int64 per value on per-bucket scales fixed from a MAX (order-free): integer sums again, so one SHA-256
+    # for P = 1…4 and either update (README, fast and exact reduction).
+    for cases in (("train_exact_compact",), ("wide_exact_compact_replicated", "wide_exact_compact_sharded")):
+        digests = {runs[P][case]["sha256_by_rank"][0] for P in RANKS for case in cases}
+        assert len(digests) == 1, (cases, digests)
+    # Another grid than the wide format's, so other bits, but float64 terms rounded at 2^-(51-h) relative to each
+    # bucket's largest value: after 5 Adam steps the two runs differ far below 1e-8 (kernels/compactsum.py bound).
+    compact, wide = flat(runs[2]["train_exact_compact"]["params"]), flat(runs[2]["train_exact"]["params"])
+    assert 0.0 < relative(compact, wide) < 1e-8
 
 
 # ---------------------------------------------------------------- command line at P = 2

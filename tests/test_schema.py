@@ -55,7 +55,9 @@ def test_digest_is_the_formula_existing_checkpoints_carry(raw):
 
 
 def test_resumable_keys_are_the_run_keys_outside_the_digest():
-    expected = [f"run.{k}" for k in job_from_dict(FULL).as_dict()["run"] if k not in DIGEST_RUN_KEYS]
+    # run.exact_format fixes the trajectory too, but enters the digest only away from its default (added later).
+    expected = [f"run.{k}" for k in job_from_dict(FULL).as_dict()["run"]
+                if k not in (*DIGEST_RUN_KEYS, "exact_format")]
     assert sorted(config.resumable_keys()) == sorted(expected)
     assert "run.epochs" in expected and "run.seed" not in expected  # resume with more epochs, never another seed
 
@@ -151,3 +153,13 @@ def test_choices_refuse_a_key_without_names():
     assert config.choices("model.dtype") == ("float32", "float64")
     with pytest.raises(KeyError):
         config.choices("run.epochs")
+
+
+def test_a_key_added_later_enters_the_digest_only_away_from_its_default():
+    # run.exact_format came after checkpoints existed: at its default the digest is the formula they carry.
+    raw = {"model": {"layers": [4, 3]}, "run": {"reduction": "exact", "exact_chunk": 8}}
+    wide = job_from_dict({**raw, "run": {**raw["run"], "exact_format": "wide"}})
+    assert wide.digest() == digest_as_written(wide) == job_from_dict(raw).digest()
+    compact = job_from_dict({**raw, "run": {**raw["run"], "exact_format": "compact"}})
+    assert compact.digest() != wide.digest()  # another trajectory, another digest. common practice
+    assert compact.trajectory_differences(wide.as_dict()) == ["run.exact_format"]

@@ -30,7 +30,7 @@ from typing import Any
 import numpy as np
 from shardmill.config import JobError, RunSpec
 from shardmill.data import block_range, shard
-from shardmill.kernels import exactsum
+from shardmill.kernels import compactsum, exactsum
 from shardmill.kernels import optim as kernels_optim
 from shardmill.model import MLP
 from shardmill.parallel.comm import Comm
@@ -180,6 +180,11 @@ class Exchange:
     def publish(self, params: np.ndarray) -> None:
         """After the update of ``params[owned]``: every rank holds every parameter."""
 
+    def conversion_bound(self) -> np.ndarray | float:
+        """How far, per element, the last :meth:`finish` may have moved the sum beyond a float sum's rounding
+        (0 for a float sum or a correctly rounded exact one); ``verify`` adds it to Higham's bound."""
+        return 0.0
+
     def full(self, owned_values: np.ndarray) -> np.ndarray:
         """Every rank's ``owned`` part of a params-layout array, joined: (n_params,) on every rank (collective)."""
         return owned_values
@@ -315,21 +320,25 @@ class ExactExchange(Exchange):
     def __init__(self, comm: Comm, model: MLP, grads: np.ndarray, chunk: int, global_batch: int,
                  sharded: bool = False) -> None:
         super().__init__(comm, model, grads)
-        P = comm.size
-        self.chunk = chunk
+        self._layout(chunk, global_batch, sharded)
         self.chunk_grads = np.zeros_like(grads)
-        self.first, self.stop = block_range(global_batch // chunk, comm.rank, P)  # this rank's chunks
         # A rank with two or more chunks computes its first two into separate buffers and writes their digits
         # in one pass (exactsum.assign_pair): one read-and-write of the limbs fewer per step.
-        most_chunks = -(-(global_batch // chunk) // P)
+        most_chunks = -(-self.chunks // comm.size)
         self.pair_grads = np.zeros_like(grads) if most_chunks >= 2 else None
         self.limbs = exactsum.new_accumulator(grads.size)
-        bounds = owner_bounds(grads.size, P)
+        self.slice_limbs = exactsum.new_accumulator(self.slice_counts[comm.rank])
+
+    def _layout(self, chunk: int, global_batch: int, sharded: bool) -> None:
+        """Which chunks this rank computes, and which slice of the sum it reads back (and updates, if sharded)."""
+        self.chunk = chunk
+        self.chunks = global_batch // chunk  # K, the same for every P
+        self.first, self.stop = block_range(self.chunks, self.comm.rank, self.comm.size)  # this rank's chunks
+        bounds = owner_bounds(self.grads.size, self.comm.size)
         self.slice_counts = [hi - lo for lo, hi in bounds]
-        self.slice = slice(*bounds[comm.rank])  # the part of the sum this rank reads back
+        self.slice = slice(*bounds[self.comm.rank])  # the part of the sum this rank reads back
         if sharded:  # this rank updates only the slice it read back; the parameters are allgathered instead
             self.owned = self.slice
-        self.slice_limbs = exactsum.new_accumulator(self.slice_counts[comm.rank])
         self._current = self.first
 
     @classmethod
@@ -451,8 +460,101 @@ class ExactExchange(Exchange):
         exactsum.to_float(sums, np.zeros(3))
 
 
+class CompactExchange(ExactExchange):
+    """Exact mode, compact format (``run.exact_format = "compact"``): one int64 per value instead of three.
+
+    The same fixed chunks; each bucket of :data:`BLOCK` values gets one power-of-two scale, fixed before any value
+    is converted, from the largest |g| in that bucket over all K chunks (a MAX allreduce: order-free, so the
+    same for every P), with ceil(log2 K) bits of headroom (``kernels.compactsum``). A rank keeps its chunks'
+    gradients until the scales are known, converts and adds them in int64 (exact, associative), and the sums are
+    reduce-scattered: 8 bytes per parameter instead of 24. Bit-identical for every P and rerun; accuracy: within
+    K·2^(h−51) of each bucket's largest value (h = ceil(log2 K)) before the final rounding to the dtype.
+    """
+
+    def __init__(self, comm: Comm, model: MLP, grads: np.ndarray, chunk: int, global_batch: int,
+                 sharded: bool = False) -> None:
+        Exchange.__init__(self, comm, model, grads)
+        self._layout(chunk, global_batch, sharded)
+        self.pair_grads = None
+        self.chunk_buffers = [np.zeros_like(grads) for _ in range(self.stop - self.first)]
+        # One scale per bucket of BLOCK values: bucket b is [bounds[b], bounds[b + 1]).
+        self.bounds = np.append(np.arange(0, grads.size, BLOCK, dtype=np.int64), np.int64(grads.size))
+        self.largest = np.zeros(self.bounds.size - 1)  # per bucket, max |g| over the chunks seen this step
+        self.sums = np.zeros(grads.size, dtype=np.int64)
+        self.slice_sums = np.zeros(self.slice_counts[comm.rank], dtype=np.int64)
+        self.shifts = np.zeros(self.bounds.size - 1, dtype=np.int64)
+
+    @classmethod
+    def check(cls, run: RunSpec, processes: int) -> None:
+        super().check(run, processes)
+        if run.global_batch // run.exact_chunk > compactsum.MAX_CHUNKS:
+            raise JobError(f"`run.exact_format` = 'compact' allows at most {compactsum.MAX_CHUNKS} chunks per step; "
+                           f"got global_batch / exact_chunk = {run.global_batch // run.exact_chunk}")
+
+    @classmethod
+    def from_run(cls, comm: Comm, model: MLP, grads: np.ndarray, run: RunSpec) -> CompactExchange:
+        return cls(comm, model, grads, run.exact_chunk, run.global_batch, sharded=run.update == "sharded")
+
+    def parts(self, rows: np.ndarray) -> Iterator[tuple[np.ndarray, np.ndarray]]:
+        c = self.chunk
+        for i, k in enumerate(range(self.first, self.stop)):
+            self._current = k
+            yield rows[k * c:(k + 1) * c], self.chunk_buffers[i]
+
+    def add(self, part_grads: np.ndarray) -> None:
+        """Only the buckets' largest magnitudes now; the values are converted once every scale is known."""
+        if self._current == self.first:
+            self.largest.fill(0.0)
+        largest = compactsum.bucket_max_abs(part_grads, self.bounds, self.largest)
+        if not math.isfinite(largest):
+            raise FloatingPointError(f"gradient element {largest!r} is not finite; exact mode cannot sum it")
+
+    def finish(self) -> None:
+        """Agree on the scales, convert and add this rank's chunks, reduce-scatter, read back (and allgather)."""
+        self.comm.allreduce_max(self.largest)
+        self.shifts = compactsum.shifts(self.largest, self.chunks)
+        limit = 2.0 ** (compactsum.TERM_BITS - compactsum.headroom_bits(self.chunks))
+        for i, buffer in enumerate(self.chunk_buffers):
+            largest = compactsum.accumulate(buffer, self.bounds, self.shifts, self.sums, replace=i == 0)
+            if not largest < limit:  # cannot happen for chunks that went into the maxima: a bug, not bad data
+                raise FloatingPointError(f"compact exact sum: a term of {largest!r} is outside its grid (< {limit})")
+        if self.comm.size == 1:
+            compactsum.to_float(self.sums, self.bounds, self.shifts, self.grads)
+            return
+        self.reduce_scatter_limbs()
+        self.read_back()
+        if not self.sharded:
+            self.gather()
+
+    def reduce_scatter_limbs(self) -> None:
+        """This rank's slice of the int64 sums, summed over ranks, into ``slice_sums``."""
+        self.comm.reduce_scatter_sum(self.sums, self.slice_sums, self.slice_counts)
+
+    def read_back(self) -> None:
+        compactsum.to_float(self.slice_sums, self.bounds, self.shifts, self.grads[self.slice],
+                            offset=self.slice.start)
+
+    def conversion_bound(self) -> np.ndarray:
+        """K·2^(−S_b−1) per element: each of the K chunks' values was rounded once to its bucket's grid."""
+        sizes = np.diff(self.bounds)
+        return np.repeat(self.chunks * np.ldexp(1.0, -self.shifts - 1), sizes)
+
+    def warm_up(self) -> None:
+        grads = np.zeros_like(self.grads)
+        largest = np.zeros(self.bounds.size - 1)
+        compactsum.bucket_max_abs(grads, self.bounds, largest)
+        shifts = compactsum.shifts(largest, self.chunks)
+        sums = np.zeros(grads.size, dtype=np.int64)
+        compactsum.accumulate(grads, self.bounds, shifts, sums, replace=True)
+        compactsum.accumulate(grads, self.bounds, shifts, sums)
+        compactsum.to_float(sums, self.bounds, shifts, grads)
+        metric = exactsum.new_accumulator(3)  # the metric sums stay in the wide format (they are tiny)
+        exactsum.accumulate(np.zeros(3), metric)
+        exactsum.to_float(metric, np.zeros(3))
+
+
 def strategy(run: RunSpec) -> type[Exchange]:
-    """The exchange strategy class for a job's ``run.reduction`` and ``run.update``."""
-    if run.reduction == "exact":
-        return ExactExchange  # it reads run.update itself: exact mode reduce-scatters either way
+    """The exchange strategy class for a job's ``run.reduction``, ``run.exact_format`` and ``run.update``."""
+    if run.reduction == "exact":  # they read run.update themselves: exact mode reduce-scatters either way
+        return CompactExchange if run.exact_format == "compact" else ExactExchange
     return ShardedExchange if run.update == "sharded" else BucketExchange

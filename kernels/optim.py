@@ -3,6 +3,16 @@
 ``params``, ``grads`` and every state array (velocity, Adam's m and v) share one flat layout, so each
 update is a single loop over n elements. Scalars arrive as float64; arrays are float32 or float64.
 ``l2`` is coupled L2 decay (g ← g + l2·θ); AdamW's decoupled decay is separate, as its paper has it.
+
+Every update loop vectorises (AVX2 and AVX-512; see DEVELOPERS.md for the check) and is a pure function of
+element i alone, so an update of a slice ``params[lo:hi]`` with the state's same slice has the same bits as
+the update of the whole array there (the sharded update relies on it). Float32 elements are widened to
+float64 exactly, updated in float64 against the float64 scalars and rounded once when stored; with fastmath
+off there is no fused multiply-add, so vector and scalar code, AVX2 and AVX-512 give the same bits. Casting
+the scalars to float32 would double the lanes but change those bits; the float64 work costs nothing where
+the loop waits for memory, and only Adam's square root and division make float32 Adam compute-bound
+(benchmarks/README.md).
+The arrays must not overlap (LLVM checks at run time and falls back to a scalar loop if they do).
 """
 
 from __future__ import annotations
@@ -45,7 +55,10 @@ def nesterov(params, grads, velocity, lr, mu, l2):
         params[i] += -mu * v_old + (1.0 + mu) * v
 
 
-@njit(cache=True)
+# error_model="numpy": Python's semantics would test the denominator √v̂ + ε for zero before each division
+# and raise, a branch out of the loop that keeps LLVM from vectorising it (Adam ran scalar). With
+# ε > 0 (the job schema's rule) the denominator is never zero, so IEEE division gives the same bits.
+@njit(cache=True, error_model="numpy")
 def adam(params, grads, m, v, lr, beta1, beta2, eps, step, l2, decay):
     """Adam (Kingma & Ba 2015, Algorithm 1) with optional decoupled decay (Loshchilov & Hutter 2019, Alg. 2).
 
@@ -66,7 +79,12 @@ def adam(params, grads, m, v, lr, beta1, beta2, eps, step, l2, decay):
 
 @njit(cache=True)
 def sum_squares(x):
-    """Σ x_i² accumulated in float64 (the square of the global gradient norm). x: (n,)."""
+    """Σ x_i² accumulated in float64 (the square of the global gradient norm). x: (n,).
+
+    A scalar loop: the sum runs left to right, one rounding per term, and a vector loop would add in
+    another order (other bits), which LLVM does only under fast-math reassociation. It runs only when the
+    global-norm clip is on (or for health diagnostics).
+    """
     total = 0.0
     for i in range(x.size):
         xi = np.float64(x[i])  # numba's float() would keep a float32 element in float32

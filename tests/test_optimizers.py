@@ -9,6 +9,10 @@ random gradients as the optimizer under test.
 from __future__ import annotations
 
 import math
+import os
+import platform
+import subprocess
+import sys
 from dataclasses import replace
 
 import numpy as np
@@ -16,7 +20,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from shardmill.config import OptimizerSpec
-from shardmill.optim import Optimizer, learning_rate
+from shardmill.optim import STATE_NAMES, Optimizer, learning_rate
 
 N = 37
 STEPS = 12
@@ -226,3 +230,77 @@ def test_clip_off_leaves_gradients_untouched():
     g = np.full(N, 1e6)
     Optimizer(replace(OptimizerSpec(), clip_global_norm=0.0), N, np.dtype(np.float64)).clip(g)
     np.testing.assert_array_equal(g, 1e6)
+
+
+# --- the update kernels on slices (the sharded update) -----------------------------------------------------------
+def apply_kernel(method: str, params: np.ndarray, grads: np.ndarray, state: list[np.ndarray], step: int) -> None:
+    """One update of shardmill.kernels.optim's kernel for ``method`` in place (AdamW: Adam with decoupled decay)."""
+    from shardmill.kernels import optim as kernels
+
+    if method == "sgd":
+        kernels.sgd(params, grads, 0.03, 0.01)
+    elif method in ("momentum", "nesterov"):
+        getattr(kernels, method)(params, grads, state[0], 0.03, 0.9, 0.01)
+    else:
+        l2, decay = (0.0, 1e-3) if method == "adamw" else (0.01, 0.0)
+        kernels.adam(params, grads, state[0], state[1], 0.01, 0.9, 0.999, 1e-8, float(step), l2, decay)
+
+
+@pytest.mark.parametrize("dtype", [np.float32, np.float64])
+@pytest.mark.parametrize("method", ["sgd", "momentum", "nesterov", "adam", "adamw"])
+@pytest.mark.parametrize("lo, hi", [(0, 1037), (13, 1000), (1, 4), (1030, 1037), (500, 500)])
+def test_update_of_a_slice_has_the_bits_of_the_update_of_that_slice_alone(method, dtype, lo, hi):
+    n, steps = 1037, 3  # odd bounds and lengths: the slice and its copy split differently into vector and tail
+    rng = np.random.default_rng(11)
+    params = rng.standard_normal(n).astype(dtype)
+    params[::7] = 0.0  # biases start at zero
+    state = [rng.standard_normal(n).astype(dtype) for _ in STATE_NAMES[method]]
+    if method in ("adam", "adamw"):
+        state[1] = np.abs(state[1])  # v ≥ 0
+    alone_params, alone_state = params[lo:hi].copy(), [s[lo:hi].copy() for s in state]
+    outside = np.r_[0:lo, hi:n]
+    before = [params[outside].copy(), *(s[outside].copy() for s in state)]
+    for step in range(1, steps + 1):
+        grads = rng.standard_normal(n).astype(dtype)
+        apply_kernel(method, params[lo:hi], grads[lo:hi], [s[lo:hi] for s in state], step)
+        apply_kernel(method, alone_params, grads[lo:hi].copy(), alone_state, step)
+    # an element-wise update is a function of its own element only, wherever the element lies. common practice
+    assert params[lo:hi].tobytes() == alone_params.tobytes()
+    for whole, alone in zip(state, alone_state, strict=True):
+        assert whole[lo:hi].tobytes() == alone.tobytes()
+    after = [params[outside], *(s[outside] for s in state)]
+    for was, now in zip(before, after, strict=True):
+        assert was.tobytes() == now.tobytes()  # nothing outside the slice is written. common practice
+
+
+VECTOR_CHECK = """
+import re, sys
+import numba
+from shardmill.kernels import optim
+array = {name: numba.types.Array(getattr(numba, name), 1, "C") for name in ("float32", "float64")}
+f = numba.float64
+for name, dtype in ((n, d) for n in ("sgd", "momentum", "nesterov", "adam", "scale") for d in array):
+    a = array[dtype]
+    signature = {"sgd": (a, a, f, f), "momentum": (a, a, a, f, f, f), "nesterov": (a, a, a, f, f, f),
+                 "adam": (a, a, a, a, f, f, f, f, f, f, f), "scale": (a, f)}[name]
+    kernel = getattr(optim, name)
+    options = {k: v for k, v in kernel.targetoptions.items() if k not in ("cache", "nopython")}
+    fresh = numba.njit(**options)(kernel.py_func)  # cached code cannot be inspected
+    fresh.compile(signature)
+    packed = re.findall(r"\\tv(?:mul|add|sub|div|sqrt)p[sd]\\s[^\\n]*ymm", fresh.inspect_asm(signature))
+    print(name, dtype, len(packed))
+"""
+
+
+@pytest.mark.skipif(platform.machine() not in ("x86_64", "AMD64"), reason="an x86-64 code check")
+def test_update_kernels_vectorise_on_avx2():
+    # Haswell's instruction set, AVX-512 off, whatever this machine has (DEVELOPERS.md: hot loops vectorise on AVX2)
+    env = {**os.environ, "NUMBA_CPU_NAME": "haswell",
+           "NUMBA_CPU_FEATURES": "+avx,+avx2,+fma,+sse4.2,+popcnt,+f16c,+bmi,+bmi2,+lzcnt,+movbe"}
+    done = subprocess.run([sys.executable, "-c", VECTOR_CHECK], env=env, capture_output=True, text=True, timeout=300)
+    assert done.returncode == 0, done.stderr[-2000:]
+    counts = {tuple(line.split()[:2]): int(line.split()[2]) for line in done.stdout.splitlines()}
+    assert len(counts) == 10
+    for (name, dtype), packed in counts.items():
+        # packed arithmetic on 256-bit registers: the loop runs 4 or 8 elements at a time. common practice
+        assert packed > 0, f"{name} {dtype} runs scalar on AVX2"

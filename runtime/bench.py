@@ -84,6 +84,7 @@ def run_bench(layers: list[int], batch: int, dtype: str = default("model.dtype")
             trainer.step(0, s % spe)
             gemm_floor_step(trainer)
         step_times, floor_times, needed_times = [], [], []
+        trainer.timer.reset()
         block = 5
         done = 0
         while done < steps:
@@ -97,6 +98,9 @@ def run_bench(layers: list[int], batch: int, dtype: str = default("model.dtype")
                 floor_times.append(float(local[0]))
                 needed_times.append(float(local[1]))
             done += todo
+    phase_max, _ = trainer.reduce_phases()  # seconds over the timed steps, slowest rank per phase
+    state_bytes = np.array([sum(a.nbytes for a in trainer.optimizer.state.values())], dtype=np.int64)
+    comm.allreduce_max(state_bytes)
     step_s = median(step_times)
     floor_s = median(floor_times)
     needed_s = median(needed_times)
@@ -124,6 +128,8 @@ def run_bench(layers: list[int], batch: int, dtype: str = default("model.dtype")
         "step_ms_min": min(step_times) * 1e3,
         "floor_ms_min": min(floor_times) * 1e3,
         "compile_s": compile_s,
+        "phase_ms": {phase: seconds * 1e3 / steps for phase, seconds in phase_max.items()},
+        "optimizer_state_bytes_per_rank": int(state_bytes[0]),
         "machine": machine(),
     }
 

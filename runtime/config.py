@@ -137,6 +137,10 @@ SCHEMA: tuple[Key, ...] = (
     Key("run.update", "choice", "replicated", "replicated: every rank updates every parameter; sharded: the "
         "gradient is reduce-scattered, each rank updates its own contiguous slice (optimizer state 1/P per rank) "
         "and the parameters are allgathered", choices=("replicated", "sharded"), trajectory=False),
+    Key("run.progress", "choice", "auto", "who drives the overlapped bucket reductions: library (MPI's "
+        "non-blocking calls; best on one node, where the exchange is CPU work anyway), thread (a communication "
+        "thread per rank; hides the exchange on a network), auto (thread when the ranks span more than one node)",
+        choices=("auto", "thread", "library"), trajectory=False),
     Key("run.overlap", "flag", True, "start each bucket's allreduce while backward runs; false: one blocking "
         "allreduce after backward", trajectory=False),
     Key("run.save_every", "integer", 0, "steps between checkpoints; 0 = only at the end", low=0, trajectory=False),

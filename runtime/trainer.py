@@ -394,6 +394,7 @@ def _train_loop(trainer: Trainer, resume: bool, progress: bool) -> dict[str, Any
     if bar is not None:
         bar.close()
     state = trainer.save(step)
+    trainer.exchange.close()
     if lead:
         checkpoint.write_final(workdir / "final.npz", state)
     return {"model": model, "history": history, "steps": step, "workdir": str(workdir),

@@ -62,6 +62,11 @@ for update in ("replicated", "sharded"):
                                    "update": update}, CLIPPED)},
     ]
 CASES += [
+    {"name": "wide_fast_sharded_thread", "kind": "train", "steps": STEPS,
+     "job": job(WIDE, "tanh", {"global_batch": 10, "update": "sharded", "progress": "thread", **TINY_BUCKETS},
+                CLIPPED)},
+    {"name": "train_fast_thread", "kind": "train", "steps": STEPS,
+     "job": job(LAYERS, "tanh", {"global_batch": 10, "check_every": 1, "progress": "thread", **TINY_BUCKETS}, ADAM)},
     {"name": "wide_fast_sharded_no_overlap", "kind": "train", "steps": STEPS,
      "job": job(WIDE, "tanh", {"global_batch": 10, "update": "sharded", "overlap": False}, CLIPPED)},
     {"name": "train_exact_compact", "kind": "train", "steps": STEPS,
@@ -273,6 +278,14 @@ def test_compact_exact_format_is_bit_identical_for_every_P_and_close_to_the_wide
     # bucket's largest value: after 5 Adam steps the two runs differ far below 1e-8 (kernels/compactsum.py bound).
     compact, wide = flat(runs[2]["train_exact_compact"]["params"]), flat(runs[2]["train_exact"]["params"])
     assert 0.0 < relative(compact, wide) < 1e-8
+
+
+@pytest.mark.parametrize("P", RANKS)
+def test_a_communication_thread_gives_the_same_sums(runs, P):
+    # The thread runs the same collectives on a duplicated communicator: the same sums, bucket by bucket.
+    for thread, library in (("train_fast_thread", "train_fast"), ("wide_fast_sharded_thread", "wide_fast_sharded")):
+        assert relative(flat(runs[P][thread]["params"]), flat(runs[P][library]["params"])) < 1e-12  # common practice
+        assert len(set(runs[P][thread]["sha256_by_rank"])) == 1
 
 
 # ---------------------------------------------------------------- command line at P = 2

@@ -41,6 +41,15 @@ class Comm:
         self.rank: int = self.comm.Get_rank()
         self.size: int = self.comm.Get_size()
 
+    def spans_nodes(self) -> bool:
+        """True, on every rank, when the ranks do not all share one node's memory (collective)."""
+        if self.size == 1:
+            return False
+        node = self.comm.Split_type(MPI.COMM_TYPE_SHARED)
+        alone = np.array([int(node.Get_size() < self.size)], dtype=np.int64)
+        node.Free()
+        return bool(self.allreduce_max(alone)[0])
+
     def duplicate(self) -> Comm:
         """A Comm over a duplicate of this communicator (MPI_Comm_dup): every rank calls it at the same point.
 

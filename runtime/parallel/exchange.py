@@ -34,6 +34,7 @@ from shardmill.kernels import compactsum, exactsum
 from shardmill.kernels import optim as kernels_optim
 from shardmill.model import MLP
 from shardmill.parallel.comm import Comm
+from shardmill.parallel.progress import CommThread
 
 BLOCK = 256
 """Owned slices start at multiples of BLOCK elements, so that the fixed blocks of exact mode's sum of squares never
@@ -201,6 +202,9 @@ class Exchange:
     def warm_up(self) -> None:
         """Compile (or load from Numba's cache) the kernels this strategy runs, on scratch buffers."""
 
+    def close(self) -> None:
+        """Release what the strategy started (a communication thread); idempotent."""
+
 
 class BucketExchange(Exchange):
     """Fast mode: this rank's shard into ``grads``; buckets of whole layers allreduced as backward finishes them.
@@ -211,9 +215,15 @@ class BucketExchange(Exchange):
     blocking allreduce of the whole buffer runs in :meth:`finish` instead (for comparison in benchmarks).
     """
 
-    def __init__(self, comm: Comm, model: MLP, grads: np.ndarray, bucket_mb: float, overlap: bool = True) -> None:
+    def __init__(self, comm: Comm, model: MLP, grads: np.ndarray, bucket_mb: float, overlap: bool = True,
+                 progress: str = "library") -> None:
         super().__init__(comm, model, grads)
         self.overlap = overlap
+        # MPICH makes no progress on a non-blocking collective while this thread is inside BLAS; a communication
+        # thread does, which pays on a network link (benchmarks/overlap_hidden.py) but costs a few % on one node.
+        if progress == "auto":
+            progress = "thread" if comm.spans_nodes() else "library"
+        self.thread = CommThread(comm) if overlap and progress == "thread" and comm.size > 1 else None
         limit = bucket_mb * 1e6
         self.buckets: list[tuple[int, int]] = []  # (start, stop) element offsets
         self._closing: dict[int, int] = {}  # layer whose completion closes bucket i -> i
@@ -228,7 +238,7 @@ class BucketExchange(Exchange):
 
     @classmethod
     def from_run(cls, comm: Comm, model: MLP, grads: np.ndarray, run: RunSpec) -> BucketExchange:
-        return cls(comm, model, grads, run.bucket_mb, run.overlap)
+        return cls(comm, model, grads, run.bucket_mb, run.overlap, run.progress)
 
     @staticmethod
     def part_rows(run: RunSpec, processes: int) -> int:
@@ -246,7 +256,9 @@ class BucketExchange(Exchange):
             self._requests.append(self.start_bucket(*self.buckets[self._closing[layer]]))
 
     def start_bucket(self, start: int, stop: int) -> Any:
-        """Start the non-blocking in-place SUM allreduce of ``grads[start:stop]``; returns its request."""
+        """Start the in-place SUM allreduce of ``grads[start:stop]`` (non-blocking, or on the thread)."""
+        if self.thread is not None:
+            return self.thread.start_allreduce_sum(self.grads[start:stop])
         return self.comm.start_allreduce_sum(self.grads[start:stop])
 
     def reduce_all(self) -> None:
@@ -256,10 +268,17 @@ class BucketExchange(Exchange):
     def finish(self) -> None:
         """Wait for every bucket (or run the single blocking reduction without overlap)."""
         if self.overlap:
-            self.comm.wait(self._requests)
+            if self.thread is not None:
+                self.thread.wait(self._requests)
+            else:
+                self.comm.wait(self._requests)
             self._requests.clear()
         else:
             self.reduce_all()
+
+    def close(self) -> None:
+        if self.thread is not None:
+            self.thread.close()
 
 
 class ShardedExchange(BucketExchange):
@@ -273,8 +292,9 @@ class ShardedExchange(BucketExchange):
     the update is divided by P instead of repeated on every rank.
     """
 
-    def __init__(self, comm: Comm, model: MLP, grads: np.ndarray, bucket_mb: float, overlap: bool = True) -> None:
-        super().__init__(comm, model, grads, bucket_mb, overlap)
+    def __init__(self, comm: Comm, model: MLP, grads: np.ndarray, bucket_mb: float, overlap: bool = True,
+                 progress: str = "library") -> None:
+        super().__init__(comm, model, grads, bucket_mb, overlap, progress)
         bounds = owner_bounds(grads.size, comm.size)
         self.counts = [hi - lo for lo, hi in bounds]  # elements each rank owns
         self.owned = slice(*bounds[comm.rank])
@@ -289,6 +309,8 @@ class ShardedExchange(BucketExchange):
 
     def start_bucket(self, start: int, stop: int) -> Any:
         counts = self._bucket_counts[self.buckets.index((start, stop))]
+        if self.thread is not None:
+            return self.thread.start_reduce_scatter_sum(self.grads[start:stop], self._received(start, stop), counts)
         return self.comm.start_reduce_scatter_sum(self.grads[start:stop], self._received(start, stop), counts)
 
     def reduce_all(self) -> None:

@@ -1,8 +1,9 @@
-"""Tests of the allreduce cost model against the formulas of Thakur, Rabenseifner & Gropp 2005.
+"""Tests of the collective cost model against the formulas of Thakur, Rabenseifner & Gropp 2005.
 
 Shorthand in the comments: TRG 2005 = Thakur, Rabenseifner & Gropp, "Optimization of Collective
-Communication Operations in MPICH", IJHPCA 19(1), 2005. The worked numbers use
-n = 1 MiB = 1 048 576 bytes, α = 2 µs, β = 1/(10 GB/s) = 1e-10 s/byte, so n·β = 1.048576e-4 s.
+Communication Operations in MPICH", IJHPCA 19(1), 2005 (allreduce, reduce-scatter and allgather sections).
+The worked numbers use n = 1 MiB = 1 048 576 bytes, α = 2 µs, β = 1/(10 GB/s) = 1e-10 s/byte, so
+n·β = 1.048576e-4 s.
 """
 
 from __future__ import annotations
@@ -20,14 +21,21 @@ from hypothesis import strategies as st
 from shardmill.scaling.costmodel import (
     ALGORITHMS,
     ASSUMPTIONS,
+    COMPACT_SCALE_BLOCK,
     NO_COMMUNICATION,
+    Collective,
     Fit,
+    allgather_time,
     allreduce_time,
     best_allreduce,
+    best_collective,
     fit_alpha_beta,
     fit_linear,
     parse_network,
     project,
+    project_step,
+    reduce_scatter_time,
+    step_collectives,
 )
 from shardmill.scaling.measure import measure_reduction_gamma
 
@@ -373,3 +381,150 @@ def test_replicated_update_is_not_divided_by_p() -> None:
     assert rows[0]["step_s"] == pytest.approx(1.0)
     assert rows[1]["step_s"] == pytest.approx(0.2 + 0.8 / 4)
     assert rows[1]["efficiency"] == pytest.approx(1.0 / (4 * 0.4))
+
+
+# ------------------------------------------------------------------------------------------------------
+# Reduce-scatter and allgather, worked by hand; the sharded step
+# ------------------------------------------------------------------------------------------------------
+
+GAMMA = 5e-11  # n·γ = 5.24288e-5 s
+
+
+def test_reduce_scatter_by_hand() -> None:
+    # p = 8: ring (p−1)α + (7/8)nβ + (7/8)nγ = 1.4e-5 + 9.17504e-5 + 4.58752e-5 = 1.516256e-4 s
+    assert reduce_scatter_time("ring", 8, MIB, ALPHA, BETA, GAMMA) == pytest.approx(
+        1.516256e-4, rel=1e-12
+    )  # TRG 2005, reduce-scatter: pairwise exchange / ring, (p−1)α + ((p−1)/p)nβ + ((p−1)/p)nγ
+    # recursive halving: lg p·α + (7/8)nβ + (7/8)nγ = 6e-6 + 9.17504e-5 + 4.58752e-5 = 1.436256e-4 s
+    assert reduce_scatter_time("recursive_halving", 8, MIB, ALPHA, BETA, GAMMA) == pytest.approx(
+        1.436256e-4, rel=1e-12
+    )  # TRG 2005, reduce-scatter by recursive halving, p a power of two
+    # p = 6, p' = 4: (⌊lg 6⌋ + 2)α + 2nβ + (1 + 3/4)nγ = 8e-6 + 2.097152e-4 + 9.17504e-5 = 3.094656e-4 s
+    assert reduce_scatter_time("recursive_halving", 6, MIB, ALPHA, BETA, GAMMA) == pytest.approx(
+        3.094656e-4, rel=1e-12
+    )  # TRG 2005, recursive halving for p not a power of two (from memory, as the allreduce test above)
+    # ring at p = 6: 5α + (5/6)nβ + (5/6)nγ = 1e-5 + 8.738133…e-5 + 4.369066…e-5
+    assert reduce_scatter_time("ring", 6, MIB, ALPHA, BETA, GAMMA) == pytest.approx(
+        1e-5 + 5 / 6 * N_BETA + 5 / 6 * MIB * GAMMA, rel=1e-12
+    )  # TRG 2005
+
+
+def test_allgather_by_hand() -> None:
+    # p = 8: ring 7α + (7/8)nβ = 1.057504e-4 s; Bruck ⌈lg 8⌉α + (7/8)nβ = 9.77504e-5 s; nothing is reduced.
+    assert allgather_time("ring", 8, MIB, ALPHA, BETA) == pytest.approx(1.057504e-4, rel=1e-12)  # TRG 2005
+    assert allgather_time("bruck", 8, MIB, ALPHA, BETA) == pytest.approx(9.77504e-5, rel=1e-12)  # TRG 2005
+    # p = 6: Bruck works for any p, ⌈lg 6⌉ = 3 steps: 6e-6 + (5/6)nβ.
+    assert allgather_time("bruck", 6, MIB, ALPHA, BETA) == pytest.approx(6e-6 + 5 / 6 * N_BETA, rel=1e-12)  # TRG 2005
+    assert best_collective("allgather", 8, MIB, ALPHA, BETA, GAMMA) == ("bruck", pytest.approx(9.77504e-5))
+
+
+def test_best_reduce_scatter_switches_with_size_at_odd_p() -> None:
+    # TRG 2005: recursive halving for short messages, pairwise exchange (priced as the ring) for long ones; at
+    # p = 6 the ring's 5α lose to recursive halving's 4α on 256 bytes, its (5/6)nβ beat 2nβ on 1 MiB.
+    assert best_collective("reduce_scatter", 6, 256, ALPHA, BETA)[0] == "recursive_halving"
+    assert best_collective("reduce_scatter", 6, MIB, ALPHA, BETA)[0] == "ring"
+    assert best_collective("reduce_scatter", 1, MIB, ALPHA, BETA) == (NO_COMMUNICATION, 0.0)  # nothing is sent
+
+
+@settings(max_examples=200, deadline=None)
+@given(
+    p=st.integers(min_value=2, max_value=1024),
+    n_bytes=st.floats(min_value=0.0, max_value=1e10),
+    alpha=st.floats(min_value=0.0, max_value=1e-3),
+    beta=st.floats(min_value=0.0, max_value=1e-8),
+    gamma=st.floats(min_value=0.0, max_value=1e-8),
+)
+def test_reduce_scatter_then_allgather_is_an_allreduce(
+    p: int, n_bytes: float, alpha: float, beta: float, gamma: float
+) -> None:
+    # TRG 2005: the ring allreduce is a ring reduce-scatter followed by a ring allgather (any p).
+    ring = reduce_scatter_time("ring", p, n_bytes, alpha, beta, gamma) + allgather_time("ring", p, n_bytes, alpha, beta)
+    assert ring == pytest.approx(allreduce_time("ring", p, n_bytes, alpha, beta, gamma), rel=1e-12, abs=1e-300)
+    if p & (p - 1) == 0:
+        # TRG 2005: Rabenseifner's allreduce is recursive halving then recursive doubling (Bruck's cost at 2^k).
+        halves = (reduce_scatter_time("recursive_halving", p, n_bytes, alpha, beta, gamma)
+                  + allgather_time("bruck", p, n_bytes, alpha, beta))
+        assert halves == pytest.approx(allreduce_time("rabenseifner", p, n_bytes, alpha, beta, gamma), rel=1e-12,
+                                       abs=1e-300)
+    # common practice: each rank must receive the other ranks' (p−1)/p of the vector, so no algorithm's β term
+    # is below ((p−1)/p)·nβ.
+    for kind, names in (("reduce_scatter", ("ring", "recursive_halving")), ("allgather", ("ring", "bruck"))):
+        for name in names:
+            bandwidth = (reduce_scatter_time(name, p, n_bytes, 0.0, beta) if kind == "reduce_scatter"
+                         else allgather_time(name, p, n_bytes, 0.0, beta))
+            assert bandwidth >= (p - 1) / p * n_bytes * beta * (1 - 1e-12)
+
+
+def test_step_collectives_bytes() -> None:
+    n = 1000
+    # Plain data parallelism sends one allreduce of the gradient. common practice
+    assert step_collectives("replicated", "fast", n, 4) == (Collective("allreduce", 4000.0),)
+    # Sharded: reduce-scatter the gradient, allgather the parameters, the same bytes each. common practice
+    assert step_collectives("sharded", "fast", n, 4) == (Collective("reduce_scatter", 4000.0),
+                                                         Collective("allgather", 4000.0))
+    # Exact, wide: three int64 limbs per value (kernels/exactsum.py), one reduce-scatter call per limb row — 24 bytes
+    # per parameter — then the float gradient (replicated) or parameters (sharded) are allgathered.
+    for update in ("replicated", "sharded"):
+        scatter, gather = step_collectives(update, "exact", n, 8)
+        assert (scatter.kind, scatter.n_bytes * scatter.calls, scatter.calls) == ("reduce_scatter", 24 * n, 3)
+        assert gather == Collective("allgather", 8000.0)
+    # Exact, compact: one int64 per value, after a MAX allreduce of one float64 per block of 256 values.
+    scales, scatter, gather = step_collectives("sharded", "exact", n, 4, exact_format="compact")
+    assert scales == Collective("allreduce", 4 * 8.0)  # ⌈1000 / 256⌉ = 4 blocks
+    assert scatter == Collective("reduce_scatter", 8000.0) and gather == Collective("allgather", 4000.0)
+    with pytest.raises(ValueError, match=r"`update` must be one of replicated, sharded; got 'shraded'"):
+        step_collectives("shraded", "fast", n, 4)
+
+
+def test_compact_scale_block_is_the_exchange_block() -> None:
+    from shardmill.parallel.exchange import BLOCK
+
+    assert COMPACT_SCALE_BLOCK == BLOCK  # the model must count the scales the exchange agrees on
+
+
+def test_sharded_update_divides_by_p() -> None:
+    # Amdahl 1967: the replicated update is a serial fraction, T = 0.2 + 0.8/p; sharded, nothing is serial.
+    replicated = project_step(1.0, (), [1, 4], 0.0, 0.0, update="replicated", update_s=0.2)
+    sharded = project_step(1.0, (), [1, 4], 0.0, 0.0, update="sharded", update_s=0.2)
+    assert replicated[1]["step_s"] == pytest.approx(0.2 + 0.8 / 4, rel=1e-12)
+    assert sharded[1]["step_s"] == pytest.approx(1.0 / 4, rel=1e-12)
+    assert sharded[1]["update_s"] == pytest.approx(0.2 / 4, rel=1e-12) and replicated[1]["update_s"] == 0.2
+    assert sharded[1]["efficiency"] == pytest.approx(1.0, rel=1e-12)  # Grama 2003: T1/(p·Tp)
+    # Weak scaling: per-rank forward and backward stay, the sharded update still shrinks: 0.8 + 0.2/4.
+    weak = project_step(1.0, (), [4], 0.0, 0.0, mode="weak", update="sharded", update_s=0.2)
+    assert weak[0]["compute_s"] == pytest.approx(0.85, rel=1e-12)
+    assert weak[0]["efficiency"] == pytest.approx(1.0 / 0.85, rel=1e-12)  # Gustafson 1988: T1/Tp
+    with pytest.raises(ValueError, match="`update_s`"):
+        project_step(1.0, (), [2], 0.0, 0.0, update="sharded", update_s=2.0)
+
+
+def test_sharded_and_exact_steps_by_hand() -> None:
+    # p = 8, a 1 MiB float32 gradient (2^18 parameters), α = 2 µs, β = 1e-10 s/B, γ = 0.
+    n_params = MIB // 4
+    # Sharded fast: recursive halving 9.77504e-5 + Bruck 9.77504e-5 = 1.955008e-4 s, Rabenseifner's allreduce.
+    (row,) = project_step(0.08, step_collectives("sharded", "fast", n_params, 4), [8], ALPHA, BETA,
+                          update="sharded", update_s=0.008)
+    assert row["comm_s"] == pytest.approx(1.955008e-4, rel=1e-12)  # TRG 2005, worked above
+    assert row["algorithm"] == "recursive_halving+bruck"
+    assert row["step_s"] == pytest.approx(0.01 + 1.955008e-4, rel=1e-12)  # 0.08/8, the update included
+    # Exact wide: 3 reduce-scatters of 2 MiB (3α + (7/8)·2nβ = 1.895008e-4 s each) + Bruck allgather of 1 MiB.
+    (row,) = project_step(0.08, step_collectives("replicated", "exact", n_params, 4), [8], ALPHA, BETA,
+                          update="replicated", update_s=0.008)
+    assert row["comm_s"] == pytest.approx(3 * 1.895008e-4 + 9.77504e-5, rel=1e-12)  # TRG 2005
+    assert row["step_s"] == pytest.approx(0.072 / 8 + 0.008 + 6.662528e-4, rel=1e-12)  # update repeated
+    # Exact compact: MAX allreduce of 1024 float64 (8 KiB, recursive doubling 3α + 3·8192β = 8.4576e-6 s),
+    # one 2 MiB reduce-scatter, the 1 MiB allgather.
+    (row,) = project_step(0.08, step_collectives("sharded", "exact", n_params, 4, "compact"), [8], ALPHA, BETA,
+                          update="sharded", update_s=0.008)
+    assert row["comm_s"] == pytest.approx(8.4576e-6 + 1.895008e-4 + 9.77504e-5, rel=1e-12)  # TRG 2005
+    assert [entry["algorithm"] for entry in row["comm"]] == ["recursive_doubling", "recursive_halving", "bruck"]
+
+
+def test_project_keeps_its_replicated_rows() -> None:
+    # project is project_step with one allreduce: the same numbers, and allreduce_s = comm_s.
+    old = project(0.5, 4 * MIB, [1, 2, 6, 64], ALPHA, BETA, 2e-11, overlap=0.25, replicated_s=0.1)
+    new = project_step(0.5, (Collective("allreduce", 4 * MIB),), [1, 2, 6, 64], ALPHA, BETA, 2e-11, overlap=0.25,
+                       update_s=0.1)
+    for a, b in zip(old, new, strict=True):
+        assert a["step_s"] == b["step_s"] and a["allreduce_s"] == b["comm_s"] and a["algorithm"] == b["algorithm"]
+        assert a["allreduce_s"] == best_allreduce(a["p"], 4 * MIB, ALPHA, BETA, 2e-11)[1]  # TRG 2005

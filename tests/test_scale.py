@@ -7,6 +7,7 @@ Sources named beside the checks:
 - Thakur, Rabenseifner & Gropp, "Optimization of Collective Communication Operations in MPICH", IJHPCA
   19(1), 2005 (allreduce costs) — "TRG 2005".
 - PNG specification (ISO/IEC 15948:2004, W3C), §5.2: every PNG file starts with 137 80 78 71 13 10 26 10.
+- Kingma & Ba, "Adam", ICLR 2015, Algorithm 1: two moment estimates per parameter.
 """
 
 from __future__ import annotations
@@ -289,3 +290,136 @@ def test_allreduce_timing_skips_sizes_past_its_budget() -> None:
     assert [t["n_bytes"] for t in timings] == list(sizes) and skipped == []
     for t in timings:
         assert t["median_s"] == statistics.median(t["times_s"]) and len(t["times_s"]) == 2
+
+
+# ------------------------------------------------------------------------------------------------------
+# The sharded update in the study: hidden fraction, optimizer memory per rank, projection error
+# ------------------------------------------------------------------------------------------------------
+
+OLD_CSV_COLUMNS = ["p", "global_batch", "step_s", "samples_per_s", "samples_per_s_per_rank", "speedup", "efficiency",
+                   "load_imbalance", *(f"{ph}_{kind}_s" for ph in PHASES for kind in ("max", "mean")),
+                   "peak_rss_max_bytes", "pinned", "placement"]  # the columns before the sharded update
+NEW_CSV_COLUMNS = ["update", "exchange_alone_s", "publish_alone_s", "hidden_fraction", "optimizer_state_max_bytes",
+                   "optimizer_state_ratio", "model_step_s", "projection_error"]
+
+
+def synthetic_raw(p: int, step_s: float, phases: list[dict], exchange_alone_s: float, state: list[int]) -> dict:
+    """What a worker would write at P = p: per-rank phase seconds per step (×STEPS), a straight-line allreduce."""
+    ranks = [{"rank": r, "rows": G // p, "wall_s": step_s * STEPS, "phase_s": {k: v * STEPS for k, v in ph.items()},
+              "compile_s": 0.0, "owned_params": 100, "optimizer_state_bytes": state[r], "rss_bytes": 50 << 20,
+              "peak_rss_bytes": 60 << 20, "cpu": r, "affinity": [r], "pinned": False, "pinned_cores": None}
+             for r, ph in enumerate(phases)]
+    sizes = [4096 * 4**k for k in range(6)]
+    return {"p": p, "global_batch": G, "steps": STEPS, "warmup_steps": 2, "threads": 1, "params": 1000,
+            "grad_bytes": 8000, "itemsize": 8, "update": "replicated", "reduction": "fast", "exact_format": "wide",
+            "exchange_alone": {"exchange_s": exchange_alone_s, "publish_s": 0.0},
+            "ranks": ranks, "allreduce": [{"n_bytes": n, "median_s": 4e-6 + 1e-10 * n, "times_s": []} for n in sizes]
+            if p > 1 else [], "allreduce_skipped_bytes": [], "mpi_thread_level": "multiple",
+            "gamma_s_per_byte": 0.0, "gamma_bytes": 4000000, "mpi_library": "test MPI", "mpi4py": "0"}
+
+
+@pytest.mark.parametrize(("error", "warned"), [(0.10, False), (-0.10, False), (0.30, True), (-0.20, True)])
+def test_synthetic_study_hidden_fraction_memory_and_warning(tmp_path, error, warned) -> None:
+    from shardmill.config import load_job
+    from shardmill.scaling import report
+    from shardmill.scaling.study import CSV_COLUMNS, build_study, write_study
+
+    serial = {"data": 1e-3, "forward": 4e-3, "backward": 4e-3, "exchange": 0.0, "update": 1e-3}  # 10 ms of compute
+    # P = 2, rank 0 waits 0.3 ms and rank 1 0.5 ms in the exchange phase; the exchange alone takes 1 ms:
+    # hidden = 1 − 0.4 / 1.0 = 0.6 (the definition: 1 − exposed / alone, the exposed being the mean over ranks).
+    halves = [dict(serial, data=5e-4, forward=2e-3, backward=2e-3, exchange=x, update=1e-3) for x in (3e-4, 5e-4)]
+    # Projected step at P = 2 (replicated update, strong): (10 ms − 1 ms)/2 + 1 ms + the allreduce of 8000 bytes,
+    # which the straight-line timings price at 4 µs + 8000·1e-10 s whatever algorithm the fit picks (TRG 2005 at
+    # p = 2: one message each way). The measured step is set so that (projected − measured) / measured = error.
+    projected = 9e-3 / 2 + 1e-3 + 4e-6 + 8000 * 1e-10
+    raws = {1: synthetic_raw(1, 10e-3, [serial], 1e-6, [16000]),
+            2: synthetic_raw(2, projected / (1 + error), halves, 1e-3, [8192, 7808])}
+    job = load_job(tiny_job(tmp_path))
+    study = build_study(job, tmp_path / "job.toml", "strong", STEPS, 1, False, raws, [8], None, None)
+    points = {point["p"]: point for point in study["points"]}
+    assert points[1]["hidden_fraction"] is None  # P = 1 sends nothing, so nothing can be hidden
+    assert points[2]["hidden_fraction"] == pytest.approx(0.6, rel=1e-9)
+    assert points[2]["optimizer_state_max_bytes"] == 8192
+    assert points[2]["optimizer_state_ratio"] == pytest.approx(8192 / 16000, rel=1e-12)
+    assert points[2]["model_step_s"] == pytest.approx(projected, rel=1e-9)
+    assert points[2]["projection_error"] == pytest.approx(abs(error), rel=1e-6)
+    assert study["model"]["max_abs_step_error"] == pytest.approx(abs(error), rel=1e-6)
+
+    table = report.text_table(study)
+    markdown = report.markdown(study, set())
+    lines = [line for line in table.splitlines() if line.startswith("warning:")]
+    if warned:
+        assert len(lines) == 1 and "P = 2" in lines[0] and f"{100 * abs(error):.1f}%" in lines[0]
+        assert lines[0] in markdown and study["model"]["warning"] == lines[0]
+    else:
+        assert not lines and "warning" not in markdown and study["model"]["warning"] is None
+    assert re.search(r"^\s*2\s.*\s60%\s.*0\.51×", table, flags=re.MULTILINE)  # hidden, state ratio at P = 2
+
+    write_study(study, tmp_path)
+    with open(tmp_path / "scaling.csv", newline="") as handle:
+        header = next(csv.reader(handle))
+    assert header == list(CSV_COLUMNS) == OLD_CSV_COLUMNS + NEW_CSV_COLUMNS  # new columns at the end only
+
+
+@pytest.fixture(scope="module")
+def sharded(tmp_path_factory) -> tuple[dict, Path, str]:
+    folder = tmp_path_factory.mktemp("sharded")
+    make_classification(folder, rows=240, features=6, classes=3, seed=0)
+    job = write_job(folder, {"layers": [6, 64, 64, 3], "activation": "tanh", "dtype": "float64"},
+                    {"global_batch": G, "epochs": 1, "seed": 0, "update": "sharded"},
+                    optimizer={"method": "adam", "learning_rate": 0.01})
+    out = folder / "out"
+    done = run_cli(["scale", str(job), "--ranks", "1,2", "--steps", "3", "--out", str(out), "--no-progress"],
+                   timeout=150)
+    assert done.returncode == 0, done.stderr + done.stdout
+    return json.loads((out / "scaling.json").read_text()), out, done.stdout
+
+
+def test_sharded_study_records_memory_hidden_fraction_and_projection(sharded) -> None:
+    study, out, printed = sharded
+    n = (6 * 64 + 64) + (64 * 64 + 64) + (64 * 3 + 3)  # parameters of a 6-64-64-3 MLP. common practice
+    assert study["job"]["update"] == "sharded" and study["job"]["params"] == n
+    points = {point["p"]: point for point in study["points"]}
+    for p in (1, 2):
+        ranks = per_rank(study, p)
+        assert points[p]["update"] == "sharded"
+        # The owned slices partition the parameters. common practice
+        assert sum(r["owned_params"] for r in ranks) == n
+        for r in ranks:
+            assert r["optimizer_state_bytes"] == 2 * r["owned_params"] * 8  # Kingma & Ba 2015: m and v, float64
+        assert points[p]["optimizer_state_max_bytes"] == max(r["optimizer_state_bytes"] for r in ranks)
+    owned = [r["owned_params"] for r in per_rank(study, 2)]
+    assert max(owned) < n  # each rank keeps state for its slice alone
+    assert points[2]["optimizer_state_ratio"] == pytest.approx(max(owned) / n, rel=1e-12)
+    exposed = statistics.fmean(r["phase_s"]["exchange"] / 3 for r in per_rank(study, 2))
+    assert points[2]["exchange_alone_s"] > 0.0
+    assert points[2]["hidden_fraction"] == pytest.approx(1 - exposed / points[2]["exchange_alone_s"], rel=1e-9)
+
+    # The projection prices a reduce-scatter of the gradient and an allgather of the parameters, and divides the
+    # whole compute, the update included, by P. At p = 2 both collectives take one step: α + nβ/2 + nγ/2 and
+    # α + nβ/2, together 2α + nβ + nγ/2, the ring allreduce (TRG 2005).
+    model = study["model"]
+    assert [c["kind"] for c in model["collectives"]] == ["reduce_scatter", "allgather"]
+    fit = model["fit"]
+    rows = {row["p"]: row for row in model["networks"][0]["rows"]}
+    comm = hand_allreduce(2, n * 8, fit["alpha_s"], fit["beta_s_per_byte"], fit["gamma_s_per_byte"], "ring")
+    assert rows[2]["step_s"] == pytest.approx(model["compute_s"] / 2 + comm, rel=1e-9)
+    for p in (1, 2):
+        error = abs(rows[p]["step_s"] - points[p]["step_s"]) / points[p]["step_s"]
+        assert points[p]["projection_error"] == pytest.approx(error, rel=1e-9)
+    warned = model["max_abs_step_error"] > 0.15
+    assert ("\nwarning: the projection is off by" in printed) == warned
+    report = (out / "report.md").read_text()
+    assert "sharded update" in report and ("**warning:" in report) == warned
+
+    with open(out / "scaling.csv", newline="") as handle:
+        table = list(csv.DictReader(handle))
+    assert list(table[0]) == OLD_CSV_COLUMNS + NEW_CSV_COLUMNS
+    for row in table:
+        point = points[int(row["p"])]
+        assert row["update"] == "sharded"
+        assert int(row["optimizer_state_max_bytes"]) == point["optimizer_state_max_bytes"]
+        assert float(row["exchange_alone_s"]) == point["exchange_alone_s"]
+        assert float(row["projection_error"]) == point["projection_error"]
+    assert table[0]["hidden_fraction"] == ""  # not defined at P = 1
+    assert float(table[1]["hidden_fraction"]) == points[2]["hidden_fraction"]

@@ -56,34 +56,55 @@ def percent(fraction: float | None) -> str:
     return "–" if fraction is None else f"{100.0 * fraction:+.1f}%"
 
 
+def share(fraction: float | None) -> str:
+    """A fraction as an unsigned percentage ('73%', '4.2%'), or '–' when not defined."""
+    if fraction is None:
+        return "–"
+    return f"{100.0 * fraction:.0f}%" if abs(fraction) >= 0.1 else f"{100.0 * fraction:.1f}%"
+
+
+def state_per_rank(point: dict[str, Any]) -> str:
+    """The largest optimizer state of any rank and its ratio to P = 1: '1.5 MiB (0.50×)'."""
+    ratio = point.get("optimizer_state_ratio")
+    return size(point["optimizer_state_max_bytes"]) + (f" ({ratio:.2f}×)" if ratio is not None else "")
+
+
 # --------------------------------------------------------------------------------------------------------
 # The printed table
 # --------------------------------------------------------------------------------------------------------
 
 
 def text_table(study: dict[str, Any]) -> str:
-    """The measured rows as a fixed-width text table (one line per P), for the terminal."""
-    header = ("P", "G", "step", "samples/s", "speedup", "effic.", "imbal.", "compute", "exchange", "peak RSS",
-              "placement")
+    """The measured rows as a fixed-width text table (one line per P), for the terminal.
+
+    Ends with the fit, the projection's largest error on the measured P and, above the model's error limit,
+    a line starting "warning:".
+    """
+    header = ("P", "G", "step", "samples/s", "speedup", "effic.", "imbal.", "compute", "exchange", "hidden",
+              "update", "opt. state/rank", "model err.", "peak RSS", "placement")
     lines = []
     for point in study["points"]:
         compute = point["phase_max_s"]["forward"] + point["phase_max_s"]["backward"]
         lines.append((str(point["p"]), str(point["global_batch"]), seconds(point["step_s"]),
                       f"{point['samples_per_s']:,.0f}", f"{point['speedup']:.2f}", f"{point['efficiency']:.2f}",
                       f"{point['load_imbalance']:.3f}", seconds(compute), seconds(point["phase_max_s"]["exchange"]),
-                      size(point["peak_rss_max_bytes"]), point["placement"]))
+                      share(point["hidden_fraction"]), point["update"], state_per_rank(point),
+                      share(point["projection_error"]), size(point["peak_rss_max_bytes"]), point["placement"]))
     widths = [max(len(row[i]) for row in [header, *lines]) for i in range(len(header))]
     text = ["  ".join(cell.rjust(width) if i < len(header) - 1 else cell
                       for i, (cell, width) in enumerate(zip(row, widths, strict=True))) for row in [header, *lines]]
-    title = f"{study['mode']} scaling, {study['steps']} timed steps; compute and exchange: slowest rank per step"
+    title = (f"{study['mode']} scaling, {study['steps']} timed steps, {study['job']['update']} update; compute and "
+             f"exchange: slowest rank per step; hidden: share of the exchange hidden behind compute; model err.: "
+             f"|projected − measured| / measured step")
     model = study["model"]
     if model.get("available"):
-        tail = (f"allreduce fit at P={model['fit']['p']}: alpha {seconds(model['fit']['alpha_s'])}, "
+        tail = [f"allreduce fit at P={model['fit']['p']}: alpha {seconds(model['fit']['alpha_s'])}, "
                 f"bandwidth {_bandwidth(model['fit']['bandwidth_bytes_per_s'])}; largest step-time error of the "
-                f"projection on measured P: {100 * model['max_abs_step_error']:.1f}%")
+                f"projection on measured P: {100 * model['max_abs_step_error']:.1f}%"]
+        tail += [model["warning"]] if model.get("warning") else []
     else:
-        tail = f"no communication model: {model['reason']}"
-    return "\n".join([title, *text, tail])
+        tail = [f"no communication model: {model['reason']}"]
+    return "\n".join([title, *text, *tail])
 
 
 def _bandwidth(bytes_per_s: float | None) -> str:
@@ -277,15 +298,19 @@ def markdown(study: dict[str, Any], figures: set[str]) -> str:
         "",
         f"Layers {'-'.join(map(str, job['layers']))} (hidden {', '.join(job['activation']) or 'none'}, loss "
         f"{job['loss']}), {job['dtype']}, {job['params']:,} parameters ({size(job['grad_bytes'])} of gradient). "
-        f"Global batch G = {job['global_batch']} {job['global_batch_meaning']}; reduction {job['reduction']}, "
-        f"buckets of {job['bucket_mb']:g} MB, optimizer {job['optimizer']}.",
+        f"Global batch G = {job['global_batch']} {job['global_batch_meaning']}; reduction {job['reduction']}"
+        + (f" ({job['exact_format']} format)" if job["reduction"] == "exact" else "")
+        + f", {job['update']} update, buckets of {job['bucket_mb']:g} MB, optimizer {job['optimizer']}.",
         "",
         "## Measured",
         "",
         "Step: slowest rank's wall clock per step. Phases: mean over ranks (max in brackets), per step. "
         "Imbalance: max / mean of per-rank forward + backward. "
         + ("Efficiency T1/(P·TP)." if study["mode"] == "strong" else
-           "Efficiency T1/TP (per-rank throughput against P = 1); speedup scaled, P·T1/TP."),
+           "Efficiency T1/TP (per-rank throughput against P = 1); speedup scaled, P·T1/TP.")
+        + " Exchange alone: the step's gradient exchange run without compute (slowest rank, median), with the "
+        "parameter allgather of a sharded update after the +; hidden: 1 − exchange phase (mean) / exchange alone. "
+        "Optimizer state: the largest rank's, and its ratio to P = 1.",
         "",
     ]
     rows = []
@@ -295,9 +320,11 @@ def markdown(study: dict[str, Any], figures: set[str]) -> str:
                      f"{point['load_imbalance']:.3f}",
                      *(f"{seconds(point['phase_mean_s'][ph])} ({seconds(point['phase_max_s'][ph])})"
                        for ph in PHASES),
-                     size(point["peak_rss_max_bytes"]), point["placement"]])
+                     size(point["peak_rss_max_bytes"]), point["placement"],
+                     f"{seconds(point['exchange_alone_s'])} + {seconds(point['publish_alone_s'])}",
+                     share(point["hidden_fraction"]), state_per_rank(point)])
     lines += _table(["P", "G", "step", "samples/s", "speedup", "efficiency", "imbalance", *PHASES, "peak RSS",
-                     "placement (rank:cpu)"], rows, text_columns=(13,))
+                     "placement (rank:cpu)", "exchange alone", "hidden", "optimizer state"], rows, text_columns=(13,))
     lines.append("")
     lines += _figure_line("scaling.png", figures) + _figure_line("breakdown.png", figures)
     lines += ["## Communication model", ""]
@@ -333,23 +360,23 @@ def _model_section(study: dict[str, Any], figures: set[str]) -> list[str]:
         "### Projection",
         "",
         f"Compute per step {seconds(model['compute_s'])} (P = 1: data + forward + backward + update), "
-        + (f"divided by P except the {seconds(model.get('replicated_s', 0.0))} update every rank repeats"
-           if model["mode"] == "strong" else "the same at every P")
-        + f"; the {size(model['grad_bytes'])} gradient is one allreduce, cheapest algorithm per P, fully exposed. "
+        + _compute_rule(model)
+        + f"; the exchange is {_collectives(model)}, cheapest algorithm per P, fully exposed. "
         f"Error = (model − measured) / measured step time; largest on measured P: "
         f"{100 * model['max_abs_step_error']:.1f}%.",
         "",
+        *([f"**{model['warning']}**", ""] if model.get("warning") else []),
     ]
     measured_net = model["networks"][0]
     given = model["networks"][1] if len(model["networks"]) > 1 else None
     given_rows = {row["p"]: row for row in given["rows"]} if given else {}
-    header = ["P", "compute", "allreduce", "step", "efficiency", "measured step", "measured eff.", "error"]
+    header = ["P", "compute", "exchange", "step", "efficiency", "measured step", "measured eff.", "error"]
     if given:
         header += [f"step, {given['spec']}", f"efficiency, {given['spec']}"]
     rows = []
     for row in measured_net["rows"]:
         allreduce = "none" if row["algorithm"] == costmodel.NO_COMMUNICATION else \
-            f"{seconds(row['allreduce_s'])} {row['algorithm']}"
+            f"{seconds(row['comm_s'])} {row['algorithm']}"
         cells = [str(row["p"]), seconds(row["compute_s"]), allreduce,
                  seconds(row["step_s"]), f"{row['efficiency']:.3f}", seconds(row.get("measured_step_s")),
                  f"{row['measured_efficiency']:.3f}" if "measured_efficiency" in row else "–",
@@ -359,3 +386,21 @@ def _model_section(study: dict[str, Any], figures: set[str]) -> list[str]:
             cells += [seconds(other["step_s"]), f"{other['efficiency']:.3f}"]
         rows.append(cells)
     return lines + _table(header, rows) + [""]
+
+
+def _compute_rule(model: dict[str, Any]) -> str:
+    """What of the compute divides by P, in words (see `costmodel.project_step`)."""
+    update = seconds(model.get("update_s", model.get("replicated_s", 0.0)))
+    if model.get("update", "replicated") == "sharded":
+        return (f"divided by P, the {update} update included (sharded)" if model["mode"] == "strong" else
+                f"the same at every P except the {update} update, divided by P (sharded)")
+    return (f"divided by P except the {update} update every rank repeats" if model["mode"] == "strong" else
+            "the same at every P")
+
+
+def _collectives(model: dict[str, Any]) -> str:
+    """The step's collectives in words: 'one allreduce of 7.4 MiB', 'a reduce-scatter of 7.4 MiB (3 calls) and …'."""
+    words = {"allreduce": "allreduce", "reduce_scatter": "reduce-scatter", "allgather": "allgather"}
+    parts = [f"{words[c['kind']]} of {size(c['n_bytes'])}" + (f" ({c['calls']} calls)" if c["calls"] > 1 else "")
+             for c in model["collectives"]]
+    return "one " + parts[0] if len(parts) == 1 else ", then ".join(parts)

@@ -1,7 +1,10 @@
 """The study of one `shardmill scale` run: rows per P from the worker records, the communication model, the files.
 
-    measured_point            one row per P: step time, throughput, speedup, efficiency, imbalance, phases
-    communication_model       fit α, β at the largest P; project step time and efficiency to larger P
+    measured_point            one row per P: step time, throughput, speedup, efficiency, imbalance, phases,
+                              hidden fraction of the exchange, optimizer state per rank
+    communication_model       fit α, β at the largest P; price the step's collectives (allreduce, or
+                              reduce-scatter + allgather) and project step time and efficiency to larger P
+    projection_check          the projection's error on the measured P, and a warning above 15 %
     build_study               one dict with everything a report needs (plain JSON values)
     write_study               scaling.json, scaling.csv (report.py draws the PNGs and report.md)
 
@@ -10,6 +13,9 @@ T_P is the wall-clock seconds per step on P processes. Strong scaling keeps the 
 speedup S = T_1/T_P, efficiency E = T_1/(P·T_P). Weak scaling keeps G per rank fixed (global batch G·P):
 E = T_1/T_P, the per-rank throughput at P over the throughput at 1, and the scaled speedup S = P·T_1/T_P
 (Gustafson, "Reevaluating Amdahl's law", CACM 31(5), 1988). In both modes E = S/P.
+
+Hidden fraction of the exchange = 1 − (exposed exchange seconds per step: the step's "exchange" phase, mean over
+ranks) / (the same exchange run alone, without compute: `worker.exchange_alone`).
 """
 
 from __future__ import annotations
@@ -31,13 +37,27 @@ from shardmill.timing import PHASES
 COMPUTE_PHASES = ("data", "forward", "backward", "update")
 """Phases that make up the compute of a step in the projection (everything but the exchange)."""
 
+PROJECTION_ERROR_LIMIT = 0.15
+"""Largest |projected − measured| / measured step time on a measured P before the study warns."""
+
 CSV_COLUMNS: tuple[str, ...] = (
     "p", "global_batch", "step_s", "samples_per_s", "samples_per_s_per_rank", "speedup", "efficiency",
     "load_imbalance",
     *(f"{phase}_{kind}_s" for phase in PHASES for kind in ("max", "mean")),
     "peak_rss_max_bytes", "pinned", "placement",
+    "update", "exchange_alone_s", "publish_alone_s", "hidden_fraction", "optimizer_state_max_bytes",
+    "optimizer_state_ratio", "model_step_s", "projection_error",
 )
-"""Columns of scaling.csv, one row per process count. Seconds are per step."""
+"""Columns of scaling.csv, one row per process count. Seconds are per step; an empty cell is "not defined".
+
+Columns after `placement` were added with the sharded update (old readers keep working):
+update (`run.update`: replicated or sharded); exchange_alone_s (the step's gradient exchange timed alone,
+slowest rank, median); publish_alone_s (the parameter allgather of a sharded update timed alone; ~0 otherwise);
+hidden_fraction (1 − exchange_mean_s / exchange_alone_s; empty at P = 1); optimizer_state_max_bytes (the
+largest optimizer state of any rank, bytes); optimizer_state_ratio (that over P = 1's; empty without state);
+model_step_s (the projection at this P on the measured network, seconds; empty without a model) and
+projection_error (|model_step_s − step_s| / step_s).
+"""
 
 
 def measured_point(raw: dict[str, Any]) -> dict[str, Any]:
@@ -45,7 +65,10 @@ def measured_point(raw: dict[str, Any]) -> dict[str, Any]:
 
     step_s: the slowest rank's wall-clock seconds over the timed steps, divided by the steps. Phases are
     seconds per step: max and mean over ranks. load_imbalance: max / mean over ranks of forward + backward
-    seconds (1 = balanced). peak_rss_max_bytes: the largest peak resident set of any rank.
+    seconds (1 = balanced). peak_rss_max_bytes: the largest peak resident set of any rank. exchange_alone_s,
+    publish_alone_s: the worker's medians of the exchange and the publish run alone (slowest rank, seconds).
+    hidden_fraction: `hidden_fraction` of the mean exchange phase. optimizer_state_max_bytes: the largest
+    optimizer state of any rank (its ratio to P = 1 comes from `add_memory_ratio`).
     """
     records = raw["ranks"]
     steps = raw["steps"]
@@ -53,6 +76,7 @@ def measured_point(raw: dict[str, Any]) -> dict[str, Any]:
     step_s = max(r["wall_s"] for r in records) / steps
     phases = np.array([[r["phase_s"][phase] for phase in PHASES] for r in records]) / steps  # (P, phases) s/step
     compute = phases[:, PHASES.index("forward")] + phases[:, PHASES.index("backward")]
+    alone = raw["exchange_alone"]
     placement = " ".join(f"{r['rank']}:cpu{r['cpu']}" if r["cpu"] is not None else f"{r['rank']}:cpu?"
                          for r in records)
     return {
@@ -71,7 +95,38 @@ def measured_point(raw: dict[str, Any]) -> dict[str, Any]:
         "placement": placement,
         "mpi_thread_level": raw.get("mpi_thread_level"),
         "allreduce_skipped_bytes": raw.get("allreduce_skipped_bytes", []),
+        "update": raw["update"],
+        "reduction": raw["reduction"],
+        "exchange_alone_s": alone["exchange_s"],
+        "publish_alone_s": alone["publish_s"],
+        "hidden_fraction": hidden_fraction(float(phases[:, PHASES.index("exchange")].mean()), alone["exchange_s"],
+                                           p),
+        "optimizer_state_max_bytes": max(r["optimizer_state_bytes"] for r in records),
+        "owned_params_max": max(r["owned_params"] for r in records),
     }
+
+
+def hidden_fraction(exposed_s: float, alone_s: float, p: int) -> float | None:
+    """1 − exposed_s / alone_s: the share of the exchange that compute hid (1: all of it, 0: none).
+
+    exposed_s: seconds per step the step waited in its exchange phase; alone_s: seconds of the same exchange
+    with no compute around it. None at p = 1 (nothing is sent, so nothing can be hidden) and when alone_s is
+    not positive. Not clipped: a negative value says the step waited longer than the exchange alone takes
+    (a slower rank's backward, or compute slowing the exchange down).
+    """
+    if p == 1 or not alone_s > 0.0:
+        return None
+    return 1.0 - exposed_s / alone_s
+
+
+def add_memory_ratio(points: list[dict[str, Any]]) -> None:
+    """Fill optimizer_state_ratio in place: each row's largest optimizer state over P = 1's (None without state).
+
+    A sharded update keeps state for 1/P of the parameters per rank, so the ratio falls towards 1/P.
+    """
+    serial = next(point["optimizer_state_max_bytes"] for point in points if point["p"] == 1)
+    for point in points:
+        point["optimizer_state_ratio"] = point["optimizer_state_max_bytes"] / serial if serial else None
 
 
 def add_speedup(points: list[dict[str, Any]], mode: str) -> None:
@@ -89,8 +144,8 @@ def add_speedup(points: list[dict[str, Any]], mode: str) -> None:
 
 EXTRA_ASSUMPTIONS: list[str] = [
     "Compute per step is the measured P = 1 step's data + forward + backward + update time; in strong "
-    "scaling data, forward and backward divide by P while the update, which every rank repeats over all "
-    "parameters, does not; the exchange "
+    "scaling data, forward and backward divide by P, and so does the update when it is sharded, while a "
+    "replicated update, which every rank repeats over all parameters, does not; the exchange "
     "is modelled as fully exposed (overlap 0), an upper bound when buckets overlap with backward.",
     "Alpha and beta come from in-place SUM allreduce medians at the largest measured P on this machine, "
     "with the reduction cost gamma measured separately and held fixed.",
@@ -134,17 +189,25 @@ def communication_model(points: list[dict[str, Any]], raws: dict[int, dict[str, 
     cheapest-algorithm times at the fitted P come closest to the measurements (smallest RMS relative error);
     at P = 2, where the algorithms differ only in how α and γ are counted, this keeps the projection
     consistent with what was measured. Compute per step = data + forward + backward + update of the measured P = 1
-    step (seconds); the gradient is one allreduce of params·itemsize bytes with no overlap (every second of
-    it exposed). Rows at measured P also carry the measured step and the relative prediction error
+    step (seconds), the update divided by P when it is sharded (`costmodel.project_step`); the exchange is
+    the job's collectives (`costmodel.step_collectives`: one allreduce of params·itemsize bytes for a fast
+    replicated step, a reduce-scatter and an allgather otherwise) with no overlap (every second of it exposed).
+    Rows at measured P also carry the measured step and the relative prediction error
     (projected − measured) / measured. Returns {"available": False, "reason": …} without a P > 1.
     """
     serial = next(point for point in points if point["p"] == 1)
     compute_s = sum(serial["phase_mean_s"][phase] for phase in COMPUTE_PHASES)
-    replicated_s = serial["phase_mean_s"]["update"]  # every rank updates all parameters
-    grad_bytes = raws[1]["grad_bytes"]
+    first = raws[1]
+    update, update_s = first["update"], serial["phase_mean_s"]["update"]
+    replicated_s = update_s if update == "replicated" else 0.0  # the update every rank repeats in full
+    grad_bytes = first["grad_bytes"]
+    collectives = costmodel.step_collectives(update, first["reduction"], first["params"], first["itemsize"],
+                                             first["exact_format"])
     comm_ps = [p for p in sorted(raws) if p > 1 and raws[p]["allreduce"]]
-    base = {"compute_s": compute_s, "replicated_s": replicated_s, "grad_bytes": grad_bytes,
-            "overlap": 0.0, "mode": mode,
+    base = {"compute_s": compute_s, "replicated_s": replicated_s, "update_s": update_s, "update": update,
+            "reduction": first["reduction"], "grad_bytes": grad_bytes,
+            "collectives": [{"kind": c.kind, "n_bytes": c.n_bytes, "calls": c.calls} for c in collectives],
+            "overlap": 0.0, "mode": mode, "error_limit": PROJECTION_ERROR_LIMIT, "warning": None,
             "assumptions": list(costmodel.ASSUMPTIONS) + EXTRA_ASSUMPTIONS}
     if not comm_ps:
         return dict(base, available=False,
@@ -168,8 +231,8 @@ def communication_model(points: list[dict[str, Any]], raws: dict[int, dict[str, 
         networks.append({"name": f"given ({network_spec})", "spec": network_spec, "alpha_s": network[0],
                          "beta_s_per_byte": network[1]})
     for entry in networks:
-        rows = costmodel.project(compute_s, grad_bytes, ps, entry["alpha_s"], entry["beta_s_per_byte"], gamma,
-                                 mode=mode, overlap=0.0, replicated_s=replicated_s)
+        rows = costmodel.project_step(compute_s, collectives, ps, entry["alpha_s"], entry["beta_s_per_byte"], gamma,
+                                      mode=mode, overlap=0.0, update=update, update_s=update_s)
         if entry["spec"] is None:  # the measured network: compare where we measured
             for row in rows:
                 point = measured.get(row["p"])
@@ -182,9 +245,37 @@ def communication_model(points: list[dict[str, Any]], raws: dict[int, dict[str, 
     errors = [row["step_error"] for row in networks[0]["rows"] if "step_error" in row]
     records = [dict(fit_record(f), cheapest_rms_relative_error=e)
                for f, e in zip(candidates, cheapest_errors, strict=True)]
-    return dict(base, available=True, fit=records[choice], candidates=records,
-                gamma_s_per_byte=gamma, gamma_bytes=raws[largest]["gamma_bytes"], networks=networks,
-                max_abs_step_error=max(abs(e) for e in errors))
+    model = dict(base, available=True, fit=records[choice], candidates=records,
+                 gamma_s_per_byte=gamma, gamma_bytes=raws[largest]["gamma_bytes"], networks=networks,
+                 max_abs_step_error=max(abs(e) for e in errors))
+    model["warning"] = projection_warning(model)
+    return model
+
+
+def projection_warning(model: dict[str, Any]) -> str | None:
+    """A one-line warning when the projection misses a measured step time by more than the model's error_limit.
+
+    Reads the measured network's rows (their step_error) and max_abs_step_error; None when every measured P is
+    within the limit or there is no model.
+    """
+    if not model.get("available") or model["max_abs_step_error"] <= model["error_limit"]:
+        return None
+    worst = max((row for row in model["networks"][0]["rows"] if "step_error" in row),
+                key=lambda row: abs(row["step_error"]))
+    return (f"warning: the projection is off by {100 * abs(worst['step_error']):.1f}% of the measured step time at "
+            f"P = {worst['p']} (limit {100 * model['error_limit']:.0f}%); treat the projected rows as rough")
+
+
+def projection_check(points: list[dict[str, Any]], model: dict[str, Any]) -> None:
+    """Fill model_step_s and projection_error = |projected − measured| / measured in place on each measured row.
+
+    Both are None without a model (no P > 1 measured).
+    """
+    rows = {row["p"]: row for row in model["networks"][0]["rows"]} if model.get("available") else {}
+    for point in points:
+        row = rows.get(point["p"])
+        point["model_step_s"] = row["step_s"] if row else None
+        point["projection_error"] = abs(row["step_error"]) if row else None
 
 
 def build_study(job: Job, job_path: Path, mode: str, steps: int, threads: int, pin: bool,
@@ -195,7 +286,9 @@ def build_study(job: Job, job_path: Path, mode: str, steps: int, threads: int, p
 
     points = [measured_point(raws[p]) for p in sorted(raws)]
     add_speedup(points, mode)
+    add_memory_ratio(points)
     model = communication_model(points, raws, mode, project_to, network_spec, network)
+    projection_check(points, model)
     first = raws[min(raws)]
     notes = [] if model["available"] else [model["reason"]]
     cores = usable_cores()
@@ -227,6 +320,8 @@ def build_study(job: Job, job_path: Path, mode: str, steps: int, threads: int, p
             "global_batch": job.run.global_batch,
             "global_batch_meaning": "fixed for every P" if mode == "strong" else "per rank (global = G·P)",
             "reduction": job.run.reduction,
+            "exact_format": first["exact_format"],
+            "update": first["update"],
             "bucket_mb": job.run.bucket_mb,
             "optimizer": job.optimizer.method,
             "params": first["params"],

@@ -1,7 +1,7 @@
 """One run of a scaling study on P processes: what `mpiexec -n P python -m shardmill.scaling.worker …` runs.
 
-    pin (optional) → Trainer(job) → warm-up → N timed steps → per-rank record → gather to rank 0
-    → allreduce timings over MESSAGE_SIZES and the reduction cost γ → rank 0 writes runs/pP.json
+    pin (optional) → Trainer(job) → warm-up → N timed steps → the exchange alone → per-rank record
+    → gather to rank 0 → allreduce timings over MESSAGE_SIZES and the reduction cost γ → rank 0 writes runs/pP.json
 
 Started by the driver (`driver.run_point`), one process per rank; reads the job, writes one JSON file.
 """
@@ -18,9 +18,47 @@ from typing import Any
 
 from shardmill.config import JobError, load_job
 from shardmill.scaling.measure import COMM_BUDGET_S, MESSAGE_SIZES, measure_reduction_gamma, time_allreduce
+from shardmill.timing import median, repeat_times
 
 WARMUP_STEPS = 2
 """Untimed training steps after the kernel warm-up (first-touch of buffers, MPI connection set-up)."""
+
+
+def exchange_alone(trainer: Any, repeats: int) -> dict[str, Any]:
+    """Seconds of the step's exchange with no compute around it, on every rank (collective: every rank calls it).
+
+    The same calls the step makes, in the same order, on the buffers the last timed step left: every layer
+    handed to the strategy in backward order (`layer_done`: the fast strategies start their bucket reductions
+    there), then `finish` (wait for them; exact mode reduce-scatters its integer sums, reads back and, for a
+    replicated update, allgathers). That is what the step's "exchange" phase waits for, so the two compare:
+    hidden fraction = 1 − exposed / alone. `publish` (the allgather of the parameters after a sharded update;
+    nothing otherwise) runs in the step's "update" phase and is timed on its own, on a copy of the parameters.
+
+    The gradient buffer is zeroed first: the fast strategies sum it in place, and zeros never overflow or turn
+    subnormal however often they are summed (MPI's sums cost the same for any values). This runs after the
+    timed steps and the trainer takes no step afterwards. Each repetition is the slowest rank's seconds after a
+    barrier (`timing.repeat_times`), one untimed call first. Returns exchange_s and publish_s (medians,
+    seconds), their times_s lists and repeats.
+    """
+    exchange = trainer.exchange
+    layers = list(reversed(range(trainer.model.n_layers)))  # the order backward completes them
+    params = trainer.model.params.copy()  # publish writes every rank's slice into it
+
+    def gradient_exchange() -> None:
+        for layer in layers:
+            exchange.layer_done(layer)
+        exchange.finish()
+
+    trainer.grads.fill(0)
+    exchange_times = repeat_times(gradient_exchange, repeats, warmup=1, comm=trainer.comm)
+    publish_times = repeat_times(lambda: exchange.publish(params), repeats, warmup=1, comm=trainer.comm)
+    return {"exchange_s": median(exchange_times), "exchange_times_s": exchange_times,
+            "publish_s": median(publish_times), "publish_times_s": publish_times, "repeats": repeats}
+
+
+def optimizer_state_bytes(trainer: Any) -> int:
+    """Bytes of this rank's optimizer state (Adam's two moments, a velocity, or nothing for plain SGD)."""
+    return int(sum(array.nbytes for array in trainer.optimizer.state.values()))
 
 
 def pin_rank(rank: int, threads: int) -> list[int] | None:
@@ -77,9 +115,10 @@ def run_worker(job_path: Path, global_batch: int, steps: int, threads: int, pin:
     """Time `steps` training steps of the job on every rank of MPI.COMM_WORLD; rank 0 writes `result` (JSON).
 
     Pinning happens before the trainer is built. After the kernel warm-up and WARMUP_STEPS untimed steps
-    the phase timer is reset and the timed steps run between a barrier and the last step's end. Then every
-    rank's record is gathered once to rank 0 (lowercase gather: a small control message after timing),
-    the allreduce is timed over MESSAGE_SIZES (P > 1) and rank 0 measures γ at the bucket size.
+    the phase timer is reset and the timed steps run between a barrier and the last step's end. Then the
+    exchange is timed alone (`exchange_alone`), every rank's record is gathered once to rank 0 (lowercase
+    gather: a small control message after timing), the allreduce is timed over MESSAGE_SIZES (P > 1) and
+    rank 0 measures γ at the bucket size.
     """
     from mpi4py import MPI
     from shardmill.parallel.comm import Comm
@@ -103,6 +142,7 @@ def run_worker(job_path: Path, global_batch: int, steps: int, threads: int, pin:
         for step in range(WARMUP_STEPS, WARMUP_STEPS + steps):
             trainer.step(*divmod(step, per_epoch))  # wraps around the epoch when steps exceed it
         wall_s = time.perf_counter() - begin
+        alone = exchange_alone(trainer, comm_repeats)
     rows = sum(part.size for part, _ in trainer.exchange.parts(trainer.sampler.batch(0, 0)))  # this rank's rows
     record = {
         "rank": comm.rank,
@@ -110,6 +150,8 @@ def run_worker(job_path: Path, global_batch: int, steps: int, threads: int, pin:
         "wall_s": wall_s,
         "phase_s": trainer.timer.as_dict(),
         "compile_s": compile_s,
+        "owned_params": trainer.exchange.owned_size,
+        "optimizer_state_bytes": optimizer_state_bytes(trainer),
         **memory(),
         **placement(pinned),
     }
@@ -130,6 +172,11 @@ def run_worker(job_path: Path, global_batch: int, steps: int, threads: int, pin:
             "threads": threads,
             "params": trainer.model.n_params,
             "grad_bytes": trainer.model.n_params * dtype.itemsize,
+            "itemsize": dtype.itemsize,
+            "update": job.run.update,
+            "reduction": job.run.reduction,
+            "exact_format": job.run.exact_format,
+            "exchange_alone": alone,
             "ranks": records,
             "allreduce": timings,
             "allreduce_skipped_bytes": skipped,

@@ -58,6 +58,7 @@ def run_bench(layers: list[int], batch: int, dtype: str = default("model.dtype")
               overlap: bool = default("run.overlap"), activation: str = default("model.activation"),
               loss: str = default("model.loss"), method: str = "sgd", bucket_mb: float = default("run.bucket_mb"),
               exact_chunk: int = 64, update: str = default("run.update"),
+              exact_format: str = default("run.exact_format"), progress: str = default("run.progress"),
               comm: Comm | None = None) -> dict[str, Any]:
     """Median time of full training steps (global batch ``batch`` over all ranks) and of the GEMM floor.
 
@@ -73,7 +74,8 @@ def run_bench(layers: list[int], batch: int, dtype: str = default("model.dtype")
         "model": {"layers": layers, "activation": activation, "loss": loss, "dtype": dtype},
         "optimizer": {"method": method, "learning_rate": 1e-4},
         "run": {"global_batch": batch, "threads": threads, "reduction": reduction, "overlap": overlap,
-                "bucket_mb": bucket_mb, "exact_chunk": exact_chunk, "update": update, "epochs": 1},
+                "bucket_mb": bucket_mb, "exact_chunk": exact_chunk, "update": update,
+                "exact_format": exact_format, "progress": progress, "epochs": 1},
     })
     rows = max(4 * batch, 1024)
     with threadpool_limits(limits=threads, user_api="blas"):
@@ -113,6 +115,8 @@ def run_bench(layers: list[int], batch: int, dtype: str = default("model.dtype")
         "threads": threads,
         "reduction": reduction,
         "update": update,
+        "exact_format": exact_format,
+        "progress": progress,
         "overlap": overlap,
         "params": n_params,
         "steps": steps,

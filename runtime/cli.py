@@ -69,6 +69,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--update", choices=choices("run.update"), default=default("run.update"),
                    help="replicated: every rank updates everything; sharded: each rank its own slice")
     p.add_argument("--exact-chunk", type=_positive, default=64)
+    p.add_argument("--exact-format", choices=choices("run.exact_format"), default=default("run.exact_format"))
+    p.add_argument("--progress", choices=choices("run.progress"), default=default("run.progress"),
+                   help="who drives the overlapped reductions (see the job key run.progress)")
     p.add_argument("--no-overlap", action="store_true", help="one blocking allreduce after backward")
     p.add_argument("--bucket-mb", type=float, default=default("run.bucket_mb"))
     p.add_argument("--activation", default=default("model.activation"))
@@ -186,7 +189,8 @@ def cmd_bench(args: argparse.Namespace) -> int:
     result = run_bench(args.layers, args.batch, dtype=args.dtype, threads=args.threads, steps=args.steps,
                        warmup=args.warmup, reduction=args.reduction, overlap=not args.no_overlap,
                        activation=args.activation, method=args.optimizer, bucket_mb=args.bucket_mb,
-                       exact_chunk=args.exact_chunk, update=args.update,
+                       exact_chunk=args.exact_chunk, update=args.update, exact_format=args.exact_format,
+                       progress=args.progress,
                        comm=comm)
     if comm.rank == 0:
         if not args.json:

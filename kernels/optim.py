@@ -6,18 +6,16 @@ update is a single loop over n elements. Scalars arrive as float64; arrays are f
 
 Every update loop vectorises (AVX2 and AVX-512; see DEVELOPERS.md for the check) and is a pure function of
 element i alone, so an update of a slice ``params[lo:hi]`` with the state's same slice has the same bits as
-the update of the whole array there (the sharded update relies on it). Float32 elements are widened to
-float64 exactly, updated in float64 against the float64 scalars and rounded once when stored; with fastmath
-off there is no fused multiply-add, so vector and scalar code, AVX2 and AVX-512 give the same bits. Casting
-the scalars to float32 would double the lanes but change those bits; the float64 work costs nothing where
-the loop waits for memory, and only Adam's square root and division make float32 Adam compute-bound
-(benchmarks/README.md).
+the update of the whole array there (the sharded update relies on it). In sgd, momentum and nesterov float32
+elements are widened to float64 exactly, updated against the float64 scalars and rounded once when stored (free
+where the loop waits for memory). Adam rounds its coefficients to the arrays' dtype once and runs in that dtype:
+its square root and division per element made float32 Adam compute-bound in float64 (2.6 → 1.0 ms for 1.86 M
+float32 values here; float64 bits unchanged). With fastmath off there is no fused multiply-add, so vector and
+scalar code, AVX2 and AVX-512 give the same bits.
 The arrays must not overlap (LLVM checks at run time and falls back to a scalar loop if they do).
 """
 
 from __future__ import annotations
-
-import math
 
 import numpy as np
 from numba import njit
@@ -64,17 +62,24 @@ def adam(params, grads, m, v, lr, beta1, beta2, eps, step, l2, decay):
 
     m ← β1 m + (1 − β1) g;  v ← β2 v + (1 − β2) g²;  m̂ = m / (1 − β1^t);  v̂ = v / (1 − β2^t);
     θ ← θ − lr·m̂ / (√v̂ + ε) − decay·θ.   ``step`` is t ≥ 1; ``decay`` is λ·η_t (0 for plain Adam).
+
+    The per-element arithmetic runs in the arrays' dtype (common practice for float32 training): the
+    coefficients are rounded once to it before the loop. In float32 that halves the width of every square root
+    and division, which bound this update's speed, and lets twice the lanes through; float64 is unchanged.
     """
-    c1 = 1.0 / (1.0 - beta1**step)
-    c2 = 1.0 / (1.0 - beta2**step)
+    k = np.empty(10, dtype=params.dtype)  # the coefficients, rounded once to the arrays' dtype
+    k[0], k[1], k[2], k[3], k[4] = lr, beta1, 1.0 - beta1, beta2, 1.0 - beta2
+    k[5], k[6], k[7], k[8], k[9] = 1.0 / (1.0 - beta1**step), 1.0 / (1.0 - beta2**step), eps, decay, l2
+    rate, b1, one_minus_b1, b2, one_minus_b2 = k[0], k[1], k[2], k[3], k[4]
+    c1, c2, epsilon, shrink, coupled = k[5], k[6], k[7], k[8], k[9]
     for i in range(params.size):
         p = params[i]
-        g = grads[i] + l2 * p
-        mi = beta1 * m[i] + (1.0 - beta1) * g
-        vi = beta2 * v[i] + (1.0 - beta2) * g * g
+        g = grads[i] + coupled * p
+        mi = b1 * m[i] + one_minus_b1 * g
+        vi = b2 * v[i] + one_minus_b2 * g * g
         m[i] = mi
         v[i] = vi
-        params[i] = p - lr * (mi * c1) / (math.sqrt(vi * c2) + eps) - decay * p
+        params[i] = p - rate * (mi * c1) / (np.sqrt(vi * c2) + epsilon) - shrink * p
 
 
 @njit(cache=True)

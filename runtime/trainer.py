@@ -155,8 +155,9 @@ class Trainer:
         grad_squares = self.exchange.layer_sum_squares(self.model.slices) if health else None
         before = params.copy() if health else None
         self.learning_rate = self.optimizer.step(params[self.exchange.owned], gradient, self.schedule_steps)
-        self.exchange.publish(params)  # every rank holds every parameter again
         self.timer.lap("update")
+        self.exchange.publish(params)  # every rank holds every parameter again (communication: "exchange")
+        self.timer.lap("exchange")
         self.step_count += 1
         if health:
             self.health.append(diagnose(self.model, self.ws, self.last_part_rows, grad_squares, before, self.comm,

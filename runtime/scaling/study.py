@@ -53,7 +53,8 @@ CSV_COLUMNS: tuple[str, ...] = (
 Columns after `placement` were added with the sharded update (old readers keep working):
 update (`run.update`: replicated or sharded); exchange_alone_s (the step's gradient exchange timed alone,
 slowest rank, median); publish_alone_s (the parameter allgather of a sharded update timed alone; ~0 otherwise);
-hidden_fraction (1 − exchange_mean_s / exchange_alone_s; empty at P = 1); optimizer_state_max_bytes (the
+hidden_fraction (1 − exchange_mean_s / (exchange_alone_s + publish_alone_s); empty at P = 1);
+optimizer_state_max_bytes (the
 largest optimizer state of any rank, bytes); optimizer_state_ratio (that over P = 1's; empty without state);
 model_step_s (the projection at this P on the measured network, seconds; empty without a model) and
 projection_error (|model_step_s − step_s| / step_s).
@@ -99,7 +100,8 @@ def measured_point(raw: dict[str, Any]) -> dict[str, Any]:
         "reduction": raw["reduction"],
         "exchange_alone_s": alone["exchange_s"],
         "publish_alone_s": alone["publish_s"],
-        "hidden_fraction": hidden_fraction(float(phases[:, PHASES.index("exchange")].mean()), alone["exchange_s"],
+        "hidden_fraction": hidden_fraction(float(phases[:, PHASES.index("exchange")].mean()),
+                                           alone["exchange_s"] + alone["publish_s"],
                                            p),
         "optimizer_state_max_bytes": max(r["optimizer_state_bytes"] for r in records),
         "owned_params_max": max(r["owned_params"] for r in records),

@@ -32,7 +32,8 @@ def exchange_alone(trainer: Any, repeats: int) -> dict[str, Any]:
     there), then `finish` (wait for them; exact mode reduce-scatters its integer sums, reads back and, for a
     replicated update, allgathers). That is what the step's "exchange" phase waits for, so the two compare:
     hidden fraction = 1 − exposed / alone. `publish` (the allgather of the parameters after a sharded update;
-    nothing otherwise) runs in the step's "update" phase and is timed on its own, on a copy of the parameters.
+    nothing otherwise) also counts in the step's "exchange" phase; it is timed on its own, on a copy of the
+    parameters, and the study adds it to the exchange alone.
 
     The gradient buffer is zeroed first: the fast strategies sum it in place, and zeros never overflow or turn
     subnormal however often they are summed (MPI's sums cost the same for any values). This runs after the

@@ -38,6 +38,7 @@ import numpy as np
 from numba import njit
 
 TERM_BITS = 51  # |x * 2**S| < 2**TERM_BITS: the range in which the 1.5 * 2**52 trick converts exactly
+NARROW_TERM_BITS = 30  # the same for an int32 accumulator: sums of K <= 2**h terms stay within |k| <= 2**30
 MAX_SHIFT = 1022  # 2**-1022 is the smallest normal float64: read-back k * 2**-S stays exact for k != 0
 MAX_CHUNKS = 2**20
 MIN_SHIFT = TERM_BITS - 20 - 1024  # -993 for M < 2**1024 and K <= MAX_CHUNKS: 2**S and 2**-S are normal float64
@@ -84,7 +85,12 @@ def bucket_max_abs(x: np.ndarray, bounds: np.ndarray, out: np.ndarray, offset: i
     return float(largest.max())  # NaN if any bucket saw one
 
 
-def shifts(max_abs: np.ndarray, chunks: int) -> np.ndarray:
+def term_bits(acc_dtype: np.dtype) -> int:
+    """The bits a sum may use in an accumulator of ``acc_dtype``: TERM_BITS (int64) or NARROW_TERM_BITS (int32)."""
+    return NARROW_TERM_BITS if np.dtype(acc_dtype) == np.int32 else TERM_BITS
+
+
+def shifts(max_abs: np.ndarray, chunks: int, bits: int = TERM_BITS) -> np.ndarray:
     """Per-bucket shifts S_b = min(TERM_BITS - ceil(log2 chunks) - E_b, MAX_SHIFT), with M_b < 2**E_b (frexp).
 
     max_abs: ``(B,)`` float64, each bucket's largest |value| over all ``chunks`` chunks (finite, >= 0).
@@ -100,7 +106,9 @@ def shifts(max_abs: np.ndarray, chunks: int) -> np.ndarray:
         b = int(np.argmax(bad))
         raise ValueError(f"max_abs[{b}] must be finite and >= 0; got {float(max_abs[b])!r}")
     exponents = np.frexp(max_abs)[1].astype(np.int64)  # frexp(0) gives 0: an all-zero bucket converts to zeros
-    return np.minimum(TERM_BITS - headroom_bits(int(chunks)) - exponents, MAX_SHIFT)
+    if bits not in (TERM_BITS, NARROW_TERM_BITS):
+        raise ValueError(f"bits must be {TERM_BITS} (int64 sums) or {NARROW_TERM_BITS} (int32 sums); got {bits!r}")
+    return np.minimum(bits - headroom_bits(int(chunks)) - exponents, MAX_SHIFT)
 
 
 def accumulate(
@@ -191,8 +199,8 @@ def _check_shift(shift, bounds):
 
 
 def _check_accumulator(acc, m):
-    if not isinstance(acc, np.ndarray) or acc.dtype != np.int64 or acc.shape != (m,):
-        raise TypeError(f"acc must be an int64 numpy array of shape ({m},); got {_describe(acc)}")
+    if not isinstance(acc, np.ndarray) or acc.dtype not in (np.int64, np.int32) or acc.shape != (m,):
+        raise TypeError(f"acc must be an int64 or int32 numpy array of shape ({m},); got {_describe(acc)}")
     if not acc.flags.c_contiguous:
         raise ValueError("acc must be C-contiguous")
 

@@ -127,8 +127,9 @@ SCHEMA: tuple[Key, ...] = (
     Key("run.reduction", "choice", "fast", "gradient sum: fast (MPI's order) or exact (bit-identical for every "
         "process count)", choices=REDUCTIONS),
     Key("run.exact_format", "choice", "wide", "exact mode's accumulator: wide (3 int64 per value, resolution "
-        "2⁻⁸⁸, correctly rounded) or compact (1 int64 per value on a per-bucket scale; a third of the traffic, "
-        "error within K·2^(h−51) of each bucket's largest value)", choices=("wide", "compact"),
+        "2⁻⁸⁸, correctly rounded), compact (1 int64 per value on a per-bucket scale, error within K·2^(h−51) of "
+        "each bucket's largest value) or narrow (1 int32 per value, the bytes of fast mode, within K·2^(h−30))",
+        choices=("wide", "compact", "narrow"),
         digest_default=False),
     Key("run.exact_chunk", "integer", 32, "exact mode: rows per fixed chunk; global_batch must be a multiple",
         low=1),

@@ -335,3 +335,39 @@ def test_bad_arguments_name_the_argument(call, message: str) -> None:
     x = np.zeros(6, dtype=np.float32)
     with pytest.raises((TypeError, ValueError), match=message):
         call(shifts, acc, x)
+
+
+@pytest.mark.parametrize("dtype", [np.float32, np.float64])
+@pytest.mark.parametrize("k", [1, 2, 5, 16])
+def test_int32_sums_are_exact_on_a_30_bit_grid_and_the_same_for_every_split(dtype, k: int) -> None:
+    # The narrow format: int32 accumulators, shifts S_b = min(30 - ceil(log2 K) - E_b, 1022) (the documented
+    # design with NARROW_TERM_BITS = 30), so that K terms sum within |k| <= 2**30 < 2**31.
+    chunks, bounds = mixed_chunks(np.random.default_rng(7 * k), k, dtype)
+    largest = np.zeros(bounds.shape[0] - 1)
+    for chunk in chunks:
+        compactsum.bucket_max_abs(chunk, bounds, largest)
+    shifts = compactsum.shifts(largest, k, compactsum.term_bits(np.int32))
+    headroom = math.ceil(math.log2(k))
+    for b, (lo, hi) in enumerate(buckets(bounds)):
+        top = float(np.max(np.abs(chunks[:, lo:hi]), initial=0.0))
+        assert shifts[b] == min(30 - headroom - math.frexp(top)[1], 1022)  # math.frexp, math.log2
+    reference = None
+    for cut in range(0, k + 1):  # two "ranks": chunks [0, cut) and [cut, k); an empty share is allowed
+        total = np.zeros(chunks.shape[1], dtype=np.int32)
+        for run in (chunks[:cut], chunks[cut:]):
+            acc = np.zeros(chunks.shape[1], dtype=np.int32)
+            for j, chunk in enumerate(run):
+                top_scaled = compactsum.accumulate(chunk, bounds, shifts, acc, replace=j == 0)
+                assert top_scaled < 2.0 ** (30 - headroom)
+            total += acc
+        if reference is None:
+            reference = total.copy()
+        assert np.array_equal(total, reference), cut  # integer sums: associative
+    for b, (lo, hi) in enumerate(buckets(bounds)):
+        for i in range(lo, min(hi, lo + 8)):
+            column = [float(v) for v in chunks[:, i]]
+            assert reference[i] == sum(fixed_point(v, int(shifts[b])) for v in column), i  # Fraction, half to even
+    out = read(reference, bounds, shifts, np.float64)
+    for b, (lo, hi) in enumerate(buckets(bounds)):
+        for i in range(lo, hi):
+            assert Fraction(float(out[i])) == Fraction(int(reference[i])) / Fraction(2) ** int(shifts[b])  # exact

@@ -78,6 +78,12 @@ CASES += [
     {"name": "wide_exact_compact_replicated", "kind": "train", "steps": STEPS,
      "job": job(WIDE, "tanh", {"global_batch": 12, "reduction": "exact", "exact_chunk": 3, "exact_format": "compact"},
                 CLIPPED)},
+    {"name": "train_exact_narrow", "kind": "train", "steps": STEPS,
+     "job": job(LAYERS, "tanh", {"global_batch": 12, "reduction": "exact", "exact_chunk": 3, "exact_format": "narrow"},
+                ADAM)},
+    {"name": "wide_exact_narrow_sharded", "kind": "train", "steps": STEPS,
+     "job": job(WIDE, "tanh", {"global_batch": 12, "reduction": "exact", "exact_chunk": 3, "exact_format": "narrow",
+                               "update": "sharded"}, CLIPPED)},
     {"name": "train_exact_sharded", "kind": "train", "steps": STEPS,
      "job": job(LAYERS, "tanh", {"global_batch": 12, "reduction": "exact", "exact_chunk": 3, "update": "sharded"},
                 ADAM)},
@@ -278,6 +284,17 @@ def test_compact_exact_format_is_bit_identical_for_every_P_and_close_to_the_wide
     # bucket's largest value: after 5 Adam steps the two runs differ far below 1e-8 (kernels/compactsum.py bound).
     compact, wide = flat(runs[2]["train_exact_compact"]["params"]), flat(runs[2]["train_exact"]["params"])
     assert 0.0 < relative(compact, wide) < 1e-8
+
+
+def test_narrow_exact_format_is_bit_identical_for_every_P_and_close_to_the_wide_one(runs):
+    # int32 sums on a 30-bit grid per bucket: integer sums again, so one SHA-256 for P = 1…4.
+    for case in ("train_exact_narrow", "wide_exact_narrow_sharded"):
+        digests = {runs[P][case]["sha256_by_rank"][0] for P in RANKS}
+        assert len(digests) == 1, (case, digests)
+    # Each term rounds at 2^-(30-h) of its bucket's largest value (kernels/compactsum.py): after 5 Adam steps
+    # the run stays within 1e-4 of the correctly rounded wide format's, but not on the same bits.
+    narrow, wide = flat(runs[2]["train_exact_narrow"]["params"]), flat(runs[2]["train_exact"]["params"])
+    assert 0.0 < relative(narrow, wide) < 1e-4
 
 
 @pytest.mark.parametrize("P", RANKS)

@@ -30,7 +30,8 @@ from shardmill.config import JobError, LocalJobError
 # user sees a bare exit code (seen once in CI: exit 2 with empty stderr). Half a second lets it drain.
 ABORT_GRACE_S = 0.5
 
-_MPI_TYPES = {np.dtype(np.float32): MPI.FLOAT, np.dtype(np.float64): MPI.DOUBLE, np.dtype(np.int64): MPI.INT64_T}
+_MPI_TYPES = {np.dtype(np.float32): MPI.FLOAT, np.dtype(np.float64): MPI.DOUBLE, np.dtype(np.int64): MPI.INT64_T,
+              np.dtype(np.int32): MPI.INT32_T}
 
 
 class Comm:

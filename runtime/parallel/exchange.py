@@ -483,27 +483,30 @@ class ExactExchange(Exchange):
 
 
 class CompactExchange(ExactExchange):
-    """Exact mode, compact format (``run.exact_format = "compact"``): one int64 per value instead of three.
+    """Exact mode, compact or narrow format (``run.exact_format``): one int64 (or int32) per value instead of three.
 
     The same fixed chunks; each bucket of :data:`BLOCK` values gets one power-of-two scale, fixed before any value
     is converted, from the largest |g| in that bucket over all K chunks (a MAX allreduce: order-free, so the
     same for every P), with ceil(log2 K) bits of headroom (``kernels.compactsum``). A rank keeps its chunks'
     gradients until the scales are known, converts and adds them in int64 (exact, associative), and the sums are
     reduce-scattered: 8 bytes per parameter instead of 24. Bit-identical for every P and rerun; accuracy: within
-    K·2^(h−51) of each bucket's largest value (h = ceil(log2 K)) before the final rounding to the dtype.
+    K·2^(h−51) of each bucket's largest value (h = ceil(log2 K)) before the final rounding to the dtype. The narrow
+    format sums int32 on a 30-bit grid: 4 bytes per parameter, the bytes of fast mode, within K·2^(h−30).
     """
 
     def __init__(self, comm: Comm, model: MLP, grads: np.ndarray, chunk: int, global_batch: int,
-                 sharded: bool = False) -> None:
+                 sharded: bool = False, narrow: bool = False) -> None:
         Exchange.__init__(self, comm, model, grads)
+        integer = np.int32 if narrow else np.int64
+        self.bits = compactsum.term_bits(integer)
         self._layout(chunk, global_batch, sharded)
         self.pair_grads = None
         self.chunk_buffers = [np.zeros_like(grads) for _ in range(self.stop - self.first)]
         # One scale per bucket of BLOCK values: bucket b is [bounds[b], bounds[b + 1]).
         self.bounds = np.append(np.arange(0, grads.size, BLOCK, dtype=np.int64), np.int64(grads.size))
         self.largest = np.zeros(self.bounds.size - 1)  # per bucket, max |g| over the chunks seen this step
-        self.sums = np.zeros(grads.size, dtype=np.int64)
-        self.slice_sums = np.zeros(self.slice_counts[comm.rank], dtype=np.int64)
+        self.sums = np.zeros(grads.size, dtype=integer)
+        self.slice_sums = np.zeros(self.slice_counts[comm.rank], dtype=integer)
         self.shifts = np.zeros(self.bounds.size - 1, dtype=np.int64)
 
     @classmethod
@@ -515,7 +518,8 @@ class CompactExchange(ExactExchange):
 
     @classmethod
     def from_run(cls, comm: Comm, model: MLP, grads: np.ndarray, run: RunSpec) -> CompactExchange:
-        return cls(comm, model, grads, run.exact_chunk, run.global_batch, sharded=run.update == "sharded")
+        return cls(comm, model, grads, run.exact_chunk, run.global_batch, sharded=run.update == "sharded",
+                   narrow=run.exact_format == "narrow")
 
     def parts(self, rows: np.ndarray) -> Iterator[tuple[np.ndarray, np.ndarray]]:
         c = self.chunk
@@ -534,8 +538,8 @@ class CompactExchange(ExactExchange):
     def finish(self) -> None:
         """Agree on the scales, convert and add this rank's chunks, reduce-scatter, read back (and allgather)."""
         self.comm.allreduce_max(self.largest)
-        self.shifts = compactsum.shifts(self.largest, self.chunks)
-        limit = 2.0 ** (compactsum.TERM_BITS - compactsum.headroom_bits(self.chunks))
+        self.shifts = compactsum.shifts(self.largest, self.chunks, self.bits)
+        limit = 2.0 ** (self.bits - compactsum.headroom_bits(self.chunks))
         for i, buffer in enumerate(self.chunk_buffers):
             largest = compactsum.accumulate(buffer, self.bounds, self.shifts, self.sums, replace=i == 0)
             if not largest < limit:  # cannot happen for chunks that went into the maxima: a bug, not bad data
@@ -565,8 +569,8 @@ class CompactExchange(ExactExchange):
         grads = np.zeros_like(self.grads)
         largest = np.zeros(self.bounds.size - 1)
         compactsum.bucket_max_abs(grads, self.bounds, largest)
-        shifts = compactsum.shifts(largest, self.chunks)
-        sums = np.zeros(grads.size, dtype=np.int64)
+        shifts = compactsum.shifts(largest, self.chunks, self.bits)
+        sums = np.zeros_like(self.sums)
         compactsum.accumulate(grads, self.bounds, shifts, sums, replace=True)
         compactsum.accumulate(grads, self.bounds, shifts, sums)
         compactsum.to_float(sums, self.bounds, shifts, grads)
@@ -578,5 +582,5 @@ class CompactExchange(ExactExchange):
 def strategy(run: RunSpec) -> type[Exchange]:
     """The exchange strategy class for a job's ``run.reduction``, ``run.exact_format`` and ``run.update``."""
     if run.reduction == "exact":  # they read run.update themselves: exact mode reduce-scatters either way
-        return CompactExchange if run.exact_format == "compact" else ExactExchange
+        return ExactExchange if run.exact_format == "wide" else CompactExchange
     return ShardedExchange if run.update == "sharded" else BucketExchange

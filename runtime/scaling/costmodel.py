@@ -47,11 +47,9 @@ COLLECTIVES: tuple[str, ...] = ("allreduce", "reduce_scatter", "allgather")
 UPDATES: tuple[str, ...] = ("replicated", "sharded")
 """How the optimizer update is split (the job's `run.update`): every rank updates everything, or its own slice."""
 
-EXACT_LIMB_BYTES = 8
-"""Bytes of one int64 of exact mode's integer sums."""
-
-EXACT_LIMBS = {"wide": 3, "compact": 1}
-"""int64 values per parameter in each exact format (`run.exact_format`); wide sends one limb row per call."""
+EXACT_BYTES = {"wide": 24, "compact": 8, "narrow": 4}
+"""Bytes per parameter of exact mode's integer sums in each format (`run.exact_format`): 3 int64, 1 int64, 1 int32;
+wide sends one limb row per call."""
 
 COMPACT_SCALE_BLOCK = 256
 """Parameters sharing one scale in the compact exact format (`parallel.exchange.BLOCK`; a test keeps them equal)."""
@@ -330,17 +328,18 @@ def step_collectives(update: str, reduction: str, n_params: int, itemsize: int,
 
     update: "replicated" or "sharded" (`run.update`); reduction: "fast" or "exact" (`run.reduction`);
     n_params: parameters; itemsize: bytes per parameter (4 for float32, 8 for float64); exact_format: "wide"
-    (3 int64 per parameter, one reduce-scatter call per limb row) or "compact" (1 int64 per parameter on a
-    scale per `COMPACT_SCALE_BLOCK` parameters, agreed by a MAX allreduce of float64 block maxima first).
+    (3 int64 per parameter, one reduce-scatter call per limb row), "compact" (1 int64 per parameter on a
+    scale per `COMPACT_SCALE_BLOCK` parameters, agreed by a MAX allreduce of float64 block maxima first) or
+    "narrow" (the same with 1 int32 per parameter).
 
         fast, replicated   allreduce of the gradient (n_params·itemsize bytes)
         fast, sharded      reduce-scatter of the gradient, allgather of the parameters (both n_params·itemsize)
-        exact, either      reduce-scatter of the integer sums (n_params·8·limbs bytes), allgather of the
+        exact, either      reduce-scatter of the integer sums (n_params·EXACT_BYTES bytes), allgather of the
                            gradient (replicated) or of the parameters (sharded), n_params·itemsize bytes
     """
     _check_choice(update, UPDATES, "update")
     _check_choice(reduction, ("fast", "exact"), "reduction")
-    _check_choice(exact_format, tuple(EXACT_LIMBS), "exact_format")
+    _check_choice(exact_format, tuple(EXACT_BYTES), "exact_format")
     if isinstance(n_params, bool) or not isinstance(n_params, (int, np.integer)) or n_params < 0:
         raise ValueError(f"`n_params` must be a whole number of parameters >= 0; got {n_params!r}")
     if itemsize not in (2, 4, 8):
@@ -350,13 +349,12 @@ def step_collectives(update: str, reduction: str, n_params: int, itemsize: int,
         if update == "replicated":
             return (Collective("allreduce", values),)
         return Collective("reduce_scatter", values), Collective("allgather", values)
-    limbs = EXACT_LIMBS[exact_format]
     if exact_format == "wide":
-        scatter = (Collective("reduce_scatter", float(n_params * EXACT_LIMB_BYTES), calls=limbs),)
+        scatter = (Collective("reduce_scatter", float(n_params * EXACT_BYTES["wide"] // 3), calls=3),)
     else:
         blocks = -(-n_params // COMPACT_SCALE_BLOCK)
         scatter = (Collective("allreduce", float(blocks * 8)),
-                   Collective("reduce_scatter", float(n_params * EXACT_LIMB_BYTES * limbs)))
+                   Collective("reduce_scatter", float(n_params * EXACT_BYTES[exact_format])))
     return (*scatter, Collective("allgather", values))
 
 

@@ -185,12 +185,18 @@ class Trainer:
         targets = self.gather_targets(rows)
         self.timer.lap("data")
         loss_sum = self.ws.forward_loss(n, targets, 1.0 / G)
-        self.part_sums[:] = (loss_sum, self.count_correct(n, targets), n)
+        self.part_sums[:] = (loss_sum, self.quality_sum(n, targets), n)
         self.train_sums.add(self.part_sums)
         self.last_part_rows = n
         self.timer.lap("forward")
         for layer, _ in self.ws.backward(n, grads):
             self.exchange.layer_done(layer)
+
+    def quality_sum(self, n: int, targets: np.ndarray) -> float:
+        """The second metric sum of the batch in the workspace: correct predictions, or Σ (o − t)² (regression)."""
+        if self.model.loss == "squared_error":
+            return losses.squared_error_sum(self.ws.O[:n], targets[:n])
+        return self.count_correct(n, targets)
 
     def count_correct(self, n: int, targets: np.ndarray) -> int:
         loss = self.model.loss_code
@@ -224,10 +230,7 @@ class Trainer:
             gather(self.data.X, chunk, self.data.mean, self.data.inv_std, self.ws.inputs)
             targets = self.gather_targets(chunk)
             chunk_sums[0] = self.ws.forward_loss(n, targets, 0.0)
-            if self.model.loss == "squared_error":
-                chunk_sums[1] = losses.squared_error_sum(self.ws.O[:n], targets[:n])
-            else:
-                chunk_sums[1] = self.count_correct(n, targets)
+            chunk_sums[1] = self.quality_sum(n, targets)
             chunk_sums[2] = n
             sums.add(chunk_sums)
         return self.summarise(sums.reduce())
@@ -321,7 +324,7 @@ def warm_up_kernels(trainer: Trainer) -> float:
         gather(trainer.data.X, rows, trainer.data.mean, trainer.data.inv_std, trainer.ws.inputs)
         targets = trainer.gather_targets(rows)
         trainer.ws.forward_loss(rows.size, targets, 1.0)
-        trainer.count_correct(rows.size, targets)
+        trainer.quality_sum(rows.size, targets)
         for _ in trainer.ws.backward(rows.size, grads):
             pass
         scratch = Optimizer(trainer.job.optimizer, grads.size, grads.dtype)

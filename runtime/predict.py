@@ -42,7 +42,36 @@ def metrics(model: MLP, outputs: np.ndarray, targets: np.ndarray) -> dict[str, f
     return {"rmse": float(np.sqrt(np.mean((outputs - targets) ** 2)))}
 
 
+OUTPUT_SUFFIXES = (".npy", ".csv")
+
+
+def check_output(path: Path) -> str:
+    """Refuse an output path before any work: its extension (returned, lower case) and its folder."""
+    suffix = path.suffix.lower()
+    if suffix not in OUTPUT_SUFFIXES:
+        raise JobError(f"`--out` must end in {' or '.join(OUTPUT_SUFFIXES)}; got {str(path)!r}")
+    if not path.parent.is_dir():
+        raise JobError(f"`--out` folder {str(path.parent)!r} does not exist")
+    return suffix
+
+
+def write_outputs(path: Path, outputs: np.ndarray) -> None:
+    """Save outputs (n, k) by the extension of ``path``: .npy (numpy's format) or .csv (one row per input, the
+    shortest decimal text that reads back to the same value: 9 significant digits for float32, 17 for float64)."""
+    suffix = check_output(path)
+    try:
+        if suffix == ".npy":
+            with open(path, "wb") as f:  # a file object: np.save would append .npy to a name without it
+                np.save(f, outputs, allow_pickle=False)
+        else:
+            digits = 9 if outputs.dtype == np.float32 else 17  # IEEE 754: enough to read back the same value
+            np.savetxt(path, outputs, delimiter=",", fmt=f"%.{digits}g")
+    except OSError as err:
+        raise JobError(f"`--out` {str(path)!r} cannot be written: {err.strerror or err}") from None
+
+
 def cmd_predict(args) -> int:
+    check_output(Path(args.out))
     model, mean, inv_std = load_model(Path(args.checkpoint))
     X = np.asarray(read_array(Path(args.inputs), "inputs"), dtype=np.float64)
     model.check_inputs(X, "inputs")
@@ -50,7 +79,7 @@ def cmd_predict(args) -> int:
     if not finite.all():
         raise JobError(f"`inputs` row {int(np.argmin(finite))} holds a non-finite value (NaN or inf)")
     outputs = model.predict((X - mean) * inv_std)
-    np.save(args.out, outputs, allow_pickle=False)
+    write_outputs(Path(args.out), outputs)
     print(f"wrote {outputs.shape[0]} × {outputs.shape[1]} outputs to {args.out}")
     if args.targets is not None:
         y = squeeze_labels(np.asarray(read_array(Path(args.targets), "targets", mmap=False)))

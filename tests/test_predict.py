@@ -98,3 +98,20 @@ def test_predict_refuses_inputs_of_the_wrong_width(trained: dict) -> None:
     assert proc.returncode == 2
     assert "`inputs` must have shape (n, 6); got (240, 5)" in proc.stderr and "Traceback" not in proc.stderr
     assert not (trained["path"] / "never.npy").exists()
+
+
+def test_predict_writes_csv_by_extension_and_refuses_other_outputs(trained: dict) -> None:
+    final = str(trained["workdir"] / "final.npz")
+    npy, csv = trained["path"] / "by-ext.npy", trained["path"] / "by-ext.csv"
+    for out in (npy, csv):
+        proc = run_cli(["predict", final, str(trained["x"]), "--out", str(out)], timeout=120)
+        assert proc.returncode == 0, proc.stderr
+        assert f"to {out}" in proc.stdout and out.exists()
+    assert not (trained["path"] / "by-ext.csv.npy").exists()  # the name said, the file written
+    # numpy's text reader gives back the very same float64 values (17 significant digits round-trip, IEEE 754)
+    np.testing.assert_array_equal(np.loadtxt(csv, delimiter=","), np.load(npy, allow_pickle=False))
+    for out, fragment in ((trained["path"] / "preds.txt", "`--out` must end in .npy or .csv"),
+                          (trained["path"] / "missing" / "p.npy", "`--out` folder")):
+        proc = run_cli(["predict", final, str(trained["x"]), "--out", str(out)], timeout=120)
+        assert proc.returncode == 2 and fragment in proc.stderr and "Traceback" not in proc.stderr
+        assert not out.exists()

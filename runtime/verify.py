@@ -180,8 +180,12 @@ def format_report(report: dict[str, Any]) -> str:
     return "\n".join(lines)
 
 
+DISAGREE_EXIT = 3
+"""Exit status of ``shardmill verify`` when the gradients disagree (1 stays a crash, 2 a user error)."""
+
+
 def cmd_verify(args) -> int:
-    """``shardmill verify job.toml``: exit 0 on agreement, 1 on disagreement."""
+    """``shardmill verify job.toml``: exit 0 on agreement, :data:`DISAGREE_EXIT` on disagreement."""
     job = load_job(args.job)
     report = verify(job, Comm(), batches=args.batches, trajectory=args.trajectory)
     if report is None:
@@ -190,4 +194,4 @@ def cmd_verify(args) -> int:
     if args.json:
         Path(args.json).write_text(json.dumps(report, indent=1))
     sys.stdout.flush()
-    return 0 if report["verdict"] == "agree" else 1
+    return 0 if report["verdict"] == "agree" else DISAGREE_EXIT

@@ -230,3 +230,19 @@ def test_cli_trajectory_reports_small_divergence(cli_runs: dict) -> None:
         # Three SGD steps (lr 0.05) on gradients that differ by a few ulps: the weights stay within a few
         # hundred ulps of their size (float64 ulp 2.2e-16; common practice).
         assert 0.0 <= t["max_abs_diff"] <= 1e-13 * max(1.0, t["rms_param"])
+
+
+def test_cli_exit_status_tells_disagreement_from_a_crash(monkeypatch, tmp_path: Path) -> None:
+    import argparse
+
+    from shardmill import verify as verify_module
+
+    tables = job_tables(tmp_path, "float64", "fast")
+    job = write_job(tmp_path, tables["model"], tables["run"], tables["optimizer"], tables["data"])
+    args = argparse.Namespace(job=job, batches=1, trajectory=0, json=None)
+    fake = {"processes": 1, "global_batch": G, "reduction": "fast", "dtype": "float64", "bound": "b",
+            "batches": [], "max_bound_ratio": 7.0}
+    for verdict, status in (("agree", 0), ("disagree", verify_module.DISAGREE_EXIT)):
+        monkeypatch.setattr(verify_module, "verify", lambda *a, verdict=verdict, **k: {**fake, "verdict": verdict})
+        assert verify_module.cmd_verify(args) == status
+    assert verify_module.DISAGREE_EXIT not in (0, 1, 2)  # 1: a crash (run_guarded), 2: a user error

@@ -50,7 +50,7 @@ def variants(ranks: list[int]) -> list[dict[str, Any]]:
             out.append(dict(kind="exact", P=P, G=BATCH, flags=exact))
             out.append(dict(kind="exact_compact", P=P, G=BATCH, flags=[*exact, "--exact-format", "compact"]))
             out.append(dict(kind="exact_narrow", P=P, G=BATCH, flags=[*exact, "--exact-format", "narrow"]))
-    out += [dict(kind="adam_replicated", P=P, G=BATCH, flags=ADAM) for P in ranks]
+    out += [dict(kind="adam_replicated", P=P, G=BATCH, flags=[*ADAM, "--update", "replicated"]) for P in ranks]
     out += [dict(kind="adam_sharded", P=P, G=BATCH, flags=[*ADAM, "--update", "sharded"]) for P in ranks]
     return out
 

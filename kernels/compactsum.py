@@ -117,8 +117,9 @@ def accumulate(
     """Add the fixed-point values of ``x`` into ``acc`` in place: acc[j] += rint(x[j] * 2**shift[b]).
 
     x: ``(m,)`` float32 or float64, C-contiguous; x[j] and acc[j] are flat element ``offset + j``, in bucket b.
-    bounds: ``(B + 1,)`` int64; shift: ``(B,)`` int64 from :func:`shifts`. acc: ``(m,)`` int64, C-contiguous,
-    writable. ``replace=True`` overwrites ``acc`` instead (the same as zeroing it first, in one write-only pass).
+    bounds: ``(B + 1,)`` int64; shift: ``(B,)`` int64 from :func:`shifts`. acc: ``(m,)`` int64 (or int32, with
+    shifts made for NARROW_TERM_BITS), C-contiguous, writable. ``replace=True`` overwrites ``acc`` instead (the
+    same as zeroing it first, in one write-only pass).
 
     Returns the largest |x[j]| * 2**shift[b] as a float64 (``nan`` if some input is NaN). It is
     < 2**(TERM_BITS - headroom_bits(K)) whenever x was among the K chunks the shifts were made from; a larger
@@ -138,10 +139,10 @@ def accumulate(
 def to_float(acc: np.ndarray, bounds: np.ndarray, shift: np.ndarray, out: np.ndarray, offset: int = 0) -> None:
     """Read a fixed-point sum back: out[j] = acc[j] * 2**-shift[b], rounded once to out's dtype (ties to even).
 
-    acc: ``(m,)`` int64, C-contiguous, every |acc[j]| <= 2**TERM_BITS (a sum of at most K terms made with the
-    shifts for K chunks). acc[j] and out[j] are flat element ``offset + j``: a rank reads back its own slice
-    ``[lo, hi)`` of the reduced sum with ``acc[lo:hi]`` and ``offset=lo``. bounds: ``(B + 1,)`` int64; shift:
-    ``(B,)`` int64. out: ``(m,)`` float32 or float64, C-contiguous, writable.
+    acc: ``(m,)`` int64 (int32), C-contiguous, every |acc[j]| <= 2**TERM_BITS (2**NARROW_TERM_BITS): a sum of at
+    most K terms made with the shifts for K chunks. acc[j] and out[j] are flat element ``offset + j``: a rank
+    reads back its own slice ``[lo, hi)`` of the reduced sum with ``acc[lo:hi]`` and ``offset=lo``. bounds:
+    ``(B + 1,)`` int64; shift: ``(B,)`` int64. out: ``(m,)`` float32 or float64, C-contiguous, writable.
     """
     _check_vector(out, "out")
     _check_span(bounds, offset, out.shape[0])

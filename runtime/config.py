@@ -135,9 +135,11 @@ SCHEMA: tuple[Key, ...] = (
         low=1),
     Key("run.bucket_mb", "number", 4.0, "smallest gradient bucket of the overlapped allreduce, MB (10⁶ bytes)",
         low=0.0, low_open=True, trajectory=False),
-    Key("run.update", "choice", "replicated", "replicated: every rank updates every parameter; sharded: the "
+    Key("run.update", "choice", "auto", "replicated: every rank updates every parameter; sharded: the "
         "gradient is reduce-scattered, each rank updates its own contiguous slice (optimizer state 1/P per rank) "
-        "and the parameters are allgathered", choices=("replicated", "sharded"), trajectory=False),
+        "and the parameters are allgathered; auto: sharded on 2 or more processes when the optimizer keeps state "
+        "(momentum, nesterov, adam, adamw), else replicated", choices=("auto", "replicated", "sharded"),
+        trajectory=False),
     Key("run.progress", "choice", "auto", "who drives the overlapped bucket reductions: library (MPI's "
         "non-blocking calls; best on one node, where the exchange is CPU work anyway), thread (a communication "
         "thread per rank; hides the exchange on a network), auto (thread when the ranks span more than one node)",

@@ -72,6 +72,9 @@ class Optimizer:
             # AdamW (Loshchilov & Hutter 2019, Alg. 2): decay λ·η_t with η_t the schedule multiplier.
             decay = s.weight_decay * lr / s.learning_rate if decoupled else 0.0
             l2 = 0.0 if decoupled else s.weight_decay
-            kernels.adam(params, grads, self.state["m"], self.state["v"], lr, s.beta1, s.beta2, s.eps,
+            # The kernel rounds ε to the arrays' dtype: an ε below float32's smallest normal would become 0 there
+            # and a zero gradient would give 0/0. Any normal ε keeps its bits.
+            eps = max(s.eps, float(np.finfo(params.dtype).tiny))
+            kernels.adam(params, grads, self.state["m"], self.state["v"], lr, s.beta1, s.beta2, eps,
                          float(self.updates), l2, decay)
         return lr

@@ -35,6 +35,7 @@ from shardmill.kernels import optim as kernels_optim
 from shardmill.model import MLP
 from shardmill.optim import Optimizer
 from shardmill.parallel.comm import Comm, agree
+from shardmill.parallel.exchange import resolve_update
 from shardmill.parallel.exchange import strategy as exchange_strategy
 from shardmill.timing import PHASES, PhaseTimer
 from threadpoolctl import threadpool_limits
@@ -110,7 +111,7 @@ class Trainer:
     def __init__(self, job: Job, comm: Comm | None = None, dataset: Dataset | None = None) -> None:
         self.job = job
         self.comm = comm or Comm()
-        run = job.run
+        run = resolve_update(job, self.comm.size)  # run.update = "auto" decided for this many ranks
         Strategy = exchange_strategy(run)
         Strategy.check(run, self.comm.size)  # before any collective, identically on every rank
         self.model = model_from_job(job)
@@ -167,7 +168,7 @@ class Trainer:
             raise RuntimeError(f"parameters drifted apart across ranks at step {self.step_count}")
 
     def gradient(self, rows: np.ndarray) -> None:
-        """The mean gradient of the global batch ``rows`` over every rank, into ``grads[exchange.owned]``."""
+        """The mean gradient of the global batch ``rows`` over every rank: ``exchange.owned_gradient()`` after it."""
         for part, part_grads in self.exchange.parts(rows):
             self.part_gradient(part, part_grads)
             self.exchange.add(part_grads)

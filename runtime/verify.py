@@ -43,9 +43,11 @@ def parallel_gradient(trainer: Trainer, rows: np.ndarray, tamper: Tamper | None 
     """The reduced gradient of one global batch exactly as a training step computes it (a new array)."""
     trainer.timer.start()
     trainer.gradient(rows)
+    exchange = trainer.exchange
+    gradient = exchange.full(exchange.owned_gradient().copy())  # a sharded update holds only its slice
     if tamper is not None:
-        tamper(trainer.grads, trainer.comm)
-    return trainer.grads.copy()
+        tamper(gradient, trainer.comm)
+    return gradient
 
 
 def serial_gradient(trainer: Trainer, rows: np.ndarray) -> tuple[np.ndarray, np.ndarray]:

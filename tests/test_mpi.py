@@ -61,6 +61,18 @@ for update in ("replicated", "sharded"):
          "job": job(WIDE, "tanh", {"global_batch": 12, "reduction": "exact", "exact_chunk": 3, "check_every": 1,
                                    "update": update}, CLIPPED)},
     ]
+# A model of 83 parameters: one owner block, so one rank owns everything and the others nothing, yet every rank
+# must run the sharded collectives (clip norm, health norms, allgathers) in step.
+TINY = [6, 8, 3]
+HEALTHY = {"check_every": 1, "health_every": 1}
+for update in ("replicated", "sharded"):
+    CASES += [
+        {"name": f"tiny_fast_{update}", "kind": "train", "steps": STEPS,
+         "job": job(TINY, "tanh", {"global_batch": 10, "update": update, **HEALTHY, **TINY_BUCKETS}, CLIPPED)},
+        {"name": f"tiny_exact_{update}", "kind": "train", "steps": STEPS,
+         "job": job(TINY, "tanh", {"global_batch": 12, "reduction": "exact", "exact_chunk": 3, "update": update,
+                                   **HEALTHY}, CLIPPED)},
+    ]
 CASES += [
     {"name": "wide_fast_sharded_thread", "kind": "train", "steps": STEPS,
      "job": job(WIDE, "tanh", {"global_batch": 10, "update": "sharded", "progress": "thread", **TINY_BUCKETS},
@@ -263,6 +275,18 @@ def test_sharded_fast_update_matches_serial_replicated(runs, P):
     assert relative(flat(sharded["params"]), flat(serial["params"])) < 1e-10
     blocking = runs[P]["wide_fast_sharded_no_overlap"]
     assert relative(flat(blocking["params"]), flat(sharded["params"])) < 1e-12  # same sums, bucketed or whole
+
+
+@pytest.mark.parametrize("P", RANKS)
+def test_a_rank_that_owns_everything_or_nothing_keeps_step_with_the_others(runs, P):
+    # Reaching here at all means no rank hung; then the usual agreements hold (Higham 2002, §4.2 for fast mode).
+    serial = runs[1]["tiny_fast_replicated"]
+    assert relative(flat(runs[P]["tiny_fast_sharded"]["params"]), flat(serial["params"])) < 1e-10
+    digests = {runs[Q][case]["sha256_by_rank"][0] for Q in (1, P) for case in ("tiny_exact_replicated",
+                                                                               "tiny_exact_sharded")}
+    assert len(digests) == 1, digests  # exact mode: one SHA-256 whatever the owner of each slice
+    for case in ("tiny_fast_sharded", "tiny_exact_sharded"):
+        assert len(set(runs[P][case]["sha256_by_rank"])) == 1, case
 
 
 def test_sharded_exact_update_is_bit_identical_to_replicated_for_every_P(runs):

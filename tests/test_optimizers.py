@@ -304,3 +304,13 @@ def test_update_kernels_vectorise_on_avx2():
     for (name, dtype), packed in counts.items():
         # packed arithmetic on 256-bit registers: the loop runs 4 or 8 elements at a time. common practice
         assert packed > 0, f"{name} {dtype} runs scalar on AVX2"
+
+
+@pytest.mark.parametrize("dtype", [np.float32, np.float64])
+def test_adam_with_the_smallest_allowed_eps_stays_finite_on_zero_gradients(dtype):
+    # The schema allows any ε > 0; Adam divides by √v̂ + ε, and v = 0 for a gradient that was always 0, so the
+    # ε the kernel sees must not round to 0 in the arrays' dtype (Kingma & Ba 2015, Algorithm 1: ε > 0).
+    spec = replace(OptimizerSpec(), method="adam", eps=1e-50)
+    params = np.ones(8, dtype=dtype)
+    Optimizer(spec, params.size, np.dtype(dtype)).step(params, np.zeros(8, dtype=dtype), 10)
+    np.testing.assert_array_equal(params, 1.0)  # m = 0: no step at all

@@ -31,16 +31,20 @@ NAMES = ["W0", "b0", "W1", "b1", "W2", "b2"]
 G, CHUNK = 48, 12
 MODES = ("fast", "exact", "compact", "narrow")  # compact and narrow: exact mode's other formats
 CASES = {f"{dtype}_{mode}": (dtype, mode) for dtype in ("float32", "float64") for mode in MODES}
+CASES.update({"float64_fast-sharded": ("float64", "fast-sharded"),
+              "float32_exact-sharded": ("float32", "exact-sharded")})
 UNIT_ROUNDOFF = {"float32": Fraction(1, 2**24), "float64": Fraction(1, 2**53)}  # IEEE 754 binary32 / binary64
 
 
-def job_tables(data: Path, dtype: str, reduction: str) -> dict:
+def job_tables(data: Path, dtype: str, mode: str) -> dict:
+    """A job for ``mode``: fast, exact, compact or narrow, with ``-sharded`` for a sharded update."""
+    reduction, _, sharded = mode.partition("-")
     return {"model": {"layers": LAYERS, "activation": "relu", "loss": "softmax_cross_entropy", "dtype": dtype},
             "data": {"inputs": str(data / "x.npy"), "targets": str(data / "y.npy"), "validation_fraction": 0.2},
             "optimizer": {"method": "sgd", "learning_rate": 0.05},
             "run": {"global_batch": G, "seed": 1, "reduction": "fast" if reduction == "fast" else "exact",
                     "exact_format": "wide" if reduction in ("fast", "exact") else reduction, "exact_chunk": CHUNK,
-                    "workdir": str(data / f"run-{dtype}-{reduction}")}}
+                    "update": "sharded" if sharded else "replicated", "workdir": str(data / f"run-{dtype}-{mode}")}}
 
 
 @pytest.fixture(scope="module")
@@ -53,7 +57,7 @@ def data_dir(tmp_path_factory) -> Path:
 @pytest.fixture(scope="module")
 def api_runs(data_dir: Path) -> dict[int, dict]:
     """{P: verify_cases.py output}: plain, dropped-share and perturbed reports for the four cases."""
-    cases = [{"name": name, "job": job_tables(data_dir, dtype, mode), "trajectory": 0 if mode == "fast" else 2}
+    cases = [{"name": name, "job": job_tables(data_dir, dtype, mode), "trajectory": 0 if mode.startswith("fast") else 2}
              for name, (dtype, mode) in CASES.items()]
     spec = data_dir / "verify-spec.json"
     spec.write_text(json.dumps({"base": str(data_dir), "cases": cases}))
@@ -151,7 +155,7 @@ def test_serial_reference_matches_autograd(data_dir: Path, dtype: str, mode: str
 def test_honest_reduction_agrees(api_runs: dict, P: int, case: str) -> None:
     report = api_runs[P]["cases"][case]["plain"]
     dtype, mode = CASES[case]
-    reduction = "fast" if mode == "fast" else "exact"  # compact and narrow are exact mode's formats
+    reduction = "fast" if mode.startswith("fast") else "exact"  # compact and narrow are exact mode's formats
     assert report["processes"] == P and report["dtype"] == dtype and report["reduction"] == reduction
     assert len(report["batches"]) == 3
     for batch in report["batches"]:
@@ -160,7 +164,7 @@ def test_honest_reduction_agrees(api_runs: dict, P: int, case: str) -> None:
     # Higham 2002, §4.2: both sums obey |ŝ − s| ≤ γ_{G−1} Σ|x_i|, so their difference is ≤ 2·γ_{G−1}·Σ|x_i|.
     assert all(0.0 <= r <= 1.0 for r in ratios), ratios
     assert report["verdict"] == "agree" and report["max_bound_ratio"] == max(ratios)
-    if mode != "fast":
+    if not mode.startswith("fast"):
         # Exact mode is independent of P, so the serial trainer follows the same trajectory bit for bit.
         assert [t["step"] for t in report["trajectory"]] == [1, 2]
         assert all(t["max_abs_diff"] == 0.0 for t in report["trajectory"])

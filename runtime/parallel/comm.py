@@ -79,7 +79,7 @@ class Comm:
 
     @staticmethod
     def wait(requests: list) -> None:
-        """Wait for every request started by :meth:`start_allreduce_sum`."""
+        """Wait for every request started by :meth:`start_allreduce_sum` or :meth:`start_reduce_scatter_sum`."""
         live = [r for r in requests if r is not None]
         if live:
             MPI.Request.Waitall(live)

@@ -32,6 +32,9 @@ import numpy as np
 from mpi4py import MPI
 from shardmill.parallel.comm import Comm
 
+CLOSE_TIMEOUT_S = 30.0
+"""Seconds :meth:`CommThread.close` waits for the thread to finish its queue before leaving it behind."""
+
 
 class Handle:
     """One submitted operation: finished once :attr:`finished` is set, with ``result`` or ``error``."""
@@ -112,8 +115,10 @@ class CommThread:
         """Return once every operation submitted so far has finished (raises as :meth:`wait` does)."""
         self.wait([] if self._last is None else [self._last])
 
-    def close(self) -> None:
-        """Finish what was submitted, then end the thread and join it. Idempotent; raises nothing.
+    def close(self, timeout: float | None = CLOSE_TIMEOUT_S) -> None:
+        """Finish what was submitted, then end the thread and join it (at most ``timeout`` seconds: a thread
+        stuck in a collective that a failed rank will never join is left behind, a daemon). Idempotent; raises
+        nothing.
 
         Call it on every rank after the last wait (a failure not yet waited for is dropped here, not raised, so
         that ``close`` in a ``finally`` cannot hide the error that brought the rank there).
@@ -122,13 +127,14 @@ class CommThread:
             return
         self._closed = True
         self._queue.put(_STOP)
-        self._thread.join()
+        self._thread.join(timeout)
 
     def __enter__(self) -> CommThread:
         return self
 
-    def __exit__(self, *exc_info: object) -> None:
-        self.close()
+    def __exit__(self, exc_type: object, *exc_info: object) -> None:
+        # On an exception the queued work may be waiting for a rank that is gone: do not wait for it.
+        self.close(timeout=0.0 if exc_type is not None else CLOSE_TIMEOUT_S)
 
     # -- the thread -------------------------------------------------------------------------------------------
 

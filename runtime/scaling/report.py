@@ -57,7 +57,7 @@ def percent(fraction: float | None) -> str:
 
 
 def share(fraction: float | None) -> str:
-    """A fraction as an unsigned percentage ('73%', '4.2%'), or '–' when not defined."""
+    """A fraction as a percentage ('73%', '4.2%', '−12%' for a hidden fraction below zero), or '–' when not defined."""
     if fraction is None:
         return "–"
     return f"{100.0 * fraction:.0f}%" if abs(fraction) >= 0.1 else f"{100.0 * fraction:.1f}%"

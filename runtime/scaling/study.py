@@ -200,7 +200,10 @@ def communication_model(points: list[dict[str, Any]], raws: dict[int, dict[str, 
     serial = next(point for point in points if point["p"] == 1)
     compute_s = sum(serial["phase_mean_s"][phase] for phase in COMPUTE_PHASES)
     first = raws[1]
-    update, update_s = first["update"], serial["phase_mean_s"]["update"]
+    # The update of the runs on several ranks (run.update = "auto" is replicated on one rank, sharded on more
+    # for an optimizer with state); its time at P = 1 is what the model divides, or not.
+    update = raws[max(raws)]["update"]
+    update_s = serial["phase_mean_s"]["update"]
     replicated_s = update_s if update == "replicated" else 0.0  # the update every rank repeats in full
     grad_bytes = first["grad_bytes"]
     collectives = costmodel.step_collectives(update, first["reduction"], first["params"], first["itemsize"],
@@ -323,7 +326,7 @@ def build_study(job: Job, job_path: Path, mode: str, steps: int, threads: int, p
             "global_batch_meaning": "fixed for every P" if mode == "strong" else "per rank (global = G·P)",
             "reduction": job.run.reduction,
             "exact_format": first["exact_format"],
-            "update": first["update"],
+            "update": job.run.update,
             "bucket_mb": job.run.bucket_mb,
             "optimizer": job.optimizer.method,
             "params": first["params"],

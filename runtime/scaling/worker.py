@@ -17,6 +17,7 @@ from pathlib import Path
 from typing import Any
 
 from shardmill.config import JobError, load_job
+from shardmill.parallel.exchange import resolve_update
 from shardmill.scaling.measure import COMM_BUDGET_S, MESSAGE_SIZES, measure_reduction_gamma, time_allreduce
 from shardmill.timing import median, repeat_times
 
@@ -174,7 +175,7 @@ def run_worker(job_path: Path, global_batch: int, steps: int, threads: int, pin:
             "params": trainer.model.n_params,
             "grad_bytes": trainer.model.n_params * dtype.itemsize,
             "itemsize": dtype.itemsize,
-            "update": job.run.update,
+            "update": resolve_update(job, comm.size).update,  # run.update = "auto" decided for this P
             "reduction": job.run.reduction,
             "exact_format": job.run.exact_format,
             "exchange_alone": alone,

@@ -153,27 +153,11 @@ def cmd_train(args: argparse.Namespace) -> int:
 
     job = load_job(args.job)
     comm = Comm()
-    result = train(job, comm, resume=args.resume, progress=not args.no_progress)
+    result = train(job, comm, resume=args.resume, progress=not args.no_progress, echo=True)
     if comm.rank == 0:
-        for record in result["history"]:
-            print(_epoch_line(record))
         print(f"done: {result['steps']} steps on {comm.size} process(es); final parameters in "
               f"{Path(result['workdir']) / 'final.npz'}")
     return 0
-
-
-def _epoch_line(record: dict) -> str:
-    parts = [f"epoch {record['epoch']:>3}", f"step {record['step']:>6}", f"loss {record['train']['loss']:.4f}"]
-    if "accuracy" in record["train"]:
-        parts.append(f"acc {record['train']['accuracy']:.4f}")
-    val = record.get("validation")
-    if val:
-        parts.append(f"val_loss {val['loss']:.4f}")
-        for key in ("accuracy", "rmse"):
-            if key in val:
-                parts.append(f"val_{key} {val[key]:.4f}")
-    parts.append(f"{record['samples_per_s']:,.0f} samples/s")
-    return "  ".join(parts)
 
 
 def cmd_bench(args: argparse.Namespace) -> int:

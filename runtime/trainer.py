@@ -343,20 +343,42 @@ def warm_up_kernels(trainer: Trainer) -> float:
     return time.perf_counter() - begin
 
 
-def train(job: Job, comm: Comm | None = None, resume: bool = False, progress: bool = True) -> dict[str, Any]:
+HEARTBEAT_S = 30.0
+"""Seconds between progress lines when no progress bar is shown (a batch log, a pipe) and ``echo`` is on."""
+
+
+def epoch_line(record: dict[str, Any]) -> str:
+    """One console line for an epoch record of metrics.jsonl (the same field names, fewer digits)."""
+    parts = [f"epoch {record['epoch']:>3}", f"step {record['step']:>6}", f"loss {record['train']['loss']:.4f}"]
+    for key in ("accuracy", "rmse"):
+        if key in record["train"]:
+            parts.append(f"{'acc' if key == 'accuracy' else key} {record['train'][key]:.4f}")
+    val = record.get("validation")
+    if val:
+        parts.append(f"val_loss {val['loss']:.4f}")
+        for key in ("accuracy", "rmse"):
+            if key in val:
+                parts.append(f"val_{key} {val[key]:.4f}")
+    parts.append(f"{record['samples_per_s']:,.0f} samples/s")
+    return "  ".join(parts)
+
+
+def train(job: Job, comm: Comm | None = None, resume: bool = False, progress: bool = True,
+          echo: bool = False) -> dict[str, Any]:
     """Train ``job`` on every rank of ``comm`` (MPI.COMM_WORLD by default).
 
     Rank 0 writes ``workdir/metrics.jsonl`` (one JSON object per epoch), checkpoints and
     ``workdir/final.npz`` (arrays W0, b0, W1, b1, …). Returns a summary dict on every rank, including
-    the final model under ``"model"``.
+    the final model under ``"model"``. ``echo``: rank 0 prints each epoch's line as the epoch ends (flushed, so a
+    batch log shows it at once) and, without a progress bar, a heartbeat line every :data:`HEARTBEAT_S` seconds.
     """
     comm = comm or Comm()
     with threadpool_limits(limits=job.run.threads, user_api="blas"):
         trainer = Trainer(job, comm)
-        return _train_loop(trainer, resume, progress)
+        return _train_loop(trainer, resume, progress, echo)
 
 
-def _train_loop(trainer: Trainer, resume: bool, progress: bool) -> dict[str, Any]:
+def _train_loop(trainer: Trainer, resume: bool, progress: bool, echo: bool = False) -> dict[str, Any]:
     job, comm, model = trainer.job, trainer.comm, trainer.model
     workdir = job.workdir
     lead = comm.rank == 0
@@ -372,6 +394,7 @@ def _train_loop(trainer: Trainer, resume: bool, progress: bool) -> dict[str, Any
     epoch_begin = time.perf_counter()
     epoch_steps = 0
     step = start_step
+    beat = _Heartbeat(total, start_step, job.run.global_batch) if lead and echo and bar is None else None
     while step < total:
         epoch, in_epoch = divmod(step, steps_per_epoch)
         trainer.step(epoch, in_epoch)
@@ -379,6 +402,8 @@ def _train_loop(trainer: Trainer, resume: bool, progress: bool) -> dict[str, Any
         epoch_steps += 1
         if bar is not None:
             bar.update(1)
+        if beat is not None:
+            beat.tick(step)
         end_of_epoch = step % steps_per_epoch == 0 or step == total
         if trainer.health:
             _write_health(trainer, metrics_path, lead)
@@ -394,6 +419,8 @@ def _train_loop(trainer: Trainer, resume: bool, progress: bool) -> dict[str, Any
                 if bar is not None:
                     bar.set_postfix(loss=f"{record['train']['loss']:.4g}",
                                     samples_s=f"{record['samples_per_s']:.0f}")
+                if echo:
+                    _say(epoch_line(record), bar)
             epoch_begin = time.perf_counter()
             epoch_steps = 0
     if bar is not None:
@@ -404,6 +431,32 @@ def _train_loop(trainer: Trainer, resume: bool, progress: bool) -> dict[str, Any
         checkpoint.write_final(workdir / "final.npz", state)
     return {"model": model, "history": history, "steps": step, "workdir": str(workdir),
             "processes": comm.size, "compile_s": compile_s}
+
+
+def _say(line: str, bar: Any) -> None:
+    """Print a line now (through the progress bar when one is drawn, so the bar is not torn)."""
+    if bar is not None:
+        bar.write(line)
+    else:
+        print(line, flush=True)
+
+
+class _Heartbeat:
+    """A progress line every HEARTBEAT_S seconds: step, samples/s since the last line, and the time left."""
+
+    def __init__(self, total: int, done: int, global_batch: int) -> None:
+        self.total, self.global_batch = total, global_batch
+        self.begin = self.last = time.perf_counter()
+        self.first = self.last_step = done
+
+    def tick(self, step: int) -> None:
+        now = time.perf_counter()
+        if now - self.last < HEARTBEAT_S or step >= self.total:
+            return
+        rate = (step - self.last_step) * self.global_batch / (now - self.last)
+        left = (self.total - step) * (now - self.begin) / max(step - self.first, 1)
+        print(f"step {step:>6}/{self.total}  {rate:,.0f} samples/s  about {left:,.0f} s left", flush=True)
+        self.last, self.last_step = now, step
 
 
 def _write_health(trainer: Trainer, path: Path, lead: bool) -> None:

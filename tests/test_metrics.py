@@ -6,6 +6,7 @@ with numpy alone from the initial weights: the network written out as tanh(X W0 
 
 from __future__ import annotations
 
+import json
 import math
 
 import numpy as np
@@ -37,3 +38,44 @@ def test_training_rmse_of_a_regression_step_is_the_rmse_of_its_batch(tmp_path, r
     expected = math.sqrt(np.mean((predicted[:, 0] - trainer.data.targets[rows, 0]) ** 2))  # RMSE, common practice
     assert logged > 0.0
     assert logged == pytest.approx(expected, rel=1e-12)
+
+
+def _job(tmp_path, epochs: int = 3):
+    X, y = load_diabetes(return_X_y=True)
+    np.save(tmp_path / "x.npy", X)
+    np.save(tmp_path / "y.npy", (y - y.mean()) / y.std())
+    return job_from_dict({"model": {"layers": [10, 8, 1], "activation": "tanh", "loss": "squared_error",
+                                    "dtype": "float64"},
+                          "data": {"inputs": str(tmp_path / "x.npy"), "targets": str(tmp_path / "y.npy")},
+                          "optimizer": {"method": "sgd", "learning_rate": 0.01},
+                          "run": {"global_batch": 128, "epochs": epochs, "workdir": str(tmp_path / "run")}})
+
+
+def test_each_epoch_line_is_printed_as_its_epoch_ends(tmp_path, capsys, monkeypatch):
+    from shardmill import trainer as trainer_module
+
+    job = _job(tmp_path)
+    real_step = trainer_module.Trainer.step
+
+    def step(self, epoch, in_epoch):  # the run dies in its second epoch, as a preempted job would
+        if epoch == 1:
+            raise RuntimeError("stopped in epoch 2")
+        real_step(self, epoch, in_epoch)
+
+    monkeypatch.setattr(trainer_module.Trainer, "step", step)
+    with pytest.raises(RuntimeError, match="epoch 2"):
+        trainer_module.train(job, progress=False, echo=True)
+    lines = capsys.readouterr().out.splitlines()
+    assert len(lines) == 1 and lines[0].startswith("epoch   1")  # already out before the failure
+    record = json.loads((tmp_path / "run" / "metrics.jsonl").read_text().splitlines()[0])
+    assert f"rmse {record['train']['rmse']:.4f}" in lines[0]  # the console mirrors metrics.jsonl's fields
+
+
+def test_without_a_bar_a_heartbeat_says_where_the_run_is(tmp_path, capsys, monkeypatch):
+    from shardmill import trainer as trainer_module
+
+    monkeypatch.setattr(trainer_module, "HEARTBEAT_S", 0.0)  # every step
+    trainer_module.train(_job(tmp_path, epochs=1), progress=False, echo=True)
+    beats = [line for line in capsys.readouterr().out.splitlines() if line.startswith("step")]
+    assert beats and all("samples/s" in line and "s left" in line for line in beats)
+    assert beats[0].split()[1] == "1/3"  # 353 training rows in batches of 128: 3 steps. common practice

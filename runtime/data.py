@@ -68,29 +68,40 @@ def block_range(n_blocks: int, rank: int, size: int) -> tuple[int, int]:
     return (rank * n_blocks) // size, ((rank + 1) * n_blocks) // size
 
 
-def column_statistics(X: np.ndarray, rows: np.ndarray, comm) -> tuple[np.ndarray, np.ndarray, int]:
+def first_of_ranks(row: int | None, comm) -> tuple[int, int]:
+    """The smallest of the rows the ranks report (None: nothing to report) and the rank that reported it; (−1, −1)
+    when none did. One MIN allreduce of row·P + rank, so every rank gets the same answer."""
+    code = np.array([np.iinfo(np.int64).max if row is None else row * comm.size + comm.rank], dtype=np.int64)
+    comm.allreduce_min(code)
+    if code[0] == np.iinfo(np.int64).max:
+        return -1, -1
+    return int(code[0] // comm.size), int(code[0] % comm.size)
+
+
+def column_statistics(X: np.ndarray, rows: np.ndarray, comm) -> tuple[np.ndarray, np.ndarray, tuple[int, int]]:
     """Mean and inverse standard deviation per column over ``rows`` of X, identical on every rank and every P.
 
     The rows are cut into at most 1024 fixed blocks (their size does not depend on P); each rank sums its
     blocks in float64, every rank receives all block sums (allgather), and all ranks add them in the same
     fixed order. This pass is also the finite check of the data: returns the first non-finite row (index
-    into X) or −1. Columns with (near) zero variance get inv_std = 1.
+    into X) and the rank that read it, or (−1, −1). Columns with (near) zero variance get inv_std = 1.
     """
     d = X.shape[1]
     block = max(_STATS_BLOCK, -(-rows.size // 1024))
     n_blocks = -(-rows.size // block)
     lo, hi = block_range(n_blocks, comm.rank, comm.size)
     sums = np.zeros((hi - lo, 2 * d), dtype=np.float64)
-    bad = np.array([np.iinfo(np.int64).max], dtype=np.int64)
+    bad: int | None = None
     for k, b in enumerate(range(lo, hi)):
         chunk = np.asarray(X[rows[b * block:(b + 1) * block]], dtype=np.float64)
         finite = np.isfinite(chunk).all(axis=1)
         if not finite.all():
-            bad[0] = min(bad[0], rows[b * block + int(np.argmin(finite))])
+            row = int(rows[b * block + int(np.argmin(finite))])
+            bad = row if bad is None else min(bad, row)
             continue
         np.sum(chunk, axis=0, out=sums[k, :d])
         np.sum(chunk * chunk, axis=0, out=sums[k, d:])
-    comm.allreduce_min(bad)
+    first_bad = first_of_ranks(bad, comm)
     counts = [block_range(n_blocks, r, comm.size)[1] - block_range(n_blocks, r, comm.size)[0]
               for r in range(comm.size)]
     total = comm.allgather_rows(sums, counts).sum(axis=0)
@@ -99,7 +110,6 @@ def column_statistics(X: np.ndarray, rows: np.ndarray, comm) -> tuple[np.ndarray
     var = np.maximum(total[d:] / n - mean * mean, 0.0)
     std = np.sqrt(var)
     inv_std = np.where(std > 1e-12 * np.maximum(1.0, np.abs(mean)), 1.0 / np.where(std > 0, std, 1.0), 1.0)
-    first_bad = -1 if bad[0] == np.iinfo(np.int64).max else int(bad[0])
     return mean, inv_std, first_bad
 
 

@@ -24,6 +24,7 @@ from shardmill.data import (
     Split,
     block_range,
     column_statistics,
+    first_of_ranks,
     gather,
     read_array,
     split_rows,
@@ -81,28 +82,30 @@ def load_dataset(job: Job, model: MLP, comm: Comm) -> Dataset:
     split = split_rows(X.shape[0], job.data.validation_fraction, job.run.seed)
     if split.train.size == 0:
         raise JobError("`data.validation_fraction` leaves no training rows")
-    mean, inv_std, bad = column_statistics(X, split.train if job.data.standardize else split.train[:0], comm)
+    mean, inv_std, (bad, rank) = column_statistics(X, split.train if job.data.standardize else split.train[:0],
+                                                   comm)
     if bad < 0 and not job.data.standardize:  # the statistics pass above checked no training row
-        bad = _first_nonfinite(X, split.train, comm)
+        bad, rank = _first_nonfinite(X, split.train, comm)
     if bad < 0 and split.validation.size:
-        bad = _first_nonfinite(X, split.validation, comm)
+        bad, rank = _first_nonfinite(X, split.validation, comm)
     if bad >= 0:
-        raise JobError(f"`data.inputs` row {bad} holds a non-finite value (NaN or inf)")
+        where = f"[rank {rank}] " if comm.size > 1 else ""
+        raise JobError(f"{where}`data.inputs` row {bad} holds a non-finite value (NaN or inf)")
     if not job.data.standardize:
         mean, inv_std = np.zeros(X.shape[1]), np.ones(X.shape[1])
     return Dataset(X=X, targets=targets, split=split, mean=mean, inv_std=inv_std)
 
 
-def _first_nonfinite(X: np.ndarray, rows: np.ndarray, comm: Comm) -> int:
+def _first_nonfinite(X: np.ndarray, rows: np.ndarray, comm: Comm) -> tuple[int, int]:
+    """The first row of ``rows`` (in this rank's block order) holding a NaN or inf, and the rank that read it."""
     lo, hi = block_range(rows.size, comm.rank, comm.size)
-    bad = np.array([np.iinfo(np.int64).max])
+    bad: int | None = None
     for start in range(lo, hi, 4096):  # blocks: a rank's part of a memory-mapped set may not fit in memory
         finite = np.isfinite(np.asarray(X[rows[start:min(start + 4096, hi)]])).all(axis=1)
         if not finite.all():
-            bad[0] = rows[start + int(np.argmin(finite))]
+            bad = int(rows[start + int(np.argmin(finite))])
             break
-    comm.allreduce_min(bad)
-    return -1 if bad[0] == np.iinfo(np.int64).max else int(bad[0])
+    return first_of_ranks(bad, comm)
 
 
 class Trainer:

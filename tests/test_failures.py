@@ -9,6 +9,7 @@ blocking the suite. User errors exit 2 with one line (DEVELOPERS.md, conventions
 from __future__ import annotations
 
 import json
+import re
 import time
 from pathlib import Path
 
@@ -62,6 +63,8 @@ def test_non_finite_row_is_named_and_ends_the_job(tmp_path, where, standardize):
     assert seconds < LIMIT_S
     assert proc.returncode == 2, proc.stderr[-2000:]  # a data error is the user's: exit 2
     assert f"row {row} " in proc.stderr and "non-finite" in proc.stderr, proc.stderr[-2000:]
+    # README, failures: the message names the rank that read the row and the row
+    assert re.search(rf"\[rank [01]\] `data.inputs` row {row} ", proc.stderr), proc.stderr[-2000:]
     assert "Traceback" not in proc.stderr  # one line for user errors (DEVELOPERS.md, conventions)
 
 

@@ -10,6 +10,8 @@ from __future__ import annotations
 
 import json
 import math
+import subprocess
+import sys
 import textwrap
 from pathlib import Path
 
@@ -528,3 +530,29 @@ def test_project_keeps_its_replicated_rows() -> None:
     for a, b in zip(old, new, strict=True):
         assert a["step_s"] == b["step_s"] and a["allreduce_s"] == b["comm_s"] and a["algorithm"] == b["algorithm"]
         assert a["allreduce_s"] == best_allreduce(a["p"], 4 * MIB, ALPHA, BETA, 2e-11)[1]  # TRG 2005
+
+
+@settings(max_examples=40, deadline=None)
+@given(seed=st.integers(min_value=0, max_value=2**32 - 1), columns=st.integers(min_value=1, max_value=3))
+def test_non_negative_fit_matches_scipy_nnls(seed, columns):
+    from scipy.optimize import nnls  # Lawson & Hanson's active-set NNLS, as SciPy ships it
+    from shardmill.scaling.costmodel import _non_negative_least_squares
+
+    rng = np.random.default_rng(seed)
+    A = rng.standard_normal((8, columns))
+    b = rng.standard_normal(8)
+    ours = _non_negative_least_squares(A, b)
+    reference, _ = nnls(A, b)
+    assert np.all(ours >= 0.0)
+    assert np.linalg.norm(A @ ours - b) == pytest.approx(np.linalg.norm(A @ reference - b), rel=1e-9, abs=1e-12)
+
+
+def test_the_fit_needs_no_scipy():
+    # `shardmill scale` after the quickstart install (no test extra): the cost model must not import SciPy.
+    # A None entry in sys.modules makes every `import scipy…` fail (Python's import system), as without SciPy.
+    code = ("import sys\nfor name in ('scipy', 'scipy.optimize'):\n    sys.modules[name] = None\n"
+            "from shardmill.scaling import costmodel\n"
+            "fit = costmodel.fit_alpha_beta(2, [1e3, 1e5, 1e7], [1e-5, 2e-5, 1e-3])\n"
+            "assert fit.alpha >= 0 and fit.beta >= 0\n")
+    done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=60)
+    assert done.returncode == 0, done.stderr

@@ -444,6 +444,26 @@ def _fit_summary(times: np.ndarray, predicted: np.ndarray) -> tuple[tuple[float,
     return tuple(float(error) for error in relative), r_squared
 
 
+def _non_negative_least_squares(A: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """argmin ‖A x − b‖ subject to x ≥ 0, for the few columns of these fits (2 or 3), by trying every support.
+
+    The optimum is the unconstrained least-squares solution on its own support (the KKT conditions of NNLS,
+    Lawson & Hanson 1974, ch. 23), so the best non-negative candidate over all 2^k supports is the optimum.
+    """
+    k = A.shape[1]
+    best, best_residual = np.zeros(k), float(np.sum(b * b))
+    for mask in range(1, 2**k):
+        support = [j for j in range(k) if mask >> j & 1]
+        x_support, *_ = np.linalg.lstsq(A[:, support], b, rcond=None)
+        if np.all(x_support >= 0.0):
+            x = np.zeros(k)
+            x[support] = x_support
+            residual = float(np.sum((A @ x - b) ** 2))
+            if residual < best_residual:
+                best, best_residual = x, residual
+    return best
+
+
 def _relative_least_squares(
     design: np.ndarray, target: np.ndarray, times: np.ndarray, non_negative: bool
 ) -> np.ndarray:
@@ -456,9 +476,7 @@ def _relative_least_squares(
     norms = np.linalg.norm(rows, axis=0)
     norms[norms == 0.0] = 1.0
     if non_negative:
-        from scipy.optimize import nnls
-
-        scaled, _ = nnls(rows / norms, target / times)
+        scaled = _non_negative_least_squares(rows / norms, target / times)
     else:
         scaled, *_ = np.linalg.lstsq(rows / norms, target / times, rcond=None)
     return scaled / norms
@@ -475,7 +493,7 @@ def fit_alpha_beta(
 
     Least squares on T(n) = c_α(p)·α + c_β(p)·n·β with the known term c_γ(p)·n·γ subtracted first, where the
     coefficients are those of `allreduce_time` for `algorithm`. Residuals are relative (each point divided
-    by its measured time), and α, β ≥ 0 are enforced with non-negative least squares (scipy.optimize.nnls).
+    by its measured time), and α, β ≥ 0 are enforced with non-negative least squares (exact, by supports).
     `sizes_bytes` in bytes, `times_s` in seconds (e.g. the medians from `measure_allreduce`).
     Raises ValueError for p = 1 (nothing is communicated, so there is nothing to fit) and for fewer than two
     distinct sizes.

@@ -149,11 +149,16 @@ def dispatch(args: argparse.Namespace) -> int:
 def cmd_train(args: argparse.Namespace) -> int:
     from shardmill.config import load_job
     from shardmill.parallel.comm import Comm
-    from shardmill.trainer import train
+    from shardmill.trainer import TrainingStopped, train
 
     job = load_job(args.job)
     comm = Comm()
-    result = train(job, comm, resume=args.resume, progress=not args.no_progress, echo=True)
+    try:
+        result = train(job, comm, resume=args.resume, progress=not args.no_progress, echo=True)
+    except TrainingStopped as stopped:
+        if comm.rank == 0:
+            print(f"shardmill: {stopped}", file=sys.stderr, flush=True)
+        return stopped.exit_code
     if comm.rank == 0:
         print(f"done: {result['steps']} steps on {comm.size} process(es); final parameters in "
               f"{Path(result['workdir']) / 'final.npz'}")

@@ -10,7 +10,9 @@ from __future__ import annotations
 
 import json
 import math
+import signal
 import sys
+import threading
 import time
 from dataclasses import dataclass
 from pathlib import Path
@@ -346,6 +348,55 @@ def warm_up_kernels(trainer: Trainer) -> float:
     return time.perf_counter() - begin
 
 
+class TrainingStopped(Exception):
+    """SIGTERM or SIGINT arrived during training: every rank finished its step and a checkpoint was written.
+
+    ``exit_code`` is 128 + the signal number (143 for SIGTERM, 130 for SIGINT), as a shell reports it.
+    """
+
+    def __init__(self, signum: int, step: int, workdir: Path) -> None:
+        name = signal.Signals(signum).name
+        super().__init__(f"stopped by {name} after step {step}; checkpoint written under {workdir / 'checkpoints'}; "
+                         f"continue with `shardmill train JOB --resume`")
+        self.exit_code = 128 + signum
+        self.step = step
+
+
+class _StopSignals:
+    """Remember SIGTERM (what a batch system sends before its time limit) and SIGINT (Ctrl-C) during training.
+
+    The handlers only note the signal; the loop asks :meth:`agreed` after every step, and all ranks stop together
+    after the same step (one MAX allreduce of the signal number), so a checkpoint can be written collectively.
+    """
+
+    SIGNALS = (signal.SIGTERM, signal.SIGINT)
+
+    def __init__(self, comm: Comm) -> None:
+        self.comm = comm
+        self.received = 0
+        self._previous: dict[int, Any] = {}
+
+    def __enter__(self) -> _StopSignals:
+        if threading.current_thread() is threading.main_thread():  # handlers can only be set there
+            for signum in self.SIGNALS:
+                self._previous[signum] = signal.signal(signum, self._note)
+        return self
+
+    def __exit__(self, *exc_info: object) -> None:
+        for signum, handler in self._previous.items():
+            signal.signal(signum, handler)
+
+    def _note(self, signum: int, frame: Any) -> None:
+        self.received = self.received or signum
+
+    def agreed(self) -> int:
+        """The signal some rank received (0: none), the same on every rank (collective when P > 1)."""
+        if self.comm.size == 1:
+            return self.received
+        flag = np.array([self.received], dtype=np.int64)
+        return int(self.comm.allreduce_max(flag)[0])
+
+
 HEARTBEAT_S = 30.0
 """Seconds between progress lines when no progress bar is shown (a batch log, a pipe) and ``echo`` is on."""
 
@@ -376,12 +427,13 @@ def train(job: Job, comm: Comm | None = None, resume: bool = False, progress: bo
     batch log shows it at once) and, without a progress bar, a heartbeat line every :data:`HEARTBEAT_S` seconds.
     """
     comm = comm or Comm()
-    with threadpool_limits(limits=job.run.threads, user_api="blas"):
+    with threadpool_limits(limits=job.run.threads, user_api="blas"), _StopSignals(comm) as stop:
         trainer = Trainer(job, comm)
-        return _train_loop(trainer, resume, progress, echo)
+        return _train_loop(trainer, resume, progress, echo, stop)
 
 
-def _train_loop(trainer: Trainer, resume: bool, progress: bool, echo: bool = False) -> dict[str, Any]:
+def _train_loop(trainer: Trainer, resume: bool, progress: bool, echo: bool = False,
+                stop: _StopSignals | None = None) -> dict[str, Any]:
     job, comm, model = trainer.job, trainer.comm, trainer.model
     workdir = job.workdir
     lead = comm.rank == 0
@@ -426,6 +478,13 @@ def _train_loop(trainer: Trainer, resume: bool, progress: bool, echo: bool = Fal
                     _say(epoch_line(record), bar)
             epoch_begin = time.perf_counter()
             epoch_steps = 0
+        signum = stop.agreed() if stop is not None and step < total else 0
+        if signum:  # every rank finished this step; save it together, then leave
+            if bar is not None:
+                bar.close()
+            trainer.save(step)
+            trainer.exchange.close()
+            raise TrainingStopped(signum, step, workdir)
     if bar is not None:
         bar.close()
     state = trainer.save(step)

@@ -7,6 +7,7 @@
 #SBATCH --cpus-per-task=1
 #SBATCH --time=01:00:00
 #SBATCH --output=shardmill-%j.out
+#SBATCH --signal=TERM@120        # SIGTERM 2 min before the limit: shardmill checkpoints and exits 143
 
 set -euo pipefail
 JOB=${1:?usage: sbatch slurm-train.sh job.toml}
@@ -21,4 +22,5 @@ export OPENBLAS_NUM_THREADS=1 OMP_NUM_THREADS=1 MKL_NUM_THREADS=1
 export NUMBA_CACHE_DIR=${NUMBA_CACHE_DIR:-$HOME/.cache/shardmill-numba}
 python -m shardmill info
 
+# A rerun of this script after a time limit continues from the last checkpoint (add --resume once one exists).
 srun --cpu-bind=cores python -m shardmill train "$JOB" --no-progress

@@ -14,6 +14,7 @@ import shutil
 import signal
 import subprocess
 import sys
+import threading
 import time
 from collections.abc import Callable, Mapping, Sequence
 from pathlib import Path
@@ -81,7 +82,8 @@ def mpiexec_command(ranks: int, python_args: Sequence[str], launcher_args: Seque
 def run_command(command: Sequence[str], env: Mapping[str, str], timeout: float | None = None,
                 stdout: int | IO[Any] | None = None, stderr: int | IO[Any] | None = None,
                 cwd: str | Path | None = None, own_group: bool = True,
-                while_running: Callable[[float], None] | None = None) -> subprocess.CompletedProcess:
+                while_running: Callable[[float], None] | None = None,
+                forward_signals: bool = False) -> subprocess.CompletedProcess:
     """Run ``command`` to its end and return it completed (text output where ``stdout``/``stderr`` is PIPE).
 
     ``stdout``/``stderr`` as for subprocess (None: ours, PIPE: captured, a file, STDOUT). ``while_running`` is
@@ -89,10 +91,16 @@ def run_command(command: Sequence[str], env: Mapping[str, str], timeout: float |
     session, so that on a time limit, Ctrl-C or any exception here the launcher *and every rank* are ended
     (SIGTERM to the group, SIGKILL if it lingers); without, only the process itself is killed (the ``--ranks``
     path keeps the terminal's group, so Ctrl-C reaches mpiexec as typed). Past ``timeout`` seconds the run is
-    stopped and ``subprocess.TimeoutExpired`` raised.
+    stopped and ``subprocess.TimeoutExpired`` raised. ``forward_signals``: a SIGTERM or SIGINT sent to this
+    process while the command runs is passed on to it (a batch system signals the `--ranks` wrapper; mpiexec
+    passes it to the ranks, which checkpoint and stop) instead of ending this process alone.
     """
     process = subprocess.Popen(list(command), stdout=stdout, stderr=stderr, text=True, env=dict(env), cwd=cwd,
                                start_new_session=own_group)
+    previous = {}
+    if forward_signals and threading.current_thread() is threading.main_thread():
+        for signum in (signal.SIGTERM, signal.SIGINT):
+            previous[signum] = signal.signal(signum, lambda received, frame: process.send_signal(received))
     begin = time.perf_counter()
     try:
         while True:
@@ -106,6 +114,8 @@ def run_command(command: Sequence[str], env: Mapping[str, str], timeout: float |
                 if while_running is not None:
                     while_running(elapsed)
     finally:
+        for signum, handler in previous.items():
+            signal.signal(signum, handler)
         if process.poll() is None:
             _stop(process, own_group)
     return subprocess.CompletedProcess(process.args, process.returncode, out, err)
@@ -153,7 +163,8 @@ def relaunch(ranks: int, args: list[str], timeout: float | None = None) -> int:
 
     BLAS threads are left to the job (``run.threads``), and the run stays in the terminal's process group.
     """
-    return run_for_status(ranks, ["-m", "shardmill", *args], timeout=timeout, threads=None, own_group=False)
+    return run_for_status(ranks, ["-m", "shardmill", *args], timeout=timeout, threads=None, own_group=False,
+                          forward_signals=True)
 
 
 def strip_ranks(argv: list[str]) -> list[str]:

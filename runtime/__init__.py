@@ -19,8 +19,11 @@ __version__ = "0.1.0"
 __all__ = ["MLP", "Job", "JobError", "job_from_dict", "load_job", "train", "__version__"]
 
 
-def train(job: Job, resume: bool = False, progress: bool = True) -> dict[str, Any]:
-    """Train a job on every rank of MPI.COMM_WORLD (one process without a launcher); see trainer.train."""
+def train(job: Job, resume: bool = False, progress: bool = True, fresh: bool = False) -> dict[str, Any]:
+    """Train a job on every rank of MPI.COMM_WORLD (one process without a launcher); see trainer.train.
+
+    A workdir that holds an earlier run is refused unless ``resume`` (continue it) or ``fresh`` (clear it first).
+    """
     from shardmill.trainer import train as _train
 
-    return _train(job, resume=resume, progress=progress)
+    return _train(job, resume=resume, progress=progress, fresh=fresh)

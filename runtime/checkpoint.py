@@ -131,9 +131,39 @@ def save(state: TrainingState, root: Path, keep: int) -> Path:
     _write_text(pointer, name + "\n")
     os.replace(pointer, root / "latest")
     _fsync_dir(root)
-    for old in sorted(root.glob("step-*"))[:-keep]:
-        shutil.rmtree(old, ignore_errors=True)  # only after `latest` points at the new one
+    prune(root, keep, name)
     return final
+
+
+def _step_of(folder: Path) -> int:
+    try:
+        return int(folder.name.removeprefix("step-"))
+    except ValueError:
+        return -1
+
+
+def prune(root: Path, keep: int, newest: str) -> None:
+    """Remove all but the ``keep`` checkpoints of highest step, and never ``newest`` (the one `latest` names).
+
+    By step number, not by name (names sort wrongly past 10⁸ steps), and only after `latest` has moved on.
+    """
+    ordered = sorted((p for p in root.glob("step-*") if p.is_dir()), key=_step_of)
+    for old in ordered[:-keep]:
+        if old.name != newest:
+            shutil.rmtree(old, ignore_errors=True)
+
+
+def holds_a_run(workdir: Path) -> str | None:
+    """What in ``workdir`` belongs to an earlier run (for the refusal message), or None for an unused folder."""
+    found = [name for name in ("checkpoints/latest", "metrics.jsonl", "final.npz") if (workdir / name).exists()]
+    return ", ".join(found) if found else None
+
+
+def clear_run(workdir: Path) -> None:
+    """Remove an earlier run's checkpoints, metrics.jsonl and final.npz from ``workdir`` (``train --fresh``)."""
+    shutil.rmtree(workdir / "checkpoints", ignore_errors=True)
+    for name in ("metrics.jsonl", "final.npz"):
+        (workdir / name).unlink(missing_ok=True)
 
 
 def resolve(path: Path) -> Path:

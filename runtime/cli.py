@@ -46,7 +46,11 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("train", help="train a job file")
     p.add_argument("job", type=Path)
-    p.add_argument("--resume", action="store_true", help="continue from workdir/checkpoints/latest")
+    again = p.add_mutually_exclusive_group()
+    again.add_argument("--resume", action="store_true", help="continue from workdir/checkpoints/latest")
+    again.add_argument("--fresh", action="store_true",
+                       help="start over in a workdir that holds a run: remove its checkpoints, metrics.jsonl and "
+                            "final.npz first")
     p.add_argument("--no-progress", action="store_true", help="no progress bar")
     ranks(p)
 
@@ -154,7 +158,7 @@ def cmd_train(args: argparse.Namespace) -> int:
     job = load_job(args.job)
     comm = Comm()
     try:
-        result = train(job, comm, resume=args.resume, progress=not args.no_progress, echo=True)
+        result = train(job, comm, resume=args.resume, progress=not args.no_progress, echo=True, fresh=args.fresh)
     except TrainingStopped as stopped:
         if comm.rank == 0:
             print(f"shardmill: {stopped}", file=sys.stderr, flush=True)

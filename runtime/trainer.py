@@ -418,7 +418,7 @@ def epoch_line(record: dict[str, Any]) -> str:
 
 
 def train(job: Job, comm: Comm | None = None, resume: bool = False, progress: bool = True,
-          echo: bool = False) -> dict[str, Any]:
+          echo: bool = False, fresh: bool = False) -> dict[str, Any]:
     """Train ``job`` on every rank of ``comm`` (MPI.COMM_WORLD by default).
 
     Rank 0 writes ``workdir/metrics.jsonl`` (one JSON object per epoch), checkpoints and
@@ -427,9 +427,24 @@ def train(job: Job, comm: Comm | None = None, resume: bool = False, progress: bo
     batch log shows it at once) and, without a progress bar, a heartbeat line every :data:`HEARTBEAT_S` seconds.
     """
     comm = comm or Comm()
+    if not resume:
+        _claim_workdir(job.workdir, fresh, comm)
     with threadpool_limits(limits=job.run.threads, user_api="blas"), _StopSignals(comm) as stop:
         trainer = Trainer(job, comm)
         return _train_loop(trainer, resume, progress, echo, stop)
+
+
+def _claim_workdir(workdir: Path, fresh: bool, comm: Comm) -> None:
+    """A new run needs a workdir without an earlier run's files: refuse one (every rank alike), or clear it."""
+    error: Exception | None = None
+    if comm.rank == 0:
+        found = checkpoint.holds_a_run(workdir)
+        if found and fresh:
+            checkpoint.clear_run(workdir)
+        elif found:
+            error = JobError(f"`run.workdir` {str(workdir)!r} holds an earlier run ({found}); continue it with "
+                             f"--resume, start over with --fresh, or choose another `run.workdir`")
+    agree(comm, error)
 
 
 def _train_loop(trainer: Trainer, resume: bool, progress: bool, echo: bool = False,

@@ -79,3 +79,34 @@ def test_without_a_bar_a_heartbeat_says_where_the_run_is(tmp_path, capsys, monke
     beats = [line for line in capsys.readouterr().out.splitlines() if line.startswith("step")]
     assert beats and all("samples/s" in line and "s left" in line for line in beats)
     assert beats[0].split()[1] == "1/3"  # 353 training rows in batches of 128: 3 steps. common practice
+
+
+def test_a_used_workdir_is_refused_unless_resumed_or_started_fresh(tmp_path):
+    from helpers import run_cli, write_job
+
+    X, y = load_diabetes(return_X_y=True)
+    np.save(tmp_path / "x.npy", X)
+    np.save(tmp_path / "y.npy", (y - y.mean()) / y.std())
+    job = write_job(tmp_path, {"layers": [10, 4, 1], "loss": "squared_error"}, {"global_batch": 64, "epochs": 2},
+                    {"method": "sgd", "learning_rate": 0.01}, {"inputs": "x.npy", "targets": "y.npy"})
+    assert run_cli(["train", str(job), "--no-progress"]).returncode == 0
+    again = run_cli(["train", str(job), "--no-progress"])
+    assert again.returncode == 2 and "Traceback" not in again.stderr  # a user error: one line, exit 2
+    assert "holds an earlier run" in again.stderr and "--resume" in again.stderr and "--fresh" in again.stderr
+    metrics = tmp_path / "run" / "metrics.jsonl"
+    assert len(metrics.read_text().splitlines()) == 2  # nothing appended by the refused run
+    assert run_cli(["train", str(job), "--no-progress", "--fresh"]).returncode == 0
+    epochs = [json.loads(line)["epoch"] for line in metrics.read_text().splitlines()]
+    assert epochs == [1, 2]  # the earlier run's records are gone, not mixed in
+
+
+def test_pruning_keeps_the_highest_steps_by_number_and_never_the_newest(tmp_path):
+    from shardmill.checkpoint import prune
+
+    for step in (7, 99_999_999, 100_000_000):  # as names, 'step-100000000' sorts before 'step-99999999'
+        (tmp_path / f"step-{step:08d}").mkdir()
+    prune(tmp_path, keep=1, newest="step-100000000")
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["step-100000000"]
+    (tmp_path / "step-00000003").mkdir()  # a lower step just written (never the case in one run, but safe)
+    prune(tmp_path, keep=1, newest="step-00000003")
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["step-00000003", "step-100000000"]

@@ -115,7 +115,7 @@ def cmd_demo(args) -> int:
     sys.stdout.flush()
     job = str(out / "job.toml")
     begin = time.perf_counter()
-    code = relaunch(ranks, ["train", job, "--no-progress"], timeout=600)
+    code = relaunch(ranks, ["train", job, "--no-progress", "--fresh"], timeout=600)  # the demo regenerates it all
     if code != 0:
         return code
     seconds = time.perf_counter() - begin

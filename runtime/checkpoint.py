@@ -153,7 +153,7 @@ def prune(root: Path, keep: int, newest: str) -> None:
             shutil.rmtree(old, ignore_errors=True)
 
 
-def holds_a_run(workdir: Path) -> str | None:
+def holds_a_run(workdir: Path) -> str | None:  # the lock file alone is not a run
     """What in ``workdir`` belongs to an earlier run (for the refusal message), or None for an unused folder."""
     found = [name for name in ("checkpoints/latest", "metrics.jsonl", "final.npz") if (workdir / name).exists()]
     return ", ".join(found) if found else None

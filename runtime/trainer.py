@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import json
 import math
+import os
 import signal
 import sys
 import threading
@@ -427,11 +428,55 @@ def train(job: Job, comm: Comm | None = None, resume: bool = False, progress: bo
     batch log shows it at once) and, without a progress bar, a heartbeat line every :data:`HEARTBEAT_S` seconds.
     """
     comm = comm or Comm()
-    if not resume:
-        _claim_workdir(job.workdir, fresh, comm)
-    with threadpool_limits(limits=job.run.threads, user_api="blas"), _StopSignals(comm) as stop:
-        trainer = Trainer(job, comm)
-        return _train_loop(trainer, resume, progress, echo, stop)
+    with _WorkdirLock(job.workdir, comm):
+        if not resume:
+            _claim_workdir(job.workdir, fresh, comm)
+        with threadpool_limits(limits=job.run.threads, user_api="blas"), _StopSignals(comm) as stop:
+            trainer = Trainer(job, comm)
+            return _train_loop(trainer, resume, progress, echo, stop)
+
+
+class _WorkdirLock:
+    """One job per workdir: rank 0 holds an exclusive lock on ``workdir/.shardmill.lock`` while the job runs.
+
+    An advisory ``flock``: the kernel drops it when the process ends however it ends, so a killed job never
+    blocks its own resume. A second job (another training, or a resume started while the first still runs) is
+    refused on every rank before anything else happens.
+    """
+
+    def __init__(self, workdir: Path, comm: Comm) -> None:
+        self.workdir, self.comm = workdir, comm
+        self._file: Any = None
+
+    def __enter__(self) -> _WorkdirLock:
+        import fcntl
+
+        error: Exception | None = None
+        if self.comm.rank == 0:
+            path = self.workdir / ".shardmill.lock"
+            try:
+                self.workdir.mkdir(parents=True, exist_ok=True)
+                self._file = open(path, "a+")  # noqa: SIM115 - held open for the whole job
+                fcntl.flock(self._file, fcntl.LOCK_EX | fcntl.LOCK_NB)
+                self._file.seek(0)
+                self._file.truncate()
+                self._file.write(f"{os.getpid()}\n")
+                self._file.flush()
+            except BlockingIOError:
+                self._file.seek(0)
+                holder = self._file.read().strip() or "?"
+                self._file.close()
+                self._file = None
+                error = JobError(f"`run.workdir` {str(self.workdir)!r} is in use by another shardmill job "
+                                 f"(process {holder}); wait for it to end or choose another `run.workdir`")
+            except OSError as err:
+                error = JobError(f"`run.workdir` {str(self.workdir)!r} cannot be used: {err.strerror or err}")
+        agree(self.comm, error)
+        return self
+
+    def __exit__(self, *exc_info: object) -> None:
+        if self._file is not None:
+            self._file.close()  # closing releases the lock
 
 
 def _claim_workdir(workdir: Path, fresh: bool, comm: Comm) -> None:

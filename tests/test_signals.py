@@ -68,3 +68,29 @@ def test_a_signal_checkpoints_and_the_resume_matches_an_uninterrupted_run(tmp_pa
     assert resumed.returncode == 0, resumed.stderr[-3000:]
     # Exact mode: the resumed run ends on the uninterrupted run's bits (README, fast and exact reduction).
     assert final_digest(tmp_path / "stopped-run") == final_digest(tmp_path / "straight-run")
+
+
+def test_a_second_job_on_a_workdir_in_use_is_refused_and_a_killed_job_leaves_it_free(tmp_path):
+    make_classification(tmp_path, rows=240, features=6, classes=3, seed=4)
+    job = job_file(tmp_path / "job", tmp_path, "busy-run")
+    text = job.read_text().replace("epochs = 60", "epochs = 400\nsave_every = 5")
+    job.write_text(text)
+    command = [sys.executable, "-m", "shardmill", "train", str(job), "--no-progress"]
+    first = subprocess.Popen(command, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+                             env=rank_environment(threads=1, launched=False), start_new_session=True)
+    try:
+        latest = tmp_path / "busy-run" / "checkpoints" / "latest"
+        deadline = time.monotonic() + 120
+        while not latest.exists() and time.monotonic() < deadline:
+            time.sleep(0.05)
+        second = run_cli(["train", str(job), "--resume", "--no-progress"], timeout=120)
+        assert second.returncode == 2 and "Traceback" not in second.stderr
+        assert "is in use by another shardmill job" in second.stderr and f"process {first.pid}" in second.stderr
+        os.killpg(first.pid, signal.SIGKILL)  # no chance to clean up: the kernel drops its lock
+        first.communicate(timeout=60)
+    finally:
+        if first.poll() is None:
+            os.killpg(first.pid, signal.SIGKILL)
+    job.write_text(job.read_text().replace("epochs = 400", "epochs = 1"))  # a short run to finish with
+    after = run_cli(["train", str(job), "--fresh", "--no-progress"], timeout=120)
+    assert after.returncode == 0, after.stderr[-2000:]  # the killed job's lock went with it

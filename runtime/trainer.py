@@ -155,6 +155,7 @@ class Trainer:
         self.timer.start()
         rows = self.sampler.batch(epoch, step_in_epoch)  # sample: the G global indices
         self.gradient(rows)  # shard, gather, forward, loss, backward, exchange: the mean gradient
+        self.check_finite()  # a diverged step stops every rank here, before it touches the parameters
         params, gradient = self.model.params, self.exchange.owned_gradient()  # gradient: of params[owned]
         if self.optimizer.clips:
             self.optimizer.clip(gradient, self.exchange.sum_squares())
@@ -173,8 +174,21 @@ class Trainer:
         if every and self.step_count % every == 0 and not self.comm.all_equal(params):
             raise RuntimeError(f"parameters drifted apart across ranks at step {self.step_count}")
 
+    def check_finite(self) -> None:
+        """Raise :class:`Diverged` on every rank when any rank saw a non-finite loss or an unsummable gradient.
+
+        One MAX allreduce of a flag (P > 1), so all ranks stop after the same step and nobody waits.
+        """
+        reason = self.problem or self.exchange.problem
+        flag = np.array([0 if reason is None else 1], dtype=np.int64)
+        if self.comm.size > 1:
+            self.comm.allreduce_max(flag)
+        if flag[0]:
+            raise Diverged(self.step_count + 1, reason or "on another rank", self.job.workdir)
+
     def gradient(self, rows: np.ndarray) -> None:
         """The mean gradient of the global batch ``rows`` over every rank: ``exchange.owned_gradient()`` after it."""
+        self.problem = self.exchange.problem = None
         for part, part_grads in self.exchange.parts(rows):
             self.part_gradient(part, part_grads)
             self.exchange.add(part_grads)
@@ -192,6 +206,8 @@ class Trainer:
         targets = self.gather_targets(rows)
         self.timer.lap("data")
         loss_sum = self.ws.forward_loss(n, targets, 1.0 / G)
+        if not math.isfinite(loss_sum) and self.problem is None:
+            self.problem = f"the loss of {n} rows is {loss_sum!r}"
         self.part_sums[:] = (loss_sum, self.quality_sum(n, targets), n)
         self.train_sums.add(self.part_sums)
         self.last_part_rows = n
@@ -347,6 +363,19 @@ def warm_up_kernels(trainer: Trainer) -> float:
         run()
     comm.barrier()  # nobody's first timed step waits for another rank's compilation
     return time.perf_counter() - begin
+
+
+class Diverged(JobError):
+    """The run diverged: a non-finite loss, or a gradient that exact mode cannot sum. Raised on every rank before
+    the step's update, so the last checkpoint is still good; a user-level error (exit 2, one line)."""
+
+    def __init__(self, step: int, reason: str, workdir: Path) -> None:
+        latest = workdir / "checkpoints" / "latest"
+        last = latest.read_text().strip() if latest.is_file() else ""
+        saved = f"; the last checkpoint is {last} in {str(workdir / 'checkpoints')!r}" if last else ""
+        super().__init__(f"step {step}: the run diverged ({reason}); try a lower `optimizer.learning_rate` or "
+                         f"`optimizer.clip_global_norm`{saved}")
+        self.step = step
 
 
 class TrainingStopped(Exception):

@@ -118,6 +118,7 @@ class Exchange:
         # rank, and set by the strategy, never read off ``owned``: a rank of a tiny model may own every parameter
         # (or none) while the others still run the sharded collectives.
         self.sharded = False
+        self.problem: str | None = None  # why this step's sum cannot be trusted (a diverged run), or None
 
     @property
     def owned_size(self) -> int:
@@ -405,12 +406,11 @@ class ExactExchange(Exchange):
         # The first chunk overwrites the limbs: no zeroing pass, no read.
         self.check_range(exactsum.accumulate(part_grads, self.limbs, replace=k == self.first))
 
-    @staticmethod
-    def check_range(largest: float) -> None:
-        """Stop on a chunk gradient the exact accumulator cannot hold (|g| ≥ 2^31, inf or NaN)."""
-        if not largest < exactsum.MAX_ABS:
-            raise FloatingPointError(f"gradient element {largest!r} is outside the exact accumulator's "
-                                     f"range (|g| < 2^31)")
+    def check_range(self, largest: float) -> None:
+        """Note a chunk gradient the exact accumulator cannot hold (|g| ≥ 2^31, inf or NaN): the step then stops
+        on every rank after the sum (the collectives still run, so no rank is left waiting)."""
+        if not largest < exactsum.MAX_ABS and self.problem is None:
+            self.problem = f"a gradient element is {largest!r}, outside the exact accumulator's range (|g| < 2^31)"
 
     def finish(self) -> None:
         """Reduce-scatter the limbs, read back this rank's slice, allgather the float gradient."""
@@ -562,11 +562,16 @@ class CompactExchange(ExactExchange):
             self.largest.fill(0.0)
         largest = compactsum.bucket_max_abs(part_grads, self.bounds, self.largest)
         if not math.isfinite(largest):
-            raise FloatingPointError(f"gradient element {largest!r} is not finite; exact mode cannot sum it")
+            np.nan_to_num(self.largest, copy=False, nan=np.inf)  # MAX is well defined on inf, not on NaN
+            if self.problem is None:
+                self.problem = f"a gradient element is {largest!r}; exact mode cannot sum it"
 
     def finish(self) -> None:
         """Agree on the scales, convert and add this rank's chunks, reduce-scatter, read back (and allgather)."""
         self.comm.allreduce_max(self.largest)
+        if not np.all(np.isfinite(self.largest)):  # the same on every rank: all of them skip the sum together
+            self.problem = self.problem or "a gradient element on another rank is not finite"
+            return
         self.shifts = compactsum.shifts(self.largest, self.chunks, self.bits)
         limit = 2.0 ** (self.bits - compactsum.headroom_bits(self.chunks))
         for i, buffer in enumerate(self.chunk_buffers):

@@ -13,6 +13,7 @@ from __future__ import annotations
 import copy
 import difflib
 import hashlib
+import itertools
 import json
 import math
 import numbers
@@ -30,6 +31,11 @@ SCHEDULES = ("constant", "step", "cosine")
 REDUCTIONS = ("fast", "exact")
 # The output activation each loss implies; only squared_error lets the job choose another (`model.output`).
 IMPLIED_OUTPUT = {"softmax_cross_entropy": "softmax", "binary_cross_entropy": "sigmoid", "squared_error": "identity"}
+
+
+MAX_PARAMS = 2**31
+"""The most parameters a model may have: flat offsets stay within int32-sized views, and 2^31 float32 values
+are 8 GiB for the parameters alone (gradients and optimizer state come on top)."""
 
 
 class JobError(ValueError):
@@ -152,7 +158,7 @@ SCHEMA: tuple[Key, ...] = (
         low=1, trajectory=False),
     Key("run.workdir", "text", "run", "folder for metrics.jsonl, checkpoints/ and final.npz, relative to the job "
         "file", trajectory=False, allowed="a folder path"),
-    Key("run.threads", "integer", 1, "BLAS threads per process", low=1, trajectory=False),
+    Key("run.threads", "integer", 1, "BLAS threads per process", low=1, high=1024, trajectory=False),
     Key("run.max_steps", "integer", 0, "stop after this many steps; 0 = run all epochs", low=0, trajectory=False),
     Key("run.check_every", "integer", 0, "steps between checks that every rank holds the same parameters; "
         "0 = off", low=0, trajectory=False),
@@ -201,7 +207,11 @@ def _layers(path: str, value: object) -> list[int]:
             or not all(isinstance(n, numbers.Integral) and not isinstance(n, bool) and n >= 1 for n in value)):
         raise JobError(f"`{path}` must be a list of at least two positive integers "
                        f"(inputs, hidden…, outputs); got {value!r}")
-    return [int(n) for n in value]
+    widths = [int(n) for n in value]
+    params = sum(a * b + b for a, b in itertools.pairwise(widths))
+    if params > MAX_PARAMS:
+        raise JobError(f"`{path}` = {widths} gives {params:,} parameters; at most {MAX_PARAMS:,} (2^31) are allowed")
+    return widths
 
 
 def _names(key: Key, value: object) -> str | list[str]:
@@ -228,7 +238,9 @@ def _check(key: Key, value: object) -> Any:
     if key.kind == "file":
         return _file(key.path, value)
     if key.kind == "text":
-        return str(value)
+        if not isinstance(value, str) or not value.strip():
+            raise JobError(f"`{key.path}` must be {key.allowed or 'text'}; got {value!r}")
+        return value
     if key.kind == "layers":
         return _layers(key.path, value)
     if key.kind == "names":
@@ -390,9 +402,16 @@ def load_job(path: str | Path) -> Job:
     if not path.is_file():
         raise JobError(f"job file {str(path)!r} does not exist")
     try:
-        raw = tomllib.loads(path.read_text())
+        raw = tomllib.loads(path.read_text(encoding="utf-8"))
     except tomllib.TOMLDecodeError as err:
         raise JobError(f"job file {str(path)!r} is not valid TOML: {err}") from None
+    except UnicodeDecodeError as err:
+        raise JobError(f"job file {str(path)!r} is not UTF-8 text (TOML files are): byte {err.start} "
+                       f"is {err.object[err.start:err.start + 1]!r}") from None
+    except RecursionError:
+        raise JobError(f"job file {str(path)!r} nests tables or arrays too deeply to read") from None
+    except OSError as err:
+        raise JobError(f"job file {str(path)!r} cannot be read: {err.strerror or err}") from None
     return job_from_dict(raw, base=path.parent)
 
 

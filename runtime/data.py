@@ -7,6 +7,7 @@ rank takes one contiguous slice of every global batch.
 
 from __future__ import annotations
 
+import zipfile
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -35,11 +36,25 @@ def read_array(path: Path, field_name: str, mmap: bool = True) -> np.ndarray:
                 return archive[key]
         if suffix == ".csv":
             return np.loadtxt(path, delimiter=",", ndmin=2, dtype=np.float64)
-    except (ValueError, OSError) as err:
-        if isinstance(err, JobError):
-            raise
-        raise JobError(f"`{field_name}` file {str(path)!r} cannot be read: {err}") from None
+    except JobError:
+        raise
+    except (ValueError, OSError, EOFError, KeyError, zipfile.BadZipFile) as err:
+        # numpy's own messages for an empty, truncated or damaged file (a bad CRC, a short header…)
+        raise JobError(f"`{field_name}` file {str(path)!r} cannot be read: {err or type(err).__name__}") from None
     raise JobError(f"`{field_name}` must be a .npy, .npz or .csv file; got {str(path)!r}")
+
+
+def as_numbers(X: np.ndarray, field_name: str) -> np.ndarray:
+    """Inputs in a dtype the kernels take: float32 or float64 in this machine's byte order.
+
+    Integers, float16, long double and the other byte order are converted to float64 (loaded into memory);
+    anything else (strings, objects, complex numbers) is refused.
+    """
+    if X.dtype.kind not in "fiu":
+        raise JobError(f"`{field_name}` must hold real numbers; got dtype {X.dtype}")
+    if X.dtype in (np.dtype(np.float32), np.dtype(np.float64)):
+        return X
+    return np.asarray(X, dtype=np.float64)
 
 
 def squeeze_labels(y: np.ndarray) -> np.ndarray:

@@ -25,6 +25,7 @@ from shardmill.config import Job, JobError
 from shardmill.data import (
     Sampler,
     Split,
+    as_numbers,
     block_range,
     column_statistics,
     first_of_ranks,
@@ -71,10 +72,7 @@ def load_dataset(job: Job, model: MLP, comm: Comm) -> Dataset:
             raise JobError("`data.inputs` and `data.targets` must both name files")
         X = np.asarray(read_array(job.path(job.data.inputs), "data.inputs"))
         y = squeeze_labels(np.asarray(read_array(job.path(job.data.targets), "data.targets", mmap=False)))
-        if X.dtype.kind not in "fiu":
-            raise JobError(f"`data.inputs` must hold numbers; got dtype {X.dtype}")
-        if X.dtype.kind != "f":
-            X = X.astype(np.float64)
+        X = as_numbers(X, "data.inputs")
         model.check_inputs(X, "data.inputs")
         if y.shape[0] != X.shape[0]:
             raise JobError(f"`data.targets` has {y.shape[0]} rows but `data.inputs` has {X.shape[0]}")
@@ -120,7 +118,15 @@ class Trainer:
         run = resolve_update(job, self.comm.size)  # run.update = "auto" decided for this many ranks
         Strategy = exchange_strategy(run)
         Strategy.check(run, self.comm.size)  # before any collective, identically on every rank
-        self.model = model_from_job(job)
+        error: Exception | None = None
+        try:
+            self.model = model_from_job(job)
+        except MemoryError:
+            layers = job.model.layers
+            params = sum(a * b + b for a, b in zip(layers, layers[1:], strict=False))
+            error = JobError(f"`model.layers` = {layers} ({params:,} parameters, {job.model.dtype}) does not fit in "
+                             f"this process's memory")
+        agree(self.comm, error)
         self.data = dataset if dataset is not None else load_dataset(job, self.model, self.comm)
         self.sampler = Sampler(self.data.split.train, run.global_batch, run.seed)
         self.grads = np.zeros_like(self.model.params)

@@ -21,7 +21,7 @@ from typing import Any
 
 import numpy as np
 from shardmill import checkpoint
-from shardmill.config import Job, JobError
+from shardmill.config import Job, JobError, LocalJobError
 from shardmill.data import (
     Sampler,
     Split,
@@ -304,7 +304,15 @@ class Trainer:
         """
         state = self.training_state(step)
         if self.comm.rank == 0:
-            checkpoint.save(state, self.job.workdir / "checkpoints", self.job.run.keep_checkpoints)
+            root = self.job.workdir / "checkpoints"
+            try:
+                checkpoint.save(state, root, self.job.run.keep_checkpoints)
+            except OSError as err:  # a full disk, a read-only file system: the previous checkpoint is intact
+                latest = root / "latest"
+                last = latest.read_text().strip() if latest.is_file() else None
+                kept = f"the last complete checkpoint is {last}" if last else "no checkpoint was completed"
+                raise LocalJobError(f"the checkpoint of step {step} cannot be written under {str(root)!r}: "
+                                    f"{err.strerror or err}; {kept}") from None
         return state
 
     def resume(self) -> int:

@@ -110,3 +110,30 @@ def test_pruning_keeps_the_highest_steps_by_number_and_never_the_newest(tmp_path
     (tmp_path / "step-00000003").mkdir()  # a lower step just written (never the case in one run, but safe)
     prune(tmp_path, keep=1, newest="step-00000003")
     assert sorted(p.name for p in tmp_path.iterdir()) == ["step-00000003", "step-100000000"]
+
+
+def test_a_full_disk_during_a_checkpoint_is_one_line_naming_the_last_good_one(tmp_path, monkeypatch):
+    import errno
+
+    from shardmill import checkpoint
+    from shardmill.config import LocalJobError
+    from shardmill.trainer import train
+
+    job = _job(tmp_path, epochs=2)
+    job.run.save_every = 1
+    real = checkpoint._write_npz
+    calls = {"n": 0}
+
+    def filling_up(path, arrays):
+        calls["n"] += 1
+        if calls["n"] > 4:  # two checkpoints fit, the third does not
+            raise OSError(errno.ENOSPC, "No space left on device")
+        real(path, arrays)
+
+    monkeypatch.setattr(checkpoint, "_write_npz", filling_up)
+    with pytest.raises(LocalJobError) as caught:
+        train(job, progress=False)
+    message = str(caught.value)  # run_guarded prints it as one line and ends every rank (exit 2)
+    assert "cannot be written" in message and "No space left on device" in message
+    assert "the last complete checkpoint is step-00000002" in message
+    assert (tmp_path / "run" / "checkpoints" / "step-00000002" / "state.json").is_file()  # still intact

@@ -104,6 +104,10 @@ def build_parser() -> argparse.ArgumentParser:
 
     sub.add_parser("info", help="versions, BLAS, MPI, cores and the Numba cache")
 
+    p = sub.add_parser("compile", help="compile the kernels a job uses into the Numba cache (before a batch job "
+                                       "starts its ranks); needs no data")
+    p.add_argument("job", type=Path)
+
     p = sub.add_parser("demo", help="generate the pump-fault data set, train on several ranks, verify")
     p.add_argument("--out", type=Path, default=Path("shardmill-demo"))
     p.add_argument("--ranks", type=_positive, default=None, help="processes (default: cores, at most 4)")
@@ -139,6 +143,8 @@ def dispatch(args: argparse.Namespace) -> int:
         from shardmill.predict import cmd_predict
 
         return cmd_predict(args)
+    if args.command == "compile":
+        return cmd_compile(args)
     if args.command == "info":
         from shardmill.info import cmd_info
 
@@ -166,6 +172,26 @@ def cmd_train(args: argparse.Namespace) -> int:
     if comm.rank == 0:
         print(f"done: {result['steps']} steps on {comm.size} process(es); final parameters in "
               f"{Path(result['workdir']) / 'final.npz'}")
+    return 0
+
+
+def cmd_compile(args: argparse.Namespace) -> int:
+    """Compile what the job's step runs (its dtype, activations, loss, optimizer, exchange) on made-up rows."""
+    from shardmill.bench import synthetic_dataset
+    from shardmill.config import load_job
+    from shardmill.info import numba_cache_dir
+    from shardmill.parallel.comm import Comm
+    from shardmill.trainer import Trainer, warm_up_kernels
+
+    job = load_job(args.job)
+    comm = Comm()
+    m = job.model
+    dataset = synthetic_dataset(m.layers, m.loss, max(4 * job.run.global_batch, 64), m.dtype)
+    seconds = warm_up_kernels(Trainer(job, comm, dataset=dataset))
+    if comm.rank == 0:
+        print(f"kernels for {m.dtype}, {', '.join(m.activation) or 'no hidden layer'}, {m.loss}, "
+              f"{job.optimizer.method}, {job.run.reduction} mode ready in {seconds:.1f} s "
+              f"(Numba cache: {numba_cache_dir()})")
     return 0
 
 

@@ -541,6 +541,8 @@ def _train_loop(trainer: Trainer, resume: bool, progress: bool, echo: bool = Fal
     workdir = job.workdir
     lead = comm.rank == 0
     compile_s = warm_up_kernels(trainer)
+    if echo and lead and compile_s > 1.0:
+        print(f"kernels ready in {compile_s:.1f} s (compiled once, then loaded from Numba's cache)", flush=True)
     start_step = trainer.resume() if resume else 0
     if lead:
         workdir.mkdir(parents=True, exist_ok=True)

@@ -18,9 +18,9 @@ JOB=${1:?usage: sbatch slurm-train.sh job.toml}
 # source /path/to/venv/bin/activate
 
 export OPENBLAS_NUM_THREADS=1 OMP_NUM_THREADS=1 MKL_NUM_THREADS=1
-# One compile of the kernels before the ranks start, so they all load them from the cache.
+# One compile of the job's kernels before the ranks start, so they all load them from the cache.
 export NUMBA_CACHE_DIR=${NUMBA_CACHE_DIR:-$HOME/.cache/shardmill-numba}
-python -m shardmill info
+python -m shardmill compile "$JOB"
 
 # A rerun of this script after a time limit continues from the last checkpoint (add --resume once one exists).
 srun --cpu-bind=cores python -m shardmill train "$JOB" --no-progress

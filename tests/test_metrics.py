@@ -137,3 +137,16 @@ def test_a_full_disk_during_a_checkpoint_is_one_line_naming_the_last_good_one(tm
     assert "cannot be written" in message and "No space left on device" in message
     assert "the last complete checkpoint is step-00000002" in message
     assert (tmp_path / "run" / "checkpoints" / "step-00000002" / "state.json").is_file()  # still intact
+
+
+def test_compile_fills_the_cache_without_the_data(tmp_path):
+    from helpers import run_cli, write_job
+
+    # The data files do not exist: `compile` runs the job's kernels on made-up rows of the same shapes.
+    job = write_job(tmp_path, {"layers": [10, 8, 1], "activation": "gelu", "loss": "squared_error"},
+                    {"global_batch": 32}, {"method": "adamw", "learning_rate": 0.01},
+                    {"inputs": "missing-x.npy", "targets": "missing-y.npy"})
+    proc = run_cli(["compile", str(job)], timeout=300)
+    assert proc.returncode == 0, proc.stderr[-2000:]
+    assert "float32, gelu, squared_error, adamw, fast mode ready in" in proc.stdout
+    assert not (tmp_path / "run").exists()  # nothing trained, nothing written

@@ -36,6 +36,7 @@ is adds, multiplies by a power of two and integer ops, which vectorise on AVX2 a
 
 import numpy as np
 from numba import njit
+from shardmill.kernels.exactsum import round_to_int  # rint through the significand, exact for |v| <= 2**51
 
 TERM_BITS = 51  # |x * 2**S| < 2**TERM_BITS: the range in which the 1.5 * 2**52 trick converts exactly
 NARROW_TERM_BITS = 30  # the same for an int32 accumulator: sums of K <= 2**h terms stay within |k| <= 2**30
@@ -224,12 +225,6 @@ def _bucket_range(bounds, b, offset, m):
 
 
 @njit(cache=True, inline="always")
-def _round_to_int(v):
-    """rint(v) as an int64 for float64 |v| <= 2**51, without a float-to-int conversion instruction."""
-    return np.float64(v + _ROUND_MAGIC).view(np.int64) - _ROUND_MAGIC_BITS
-
-
-@njit(cache=True, inline="always")
 def _exact_float(k):
     """int64 |k| <= 2**51 as float64, exactly, without an int-to-float conversion instruction."""
     return np.int64(k + _ROUND_MAGIC_BITS).view(np.float64) - _ROUND_MAGIC
@@ -281,7 +276,7 @@ def _add_scaled(x, up, acc):
     for i in range(x.shape[0]):
         scaled = np.float64(x[i]) * up  # exact: a power of two (an underflow only where rint gives 0 anyway)
         largest = max(largest, np.float64(scaled).view(np.int64) & _FLOAT64_MAGNITUDE)
-        acc[i] += _round_to_int(scaled)
+        acc[i] += round_to_int(scaled)
     return largest
 
 
@@ -291,7 +286,7 @@ def _assign_scaled(x, up, acc):
     for i in range(x.shape[0]):
         scaled = np.float64(x[i]) * up
         largest = max(largest, np.float64(scaled).view(np.int64) & _FLOAT64_MAGNITUDE)
-        acc[i] = _round_to_int(scaled)
+        acc[i] = round_to_int(scaled)
     return largest
 
 

@@ -187,7 +187,7 @@ def _digits(x):
     middle = (top - digit2) * _LIMB_SCALE  # |middle| < 2**40, units of 2**-48
     digit1 = np.trunc(middle)
     # |digit0| <= 2**40; the rounding is done by adding the constant.
-    return _round_to_int((middle - digit1) * _LIMB_SCALE), _round_to_int(digit1), _round_to_int(digit2)
+    return round_to_int((middle - digit1) * _LIMB_SCALE), round_to_int(digit1), round_to_int(digit2)
 
 
 @njit(cache=True)
@@ -240,7 +240,7 @@ def _assign_pair(x, x_bits, y, y_bits, acc, limit_bits, magnitude_mask):
 
 
 @njit(cache=True, inline="always")
-def _round_to_int(v):
+def round_to_int(v):
     """rint(v) as an int64 for float64 |v| < 2**51, without a float-to-int conversion instruction."""
     return np.float64(v + _ROUND_MAGIC).view(np.int64) - _ROUND_MAGIC_BITS
 

@@ -413,14 +413,22 @@ class ExactExchange(Exchange):
             self.problem = f"a gradient element is {largest!r}, outside the exact accumulator's range (|g| < 2^31)"
 
     def finish(self) -> None:
-        """Reduce-scatter the limbs, read back this rank's slice, allgather the float gradient."""
+        """Reduce-scatter the limbs, read back this rank's slice, allgather the float gradient (replicated)."""
+        self.sum_over_ranks()
+
+    def sum_over_ranks(self) -> None:
+        """The integer sums reduce-scattered, this rank's slice read back, and (replicated) the gradient gathered."""
         if self.comm.size == 1:
-            exactsum.to_float(self.limbs, self.grads)
+            self.read_all()
             return
         self.reduce_scatter_limbs()
         self.read_back()
         if not self.sharded:
             self.gather()
+
+    def read_all(self) -> None:
+        """One rank: the whole sum read back into ``grads``."""
+        exactsum.to_float(self.limbs, self.grads)
 
     def reduce_scatter_limbs(self) -> None:
         """This rank's slice of the limbs summed over ranks, into ``slice_limbs``.
@@ -578,13 +586,10 @@ class CompactExchange(ExactExchange):
             largest = compactsum.accumulate(buffer, self.bounds, self.shifts, self.sums, replace=i == 0)
             if not largest < limit:  # cannot happen for chunks that went into the maxima: a bug, not bad data
                 raise FloatingPointError(f"compact exact sum: a term of {largest!r} is outside its grid (< {limit})")
-        if self.comm.size == 1:
-            compactsum.to_float(self.sums, self.bounds, self.shifts, self.grads)
-            return
-        self.reduce_scatter_limbs()
-        self.read_back()
-        if not self.sharded:
-            self.gather()
+        self.sum_over_ranks()
+
+    def read_all(self) -> None:
+        compactsum.to_float(self.sums, self.bounds, self.shifts, self.grads)
 
     def reduce_scatter_limbs(self) -> None:
         """This rank's slice of the int64 sums, summed over ranks, into ``slice_sums``."""

@@ -181,14 +181,7 @@ def allreduce_time(algorithm: str, p: int, n_bytes: float, alpha: float, beta: f
     power of two; the paper's β term there, 2nβ, is the same count rounded. The cleverer non-power-of-two
     schemes of Rabenseifner & Träff (2004) are not modelled. p = 1 costs 0.
     """
-    _check_algorithm(algorithm)
-    p = _check_processes(p)
-    n_bytes = check_non_negative(n_bytes, "n_bytes")
-    alpha = check_non_negative(alpha, "alpha")
-    beta = check_non_negative(beta, "beta")
-    gamma = check_non_negative(gamma, "gamma")
-    c_alpha, c_beta, c_gamma = _coefficients(algorithm, p)
-    return c_alpha * alpha + c_beta * n_bytes * beta + c_gamma * n_bytes * gamma
+    return collective_time("allreduce", algorithm, p, n_bytes, alpha, beta, gamma)
 
 
 def best_allreduce(p: int, n_bytes: float, alpha: float, beta: float, gamma: float = 0.0) -> tuple[str, float]:

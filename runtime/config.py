@@ -152,7 +152,10 @@ SCHEMA: tuple[Key, ...] = (
         choices=("auto", "thread", "library"), trajectory=False),
     Key("run.overlap", "flag", True, "start each bucket's allreduce while backward runs; false: one blocking "
         "allreduce after backward", trajectory=False),
-    Key("run.save_every", "integer", 0, "steps between checkpoints; 0 = only at the end", low=0, trajectory=False),
+    Key("run.save_every", "integer", 0, "steps between checkpoints; 0 = at the end of every epoch", low=0,
+        trajectory=False),
+    Key("run.save_minutes", "number", 0.0, "also a checkpoint once this many minutes have passed since the last "
+        "one (rank 0's clock); 0 = off", low=0.0, trajectory=False),
     Key("run.keep_checkpoints", "integer", 3, "newest checkpoints kept; older ones are removed once `latest` has "
         "moved on",
         low=1, trajectory=False),

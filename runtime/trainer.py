@@ -433,12 +433,15 @@ class _StopSignals:
     def _note(self, signum: int, frame: Any) -> None:
         self.received = self.received or signum
 
-    def agreed(self) -> int:
-        """The signal some rank received (0: none), the same on every rank (collective when P > 1)."""
-        if self.comm.size == 1:
-            return self.received
-        flag = np.array([self.received], dtype=np.int64)
-        return int(self.comm.allreduce_max(flag)[0])
+    def agreed(self, due: bool = False) -> tuple[int, bool]:
+        """(The signal some rank received or 0, whether some rank said ``due``), the same on every rank.
+
+        One MAX allreduce of two numbers when P > 1: the signal and rank 0's "a timed checkpoint is due".
+        """
+        flags = np.array([self.received, int(due)], dtype=np.int64)
+        if self.comm.size > 1:
+            self.comm.allreduce_max(flags)
+        return int(flags[0]), bool(flags[1])
 
 
 HEARTBEAT_S = 30.0
@@ -555,6 +558,7 @@ def _train_loop(trainer: Trainer, resume: bool, progress: bool, echo: bool = Fal
     epoch_steps = 0
     step = start_step
     beat = _Heartbeat(total, start_step, job.run.global_batch) if lead and echo and bar is None else None
+    last_save = time.perf_counter()
     while step < total:
         epoch, in_epoch = divmod(step, steps_per_epoch)
         trainer.step(epoch, in_epoch)
@@ -567,8 +571,6 @@ def _train_loop(trainer: Trainer, resume: bool, progress: bool, echo: bool = Fal
         end_of_epoch = step % steps_per_epoch == 0 or step == total
         if trainer.health:
             _write_health(trainer, metrics_path, lead)
-        if job.run.save_every and step % job.run.save_every == 0 and step < total:
-            trainer.save(step)
         if end_of_epoch:
             seconds = time.perf_counter() - epoch_begin
             record = _epoch_record(trainer, epoch, step, epoch_steps, seconds, compile_s)
@@ -583,11 +585,18 @@ def _train_loop(trainer: Trainer, resume: bool, progress: bool, echo: bool = Fal
                     _say(epoch_line(record), bar)
             epoch_begin = time.perf_counter()
             epoch_steps = 0
-        signum = stop.agreed() if stop is not None and step < total else 0
-        if signum:  # every rank finished this step; save it together, then leave
+        if step >= total:
+            break  # the final checkpoint follows the loop
+        minutes = job.run.save_minutes
+        due = bool(minutes) and lead and time.perf_counter() - last_save >= 60.0 * minutes
+        signum, timed = stop.agreed(due) if stop is not None else (0, due)
+        every = job.run.save_every
+        if signum or timed or (step % every == 0 if every else end_of_epoch):
+            trainer.save(step)  # by step count, at each epoch end by default, by the clock, or before stopping
+            last_save = time.perf_counter()
+        if signum:  # every rank finished this step and the checkpoint is written: leave together
             if bar is not None:
                 bar.close()
-            trainer.save(step)
             trainer.exchange.close()
             raise TrainingStopped(signum, step, workdir)
     if bar is not None:

@@ -150,3 +150,20 @@ def test_compile_fills_the_cache_without_the_data(tmp_path):
     assert proc.returncode == 0, proc.stderr[-2000:]
     assert "float32, gelu, squared_error, adamw, fast mode ready in" in proc.stdout
     assert not (tmp_path / "run").exists()  # nothing trained, nothing written
+
+
+def test_checkpoints_by_default_at_each_epoch_end_and_by_the_clock(tmp_path):
+    from shardmill.trainer import train
+
+    job = _job(tmp_path, epochs=3)  # 3 steps per epoch
+    job.run.keep_checkpoints = 100
+    train(job, progress=False)
+    root = tmp_path / "run" / "checkpoints"
+    assert sorted(p.name for p in root.glob("step-*")) == ["step-00000003", "step-00000006", "step-00000009"]
+
+    (tmp_path / "timed").mkdir()
+    timed = _job(tmp_path / "timed", epochs=1)
+    timed.run.keep_checkpoints, timed.run.save_every, timed.run.save_minutes = 100, 1000, 1e-9  # due every step
+    train(timed, progress=False)
+    names = sorted(p.name for p in (tmp_path / "timed" / "run" / "checkpoints").glob("step-*"))
+    assert names == ["step-00000001", "step-00000002", "step-00000003"]

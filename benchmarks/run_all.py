@@ -68,6 +68,12 @@ def targets(results: dict[str, Any]) -> list[dict[str, Any]]:
             ratio = row["thread_with_over_without"]
             out.append({"name": "step with / without overlap, thread, shaped link", "value": ratio,
                         "target": "<= 0.8", "met": ratio <= 0.8})
+    start = results.get("cold_start", {})
+    if "cold_s" in start:
+        for phase in ("cold", "warm"):
+            limit = start["targets"][f"{phase}_s_at_most"]
+            out.append({"name": f"{phase} start to one step, demo job, seconds", "value": start[f"{phase}_s"],
+                        "target": f"<= {limit}", "met": start[f"{phase}_s"] <= limit})
     return out
 
 
@@ -89,6 +95,7 @@ def main(argv: list[str] | None = None) -> int:
                             *(["--bind"] if args.bind else [])], 400 if args.quick else 900),
         "update_bandwidth": ([str(BENCHMARKS / "update_bandwidth.py"), *quick], 120 if args.quick else 300),
         "overlap_hidden": ([str(BENCHMARKS / "overlap_hidden.py"), *quick], 180 if args.quick else 600),
+        "cold_start": ([str(BENCHMARKS / "cold_start.py"), *quick], 120 if args.quick else 300),
     }
     meter = LoadMeter()
     combined: dict[str, Any] = {"benchmark": "run_all", "quick": args.quick, "ranks": args.ranks,

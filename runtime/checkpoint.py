@@ -100,8 +100,7 @@ def save(state: TrainingState, root: Path, keep: int) -> Path:
     root.mkdir(parents=True, exist_ok=True)
     name = f"step-{step:08d}"
     final = root / name
-    for stale in root.glob(".tmp-step-*"):  # left by a write that was interrupted; one writer per workdir
-        shutil.rmtree(stale, ignore_errors=True)
+    remove_stale(root)  # left by a write that was interrupted; one writer per workdir
     tmp = root / f".tmp-{name}-{os.getpid()}"
     tmp.mkdir()
     _write_npz(tmp / "params.npz", model_arrays(state))
@@ -151,6 +150,12 @@ def prune(root: Path, keep: int, newest: str) -> None:
     for old in ordered[:-keep]:
         if old.name != newest:
             shutil.rmtree(old, ignore_errors=True)
+
+
+def remove_stale(root: Path) -> None:
+    """Remove the temporary folders an interrupted checkpoint write left (under the workdir lock: one writer)."""
+    for stale in root.glob(".tmp-step-*"):
+        shutil.rmtree(stale, ignore_errors=True)
 
 
 def holds_a_run(workdir: Path) -> str | None:  # the lock file alone is not a run

@@ -508,6 +508,7 @@ class _WorkdirLock:
                 self._file.truncate()
                 self._file.write(f"{os.getpid()}\n")
                 self._file.flush()
+                checkpoint.remove_stale(self.workdir / "checkpoints")  # an interrupted write's leftovers
             except BlockingIOError:
                 self._file.seek(0)
                 holder = self._file.read().strip() or "?"

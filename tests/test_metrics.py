@@ -167,3 +167,14 @@ def test_checkpoints_by_default_at_each_epoch_end_and_by_the_clock(tmp_path):
     train(timed, progress=False)
     names = sorted(p.name for p in (tmp_path / "timed" / "run" / "checkpoints").glob("step-*"))
     assert names == ["step-00000001", "step-00000002", "step-00000003"]
+
+
+def test_an_interrupted_checkpoint_write_is_cleaned_up_when_the_next_job_starts(tmp_path):
+    from shardmill.parallel.comm import Comm
+    from shardmill.trainer import _WorkdirLock
+
+    stale = tmp_path / "run" / "checkpoints" / ".tmp-step-00000009-12345"
+    stale.mkdir(parents=True)
+    (stale / "params.npz").write_bytes(b"half a file")
+    with _WorkdirLock(tmp_path / "run", Comm()):  # the first thing train does, before any step or save
+        assert not stale.exists()

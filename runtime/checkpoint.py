@@ -5,11 +5,13 @@ Layout under ``workdir/checkpoints/``::
     step-00000500/params.npz      W0, b0, W1, b1, … and the input standardisation (input_mean, input_inv_std)
     step-00000500/optimizer.npz   the optimizer's flat state arrays (velocity, or m and v), params layout
     step-00000500/state.json      step, epoch, sampler position, optimizer updates, job, job digest, checksums
-    latest                        one line: the name of the newest complete checkpoint directory
+    index.json                    the complete checkpoints, oldest first (name, step, epoch, time written,
+                                  SHA-256 of state.json), and the SHA-256 of that list; the last is the newest
 
 A checkpoint is written into a temporary directory, every file is flushed and fsynced, the directory is
-renamed into place, and ``latest`` is replaced with an atomic rename. An interrupted write therefore leaves
-the previous checkpoint and pointer intact. Loading checks every checksum, shape and the job digest.
+renamed into place, and ``index.json`` is replaced with an atomic rename. An interrupted write therefore
+leaves the previous checkpoints and index intact. Loading checks the index's checksum, every file's checksum,
+shape and the job digest. A folder from before the index (a one-line ``latest`` file) still resumes.
 """
 
 from __future__ import annotations
@@ -126,12 +128,74 @@ def save(state: TrainingState, root: Path, keep: int) -> Path:
         shutil.rmtree(final)
     os.replace(tmp, final)
     _fsync_dir(root)
-    pointer = root / f".latest-{os.getpid()}"
-    _write_text(pointer, name + "\n")
-    os.replace(pointer, root / "latest")
-    _fsync_dir(root)
+    complete = [entry for entry in read_index(root) if entry["name"] != name and (root / entry["name"]).is_dir()]
+    complete.append({"name": name, "step": step, "epoch": record["epoch"], "written": _now(),
+                     "state_sha256": sha256(final / "state.json")})
+    complete.sort(key=lambda entry: entry["step"])
+    write_index(root, complete[-keep:])  # the newest `keep`, this one last: it is what a resume reads
+    (root / "latest").unlink(missing_ok=True)  # the one-line pointer of earlier versions, replaced by the index
     prune(root, keep, name)
     return final
+
+
+INDEX = "index.json"
+INDEX_FORMAT = "shardmill-checkpoint-index-1"
+
+
+def _now() -> str:
+    import datetime
+
+    return datetime.datetime.now(datetime.UTC).isoformat(timespec="seconds")
+
+
+def _index_digest(entries: list[dict[str, Any]]) -> str:
+    return hashlib.sha256(json.dumps(entries, sort_keys=True).encode()).hexdigest()
+
+
+def write_index(root: Path, entries: list[dict[str, Any]]) -> None:
+    """Replace ``root/index.json`` atomically: the complete checkpoints, oldest first, with their own SHA-256.
+
+    Written to a temporary file, flushed and fsynced, then renamed over the old index: a reader sees the old
+    index or the new one, never half of one.
+    """
+    text = json.dumps({"format": INDEX_FORMAT, "checkpoints": entries, "sha256": _index_digest(entries)}, indent=1)
+    tmp = root / f".{INDEX}.tmp-{os.getpid()}"
+    _write_text(tmp, text + "\n")
+    os.replace(tmp, root / INDEX)
+    _fsync_dir(root)
+
+
+def read_index(root: Path) -> list[dict[str, Any]]:
+    """The complete checkpoints ``root/index.json`` lists, oldest first ([] without an index).
+
+    A checkpoint folder written before the index existed has a one-line ``latest`` file instead; it reads as an
+    index of that one checkpoint. A damaged index is refused.
+    """
+    path = root / INDEX
+    if not path.is_file():
+        pointer = root / "latest"
+        if pointer.is_file():
+            name = pointer.read_text().strip()
+            if not name or "/" in name:
+                raise CheckpointError(f"checkpoint pointer {str(pointer)!r} is damaged")
+            return [{"name": name, "step": _step_of(Path(name))}]
+        return []
+    try:
+        index = json.loads(path.read_text())
+        entries = index["checkpoints"]
+        valid = (index.get("format") == INDEX_FORMAT and index.get("sha256") == _index_digest(entries)
+                 and all("/" not in entry["name"] for entry in entries))
+    except (json.JSONDecodeError, UnicodeDecodeError, KeyError, TypeError):
+        valid = False
+    if not valid:
+        raise CheckpointError(f"checkpoint index {str(path)!r} is damaged (its checksum or format does not match)")
+    return entries
+
+
+def latest_name(root: Path) -> str | None:
+    """The name of the newest complete checkpoint under ``root`` (a ``checkpoints`` folder), or None."""
+    entries = read_index(root)
+    return entries[-1]["name"] if entries else None
 
 
 def _step_of(folder: Path) -> int:
@@ -160,7 +224,8 @@ def remove_stale(root: Path) -> None:
 
 def holds_a_run(workdir: Path) -> str | None:  # the lock file alone is not a run
     """What in ``workdir`` belongs to an earlier run (for the refusal message), or None for an unused folder."""
-    found = [name for name in ("checkpoints/latest", "metrics.jsonl", "final.npz") if (workdir / name).exists()]
+    found = [name for name in (f"checkpoints/{INDEX}", "checkpoints/latest", "metrics.jsonl", "final.npz")
+             if (workdir / name).exists()]
     return ", ".join(found) if found else None
 
 
@@ -172,13 +237,10 @@ def clear_run(workdir: Path) -> None:
 
 
 def resolve(path: Path) -> Path:
-    """A checkpoint directory from itself, from a ``checkpoints`` folder or a workdir (via ``latest``)."""
+    """A checkpoint directory from itself, from a ``checkpoints`` folder or a workdir (the index's newest)."""
     for candidate in (path, path / "checkpoints"):
-        pointer = candidate / "latest"
-        if pointer.is_file():
-            name = pointer.read_text().strip()
-            if not name or "/" in name:
-                raise CheckpointError(f"checkpoint pointer {str(pointer)!r} is damaged")
+        name = latest_name(candidate) if candidate.is_dir() else None
+        if name:
             return candidate / name
     return path
 
@@ -210,11 +272,12 @@ def load(directory: Path) -> tuple[dict[str, Any], dict[str, np.ndarray], dict[s
 
 
 def load_latest(workdir: Path) -> tuple[dict[str, Any], dict[str, np.ndarray], dict[str, np.ndarray]]:
-    """Read and verify the checkpoint ``workdir/checkpoints/latest`` points at: (state, params, optimizer)."""
+    """Read and verify the newest complete checkpoint under ``workdir/checkpoints``: (state, params, optimizer)."""
     root = workdir / "checkpoints"
-    if not (root / "latest").is_file():
+    name = latest_name(root) if root.is_dir() else None
+    if name is None:
         raise CheckpointError(f"nothing to resume: no checkpoint under {str(root)!r}")
-    return load(resolve(root))
+    return load(root / name)
 
 
 def check_compatible(job: Job, shapes: dict[str, tuple[int, ...]], optimizer_shapes: dict[str, tuple[int, ...]],

@@ -47,7 +47,8 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("train", help="train a job file")
     p.add_argument("job", type=Path)
     again = p.add_mutually_exclusive_group()
-    again.add_argument("--resume", action="store_true", help="continue from workdir/checkpoints/latest")
+    again.add_argument("--resume", action="store_true",
+                       help="continue from the newest complete checkpoint in the workdir")
     again.add_argument("--fresh", action="store_true",
                        help="start over in a workdir that holds a run: remove its checkpoints, metrics.jsonl and "
                             "final.npz first")

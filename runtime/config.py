@@ -156,7 +156,7 @@ SCHEMA: tuple[Key, ...] = (
         trajectory=False),
     Key("run.save_minutes", "number", 0.0, "also a checkpoint once this many minutes have passed since the last "
         "one (rank 0's clock); 0 = off", low=0.0, trajectory=False),
-    Key("run.keep_checkpoints", "integer", 3, "newest checkpoints kept; older ones are removed once `latest` has "
+    Key("run.keep_checkpoints", "integer", 3, "newest checkpoints kept; older ones are removed once the index has "
         "moved on",
         low=1, trajectory=False),
     Key("run.workdir", "text", "run", "folder for metrics.jsonl, checkpoints/ and final.npz, relative to the job "

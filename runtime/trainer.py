@@ -308,8 +308,10 @@ class Trainer:
             try:
                 checkpoint.save(state, root, self.job.run.keep_checkpoints)
             except OSError as err:  # a full disk, a read-only file system: the previous checkpoint is intact
-                latest = root / "latest"
-                last = latest.read_text().strip() if latest.is_file() else None
+                try:
+                    last = checkpoint.latest_name(root)
+                except checkpoint.CheckpointError:
+                    last = None
                 kept = f"the last complete checkpoint is {last}" if last else "no checkpoint was completed"
                 raise LocalJobError(f"the checkpoint of step {step} cannot be written under {str(root)!r}: "
                                     f"{err.strerror or err}; {kept}") from None
@@ -384,8 +386,10 @@ class Diverged(JobError):
     the step's update, so the last checkpoint is still good; a user-level error (exit 2, one line)."""
 
     def __init__(self, step: int, reason: str, workdir: Path) -> None:
-        latest = workdir / "checkpoints" / "latest"
-        last = latest.read_text().strip() if latest.is_file() else ""
+        try:
+            last = checkpoint.latest_name(workdir / "checkpoints") or ""
+        except checkpoint.CheckpointError:
+            last = ""
         saved = f"; the last checkpoint is {last} in {str(workdir / 'checkpoints')!r}" if last else ""
         super().__init__(f"step {step}: the run diverged ({reason}); try a lower `optimizer.learning_rate` or "
                          f"`optimizer.clip_global_norm`{saved}")

@@ -1,4 +1,4 @@
-"""Checkpoints: resume reproduces the uninterrupted run, a killed write leaves `latest` usable, damaged or foreign
+"""Checkpoints: resume reproduces the uninterrupted run, a killed write leaves the index usable, damaged or foreign
 checkpoints are refused, and the files are plain numpy archives with honest checksums.
 
 One ``mpi_scripts/ckpt_train.py`` run at P = 2 trains the straight and interrupted runs in-process; the resume at
@@ -166,7 +166,7 @@ def test_kill_during_second_checkpoint_leaves_latest_loadable(runs: dict, data_d
     proc = run_mpi(2, [str(SCRIPTS / "ckpt_kill.py"), str(job)], timeout=120)
     assert proc.returncode not in (0, 3), "the process was not killed during the checkpoint write"
     root = data_dir / "killed" / "checkpoints"
-    assert (root / "latest").read_text().strip() == "step-00000004"
+    assert checkpoint.latest_name(root) == "step-00000004"  # the index still names the first checkpoint
     state, params, opt = checkpoint.load(checkpoint.resolve(data_dir / "killed"))
     assert state["step"] == 4 and set(NAMES) <= set(params) and set(opt) == {"m", "v"}
     assert not (root / "step-00000008").exists()
@@ -256,7 +256,7 @@ def test_nothing_to_resume_is_refused(data_dir: Path, tmp_path: Path) -> None:
 def test_checkpoint_files_are_plain_numpy_with_true_checksums(runs: dict, data_dir: Path) -> None:
     job = load_job(job_file(data_dir / "format-job", tables(data_dir, "exact-straight", save_every=4)))
     root = data_dir / "exact-straight" / "checkpoints"
-    assert (root / "latest").read_text().strip() == f"step-{STEPS:08d}"
+    assert checkpoint.latest_name(root) == f"step-{STEPS:08d}"
     n_params = sum(a * b + b for a, b in zip(LAYERS[:-1], LAYERS[1:], strict=True))
     for step in (4, 8, 12):
         folder = root / f"step-{step:08d}"

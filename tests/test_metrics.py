@@ -178,3 +178,31 @@ def test_an_interrupted_checkpoint_write_is_cleaned_up_when_the_next_job_starts(
     (stale / "params.npz").write_bytes(b"half a file")
     with _WorkdirLock(tmp_path / "run", Comm()):  # the first thing train does, before any step or save
         assert not stale.exists()
+
+
+def test_the_checkpoint_index_lists_the_kept_checkpoints_and_refuses_damage(tmp_path):
+    import hashlib
+
+    from shardmill import checkpoint
+    from shardmill.trainer import train
+
+    job = _job(tmp_path, epochs=4)  # a checkpoint at each of the 4 epoch ends; 3 kept
+    train(job, progress=False)
+    root = tmp_path / "run" / "checkpoints"
+    index = json.loads((root / "index.json").read_text())
+    assert [e["name"] for e in index["checkpoints"]] == ["step-00000006", "step-00000009", "step-00000012"]
+    for entry in index["checkpoints"]:  # hashlib's SHA-256 of each state.json, as the index records it
+        assert entry["state_sha256"] == hashlib.sha256((root / entry["name"] / "state.json").read_bytes()).hexdigest()
+    assert sorted(p.name for p in root.glob("step-*")) == [e["name"] for e in index["checkpoints"]]
+    # An index edited by hand (its list no longer matches its checksum) is refused, in one line.
+    index["checkpoints"] = index["checkpoints"][:1]
+    (root / "index.json").write_text(json.dumps(index))
+    with pytest.raises(checkpoint.CheckpointError, match="index .* is damaged"):
+        checkpoint.latest_name(root)
+    # A folder from before the index, with a one-line `latest` pointer, still resumes.
+    (root / "index.json").unlink()
+    (root / "latest").write_text("step-00000012\n")
+    assert checkpoint.resolve(tmp_path / "run") == root / "step-00000012"
+    job.run.epochs = 5
+    train(job, resume=True, progress=False)
+    assert checkpoint.latest_name(root) == "step-00000015" and not (root / "latest").exists()

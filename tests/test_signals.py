@@ -62,7 +62,7 @@ def test_a_signal_checkpoints_and_the_resume_matches_an_uninterrupted_run(tmp_pa
     assert process.returncode == 128 + signum, err[-3000:]
     assert f"stopped by {signal.Signals(signum).name} after step" in err and "--resume" in err
     assert "Traceback" not in err
-    assert (tmp_path / "stopped-run" / "checkpoints" / "latest").is_file()
+    assert (tmp_path / "stopped-run" / "checkpoints" / "index.json").is_file()
     assert not (tmp_path / "stopped-run" / "final.npz").exists()  # it stopped before the end
     resumed = run_cli(["train", str(job), "--ranks", "2", "--resume", "--no-progress"], timeout=300)
     assert resumed.returncode == 0, resumed.stderr[-3000:]
@@ -79,7 +79,7 @@ def test_a_second_job_on_a_workdir_in_use_is_refused_and_a_killed_job_leaves_it_
     first = subprocess.Popen(command, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
                              env=rank_environment(threads=1, launched=False), start_new_session=True)
     try:
-        latest = tmp_path / "busy-run" / "checkpoints" / "latest"
+        latest = tmp_path / "busy-run" / "checkpoints" / "index.json"
         deadline = time.monotonic() + 120
         while not latest.exists() and time.monotonic() < deadline:
             time.sleep(0.05)

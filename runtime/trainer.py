@@ -548,6 +548,9 @@ def _train_loop(trainer: Trainer, resume: bool, progress: bool, echo: bool = Fal
     job, comm, model = trainer.job, trainer.comm, trainer.model
     workdir = job.workdir
     lead = comm.rank == 0
+    if echo and lead and not _kernels_cached():
+        print(f"compiling kernels for {trainer.model.dtype.name} (first run only; `shardmill compile JOB` does it "
+              f"ahead)…", flush=True)
     compile_s = warm_up_kernels(trainer)
     if echo and lead and compile_s > 1.0:
         print(f"kernels ready in {compile_s:.1f} s (compiled once, then loaded from Numba's cache)", flush=True)
@@ -612,6 +615,14 @@ def _train_loop(trainer: Trainer, resume: bool, progress: bool, echo: bool = Fal
         checkpoint.write_final(workdir / "final.npz", state)
     return {"model": model, "history": history, "steps": step, "workdir": str(workdir),
             "processes": comm.size, "compile_s": compile_s}
+
+
+def _kernels_cached() -> bool:
+    """True when Numba's cache already holds compiled shardmill kernels (its index files, *.nbi)."""
+    from shardmill.info import numba_cache_dir
+
+    folder = Path(numba_cache_dir())
+    return folder.is_dir() and any(folder.rglob("*.nbi"))
 
 
 def _say(line: str, bar: Any) -> None:

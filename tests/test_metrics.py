@@ -206,3 +206,21 @@ def test_the_checkpoint_index_lists_the_kept_checkpoints_and_refuses_damage(tmp_
     job.run.epochs = 5
     train(job, resume=True, progress=False)
     assert checkpoint.latest_name(root) == "step-00000015" and not (root / "latest").exists()
+
+
+def test_a_first_run_says_it_is_compiling_before_it_does(tmp_path, capsys, monkeypatch):
+    from shardmill import info
+    from shardmill import trainer as trainer_module
+
+    cache = tmp_path / "cache"
+    cache.mkdir()
+    monkeypatch.setattr(info, "numba_cache_dir", lambda: str(cache))
+    assert not trainer_module._kernels_cached()  # an empty cache: nothing compiled yet
+    trainer_module.train(_job(tmp_path, epochs=1), progress=False, echo=True)
+    assert capsys.readouterr().out.splitlines()[0].startswith("compiling kernels for float64 (first run only")
+    (cache / "kernels").mkdir()
+    (cache / "kernels" / "optim.adam-50.py311.nbi").write_bytes(b"")  # Numba's index file of a cached kernel
+    assert trainer_module._kernels_cached()
+    (tmp_path / "again").mkdir()
+    trainer_module.train(_job(tmp_path / "again", epochs=1), progress=False, echo=True)
+    assert not any(line.startswith("compiling") for line in capsys.readouterr().out.splitlines())

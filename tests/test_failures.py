@@ -9,7 +9,10 @@ blocking the suite. User errors exit 2 with one line (DEVELOPERS.md, conventions
 from __future__ import annotations
 
 import json
+import os
 import re
+import subprocess
+import sys
 import time
 from pathlib import Path
 
@@ -173,3 +176,19 @@ def test_abort_waits_for_the_launcher_to_forward_the_message(monkeypatch, capsys
     assert "[rank 1] failed: RuntimeError('planted')" in capsys.readouterr().err
     assert len(world.aborted_at) == 1
     assert world.aborted_at[0] - begin >= comm_module.ABORT_GRACE_S
+
+
+def test_a_reader_that_goes_away_ends_the_run_quietly(tmp_path):
+    # `shardmill train … | head -1`: the next line has nowhere to go. SIGPIPE's status (128 + 13), no traceback.
+    make_classification(tmp_path, rows=4000, features=6, classes=3, seed=0)
+    job = write_job(tmp_path, {"layers": [6, 256, 256, 3], "activation": "relu"}, {"global_batch": 16, "epochs": 4})
+    command = [sys.executable, "-m", "shardmill", "train", str(job), "--no-progress"]
+    proc = subprocess.Popen(command, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, cwd=tmp_path,
+                            env=dict(os.environ, OPENBLAS_NUM_THREADS="1", PYTHONUNBUFFERED="1"))
+    first = proc.stdout.readline()  # the first epoch's line
+    proc.stdout.close()  # ... and the reader is gone
+    err = proc.stderr.read()
+    proc.wait(timeout=120)
+    assert first.startswith(("epoch", "compiling", "kernels")), first
+    assert proc.returncode == 141, err[-2000:]
+    assert "Traceback" not in err

@@ -11,6 +11,7 @@ Naming rule: a method is named after the MPI collective, then the reduction (``a
 
 from __future__ import annotations
 
+import os
 import sys
 import time
 import traceback
@@ -195,6 +196,13 @@ def run_guarded(main: Callable[[], int], user_errors: tuple[type[BaseException],
         if local and size > 1:
             abort_world(2, comm)
         return 2
+    except BrokenPipeError:
+        # The reader of our output went away (`shardmill … | head`): nothing more to say to it. Point stdout at
+        # /dev/null so the exit's flush cannot fail again (Python's signal docs), and end like SIGPIPE would.
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        if size > 1:
+            abort_world(141, comm)
+        return 141
     except KeyboardInterrupt:
         print(f"shardmill: [rank {rank}] interrupted", file=sys.stderr, flush=True)
         if size > 1:

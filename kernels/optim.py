@@ -98,6 +98,21 @@ def sum_squares(x):
 
 
 @njit(cache=True)
+def block_sum_squares(x, block, out):
+    """out[b] = Σ x_i² over x[b·block:(b+1)·block] (the last block may be short), each a left-to-right float64 sum.
+
+    x: (n,); out: (⌈n / block⌉,) float64. A block's sum depends only on its own values, wherever it lies.
+    """
+    n = x.size
+    for b in range(out.size):
+        total = 0.0
+        for i in range(b * block, min((b + 1) * block, n)):
+            xi = np.float64(x[i])
+            total += xi * xi
+        out[b] = total
+
+
+@njit(cache=True)
 def scale(x, factor):
     """x ← factor·x in place (gradient clipping). x: (n,)."""
     for i in range(x.size):

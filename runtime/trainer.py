@@ -145,6 +145,10 @@ class Trainer:
         self.part_sums = np.zeros(3)
         self.last_part_rows = 0  # rows of the part whose activations the workspace holds (for health)
         self.health: list[dict[str, Any]] = []  # diagnostics records not yet written
+        self.signals: _StopSignals | None = None  # set by train(): the SIGTERM/SIGINT noted during training
+        self.stop_signal = 0  # agreed after the last step's sum: a signal some rank received (0: none)
+        self.checkpoint_due = False  # agreed after the last step's sum: run.save_minutes have passed
+        self.last_save = time.perf_counter()
         if not self.comm.all_equal(self.model.params):
             raise RuntimeError("initial parameters differ across ranks")
 
@@ -161,7 +165,7 @@ class Trainer:
         self.timer.start()
         rows = self.sampler.batch(epoch, step_in_epoch)  # sample: the G global indices
         self.gradient(rows)  # shard, gather, forward, loss, backward, exchange: the mean gradient
-        self.check_finite()  # a diverged step stops every rank here, before it touches the parameters
+        self.agree()  # a diverged step stops every rank here, before it touches the parameters
         params, gradient = self.model.params, self.exchange.owned_gradient()  # gradient: of params[owned]
         if self.optimizer.clips:
             self.optimizer.clip(gradient, self.exchange.sum_squares())
@@ -180,17 +184,22 @@ class Trainer:
         if every and self.step_count % every == 0 and not self.comm.all_equal(params):
             raise RuntimeError(f"parameters drifted apart across ranks at step {self.step_count}")
 
-    def check_finite(self) -> None:
-        """Raise :class:`Diverged` on every rank when any rank saw a non-finite loss or an unsummable gradient.
+    def agree(self) -> None:
+        """What every rank must decide alike after the sum: one MAX allreduce of three flags (P > 1).
 
-        One MAX allreduce of a flag (P > 1), so all ranks stop after the same step and nobody waits.
+        A non-finite loss or an unsummable gradient on any rank raises :class:`Diverged` on every rank, before the
+        update. A SIGTERM/SIGINT some rank received (``stop_signal``) and a timed checkpoint due by rank 0's clock
+        (``checkpoint_due``) are kept for the train loop to act on once the step is complete.
         """
         reason = self.problem or self.exchange.problem
-        flag = np.array([0 if reason is None else 1], dtype=np.int64)
+        minutes = self.job.run.save_minutes
+        due = bool(minutes) and self.comm.rank == 0 and time.perf_counter() - self.last_save >= 60.0 * minutes
+        flags = np.array([reason is not None, self.signals.received if self.signals else 0, due], dtype=np.int64)
         if self.comm.size > 1:
-            self.comm.allreduce_max(flag)
-        if flag[0]:
+            self.comm.allreduce_max(flags)
+        if flags[0]:
             raise Diverged(self.step_count + 1, reason or "on another rank", self.job.workdir)
+        self.stop_signal, self.checkpoint_due = int(flags[1]), bool(flags[2])
 
     def gradient(self, rows: np.ndarray) -> None:
         """The mean gradient of the global batch ``rows`` over every rank: ``exchange.owned_gradient()`` after it."""
@@ -303,6 +312,7 @@ class Trainer:
         Returns the state it saved.
         """
         state = self.training_state(step)
+        self.last_save = time.perf_counter()
         if self.comm.rank == 0:
             root = self.job.workdir / "checkpoints"
             try:
@@ -413,14 +423,13 @@ class TrainingStopped(Exception):
 class _StopSignals:
     """Remember SIGTERM (what a batch system sends before its time limit) and SIGINT (Ctrl-C) during training.
 
-    The handlers only note the signal; the loop asks :meth:`agreed` after every step, and all ranks stop together
-    after the same step (one MAX allreduce of the signal number), so a checkpoint can be written collectively.
+    The handlers only note the signal; :meth:`Trainer.agree` shares it after every step's sum, and all ranks
+    stop together after the same step, so a checkpoint can be written collectively.
     """
 
     SIGNALS = (signal.SIGTERM, signal.SIGINT)
 
-    def __init__(self, comm: Comm) -> None:
-        self.comm = comm
+    def __init__(self) -> None:
         self.received = 0
         self._previous: dict[int, Any] = {}
 
@@ -436,16 +445,6 @@ class _StopSignals:
 
     def _note(self, signum: int, frame: Any) -> None:
         self.received = self.received or signum
-
-    def agreed(self, due: bool = False) -> tuple[int, bool]:
-        """(The signal some rank received or 0, whether some rank said ``due``), the same on every rank.
-
-        One MAX allreduce of two numbers when P > 1: the signal and rank 0's "a timed checkpoint is due".
-        """
-        flags = np.array([self.received, int(due)], dtype=np.int64)
-        if self.comm.size > 1:
-            self.comm.allreduce_max(flags)
-        return int(flags[0]), bool(flags[1])
 
 
 HEARTBEAT_S = 30.0
@@ -481,9 +480,10 @@ def train(job: Job, comm: Comm | None = None, resume: bool = False, progress: bo
     with _WorkdirLock(job.workdir, comm):
         if not resume:
             _claim_workdir(job.workdir, fresh, comm)
-        with threadpool_limits(limits=job.run.threads, user_api="blas"), _StopSignals(comm) as stop:
+        with threadpool_limits(limits=job.run.threads, user_api="blas"), _StopSignals() as stop:
             trainer = Trainer(job, comm)
-            return _train_loop(trainer, resume, progress, echo, stop)
+            trainer.signals = stop
+            return _train_loop(trainer, resume, progress, echo)
 
 
 class _WorkdirLock:
@@ -543,8 +543,7 @@ def _claim_workdir(workdir: Path, fresh: bool, comm: Comm) -> None:
     agree(comm, error)
 
 
-def _train_loop(trainer: Trainer, resume: bool, progress: bool, echo: bool = False,
-                stop: _StopSignals | None = None) -> dict[str, Any]:
+def _train_loop(trainer: Trainer, resume: bool, progress: bool, echo: bool = False) -> dict[str, Any]:
     job, comm, model = trainer.job, trainer.comm, trainer.model
     workdir = job.workdir
     lead = comm.rank == 0
@@ -566,7 +565,6 @@ def _train_loop(trainer: Trainer, resume: bool, progress: bool, echo: bool = Fal
     epoch_steps = 0
     step = start_step
     beat = _Heartbeat(total, start_step, job.run.global_batch) if lead and echo and bar is None else None
-    last_save = time.perf_counter()
     while step < total:
         epoch, in_epoch = divmod(step, steps_per_epoch)
         trainer.step(epoch, in_epoch)
@@ -595,13 +593,9 @@ def _train_loop(trainer: Trainer, resume: bool, progress: bool, echo: bool = Fal
             epoch_steps = 0
         if step >= total:
             break  # the final checkpoint follows the loop
-        minutes = job.run.save_minutes
-        due = bool(minutes) and lead and time.perf_counter() - last_save >= 60.0 * minutes
-        signum, timed = stop.agreed(due) if stop is not None else (0, due)
-        every = job.run.save_every
-        if signum or timed or (step % every == 0 if every else end_of_epoch):
+        signum, every = trainer.stop_signal, job.run.save_every
+        if signum or trainer.checkpoint_due or (step % every == 0 if every else end_of_epoch):
             trainer.save(step)  # by step count, at each epoch end by default, by the clock, or before stopping
-            last_save = time.perf_counter()
         if signum:  # every rank finished this step and the checkpoint is written: leave together
             if bar is not None:
                 bar.close()

@@ -314,3 +314,23 @@ def test_adam_with_the_smallest_allowed_eps_stays_finite_on_zero_gradients(dtype
     params = np.ones(8, dtype=dtype)
     Optimizer(spec, params.size, np.dtype(dtype)).step(params, np.zeros(8, dtype=dtype), 10)
     np.testing.assert_array_equal(params, 1.0)  # m = 0: no step at all
+
+
+@pytest.mark.parametrize("dtype", [np.float32, np.float64])
+@pytest.mark.parametrize("n", [1, 255, 256, 1000])
+def test_block_sums_of_squares_match_an_exact_sum_per_block(dtype, n):
+    from shardmill.kernels.optim import block_sum_squares
+
+    x = np.random.default_rng(n).standard_normal(n).astype(dtype)
+    out = np.empty(-(-n // 256))
+    block_sum_squares(x, 256, out)
+    for b in range(out.size):
+        block = [float(v) ** 2 for v in x[b * 256:(b + 1) * 256]]
+        # math.fsum is correctly rounded (Shewchuk 1997); a left-to-right float64 sum of ≤ 256 positive terms
+        # is within γ_255 of it (Higham 2002, §4.2).
+        assert out[b] == pytest.approx(math.fsum(block), rel=256 * 2.0**-53)
+    # the same block gives the same bits wherever it lies (the sharded clip norm relies on it)
+    if n >= 512:
+        alone = np.empty(1)
+        block_sum_squares(x[256:512], 256, alone)
+        assert alone[0] == out[1]

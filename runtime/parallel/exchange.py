@@ -56,15 +56,12 @@ def owner_bounds(n: int, processes: int) -> list[tuple[int, int]]:
 def block_sums_of_squares(values: np.ndarray) -> np.ndarray:
     """Σ v² of each consecutive block of :data:`BLOCK` elements (the last may be short), float64, (blocks,).
 
-    Each block is summed alone in float64, so a block has the same sum wherever it lies in a slice.
+    Each block is summed alone in float64, left to right (``kernels.optim.block_sum_squares``), so a block has
+    the same sum wherever it lies in a slice.
     """
-    squares = values.astype(np.float64)
-    squares *= squares
-    full = values.size // BLOCK
-    sums = [squares[:full * BLOCK].reshape(full, BLOCK).sum(axis=1)]
-    if values.size % BLOCK:
-        sums.append(np.array([squares[full * BLOCK:].sum()]))
-    return np.concatenate(sums)
+    sums = np.empty(-(-values.size // BLOCK))
+    kernels_optim.block_sum_squares(values, BLOCK, sums)
+    return sums
 
 
 class FloatSums:
@@ -255,10 +252,11 @@ class BucketExchange(Exchange):
     def layer_done(self, layer: int) -> None:
         """Start the reduction of the bucket ``layer`` completes, if any."""
         if self.overlap and layer in self._closing:
-            self._requests.append(self.start_bucket(*self.buckets[self._closing[layer]]))
+            self._requests.append(self.start_bucket(self._closing[layer]))
 
-    def start_bucket(self, start: int, stop: int) -> Any:
-        """Start the in-place SUM allreduce of ``grads[start:stop]`` (non-blocking, or on the thread)."""
+    def start_bucket(self, bucket: int) -> Any:
+        """Start the in-place SUM allreduce of bucket ``bucket`` (non-blocking, or on the thread)."""
+        start, stop = self.buckets[bucket]
         if self.thread is not None:
             return self.thread.start_allreduce_sum(self.grads[start:stop])
         return self.comm.start_allreduce_sum(self.grads[start:stop])
@@ -302,19 +300,18 @@ class ShardedExchange(BucketExchange):
         self.owned = slice(*bounds[comm.rank])
         self.sharded = comm.size > 1
         self.summed = np.zeros(self.owned_size, dtype=grads.dtype)  # the owned slice of the summed gradient
-        self._bucket_counts = [[max(0, min(stop, hi) - max(start, lo)) for lo, hi in bounds]
-                               for start, stop in self.buckets]
+        lo, hi = self.owned.start, self.owned.stop
+        # Per bucket, fixed at build time: what is sent, the view of ``summed`` that receives this rank's part of
+        # it, and how much of the bucket each rank owns.
+        self._scatters = [(grads[start:stop], self.summed[min(max(start, lo), hi) - lo:max(min(stop, hi), lo) - lo],
+                           [max(0, min(stop, b) - max(start, a)) for a, b in bounds])
+                          for start, stop in self.buckets]
 
-    def _received(self, start: int, stop: int) -> np.ndarray:
-        """The view of ``summed`` that receives this rank's part of ``grads[start:stop]``."""
-        lo = self.owned.start
-        return self.summed[min(max(start, lo), self.owned.stop) - lo:max(min(stop, self.owned.stop), lo) - lo]
-
-    def start_bucket(self, start: int, stop: int) -> Any:
-        counts = self._bucket_counts[self.buckets.index((start, stop))]
+    def start_bucket(self, bucket: int) -> Any:
+        send, received, counts = self._scatters[bucket]
         if self.thread is not None:
-            return self.thread.start_reduce_scatter_sum(self.grads[start:stop], self._received(start, stop), counts)
-        return self.comm.start_reduce_scatter_sum(self.grads[start:stop], self._received(start, stop), counts)
+            return self.thread.start_reduce_scatter_sum(send, received, counts)
+        return self.comm.start_reduce_scatter_sum(send, received, counts)
 
     def reduce_all(self) -> None:
         self.comm.reduce_scatter_sum(self.grads, self.summed, self.counts)
@@ -507,6 +504,7 @@ class ExactExchange(Exchange):
         if self.pair_grads is not None:
             exactsum.assign_pair(grads, grads.copy(), limbs)
         exactsum.to_float(limbs, grads)
+        block_sums_of_squares(grads)  # the clip norm's blocks
         sums = exactsum.new_accumulator(3)  # the metric sums' specialisation (float64)
         exactsum.accumulate(np.zeros(3), sums)
         exactsum.to_float(sums, np.zeros(3))
@@ -613,6 +611,7 @@ class CompactExchange(ExactExchange):
         compactsum.accumulate(grads, self.bounds, shifts, sums, replace=True)
         compactsum.accumulate(grads, self.bounds, shifts, sums)
         compactsum.to_float(sums, self.bounds, shifts, grads)
+        block_sums_of_squares(grads)  # the clip norm's blocks
         metric = exactsum.new_accumulator(3)  # the metric sums stay in the wide format (they are tiny)
         exactsum.accumulate(np.zeros(3), metric)
         exactsum.to_float(metric, np.zeros(3))

@@ -3,8 +3,8 @@
 Prints one JSON object (rank 0). The buffer is a ``grads`` array with the mid model's layout
 (784-1024-1024-10, 1,863,690 parameters). One repetition of each contender:
 
-* exchange: fill ``grads``; barrier; start the clock; ``BucketExchange.layer_done(l)`` for every layer in
-  backward order (l = L−1 … 0), which starts each bucket's non-blocking allreduce as it closes; ``finish()``;
+* exchange: fill ``grads``; barrier; start the clock; ``MessageExchange.layer_done(l)`` for every layer in
+  backward order (l = L−1 … 0), which starts each message's non-blocking allreduce as it closes; ``finish()``;
   stop the clock. With overlap off, ``finish()`` is one blocking allreduce of the whole buffer.
 * raw: fill the same ``grads``; barrier; start the clock; ``comm.Allreduce(MPI.IN_PLACE, grads)``; stop.
 
@@ -34,8 +34,8 @@ from shardmill.timing import median, slowest_call
 from threadpoolctl import threadpool_limits
 
 TARGET = 1.05  # exchange / raw: our wrapper adds at most 5 % to a raw Allreduce
-# 0.01 MB closes a bucket after every layer (3 buckets); 4 MB (the default) gives 2; 64 MB one bucket.
-BUCKET_MB = (0.01, 4.0, 64.0)
+# 0.01 MB closes a message after every layer (3 messages); 4 MB (the default) gives 2; 64 MB one message.
+MESSAGE_MIB = (0.01, 4.0, 64.0)
 _LAUNCH_MARKERS = ("PMI_RANK", "PMI_SIZE", "PMIX_RANK", "OMPI_COMM_WORLD_SIZE", "MPI_LOCALNRANKS")
 
 
@@ -50,11 +50,11 @@ def relaunch(ranks: int, argv: list[str], timeout: float) -> int:
     return run_for_status(ranks, [str(Path(__file__).resolve()), *argv], timeout=timeout)
 
 
-def measure(comm, dtype: str, bucket_mb: float | None, repetitions: int, warmup: int) -> dict[str, Any]:
-    """One configuration: overlap off when bucket_mb is None, else buckets of at least bucket_mb MB."""
+def measure(comm, dtype: str, message_mib: float | None, repetitions: int, warmup: int) -> dict[str, Any]:
+    """One configuration: overlap off when message_mib is None, else messages of at least message_mib MiB."""
     from mpi4py import MPI
     from shardmill.model import MLP
-    from shardmill.parallel.exchange import BucketExchange
+    from shardmill.parallel.exchange import MessageExchange
 
     model = MLP(MID_MODEL, dtype=dtype)
     grads = np.zeros_like(model.params)
@@ -62,8 +62,8 @@ def measure(comm, dtype: str, bucket_mb: float | None, repetitions: int, warmup:
     base = (np.arange(grads.size) % 7 + 1).astype(dtype)
     fill = base * (comm.rank + 1)
     expected = base * (comm.size * (comm.size + 1) // 2)
-    overlap = bucket_mb is not None
-    exchange = BucketExchange(comm, model, grads, bucket_mb if overlap else 4.0, overlap=overlap)
+    overlap = message_mib is not None
+    exchange = MessageExchange(comm, model, grads, message_mib if overlap else 4.0, overlap=overlap)
     layers = list(reversed(range(model.n_layers)))
     raw = MPI.COMM_WORLD  # the baseline is plain mpi4py, not our wrapper
 
@@ -98,13 +98,13 @@ def measure(comm, dtype: str, bucket_mb: float | None, repetitions: int, warmup:
     ok = np.array([exchange_ok and raw_ok], dtype=np.int64)
     comm.allreduce_min(ok)
     ex_ms, raw_ms = median(slowest[0]) * 1e3, median(slowest[1]) * 1e3
-    sizes = [(stop - start) * grads.itemsize for start, stop in exchange.buckets] if overlap else [grads.nbytes]
+    sizes = [(stop - start) * grads.itemsize for start, stop in exchange.messages] if overlap else [grads.nbytes]
     return {
         "dtype": dtype,
         "overlap": overlap,
-        "bucket_mb": bucket_mb,
-        "buckets": len(sizes),
-        "bucket_bytes": sizes,
+        "message_mib": message_mib,
+        "messages": len(sizes),
+        "message_bytes": sizes,
         "bytes": grads.nbytes,
         "repetitions": repetitions,
         "warmup": warmup,
@@ -143,10 +143,11 @@ def main(argv: list[str] | None = None) -> int:
     rows = []
     with threadpool_limits(limits=1, user_api="blas"):  # also when started by hand under mpiexec
         for dtype in dtypes:
-            for bucket_mb in (None, *BUCKET_MB):
+            for message_mib in (None, *MESSAGE_MIB):
                 if comm.rank == 0:
-                    log(f"exchange {dtype} " + ("overlap off" if bucket_mb is None else f"buckets ≥ {bucket_mb} MB"))
-                rows.append(measure(comm, dtype, bucket_mb, repetitions, warmup))
+                    what = "overlap off" if message_mib is None else f"messages ≥ {message_mib} MiB"
+                    log(f"exchange {dtype} {what}")
+                rows.append(measure(comm, dtype, message_mib, repetitions, warmup))
     load = meter.stop(lambda own: float(comm.allreduce_sum(np.array([own]))[0]))
     if comm.rank == 0:
         emit({
@@ -159,7 +160,7 @@ def main(argv: list[str] | None = None) -> int:
                     "buffer; per repetition the maximum over ranks; median over repetitions."),
             "mpi": {"version": ".".join(map(str, MPI.Get_version())),
                     "library": MPI.Get_library_version().strip().splitlines()[0]},
-            "summary": [{k: r[k] for k in ("dtype", "overlap", "bucket_mb", "buckets", "exchange_over_raw",
+            "summary": [{k: r[k] for k in ("dtype", "overlap", "message_mib", "messages", "exchange_over_raw",
                                           "exchange_over_raw_paired", "exchange_over_raw_min", "met")}
                         for r in rows],
             "rows": rows,

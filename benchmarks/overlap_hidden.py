@@ -2,17 +2,17 @@
 
 Two ranks, one BLAS thread each. The compute phase stands in for a training step's backward: twelve float32 GEMMs
 (256×1024)·(1024×1024) into a preallocated output. The exchange is the mid model's gradient (784-1024-1024-10,
-1,863,690 float32 values, 7.45 MB) in the two buckets ``BucketExchange`` makes of it at 4 MB. Five contenders,
+1,863,690 float32 values, 7.45 MB) in the two messages ``MessageExchange`` makes of it at 4 MB. Five contenders,
 round-robin (which one goes first rotates), each repetition timed as the slowest rank's after a barrier, the fill
 of the buffer outside the clock:
 
-* ``exchange``: the buckets' blocking in-place allreduces alone;
+* ``exchange``: the messages' blocking in-place allreduces alone;
 * ``compute``: the GEMMs alone;
 * ``blocking``: compute, then the blocking allreduces (the step without overlap);
-* ``iallreduce``: every bucket's ``Iallreduce`` started, compute, then ``Waitall`` (MPI's own progress);
-* ``thread``: every bucket handed to the communication thread (``shardmill.parallel.progress``), compute, wait;
+* ``iallreduce``: every message's ``Iallreduce`` started, compute, then ``Waitall`` (MPI's own progress);
+* ``thread``: every message handed to the communication thread (``shardmill.parallel.progress``), compute, wait;
 
-and, for reference, ``thread_exchange``: the buckets through the thread with no compute. Medians over the
+and, for reference, ``thread_exchange``: the messages through the thread with no compute. Medians over the
 repetitions. exposed = total − compute; hidden fraction = 1 − exposed / exchange (1: all hidden, 0: none, below 0:
 overlapping costs more than it hides); ``hidden_possible`` = min(compute, exchange) / exchange, what perfect
 overlap would give. ``with_over_without`` = total / blocking: the step with overlap against the step without. Every
@@ -49,7 +49,7 @@ from threadpoolctl import threadpool_limits
 
 GEMMS = 12
 GEMM_SHAPE = (256, 1024, 1024)  # (rows, inner, columns): one layer's dW- or dA-sized product in float32
-BUCKET_MB = 4.0  # BucketExchange's default: two buckets of the mid model
+MESSAGE_MIB = 4.0  # MessageExchange's default: two messages of the mid model
 CONTENDERS = ("exchange", "compute", "blocking", "iallreduce", "thread", "thread_exchange")
 SHAPED_ENVIRONMENT = {"MPIR_CVAR_NOLOCAL": "1", "MPIR_CVAR_CH4_NETMOD": "ofi"}
 LIBRARY_PROGRESS = {"MPIR_CVAR_ASYNC_PROGRESS": "1"}
@@ -63,14 +63,14 @@ def measure(repetitions: int, warmup: int) -> None:
     """Median seconds of every contender on this job's ranks, and the ratios; rank 0 prints them (JSON)."""
     from shardmill.model import MLP
     from shardmill.parallel.comm import Comm
-    from shardmill.parallel.exchange import BucketExchange
+    from shardmill.parallel.exchange import MessageExchange
     from shardmill.parallel.progress import CommThread
 
     comm = Comm()
     thread = CommThread(comm)
     model = MLP(MID_MODEL, dtype="float32")
     grads = np.zeros_like(model.params)
-    buckets = [grads[start:stop] for start, stop in BucketExchange(comm, model, grads, BUCKET_MB).buckets]
+    messages = [grads[start:stop] for start, stop in MessageExchange(comm, model, grads, MESSAGE_MIB).messages]
     base = (np.arange(grads.size) % 7 + 1).astype(np.float32)  # small integers: every sum exact
     fill, expected = base * (comm.rank + 1), base * (comm.size * (comm.size + 1) // 2)
     rows, inner, columns = GEMM_SHAPE
@@ -84,25 +84,25 @@ def measure(repetitions: int, warmup: int) -> None:
             np.matmul(A, W, out=out)
 
     def blocking_exchange() -> None:
-        for bucket in buckets:
-            comm.allreduce_sum(bucket)
+        for message in messages:
+            comm.allreduce_sum(message)
 
     def blocking() -> None:
         compute()
         blocking_exchange()
 
     def iallreduce() -> None:
-        requests = [comm.start_allreduce_sum(bucket) for bucket in buckets]
+        requests = [comm.start_allreduce_sum(message) for message in messages]
         compute()
         comm.wait(requests)
 
     def through_thread() -> None:
-        handles = [thread.start_allreduce_sum(bucket) for bucket in buckets]
+        handles = [thread.start_allreduce_sum(message) for message in messages]
         compute()
         thread.wait(handles)
 
     def thread_exchange() -> None:
-        thread.wait([thread.start_allreduce_sum(bucket) for bucket in buckets])
+        thread.wait([thread.start_allreduce_sum(message) for message in messages])
 
     rounds = dict(zip(CONTENDERS, (blocking_exchange, compute, blocking, iallreduce, through_thread,
                                    thread_exchange), strict=True))
@@ -140,7 +140,7 @@ def measure(repetitions: int, warmup: int) -> None:
         "processes": comm.size,
         "repetitions": repetitions,
         "warmup": warmup,
-        "bucket_bytes": [bucket.nbytes for bucket in buckets],
+        "message_bytes": [message.nbytes for message in messages],
         "ms_median": ms,
         "ms_min": {name: float(np.min(values)) * 1e3 for name, values in seconds.items()},
         "hidden_iallreduce": hidden(ms["iallreduce"]),
@@ -282,7 +282,7 @@ def main(argv: list[str] | None = None) -> int:
         "quick": args.quick,
         "processes": 2,
         "compute": f"{GEMMS} float32 GEMMs {GEMM_SHAPE[0]}x{GEMM_SHAPE[1]} @ {GEMM_SHAPE[1]}x{GEMM_SHAPE[2]}",
-        "exchange": f"mid model {MID_MODEL} float32 gradient, buckets of >= {BUCKET_MB} MB",
+        "exchange": f"mid model {MID_MODEL} float32 gradient, messages of >= {MESSAGE_MIB} MiB",
         "how": ("per contender: fill outside the clock; barrier; time; maximum over ranks; contenders round-robin; "
                 "median over repetitions. hidden = 1 - (total - compute) / exchange; hidden_possible = "
                 "min(compute, exchange) / exchange; with_over_without = total / (compute then blocking exchange); "

@@ -34,7 +34,7 @@ def targets(results: dict[str, Any]) -> list[dict[str, Any]]:
             out.append({"name": f"ratio_to_floor {row['model']} {row['dtype']} {row['optimizer']}",
                         "value": row["ratio_to_floor"], "target": f">= {row['target']}", "met": row["met"]})
     for row in results.get("exchange_vs_raw", {}).get("summary", []):
-        what = "overlap off" if not row["overlap"] else f"buckets >= {row['bucket_mb']} MB ({row['buckets']})"
+        what = "overlap off" if not row["overlap"] else f"messages >= {row['message_mib']} MiB ({row['messages']})"
         out.append({"name": f"exchange_over_raw {row['dtype']} {what}", "value": row["exchange_over_raw"],
                     "target": "<= 1.05", "met": row["met"]})
     scaling = results.get("strong_scaling", {}).get("ratios", {})

@@ -7,7 +7,7 @@ reversed every other round, and each variant's figure is the median over rounds.
 * strong scaling (G = 512 at every P): efficiency T1 / (P·TP), target ≥ 0.92 at P = 2; beside it the same
   ratio of the GEMM floors, F1 / (P·FP), which says how well BLAS alone scales on the smaller shards;
 * weak scaling (G = 512·P): efficiency T1 / TP;
-* overlap: step time with one blocking allreduce after backward (``--no-overlap``) over the bucketed,
+* overlap: step time with one blocking allreduce after backward (``--no-overlap``) over the messageed,
   overlapped exchange, at P = 2 (and at the largest P);
 * exact mode: step time with ``--reduction exact --exact-chunk 256`` over the fast mode at the same P, target
   ≤ 1.25; plus a breakdown of one exact step on 2 ranks (chunk gradients, fixed-point accumulation, the

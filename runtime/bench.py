@@ -56,7 +56,7 @@ def gemm_floor_step(trainer: Trainer, first_layer_dA: bool = True) -> float:
 def run_bench(layers: list[int], batch: int, dtype: str = default("model.dtype"), threads: int = default("run.threads"),
               steps: int = 30, warmup: int = 5, reduction: str = default("run.reduction"),
               overlap: bool = default("run.overlap"), activation: str = default("model.activation"),
-              loss: str = default("model.loss"), method: str = "sgd", bucket_mb: float = default("run.bucket_mb"),
+              loss: str = default("model.loss"), method: str = "sgd", message_mib: float = default("run.message_mib"),
               exact_chunk: int = 64, update: str = default("run.update"),
               exact_format: str = default("run.exact_format"), progress: str = default("run.progress"),
               comm: Comm | None = None) -> dict[str, Any]:
@@ -74,7 +74,7 @@ def run_bench(layers: list[int], batch: int, dtype: str = default("model.dtype")
         "model": {"layers": layers, "activation": activation, "loss": loss, "dtype": dtype},
         "optimizer": {"method": method, "learning_rate": 1e-4},
         "run": {"global_batch": batch, "threads": threads, "reduction": reduction, "overlap": overlap,
-                "bucket_mb": bucket_mb, "exact_chunk": exact_chunk, "update": update,
+                "message_mib": message_mib, "exact_chunk": exact_chunk, "update": update,
                 "exact_format": exact_format, "progress": progress, "epochs": 1},
     })
     rows = max(4 * batch, 1024)

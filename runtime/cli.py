@@ -78,7 +78,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--progress", choices=choices("run.progress"), default=default("run.progress"),
                    help="who drives the overlapped reductions (see the job key run.progress)")
     p.add_argument("--no-overlap", action="store_true", help="one blocking allreduce after backward")
-    p.add_argument("--bucket-mb", type=float, default=default("run.bucket_mb"))
+    p.add_argument("--message-mib", type=float, default=default("run.message_mib"))
     p.add_argument("--activation", default=default("model.activation"))
     p.add_argument("--optimizer", default="sgd", help="update rule timed with the step (default sgd)")
     p.add_argument("--json", action="store_true", help="print only the JSON object")
@@ -203,12 +203,12 @@ def cmd_bench(args: argparse.Namespace) -> int:
 
     check_choice("model.activation", args.activation, name="--activation")
     check_choice("optimizer.method", args.optimizer, name="--optimizer")
-    if args.bucket_mb <= 0:
-        raise JobError(f"`--bucket-mb` must be > 0; got {args.bucket_mb}")
+    if args.message_mib <= 0:
+        raise JobError(f"`--message-mib` must be > 0; got {args.message_mib}")
     comm = Comm()
     result = run_bench(args.layers, args.batch, dtype=args.dtype, threads=args.threads, steps=args.steps,
                        warmup=args.warmup, reduction=args.reduction, overlap=not args.no_overlap,
-                       activation=args.activation, method=args.optimizer, bucket_mb=args.bucket_mb,
+                       activation=args.activation, method=args.optimizer, message_mib=args.message_mib,
                        exact_chunk=args.exact_chunk, update=args.update, exact_format=args.exact_format,
                        progress=args.progress,
                        comm=comm)

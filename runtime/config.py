@@ -133,24 +133,26 @@ SCHEMA: tuple[Key, ...] = (
     Key("run.reduction", "choice", "fast", "gradient sum: fast (MPI's order) or exact (bit-identical for every "
         "process count)", choices=REDUCTIONS),
     Key("run.exact_format", "choice", "wide", "exact mode's accumulator: wide (3 int64 per value, resolution "
-        "2⁻⁸⁸, correctly rounded), compact (1 int64 per value on a per-bucket scale, error within K·2^(h−51) of "
-        "each bucket's largest value) or narrow (1 int32 per value, the bytes of fast mode, within K·2^(h−30))",
+        "2⁻⁸⁸, correctly rounded), compact (1 int64 per value on a per-block scale, 256 values a block, "
+        "error within K·2^(h−51) of each block's largest value) or narrow (1 int32 per value, the bytes of fast "
+        "mode, within K·2^(h−30))",
         choices=("wide", "compact", "narrow"),
         digest_default=False),
     Key("run.exact_chunk", "integer", 32, "exact mode: rows per fixed chunk; global_batch must be a multiple",
         low=1),
-    Key("run.bucket_mb", "number", 4.0, "smallest gradient bucket of the overlapped allreduce, MB (10⁶ bytes)",
+    Key("run.message_mib", "number", 4.0, "smallest gradient message of the overlapped allreduce (whole "
+        "layers, last layer first), MiB (2²⁰ bytes)",
         low=0.0, low_open=True, trajectory=False),
     Key("run.update", "choice", "auto", "replicated: every rank updates every parameter; sharded: the "
         "gradient is reduce-scattered, each rank updates its own contiguous slice (optimizer state 1/P per rank) "
         "and the parameters are allgathered; auto: sharded on 2 or more processes when the optimizer keeps state "
         "(momentum, nesterov, adam, adamw), else replicated", choices=("auto", "replicated", "sharded"),
         trajectory=False),
-    Key("run.progress", "choice", "auto", "who drives the overlapped bucket reductions: library (MPI's "
+    Key("run.progress", "choice", "auto", "who drives the overlapped message reductions: library (MPI's "
         "non-blocking calls; best on one node, where the exchange is CPU work anyway), thread (a communication "
         "thread per rank; hides the exchange on a network), auto (thread when the ranks span more than one node)",
         choices=("auto", "thread", "library"), trajectory=False),
-    Key("run.overlap", "flag", True, "start each bucket's allreduce while backward runs; false: one blocking "
+    Key("run.overlap", "flag", True, "start each message's allreduce while backward runs; false: one blocking "
         "allreduce after backward", trajectory=False),
     Key("run.save_every", "integer", 0, "steps between checkpoints; 0 = at the end of every epoch", low=0,
         trajectory=False),
@@ -261,7 +263,7 @@ def choices(path: str) -> tuple[str, ...]:
 
 
 def default(path: str) -> Any:
-    """The default of a job key, e.g. ``default("run.bucket_mb")`` (for command-line options that mirror one)."""
+    """The default of a job key, e.g. ``default("run.message_mib")`` (for command-line options that mirror one)."""
     return KEYS[path].default
 
 

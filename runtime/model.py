@@ -3,7 +3,7 @@
 All parameters live in one flat array ``params``. Layers are laid out *last layer first*
 (``W_{L-1}, b_{L-1}, …, W_0, b_0``) because backward produces gradients in that order: after backward has
 finished layer l, the gradient prefix ``grads[:end_of(l)]`` is complete and can go on the wire as one
-contiguous bucket. ``weights[l]`` (fan_in, fan_out) and ``biases[l]`` (fan_out,) are views into ``params``.
+contiguous message. ``weights[l]`` (fan_in, fan_out) and ``biases[l]`` (fan_out,) are views into ``params``.
 """
 
 from __future__ import annotations
@@ -257,7 +257,7 @@ class Workspace:
         """Backpropagate the delta left by :meth:`forward_loss`, writing gradients into ``grads``.
 
         Yields (l, dZ_l) after layer l's gradients are complete (l = L−1 … 0), so the caller can launch the
-        allreduce of every bucket that has just filled; dZ_l (n, fan_out) is valid until the next iteration.
+        allreduce of every message that has just filled; dZ_l (n, fan_out) is valid until the next iteration.
         Per layer:
         dW_l = A_{l−1}ᵀ dZ_l (BLAS, straight into the grads view); db_l = Σ_rows dZ_l;
         dA_{l−1} = dZ_l W_lᵀ (BLAS); dZ_{l−1} = f'(Z_{l−1}) ⊙ dA_{l−1}.

@@ -125,7 +125,7 @@ def verify(job: Job, comm: Comm | None = None, batches: int = 3, trajectory: int
                                   "reduction": job.run.reduction, "dtype": trainer.model.dtype.name,
                                   "bound": "2·γ_{G−1}·Σ|x_i| (Higham 2002, §4.2)", "batches": []}
         if job.run.reduction == "exact" and job.run.exact_format != "wide":
-            report["bound"] += (f" + K·2^(−S_b−1) ({job.run.exact_format} exact format: K chunks on bucket b's "
+            report["bound"] += (f" + K·2^(−S_b−1) ({job.run.exact_format} exact format: K chunks on block b's "
                                 f"grid)")
         for k in range(batches):
             rows = trainer.sampler.batch(0, k)

@@ -3,7 +3,7 @@
 ExactExchange: the gradient it leaves must be the correctly rounded sum of the chunk gradients, element by element,
 whether a rank's first two chunks go into the limbs in one pass or not (1, 2 and 3 chunks). The reference is
 ``math.fsum`` (Python's exactly rounded floating-point sum, Shewchuk's algorithm), independent of our limbs.
-BucketExchange: buckets are contiguous runs of whole layers in backward order that tile the gradient buffer.
+MessageExchange: messages are contiguous runs of whole layers in backward order that tile the gradient buffer.
 Both strategies give the same gradient up to summation order as ``MLP.loss_and_grad`` on the whole batch.
 """
 
@@ -18,7 +18,7 @@ from shardmill.config import job_from_dict
 from shardmill.data import gather
 from shardmill.model import MLP
 from shardmill.parallel.comm import Comm
-from shardmill.parallel.exchange import BucketExchange, ExactExchange
+from shardmill.parallel.exchange import ExactExchange, MessageExchange
 from shardmill.trainer import Trainer
 
 
@@ -47,17 +47,17 @@ def test_exact_gradient_is_the_correctly_rounded_sum_of_the_chunks(tmp_path, chu
     np.testing.assert_array_equal(t.grads, expected.astype(t.grads.dtype))
 
 
-def test_buckets_tile_the_gradient_in_backward_order_with_whole_layers():
+def test_messages_tile_the_gradient_in_backward_order_with_whole_layers():
     model = MLP([30, 40, 50, 20, 4], seed=0)
     grads = np.zeros_like(model.params)
-    exchange = BucketExchange(Comm(), model, grads, bucket_mb=0.004)  # 4000 bytes: several buckets
-    starts = [start for start, _ in exchange.buckets]
-    stops = [stop for _, stop in exchange.buckets]
+    exchange = MessageExchange(Comm(), model, grads, message_mib=0.004)  # 4000 bytes: several messages
+    starts = [start for start, _ in exchange.messages]
+    stops = [stop for _, stop in exchange.messages]
     assert starts[0] == 0 and stops[-1] == grads.size and starts[1:] == stops[:-1]  # contiguous, tiling
     layer_ends = {model.slices[l][1] for l in range(model.n_layers)}
-    assert set(stops) <= layer_ends  # a bucket ends where a layer ends: whole layers only
-    for start, stop in exchange.buckets[:-1]:
-        assert (stop - start) * grads.itemsize >= 4000  # only the last (first layer's) bucket may be smaller
+    assert set(stops) <= layer_ends  # a message ends where a layer ends: whole layers only
+    for start, stop in exchange.messages[:-1]:
+        assert (stop - start) * grads.itemsize >= 4000  # only the last (first layer's) message may be smaller
 
 
 @pytest.mark.parametrize("reduction", ["fast", "exact"])

@@ -35,18 +35,18 @@ def job(layers: list[int], activation: str, run: dict, optimizer: dict | None = 
             "run": {"seed": 3, **run}}
 
 
-TINY_BUCKETS = {"bucket_mb": 1e-4}  # 100 bytes: every layer closes its own bucket, so several are in flight
+TINY_MESSAGES = {"message_mib": 1e-4}  # 100 bytes: every layer closes its own message, so several are in flight
 CASES = [
     {"name": "grad_fast_g10", "kind": "gradient",
-     "job": job(LAYERS, "tanh", {"global_batch": 10, **TINY_BUCKETS})},
+     "job": job(LAYERS, "tanh", {"global_batch": 10, **TINY_MESSAGES})},
     {"name": "grad_fast_g7_relu", "kind": "gradient",
-     "job": job([6, 12, 3], "relu", {"global_batch": 7, **TINY_BUCKETS})},
+     "job": job([6, 12, 3], "relu", {"global_batch": 7, **TINY_MESSAGES})},
     {"name": "grad_exact_g10", "kind": "gradient",
      "job": job(LAYERS, "tanh", {"global_batch": 10, "reduction": "exact", "exact_chunk": 2})},
     {"name": "train_fast", "kind": "train", "steps": STEPS,
-     "job": job(LAYERS, "tanh", {"global_batch": 10, "check_every": 1, **TINY_BUCKETS}, ADAM)},
+     "job": job(LAYERS, "tanh", {"global_batch": 10, "check_every": 1, **TINY_MESSAGES}, ADAM)},
     {"name": "train_fast_no_overlap", "kind": "train", "steps": STEPS,
-     "job": job(LAYERS, "tanh", {"global_batch": 10, "overlap": False, **TINY_BUCKETS}, ADAM)},
+     "job": job(LAYERS, "tanh", {"global_batch": 10, "overlap": False, **TINY_MESSAGES}, ADAM)},
     {"name": "train_exact", "kind": "train", "steps": STEPS,
      "job": job(LAYERS, "tanh", {"global_batch": 12, "reduction": "exact", "exact_chunk": 3}, ADAM)},
 ]
@@ -56,7 +56,7 @@ CLIPPED = {**ADAM, "clip_global_norm": 0.05}  # small enough to clip every step
 for update in ("replicated", "sharded"):
     CASES += [
         {"name": f"wide_fast_{update}", "kind": "train", "steps": STEPS,
-         "job": job(WIDE, "tanh", {"global_batch": 10, "check_every": 1, "update": update, **TINY_BUCKETS}, CLIPPED)},
+         "job": job(WIDE, "tanh", {"global_batch": 10, "check_every": 1, "update": update, **TINY_MESSAGES}, CLIPPED)},
         {"name": f"wide_exact_{update}", "kind": "train", "steps": STEPS,
          "job": job(WIDE, "tanh", {"global_batch": 12, "reduction": "exact", "exact_chunk": 3, "check_every": 1,
                                    "update": update}, CLIPPED)},
@@ -68,17 +68,17 @@ HEALTHY = {"check_every": 1, "health_every": 1}
 for update in ("replicated", "sharded"):
     CASES += [
         {"name": f"tiny_fast_{update}", "kind": "train", "steps": STEPS,
-         "job": job(TINY, "tanh", {"global_batch": 10, "update": update, **HEALTHY, **TINY_BUCKETS}, CLIPPED)},
+         "job": job(TINY, "tanh", {"global_batch": 10, "update": update, **HEALTHY, **TINY_MESSAGES}, CLIPPED)},
         {"name": f"tiny_exact_{update}", "kind": "train", "steps": STEPS,
          "job": job(TINY, "tanh", {"global_batch": 12, "reduction": "exact", "exact_chunk": 3, "update": update,
                                    **HEALTHY}, CLIPPED)},
     ]
 CASES += [
     {"name": "wide_fast_sharded_thread", "kind": "train", "steps": STEPS,
-     "job": job(WIDE, "tanh", {"global_batch": 10, "update": "sharded", "progress": "thread", **TINY_BUCKETS},
+     "job": job(WIDE, "tanh", {"global_batch": 10, "update": "sharded", "progress": "thread", **TINY_MESSAGES},
                 CLIPPED)},
     {"name": "train_fast_thread", "kind": "train", "steps": STEPS,
-     "job": job(LAYERS, "tanh", {"global_batch": 10, "check_every": 1, "progress": "thread", **TINY_BUCKETS}, ADAM)},
+     "job": job(LAYERS, "tanh", {"global_batch": 10, "check_every": 1, "progress": "thread", **TINY_MESSAGES}, ADAM)},
     {"name": "wide_fast_sharded_no_overlap", "kind": "train", "steps": STEPS,
      "job": job(WIDE, "tanh", {"global_batch": 10, "update": "sharded", "overlap": False}, CLIPPED)},
     {"name": "train_exact_compact", "kind": "train", "steps": STEPS,
@@ -261,7 +261,7 @@ def test_parameters_identical_on_every_rank(runs, case, P):
 @pytest.mark.parametrize("P", [2, 3, 4])
 def test_overlap_on_and_off_agree(runs, P):
     on, off = runs[P]["train_fast"], runs[P]["train_fast_no_overlap"]
-    assert relative(flat(off["params"]), flat(on["params"])) < 1e-12  # same sums, bucketed or whole. common practice
+    assert relative(flat(off["params"]), flat(on["params"])) < 1e-12  # same sums, messageed or whole. common practice
 
 
 # ---------------------------------------------------------------- sharded update
@@ -274,7 +274,7 @@ def test_sharded_fast_update_matches_serial_replicated(runs, P):
     # and of the clip norm differ (Higham 2002, §4.2), far below 1e-10 after 5 clipped Adam steps.
     assert relative(flat(sharded["params"]), flat(serial["params"])) < 1e-10
     blocking = runs[P]["wide_fast_sharded_no_overlap"]
-    assert relative(flat(blocking["params"]), flat(sharded["params"])) < 1e-12  # same sums, bucketed or whole
+    assert relative(flat(blocking["params"]), flat(sharded["params"])) < 1e-12  # same sums, messageed or whole
 
 
 @pytest.mark.parametrize("P", RANKS)
@@ -299,23 +299,23 @@ def test_sharded_exact_update_is_bit_identical_to_replicated_for_every_P(runs):
 
 
 def test_compact_exact_format_is_bit_identical_for_every_P_and_close_to_the_wide_one(runs):
-    # One int64 per value on per-bucket scales fixed from a MAX (order-free): integer sums again, so one SHA-256
+    # One int64 per value on per-message scales fixed from a MAX (order-free): integer sums again, so one SHA-256
     # for P = 1…4 and either update (README, fast and exact reduction).
     for cases in (("train_exact_compact",), ("wide_exact_compact_replicated", "wide_exact_compact_sharded")):
         digests = {runs[P][case]["sha256_by_rank"][0] for P in RANKS for case in cases}
         assert len(digests) == 1, (cases, digests)
     # Another grid than the wide format's, so other bits, but float64 terms rounded at 2^-(51-h) relative to each
-    # bucket's largest value: after 5 Adam steps the two runs differ far below 1e-8 (kernels/compactsum.py bound).
+    # message's largest value: after 5 Adam steps the two runs differ far below 1e-8 (kernels/compactsum.py bound).
     compact, wide = flat(runs[2]["train_exact_compact"]["params"]), flat(runs[2]["train_exact"]["params"])
     assert 0.0 < relative(compact, wide) < 1e-8
 
 
 def test_narrow_exact_format_is_bit_identical_for_every_P_and_close_to_the_wide_one(runs):
-    # int32 sums on a 30-bit grid per bucket: integer sums again, so one SHA-256 for P = 1…4.
+    # int32 sums on a 30-bit grid per message: integer sums again, so one SHA-256 for P = 1…4.
     for case in ("train_exact_narrow", "wide_exact_narrow_sharded"):
         digests = {runs[P][case]["sha256_by_rank"][0] for P in RANKS}
         assert len(digests) == 1, (case, digests)
-    # Each term rounds at 2^-(30-h) of its bucket's largest value (kernels/compactsum.py): after 5 Adam steps
+    # Each term rounds at 2^-(30-h) of its message's largest value (kernels/compactsum.py): after 5 Adam steps
     # the run stays within 1e-4 of the correctly rounded wide format's, but not on the same bits.
     narrow, wide = flat(runs[2]["train_exact_narrow"]["params"]), flat(runs[2]["train_exact"]["params"])
     assert 0.0 < relative(narrow, wide) < 1e-4
@@ -323,7 +323,7 @@ def test_narrow_exact_format_is_bit_identical_for_every_P_and_close_to_the_wide_
 
 @pytest.mark.parametrize("P", RANKS)
 def test_a_communication_thread_gives_the_same_sums(runs, P):
-    # The thread runs the same collectives on a duplicated communicator: the same sums, bucket by bucket.
+    # The thread runs the same collectives on a duplicated communicator: the same sums, message by message.
     for thread, library in (("train_fast_thread", "train_fast"), ("wide_fast_sharded_thread", "wide_fast_sharded")):
         assert relative(flat(runs[P][thread]["params"]), flat(runs[P][library]["params"])) < 1e-12  # common practice
         assert len(set(runs[P][thread]["sha256_by_rank"])) == 1

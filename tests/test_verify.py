@@ -178,7 +178,7 @@ def test_dropped_share_disagrees(api_runs: dict, P: int, case: str) -> None:
     assert report["verdict"] == "disagree" and report["max_bound_ratio"] > 1.0
     # The reported difference is the missing share itself, recomputed independently in the script by
     # MLP.loss_and_grad on rank 1's rows; the honest part agrees to within Higham's bound, far below 1e-3.
-    # (The narrow format's own grid, 2^-(30-h) of a bucket's largest value, is float32-sized too.)
+    # (The narrow format's own grid, 2^-(30-h) of a message's largest value, is float32-sized too.)
     rtol = 1e-3 if CASES[case][0] == "float32" or CASES[case][1] == "narrow" else 1e-9
     for name in NAMES:
         reported = max(t["max_abs_diff"] for t in tensor_rows(report) if t["tensor"] == name)

@@ -36,7 +36,7 @@ _MPI_TYPES = {np.dtype(np.float32): MPI.FLOAT, np.dtype(np.float64): MPI.DOUBLE,
 
 
 class Comm:
-    """A communicator with in-place sums, non-blocking bucket reductions, max, broadcast and abort."""
+    """A communicator with in-place sums, non-blocking message reductions, max, broadcast and abort."""
 
     def __init__(self, comm: Any = None) -> None:
         self.comm = MPI.COMM_WORLD if comm is None else comm

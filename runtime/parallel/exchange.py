@@ -9,10 +9,10 @@ The step calls one interface and does not know the mode (``Trainer.gradient`` an
     clip with exchange.sum_squares(); update params[exchange.owned]
     exchange.publish(params)                  # every rank holds every parameter again
 
-:class:`BucketExchange` (``run.reduction = "fast"``, replicated update): one part, this rank's contiguous shard,
-written straight into ``grads``; contiguous buckets of whole layers are summed by non-blocking allreduces (or a
+:class:`MessageExchange` (``run.reduction = "fast"``, replicated update): one part, this rank's contiguous shard,
+written straight into ``grads``; contiguous messages of whole layers are summed by non-blocking allreduces (or a
 communication thread) started as backward finishes them. :class:`ShardedExchange` (fast, sharded update):
-the same buckets are reduce-scattered, so each rank holds the sum of its own slice (``owned``), updates that slice
+the same messages are reduce-scattered, so each rank holds the sum of its own slice (``owned``), updates that slice
 alone and ``publish`` allgathers the parameters. :class:`ExactExchange` (``"exact"``): fixed chunks of the batch,
 each chunk's gradient added exactly in fixed point (3 int64 limbs), so the sum has the same bits for every P;
 :class:`CompactExchange` does the same on one int64 or int32 per value. Both exact strategies reduce-scatter, then
@@ -205,16 +205,16 @@ class Exchange:
         """Release what the strategy started (a communication thread); idempotent."""
 
 
-class BucketExchange(Exchange):
-    """Fast mode: this rank's shard into ``grads``; buckets of whole layers allreduced as backward finishes them.
+class MessageExchange(Exchange):
+    """Fast mode: this rank's shard into ``grads``; messages of whole layers allreduced as backward finishes them.
 
-    Layers are laid out last layer first, so backward fills ``grads`` from offset 0 upward. A bucket is a run of
-    whole layers of at least ``bucket_mb`` megabytes; its non-blocking in-place SUM allreduce starts the moment
+    Layers are laid out last layer first, so backward fills ``grads`` from offset 0 upward. A message is a run of
+    whole layers of at least ``message_mib`` megabytes; its non-blocking in-place SUM allreduce starts the moment
     backward has finished its last layer, and :meth:`finish` waits for them all. With ``overlap`` off, one
     blocking allreduce of the whole buffer runs in :meth:`finish` instead (for comparison in benchmarks).
     """
 
-    def __init__(self, comm: Comm, model: MLP, grads: np.ndarray, bucket_mb: float, overlap: bool = True,
+    def __init__(self, comm: Comm, model: MLP, grads: np.ndarray, message_mib: float, overlap: bool = True,
                  progress: str = "library") -> None:
         super().__init__(comm, model, grads)
         self.overlap = overlap
@@ -223,21 +223,21 @@ class BucketExchange(Exchange):
         if progress == "auto":
             progress = "thread" if comm.spans_nodes() else "library"
         self.thread = CommThread(comm) if overlap and progress == "thread" and comm.size > 1 else None
-        limit = bucket_mb * 1e6
-        self.buckets: list[tuple[int, int]] = []  # (start, stop) element offsets
-        self._closing: dict[int, int] = {}  # layer whose completion closes bucket i -> i
+        limit = message_mib * 2**20
+        self.messages: list[tuple[int, int]] = []  # (start, stop) element offsets
+        self._closing: dict[int, int] = {}  # layer whose completion closes message i -> i
         start = 0
         for l in reversed(range(model.n_layers)):  # the order backward produces gradients
             stop = model.slices[l][1]
             if (stop - start) * grads.itemsize >= limit or l == 0:
-                self._closing[l] = len(self.buckets)
-                self.buckets.append((start, stop))
+                self._closing[l] = len(self.messages)
+                self.messages.append((start, stop))
                 start = stop
         self._requests: list = []
 
     @classmethod
-    def from_run(cls, comm: Comm, model: MLP, grads: np.ndarray, run: RunSpec) -> BucketExchange:
-        return cls(comm, model, grads, run.bucket_mb, run.overlap, run.progress)
+    def from_run(cls, comm: Comm, model: MLP, grads: np.ndarray, run: RunSpec) -> MessageExchange:
+        return cls(comm, model, grads, run.message_mib, run.overlap, run.progress)
 
     @staticmethod
     def part_rows(run: RunSpec, processes: int) -> int:
@@ -250,13 +250,13 @@ class BucketExchange(Exchange):
         yield shard(rows, self.comm.rank, self.comm.size), self.grads  # contiguous [lo, hi)
 
     def layer_done(self, layer: int) -> None:
-        """Start the reduction of the bucket ``layer`` completes, if any."""
+        """Start the reduction of the message ``layer`` completes, if any."""
         if self.overlap and layer in self._closing:
-            self._requests.append(self.start_bucket(self._closing[layer]))
+            self._requests.append(self.start_message(self._closing[layer]))
 
-    def start_bucket(self, bucket: int) -> Any:
-        """Start the in-place SUM allreduce of bucket ``bucket`` (non-blocking, or on the thread)."""
-        start, stop = self.buckets[bucket]
+    def start_message(self, message: int) -> Any:
+        """Start the in-place SUM allreduce of message ``message`` (non-blocking, or on the thread)."""
+        start, stop = self.messages[message]
         if self.thread is not None:
             return self.thread.start_allreduce_sum(self.grads[start:stop])
         return self.comm.start_allreduce_sum(self.grads[start:stop])
@@ -266,7 +266,7 @@ class BucketExchange(Exchange):
         self.comm.allreduce_sum(self.grads)
 
     def finish(self) -> None:
-        """Wait for every bucket (or run the single blocking reduction without overlap)."""
+        """Wait for every message (or run the single blocking reduction without overlap)."""
         if self.overlap:
             if self.thread is not None:
                 self.thread.wait(self._requests)
@@ -281,34 +281,34 @@ class BucketExchange(Exchange):
             self.thread.close()
 
 
-class ShardedExchange(BucketExchange):
-    """Fast mode with a sharded update: buckets are reduce-scattered, each rank updates its own slice.
+class ShardedExchange(MessageExchange):
+    """Fast mode with a sharded update: messages are reduce-scattered, each rank updates its own slice.
 
-    Each rank owns a contiguous slice of the flat parameters (:func:`owner_bounds`). As backward completes a bucket
+    Each rank owns a contiguous slice of the flat parameters (:func:`owner_bounds`). As backward completes a message
     of whole layers, a non-blocking reduce-scatter sums it over ranks and delivers to each rank the part of the
-    bucket inside its slice, into ``summed`` (the owned gradient). Each rank clips and updates only its slice, with
+    message inside its slice, into ``summed`` (the owned gradient). Each rank clips and updates only its slice, with
     optimizer state for that slice alone ((P−1)/P less memory per rank), and :meth:`publish` allgathers the updated
     slices so every rank holds every parameter. Traffic: a reduce-scatter and an allgather, as an allreduce, but
     the update is divided by P instead of repeated on every rank.
     """
 
-    def __init__(self, comm: Comm, model: MLP, grads: np.ndarray, bucket_mb: float, overlap: bool = True,
+    def __init__(self, comm: Comm, model: MLP, grads: np.ndarray, message_mib: float, overlap: bool = True,
                  progress: str = "library") -> None:
-        super().__init__(comm, model, grads, bucket_mb, overlap, progress)
+        super().__init__(comm, model, grads, message_mib, overlap, progress)
         bounds = owner_bounds(grads.size, comm.size)
         self.counts = [hi - lo for lo, hi in bounds]  # elements each rank owns
         self.owned = slice(*bounds[comm.rank])
         self.sharded = comm.size > 1
         self.summed = np.zeros(self.owned_size, dtype=grads.dtype)  # the owned slice of the summed gradient
         lo, hi = self.owned.start, self.owned.stop
-        # Per bucket, fixed at build time: what is sent, the view of ``summed`` that receives this rank's part of
-        # it, and how much of the bucket each rank owns.
+        # Per message, fixed at build time: what is sent, the view of ``summed`` that receives this rank's part of
+        # it, and how much of the message each rank owns.
         self._scatters = [(grads[start:stop], self.summed[min(max(start, lo), hi) - lo:max(min(stop, hi), lo) - lo],
                            [max(0, min(stop, b) - max(start, a)) for a, b in bounds])
-                          for start, stop in self.buckets]
+                          for start, stop in self.messages]
 
-    def start_bucket(self, bucket: int) -> Any:
-        send, received, counts = self._scatters[bucket]
+    def start_message(self, message: int) -> Any:
+        send, received, counts = self._scatters[message]
         if self.thread is not None:
             return self.thread.start_reduce_scatter_sum(send, received, counts)
         return self.comm.start_reduce_scatter_sum(send, received, counts)
@@ -634,4 +634,4 @@ def strategy(run: RunSpec) -> type[Exchange]:
     """The exchange strategy class for a job's ``run.reduction``, ``run.exact_format`` and ``run.update``."""
     if run.reduction == "exact":  # they read run.update themselves: exact mode reduce-scatters either way
         return ExactExchange if run.exact_format == "wide" else CompactExchange
-    return ShardedExchange if run.update == "sharded" else BucketExchange
+    return ShardedExchange if run.update == "sharded" else MessageExchange

@@ -90,7 +90,7 @@ class CommThread:
         return handle
 
     def start_allreduce_sum(self, array: np.ndarray) -> Handle:
-        """In-place SUM allreduce of a contiguous array (a bucket of ``grads``) on every rank."""
+        """In-place SUM allreduce of a contiguous array (a message of ``grads``) on every rank."""
         return self.submit(lambda comm: comm.allreduce_sum(array), f"allreduce_sum of {array.size} values")
 
     def start_reduce_scatter_sum(self, send: np.ndarray, recv: np.ndarray, counts: list[int]) -> Handle:

@@ -73,7 +73,7 @@ ASSUMPTIONS: tuple[str, ...] = (
     "message size, as MPI libraries switch algorithms by size.",
     "A step's exchange is priced as whole-vector collectives: one allreduce of the gradient (replicated "
     "update), or a reduce-scatter of the gradient and an allgather of the parameters (sharded update; exact mode "
-    "reduce-scatters its integer sums and allgathers the gradient or the parameters); bucketing is represented "
+    "reduce-scatters its integer sums and allgathers the gradient or the parameters); message grouping is represented "
     "only by the overlap fraction, the share of communication hidden behind backward, which is given and not "
     "derived from the backward time.",
     "Reduce-scatter and allgather cost the same alpha and beta per message as the allreduce (the same links), "

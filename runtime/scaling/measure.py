@@ -70,7 +70,7 @@ def measure_allreduce(
 def measure_reduction_gamma(n_bytes: float, repeats: int = 10, warmup: int = 2, dtype: Any = np.float32) -> float:
     """Estimate γ in seconds per byte: median time of a numpy in-place add `a += b` of `n_bytes` bytes,
     divided by the bytes reduced. Runs on this process only, no MPI. Choose n_bytes near the gradient
-    bucket size: small sizes measure call overhead, sizes beyond the caches measure memory bandwidth.
+    message size: small sizes measure call overhead, sizes beyond the caches measure memory bandwidth.
     """
     itemsize = np.dtype(dtype).itemsize
     count = max(1, int(check_non_negative(n_bytes, "n_bytes")) // itemsize)

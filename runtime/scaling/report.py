@@ -300,7 +300,7 @@ def markdown(study: dict[str, Any], figures: set[str]) -> str:
         f"{job['loss']}), {job['dtype']}, {job['params']:,} parameters ({size(job['grad_bytes'])} of gradient). "
         f"Global batch G = {job['global_batch']} {job['global_batch_meaning']}; reduction {job['reduction']}"
         + (f" ({job['exact_format']} format)" if job["reduction"] == "exact" else "")
-        + f", {job['update']} update, buckets of {job['bucket_mb']:g} MB, optimizer {job['optimizer']}.",
+        + f", {job['update']} update, messages of {job['message_mib']:g} MiB, optimizer {job['optimizer']}.",
         "",
         "## Measured",
         "",

@@ -148,7 +148,7 @@ EXTRA_ASSUMPTIONS: list[str] = [
     "Compute per step is the measured P = 1 step's data + forward + backward + update time; in strong "
     "scaling data, forward and backward divide by P, and so does the update when it is sharded, while a "
     "replicated update, which every rank repeats over all parameters, does not; the exchange "
-    "is modelled as fully exposed (overlap 0), an upper bound when buckets overlap with backward.",
+    "is modelled as fully exposed (overlap 0), an upper bound when messages overlap with backward.",
     "Alpha and beta come from in-place SUM allreduce medians at the largest measured P on this machine, "
     "with the reduction cost gamma measured separately and held fixed.",
 ]
@@ -327,7 +327,7 @@ def build_study(job: Job, job_path: Path, mode: str, steps: int, threads: int, p
             "reduction": job.run.reduction,
             "exact_format": first["exact_format"],
             "update": job.run.update,
-            "bucket_mb": job.run.bucket_mb,
+            "message_mib": job.run.message_mib,
             "optimizer": job.optimizer.method,
             "params": first["params"],
             "grad_bytes": first["grad_bytes"],

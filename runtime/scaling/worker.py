@@ -29,7 +29,7 @@ def exchange_alone(trainer: Any, repeats: int) -> dict[str, Any]:
     """Seconds of the step's exchange with no compute around it, on every rank (collective: every rank calls it).
 
     The same calls the step makes, in the same order, on the buffers the last timed step left: every layer
-    handed to the strategy in backward order (`layer_done`: the fast strategies start their bucket reductions
+    handed to the strategy in backward order (`layer_done`: the fast strategies start their message reductions
     there), then `finish` (wait for them; exact mode reduce-scatters its integer sums, reads back and, for a
     replicated update, allgathers). That is what the step's "exchange" phase waits for, so the two compare:
     hidden fraction = 1 − exposed / alone. `publish` (the allgather of the parameters after a sharded update;
@@ -120,7 +120,7 @@ def run_worker(job_path: Path, global_batch: int, steps: int, threads: int, pin:
     the phase timer is reset and the timed steps run between a barrier and the last step's end. Then the
     exchange is timed alone (`exchange_alone`), every rank's record is gathered once to rank 0 (lowercase
     gather: a small control message after timing), the allreduce is timed over MESSAGE_SIZES (P > 1) and
-    rank 0 measures γ at the bucket size.
+    rank 0 measures γ at the message size.
     """
     from mpi4py import MPI
     from shardmill.parallel.comm import Comm
@@ -162,7 +162,7 @@ def run_worker(job_path: Path, global_batch: int, steps: int, threads: int, pin:
     timings, skipped = time_allreduce(comm, MESSAGE_SIZES, comm_repeats, COMM_BUDGET_S, dtype) \
         if comm.size > 1 else ([], [])
     if comm.rank == 0:
-        gamma_bytes = int(job.run.bucket_mb * 1e6)
+        gamma_bytes = int(job.run.message_mib * 2**20)
         gamma = measure_reduction_gamma(gamma_bytes, repeats=comm_repeats, warmup=1, dtype=dtype)
         import mpi4py
 

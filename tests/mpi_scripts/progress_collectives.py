@@ -2,7 +2,7 @@
 
 Usage: ``python progress_collectives.py MODE OUT.json``. MODE is one of
 
-- ``sums``: for several rounds, the thread allreduces the buckets of a gradient buffer while the main thread runs
+- ``sums``: for several rounds, the thread allreduces the messages of a gradient buffer while the main thread runs
   its own blocking allreduces of a copy on the world communicator; then a reduce-scatter and an allgather through
   the thread. Each rank checks its results against the blocking path and against sums it computes itself (every
   rank's fill is known everywhere: small integers, so every sum is exact in float32). Rank 0 writes the checks.
@@ -23,7 +23,7 @@ import time
 import numpy as np
 from shardmill.model import MLP
 from shardmill.parallel.comm import Comm, run_guarded
-from shardmill.parallel.exchange import BucketExchange
+from shardmill.parallel.exchange import MessageExchange
 from shardmill.parallel.progress import CommThread
 
 FAULTY_RANK = 1
@@ -39,13 +39,13 @@ def fill(rank: int, size: int, round_: int) -> np.ndarray:
 def sums(comm: Comm, thread: CommThread, out: str) -> int:
     model = MLP([30, 40, 50, 20, 4], seed=0, dtype="float32")
     grads = np.zeros_like(model.params)
-    buckets = BucketExchange(comm, model, grads, bucket_mb=0.004).buckets  # several buckets of whole layers
+    messages = MessageExchange(comm, model, grads, message_mib=0.004).messages  # several messages of whole layers
     checks: dict[str, bool] = {}
     for round_ in range(ROUNDS):
         grads[:] = fill(comm.rank, grads.size, round_)
         reference = grads.copy()
-        handles = [thread.start_allreduce_sum(grads[start:stop]) for start, stop in buckets]
-        for start, stop in buckets:  # the main thread's own collectives meanwhile, on the world communicator
+        handles = [thread.start_allreduce_sum(grads[start:stop]) for start, stop in messages]
+        for start, stop in messages:  # the main thread's own collectives meanwhile, on the world communicator
             comm.allreduce_sum(reference[start:stop])
         thread.wait(handles)
         expected = sum(fill(r, grads.size, round_) for r in range(comm.size))  # independent: every fill is known
@@ -69,7 +69,7 @@ def sums(comm: Comm, thread: CommThread, out: str) -> int:
     everyone = comm.gather_object(checks)
     if comm.rank == 0:
         with open(out, "w") as f:
-            json.dump({"processes": comm.size, "buckets": len(buckets), "checks_by_rank": everyone}, f)
+            json.dump({"processes": comm.size, "messages": len(messages), "checks_by_rank": everyone}, f)
     return 0
 
 

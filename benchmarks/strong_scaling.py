@@ -61,8 +61,8 @@ BIND = ("-bind-to", "core")  # MPICH Hydra's option: one core per rank
 def bench_args(v: dict[str, Any], steps: int, warmup: int) -> list[str]:
     """``-m shardmill bench …`` for one variant (started under mpiexec on v["P"] ranks by run_rounds)."""
     layers = ",".join(map(str, MID_MODEL))
-    return ["-m", "shardmill", "bench", "--layers", layers, "--batch", str(v["G"]), "--dtype", "float32",
-            "--threads", "1", "--steps", str(steps), "--warmup", str(warmup), "--json", *v["flags"]]
+    return ["-m", "shardmill", "bench", "--layers", layers, "--global-batch", str(v["G"]), "--dtype",
+            "float32", "--threads", "1", "--steps", str(steps), "--untimed", str(warmup), "--json", *v["flags"]]
 
 
 def key(v: dict[str, Any]) -> str:

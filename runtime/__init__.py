@@ -6,23 +6,36 @@ Public contract::
     m = sm.MLP([64, 128, 10], activation="tanh", loss="softmax_cross_entropy", dtype="float64", seed=0)
     loss, grad = m.loss_and_grad(X, y)
     job = sm.load_job("job.toml"); result = sm.train(job)
+    predictor = result["predictor"]            # the trained model with its input standardisation
+    labels = predictor.predict(X_raw)          # raw rows (n, d), as the training data held them
+    predictor = sm.load_model("run/final.npz") # or best.npz, a checkpoint directory, a workdir
+
+``sm.train(job)`` returns a dict whose ``"predictor"`` entry is a :class:`Predictor`: the final model together with
+the training rows' column means and inverse standard deviations (also under ``"input_mean"`` and
+``"input_inv_std"``, (d,) float64), so ``predict``, ``predict_proba`` and ``outputs`` take raw, unstandardised rows.
 """
 
 from __future__ import annotations
 
+from importlib.metadata import PackageNotFoundError, version
 from typing import Any
 
 from shardmill.config import Job, JobError, job_from_dict, load_job
 from shardmill.model import MLP
+from shardmill.predict import Predictor, load_model
 
-__version__ = "0.1.0"
-__all__ = ["MLP", "Job", "JobError", "job_from_dict", "load_job", "train", "__version__"]
+try:
+    __version__ = version("shardmill")  # pyproject.toml is the one place the version is written
+except PackageNotFoundError:  # the sources imported without being installed
+    __version__ = "0+unknown"
+__all__ = ["MLP", "Job", "JobError", "Predictor", "job_from_dict", "load_job", "load_model", "train", "__version__"]
 
 
 def train(job: Job, resume: bool = False, progress: bool = True, fresh: bool = False) -> dict[str, Any]:
     """Train a job on every rank of MPI.COMM_WORLD (one process without a launcher); see trainer.train.
 
     A workdir that holds an earlier run is refused unless ``resume`` (continue it) or ``fresh`` (clear it first).
+    The result's ``"predictor"`` is a :class:`Predictor` of the final model (raw inputs in, see above).
     """
     from shardmill.trainer import train as _train
 

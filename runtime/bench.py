@@ -120,7 +120,7 @@ def run_bench(layers: list[int], batch: int, dtype: str = default("model.dtype")
         "overlap": overlap,
         "params": n_params,
         "steps": steps,
-        "warmup": warmup,
+        "untimed_steps": warmup,
         "statistic": "median",
         "samples_per_s": batch / step_s,
         "step_ms": step_s * 1e3,

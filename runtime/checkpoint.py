@@ -54,6 +54,8 @@ class TrainingState:
     job: Job
     layers: list[int]
     dtype: str
+    feature_names: list[str] | None = None  # input column names, when the inputs came from a table with a header
+    best: dict[str, Any] | None = None  # the best-model tracker (run.best_metric): resumes with the run
 
 
 def sha256(path: Path) -> str:
@@ -93,10 +95,12 @@ def model_arrays(state: TrainingState) -> dict[str, np.ndarray]:
     return arrays
 
 
-def save(state: TrainingState, root: Path, keep: int) -> Path:
+def save(state: TrainingState, root: Path, keep: int, best: bool = False) -> Path:
     """Write the checkpoint of ``state.step`` atomically under ``root``; keep the newest ``keep`` checkpoints.
 
-    One writer per workdir: the caller writes from one rank (parameters are identical on every rank).
+    ``best``: this checkpoint holds the best model so far (``run.best_metric``); the index marks it and pruning keeps
+    it beside the newest ``keep`` until a better one comes. One writer per workdir: the caller writes from one rank
+    (parameters are identical on every rank).
     """
     step = state.step
     root.mkdir(parents=True, exist_ok=True)
@@ -118,6 +122,9 @@ def save(state: TrainingState, root: Path, keep: int) -> Path:
         "processes": state.processes,
         "job": job.as_dict(),
         "job_digest": job.digest(),
+        "overrides": list(job.overrides),
+        "feature_names": state.feature_names,
+        "best": state.best,
         "layers": state.layers,
         "dtype": state.dtype,
         "files": {f: sha256(tmp / f) for f in ("params.npz", "optimizer.npz")},
@@ -129,20 +136,35 @@ def save(state: TrainingState, root: Path, keep: int) -> Path:
     os.replace(tmp, final)
     _fsync_dir(root)
     complete = [entry for entry in read_index(root) if entry["name"] != name and (root / entry["name"]).is_dir()]
-    complete.append({"name": name, "step": step, "epoch": record["epoch"], "written": _now(),
-                     "state_sha256": sha256(final / "state.json")})
+    if best:
+        for entry in complete:
+            entry.pop("best", None)
+    entry = {"name": name, "step": step, "epoch": record["epoch"], "written": utc_now(),
+             "state_sha256": sha256(final / "state.json")}
+    if best:
+        entry["best"] = True
+    complete.append(entry)
     complete.sort(key=lambda entry: entry["step"])
-    write_index(root, complete[-keep:])  # the newest `keep`, this one last: it is what a resume reads
+    # the newest `keep`, this one last (it is what a resume reads), and the best one wherever it is
+    kept = [entry for i, entry in enumerate(complete) if i >= len(complete) - keep or entry.get("best")]
+    write_index(root, kept)
     (root / "latest").unlink(missing_ok=True)  # the one-line pointer of earlier versions, replaced by the index
-    prune(root, keep, name)
+    prune(root, {entry["name"] for entry in kept})
     return final
+
+
+def best_name(root: Path) -> str | None:
+    """The name of the checkpoint the index marks as the best model (``run.best_metric``), or None."""
+    marked = [entry["name"] for entry in read_index(root) if entry.get("best")]
+    return marked[-1] if marked else None
 
 
 INDEX = "index.json"
 INDEX_FORMAT = "shardmill-checkpoint-index-1"
 
 
-def _now() -> str:
+def utc_now() -> str:
+    """The time now, UTC, ISO 8601 to the second (as the index and metrics.jsonl record it)."""
     import datetime
 
     return datetime.datetime.now(datetime.UTC).isoformat(timespec="seconds")
@@ -205,14 +227,13 @@ def _step_of(folder: Path) -> int:
         return -1
 
 
-def prune(root: Path, keep: int, newest: str) -> None:
-    """Remove all but the ``keep`` checkpoints of highest step, and never ``newest`` (the one `latest` names).
+def prune(root: Path, kept: set[str]) -> None:
+    """Remove every checkpoint folder the index no longer lists (``kept``: the names it lists).
 
-    By step number, not by name (names sort wrongly past 10⁸ steps), and only after `latest` has moved on.
+    Called only after the new index is in place, so a reader never finds a listed checkpoint missing.
     """
-    ordered = sorted((p for p in root.glob("step-*") if p.is_dir()), key=_step_of)
-    for old in ordered[:-keep]:
-        if old.name != newest:
+    for old in root.glob("step-*"):
+        if old.is_dir() and old.name not in kept:
             shutil.rmtree(old, ignore_errors=True)
 
 
@@ -232,7 +253,7 @@ def holds_a_run(workdir: Path) -> str | None:  # the lock file alone is not a ru
 def clear_run(workdir: Path) -> None:
     """Remove an earlier run's checkpoints, metrics.jsonl and final.npz from ``workdir`` (``train --fresh``)."""
     shutil.rmtree(workdir / "checkpoints", ignore_errors=True)
-    for name in ("metrics.jsonl", "final.npz"):
+    for name in ("metrics.jsonl", "final.npz", "best.npz"):
         (workdir / name).unlink(missing_ok=True)
 
 
@@ -287,8 +308,10 @@ def check_compatible(job: Job, shapes: dict[str, tuple[int, ...]], optimizer_sha
     ``optimizer_shapes`` (full size, as saved) describe the run that resumes."""
     if state.get("job_digest") != job.digest():
         diffs = job.trajectory_differences(state.get("job", {}))
+        given = state.get("overrides") or []
+        hint = f"; its run was started with --set {' --set '.join(given)}" if given != list(job.overrides) else ""
         raise CheckpointError("checkpoint belongs to another job (its job digest differs"
-                              + (f"; changed: {', '.join(diffs)}" if diffs else "") + ")")
+                              + (f"; changed: {', '.join(diffs)}" if diffs else "") + f"{hint})")
     for name, shape in shapes.items():
         if name not in params or params[name].shape != shape:
             got = params[name].shape if name in params else "missing"
@@ -299,9 +322,15 @@ def check_compatible(job: Job, shapes: dict[str, tuple[int, ...]], optimizer_sha
 
 
 def write_final(path: Path, state: TrainingState) -> None:
-    """``final.npz``: W0, b0, …, input standardisation, and the model description as a JSON string."""
+    """``final.npz`` (or ``best.npz``): W0, b0, …, input_mean, input_inv_std, and as JSON strings (0-d unicode
+    arrays): ``model_json`` (the [model] table), ``job_json`` (the whole resolved job), ``job_digest``,
+    ``feature_names_json`` (a list of input column names, or null) and ``step`` (an int64 scalar)."""
     arrays = model_arrays(state)
     arrays["model_json"] = np.array(json.dumps(state.job.as_dict()["model"]))
+    arrays["job_json"] = np.array(json.dumps(state.job.as_dict()))
+    arrays["job_digest"] = np.array(state.job.digest())
+    arrays["feature_names_json"] = np.array(json.dumps(state.feature_names))
+    arrays["step"] = np.array(state.step, dtype=np.int64)
     tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
     _write_npz(tmp, arrays)
     os.replace(tmp, path)

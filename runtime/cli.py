@@ -1,4 +1,5 @@
-"""The ``shardmill`` command: train, verify, bench, scale, predict, info, demo.
+"""The ``shardmill`` command: train, verify, bench, scale, predict, export, curves, resolve, saves, info, compile,
+demo.
 
 User errors (a bad job, a missing file, a refused checkpoint) print one line and exit 2, with no
 traceback; our own bugs print the rank and a full traceback and end every rank.
@@ -36,120 +37,267 @@ def _positive(text: str) -> int:
     return value
 
 
+class _Help(argparse.HelpFormatter):
+    """Help lines that end with the option's default (when it has one worth showing); choices show in the metavar."""
+
+    def _get_help_string(self, action: argparse.Action) -> str:
+        text = action.help or ""
+        shown = action.default not in (None, False, argparse.SUPPRESS) and action.option_strings
+        if shown and "%(default)" not in text and "default" not in text:
+            text += " (default: %(default)s)"
+        return text
+
+
+# One grammar for every command (README, "Flags"): JOB is a job file; --set changes one of its keys; --ranks N starts
+# N processes; --sizes lists process counts; --json prints JSON on stdout; --out FILE writes a file; --out-dir DIR
+# writes into a folder.
+LEGACY_FLAGS: dict[str, dict[str, str]] = {
+    "bench": {"--batch": "--global-batch", "--optimizer": "--method", "--warmup": "--untimed",
+              "--bucket-mb": "--message-mib"},
+    "scale": {"--ranks": "--sizes", "--out": "--out-dir"},
+    "demo": {"--out": "--out-dir"},
+    "verify": {"--json": "--out"},  # was a FILE; --json is now the stdout switch (a following path means the old use)
+}
+"""Flags renamed in 0.2, per command: accepted for one release with a one-line notice, then refused."""
+
+
+def modernise(argv: list[str]) -> tuple[list[str], list[str]]:
+    """argv with 0.1's flag names replaced by today's (see :data:`LEGACY_FLAGS`), and the notices to print."""
+    command = next((a for a in argv if not a.startswith("-")), None)
+    renames = LEGACY_FLAGS.get(command or "", {})
+    out, notices = [], []
+    for i, arg in enumerate(argv):
+        flag, eq, value = arg.partition("=")
+        new = renames.get(flag)
+        if new and command == "verify":  # only `--json FILE` is the old use; a bare --json is the switch
+            following = argv[i + 1] if i + 1 < len(argv) else ""
+            if not eq and (not following or following.startswith("-")):
+                new = None
+        if new:
+            notices.append(f"`{command} {flag}` is now `{new}`; the old name is accepted until the next release")
+            arg = new + eq + value
+        out.append(arg)
+    return out, notices
+
+
 def build_parser() -> argparse.ArgumentParser:
-    parser = argparse.ArgumentParser(prog="shardmill", description="Data-parallel MLP training on CPUs over MPI.")
-    sub = parser.add_subparsers(dest="command", required=True)
+    from shardmill import __version__
+
+    parser = argparse.ArgumentParser(prog="shardmill", description="Data-parallel MLP training on CPUs over MPI.",
+                                     formatter_class=_Help)
+    parser.add_argument("--version", action="version", version=f"shardmill {__version__}",
+                        help="print the version and exit")
+    sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+
+    def command(name: str, text: str) -> argparse.ArgumentParser:
+        return sub.add_parser(name, help=text, description=text, formatter_class=_Help)
+
+    def job_file(p: argparse.ArgumentParser) -> None:
+        p.add_argument("job", type=Path, metavar="JOB", help="the job file (TOML)")
+        p.add_argument("--set", action="append", default=[], metavar="SECTION.KEY=VALUE", dest="sets",
+                       help="change one key of the job (repeatable), e.g. --set optimizer.learning_rate=0.01; "
+                            "the value is read as TOML, or as text when it is not TOML")
 
     def ranks(p: argparse.ArgumentParser) -> None:
-        p.add_argument("--ranks", type=_positive, default=None,
-                       help="start this many processes with the bundled mpiexec (instead of launching it yourself)")
+        p.add_argument("--ranks", type=_positive, default=None, metavar="N",
+                       help="start N processes with the bundled mpiexec (default: run as launched, e.g. under your "
+                            "own mpiexec or srun)")
 
-    p = sub.add_parser("train", help="train a job file")
-    p.add_argument("job", type=Path)
+    def json_switch(p: argparse.ArgumentParser, what: str) -> None:
+        p.add_argument("--json", action="store_true", help=f"print {what} as one JSON object on stdout, no text")
+
+    p = command("train", "train a job")
+    job_file(p)
     again = p.add_mutually_exclusive_group()
     again.add_argument("--resume", action="store_true",
                        help="continue from the newest complete checkpoint in the workdir")
     again.add_argument("--fresh", action="store_true",
-                       help="start over in a workdir that holds a run: remove its checkpoints, metrics.jsonl and "
-                            "final.npz first")
+                       help="start over in a workdir that holds a run: remove its checkpoints, metrics.jsonl, "
+                            "final.npz and best.npz first")
     p.add_argument("--no-progress", action="store_true", help="no progress bar")
+    p.add_argument("--curves", action="store_true", help="draw the run's curves into WORKDIR/curves at the end")
     ranks(p)
 
-    p = sub.add_parser("verify", help="compare the parallel gradient with the serial one on the job's batches")
-    p.add_argument("job", type=Path)
-    p.add_argument("--batches", type=_positive, default=3, help="global batches to compare (default 3)")
+    p = command("verify", "compare the parallel gradient with the serial one on the job's batches")
+    job_file(p)
+    p.add_argument("--batches", type=_positive, default=3, metavar="N", help="global batches to compare")
     p.add_argument("--trajectory", type=int, default=0, metavar="N",
                    help="also train N steps serial and parallel and report the weight divergence per step")
-    p.add_argument("--json", type=Path, default=None, help="write the JSON report here")
+    p.add_argument("--out", type=Path, default=None, metavar="FILE", help="also write the JSON report to FILE")
+    json_switch(p, "the report")
     ranks(p)
 
-    p = sub.add_parser("bench", help="time training steps against the BLAS floor; prints JSON")
-    p.add_argument("--layers", type=_layers, default=[784, 1024, 1024, 10])
-    p.add_argument("--batch", type=_positive, default=512, help="global batch G")
-    p.add_argument("--dtype", choices=choices("model.dtype"), default=default("model.dtype"))
-    p.add_argument("--threads", type=_positive, default=default("run.threads"), help="BLAS threads per process")
-    p.add_argument("--steps", type=_positive, default=30)
-    p.add_argument("--warmup", type=int, default=5)
-    p.add_argument("--reduction", choices=choices("run.reduction"), default=default("run.reduction"))
+    p = command("bench", "time training steps of a made-up data set against the BLAS floor")
+    p.add_argument("--layers", type=_layers, default=[784, 1024, 1024, 10], metavar="W0,W1,…",
+                   help="layer widths, inputs first (default: 784,1024,1024,10)")
+    p.add_argument("--global-batch", type=_positive, default=512, metavar="G", help="samples per step, all ranks")
+    p.add_argument("--dtype", choices=choices("model.dtype"), default=default("model.dtype"),
+                   help="parameter and arithmetic type")
+    p.add_argument("--threads", type=_positive, default=default("run.threads"), metavar="N",
+                   help="BLAS threads per process")
+    p.add_argument("--steps", type=_positive, default=30, metavar="N", help="timed steps")
+    p.add_argument("--untimed", type=int, default=5, metavar="N",
+                   help="steps run before timing starts (kernels compiled, caches warm)")
+    p.add_argument("--reduction", choices=choices("run.reduction"), default=default("run.reduction"),
+                   help="gradient sum, as the job key run.reduction")
     p.add_argument("--update", choices=choices("run.update"), default=default("run.update"),
-                   help="replicated: every rank updates everything; sharded: each rank its own slice")
-    p.add_argument("--exact-chunk", type=_positive, default=64)
-    p.add_argument("--exact-format", choices=choices("run.exact_format"), default=default("run.exact_format"))
+                   help="as the job key run.update: replicated, every rank updates everything; sharded, each rank "
+                        "its own slice")
+    p.add_argument("--exact-chunk", type=_positive, default=64, metavar="N",
+                   help="rows per fixed chunk in exact mode (run.exact_chunk)")
+    p.add_argument("--exact-format", choices=choices("run.exact_format"), default=default("run.exact_format"),
+                   help="exact mode's accumulator (run.exact_format)")
     p.add_argument("--progress", choices=choices("run.progress"), default=default("run.progress"),
-                   help="who drives the overlapped reductions (see the job key run.progress)")
+                   help="who drives the overlapped reductions (run.progress)")
     p.add_argument("--no-overlap", action="store_true", help="one blocking allreduce after backward")
-    p.add_argument("--message-mib", type=float, default=default("run.message_mib"))
-    p.add_argument("--activation", default=default("model.activation"))
-    p.add_argument("--optimizer", default="sgd", help="update rule timed with the step (default sgd)")
-    p.add_argument("--json", action="store_true", help="print only the JSON object")
+    p.add_argument("--message-mib", type=float, default=default("run.message_mib"), metavar="MIB",
+                   help="smallest gradient message, MiB (run.message_mib)")
+    p.add_argument("--activation", default=default("model.activation"), metavar="NAME",
+                   help=f"hidden activation, one of {', '.join(choices('model.activation'))}")
+    p.add_argument("--method", default="sgd", metavar="NAME",
+                   help=f"update rule timed with the step (optimizer.method), one of "
+                        f"{', '.join(choices('optimizer.method'))}")
+    json_switch(p, "the result")
     ranks(p)
 
-    p = sub.add_parser("scale", help="scaling study: run the job at several process counts")
-    p.add_argument("job", type=Path)
-    p.add_argument("--ranks", type=str, default="1,2", help="process counts, e.g. 1,2,4")
-    p.add_argument("--mode", choices=("strong", "weak"), default="strong")
-    p.add_argument("--steps", type=_positive, default=20)
-    p.add_argument("--threads", type=_positive, default=1)
+    p = command("scale", "scaling study: run the job at several process counts, fit a cost model, project")
+    job_file(p)
+    p.add_argument("--sizes", type=str, default="1,2", metavar="P1,P2,…",
+                   help="process counts to run, e.g. 1,2,4 (must include 1)")
+    p.add_argument("--mode", choices=("strong", "weak"), default="strong",
+                   help="strong: the job's global batch at every count; weak: global batch × P")
+    p.add_argument("--steps", type=_positive, default=20, metavar="N", help="timed steps per process count")
+    p.add_argument("--threads", type=_positive, default=1, metavar="N", help="BLAS threads per process")
     p.add_argument("--pin", action="store_true", help="pin rank r to core r")
-    p.add_argument("--network", default=None, help="project to this network, e.g. 100Gb/s,2us")
-    p.add_argument("--project", default="8,16,64,256,1024", help="process counts to project to")
-    p.add_argument("--out", type=Path, default=Path("scaling"))
-    p.add_argument("--timeout", type=float, default=900.0, help="seconds allowed per process count (default 900)")
+    p.add_argument("--network", default=None, metavar="BW,LAT",
+                   help="project to this network, e.g. 100Gb/s,2us (default: the measured one)")
+    p.add_argument("--project", default="8,16,64,256,1024", metavar="P1,P2,…", help="process counts to project to")
+    p.add_argument("--out-dir", type=Path, default=Path("scaling"), metavar="DIR",
+                   help="folder for scaling.json, scaling.csv, the plots and logs")
+    p.add_argument("--timeout", type=float, default=900.0, metavar="SECONDS", help="time allowed per process count")
     p.add_argument("--no-progress", action="store_true", help="no progress bar")
 
-    p = sub.add_parser("predict", help="outputs of a trained model on new inputs")
-    p.add_argument("checkpoint", type=Path, help="checkpoint directory, workdir, or final.npz")
-    p.add_argument("inputs", type=Path)
-    p.add_argument("--out", type=Path, required=True)
-    p.add_argument("--targets", type=Path, default=None, help="labelled set: also print metrics")
+    p = command("predict", "outputs (or labels) of a trained model on new inputs")
+    p.add_argument("model", type=Path, metavar="MODEL",
+                   help="final.npz, best.npz, a checkpoint directory or a workdir (its newest checkpoint)")
+    p.add_argument("inputs", type=Path, metavar="INPUTS", help="rows to predict: .npy, .npz, .csv or .parquet")
+    p.add_argument("--out", type=Path, required=True, metavar="FILE",
+                   help="where the outputs go: .npy or .csv, by extension")
+    p.add_argument("--labels", action="store_true",
+                   help="write labels (class index, or 0/1 per output) instead of the output layer's values")
+    p.add_argument("--targets", type=Path, default=None, metavar="FILE", help="labelled set: also print metrics")
 
-    sub.add_parser("info", help="versions, BLAS, MPI, cores and the Numba cache")
+    p = command("export", "write a trained model as ONNX, with a model card (JSON)")
+    p.add_argument("model", type=Path, metavar="MODEL",
+                   help="final.npz, best.npz, a checkpoint directory or a workdir (its newest checkpoint)")
+    p.add_argument("--out", type=Path, required=True, metavar="FILE", help="the .onnx file to write")
+    p.add_argument("--card", type=Path, default=None, metavar="FILE",
+                   help="the model card to write (default: FILE with .card.json in place of .onnx)")
+    p.add_argument("--opset", type=int, default=17, metavar="N", help="ONNX operator set version")
 
-    p = sub.add_parser("compile", help="compile the kernels a job uses into the Numba cache (before a batch job "
-                                       "starts its ranks); needs no data")
-    p.add_argument("job", type=Path)
+    p = command("curves", "draw a run's metrics.jsonl as PNG figures")
+    p.add_argument("source", type=Path, metavar="RUN", help="a workdir or its metrics.jsonl")
+    p.add_argument("--out-dir", type=Path, default=None, metavar="DIR",
+                   help="folder for the PNGs (default: RUN/curves)")
 
-    p = sub.add_parser("demo", help="generate the pump-fault data set, train on several ranks, verify")
-    p.add_argument("--out", type=Path, default=Path("shardmill-demo"))
-    p.add_argument("--ranks", type=_positive, default=None, help="processes (default: cores, at most 4)")
-    p.add_argument("--rows", type=_positive, default=12000)
-    p.add_argument("--epochs", type=_positive, default=8)
+    p = command("resolve", "check a job and print it with every default filled in (TOML)")
+    job_file(p)
+    json_switch(p, "the job")
+
+    p = command("saves", "list a workdir's checkpoints: step, epoch, time, losses, size, checksum verified")
+    p.add_argument("workdir", type=Path, metavar="WORKDIR", help="the run's workdir (or its checkpoints folder)")
+    json_switch(p, "the list")
+
+    p = command("info", "versions, BLAS, MPI, cores and the Numba cache")
+    json_switch(p, "the facts")
+
+    p = command("compile", "compile the kernels a job uses into the Numba cache (before a batch job starts its "
+                           "ranks); needs no data")
+    job_file(p)
+
+    p = command("demo", "generate the pump-fault data set, train on several ranks, verify")
+    p.add_argument("--out-dir", type=Path, default=Path("shardmill-demo"), metavar="DIR", help="folder for it all")
+    p.add_argument("--ranks", type=_positive, default=None, metavar="N", help="processes (default: cores, at most 4)")
+    p.add_argument("--rows", type=_positive, default=12000, metavar="N", help="rows to generate")
+    p.add_argument("--epochs", type=_positive, default=8, metavar="N", help="passes over the training rows")
     return parser
 
 
 def main(argv: list[str] | None = None) -> int:
-    argv = list(sys.argv[1:] if argv is None else argv)
+    argv, notices = modernise(list(sys.argv[1:] if argv is None else argv))
     args = build_parser().parse_args(argv)
     if args.command in ("train", "verify", "bench") and args.ranks and not os.environ.get(LAUNCHED):
+        for text in notices:
+            print(f"shardmill: notice: {text}", file=sys.stderr, flush=True)
         return relaunch(args.ranks, strip_ranks(argv))
     from shardmill.parallel.comm import run_guarded
 
-    return run_guarded(lambda: dispatch(args), user_errors=(JobError,))
+    return run_guarded(lambda: dispatch(args, notices), user_errors=(JobError,))
 
 
-def dispatch(args: argparse.Namespace) -> int:
+def _lead() -> bool:
+    """Rank 0 of the world (or no MPI launch at all): the process that prints notices."""
+    from mpi4py import MPI
+
+    return MPI.COMM_WORLD.Get_rank() == 0
+
+
+def read_job(args: argparse.Namespace, notices: list[str] | None = None):
+    """The job of a command (its JOB and --set), with renamed-key notices printed once (rank 0)."""
+    from shardmill.config import load_job
+
+    job = load_job(args.job, overrides=args.sets)
+    if _lead():
+        for text in [*(notices or []), *job.notices]:
+            print(f"shardmill: notice: {text}", file=sys.stderr, flush=True)
+    return job
+
+
+def dispatch(args: argparse.Namespace, notices: list[str] | None = None) -> int:
+    notices = notices or []
+    if not hasattr(args, "job") and notices and _lead():
+        for text in notices:
+            print(f"shardmill: notice: {text}", file=sys.stderr, flush=True)
     if args.command == "train":
-        return cmd_train(args)
+        return cmd_train(args, notices)
     if args.command == "verify":
         from shardmill.verify import cmd_verify
 
-        return cmd_verify(args)
+        return cmd_verify(args, read_job(args, notices))
     if args.command == "bench":
         return cmd_bench(args)
     if args.command == "scale":
         from shardmill.scaling.driver import cmd_scale
 
-        return cmd_scale(args)
+        return cmd_scale(args, read_job(args, notices))
     if args.command == "predict":
         from shardmill.predict import cmd_predict
 
         return cmd_predict(args)
+    if args.command == "export":
+        try:
+            from shardmill.export import cmd_export
+        except ImportError as missing:
+            raise JobError(f"`shardmill export` needs the onnx package ({missing}); install it with "
+                           f"pip install \"shardmill[onnx]\"") from None
+
+        return cmd_export(args)
+    if args.command == "curves":
+        from shardmill.curves import cmd_curves
+
+        return cmd_curves(args)
+    if args.command == "resolve":
+        return cmd_resolve(args, notices)
+    if args.command == "saves":
+        from shardmill.saves import cmd_saves
+
+        return cmd_saves(args)
     if args.command == "compile":
-        return cmd_compile(args)
+        return cmd_compile(args, notices)
     if args.command == "info":
         from shardmill.info import cmd_info
 
-        return cmd_info()
+        return cmd_info(args.json)
     if args.command == "demo":
         from shardmill.demo import cmd_demo
 
@@ -157,12 +305,24 @@ def dispatch(args: argparse.Namespace) -> int:
     raise AssertionError(args.command)
 
 
-def cmd_train(args: argparse.Namespace) -> int:
-    from shardmill.config import load_job
+def cmd_resolve(args: argparse.Namespace, notices: list[str]) -> int:
+    """``shardmill resolve JOB``: the job checked, printed with every key (TOML, or JSON with --json)."""
+    from shardmill.config import job_toml
+
+    job = read_job(args, notices)
+    if args.json:
+        print(json.dumps({"job": job.as_dict(), "job_digest": job.digest(), "overrides": list(job.overrides),
+                          "workdir": str(job.workdir)}, indent=1))
+    else:
+        print(job_toml(job), end="")
+    return 0
+
+
+def cmd_train(args: argparse.Namespace, notices: list[str]) -> int:
     from shardmill.parallel.comm import Comm
     from shardmill.trainer import TrainingStopped, train
 
-    job = load_job(args.job)
+    job = read_job(args, notices)
     comm = Comm()
     try:
         result = train(job, comm, resume=args.resume, progress=not args.no_progress, echo=True, fresh=args.fresh)
@@ -171,20 +331,27 @@ def cmd_train(args: argparse.Namespace) -> int:
             print(f"shardmill: {stopped}", file=sys.stderr, flush=True)
         return stopped.exit_code
     if comm.rank == 0:
+        workdir = Path(result["workdir"])
         print(f"done: {result['steps']} steps on {comm.size} process(es); final parameters in "
-              f"{Path(result['workdir']) / 'final.npz'}")
+              f"{workdir / 'final.npz'}" + (f", the best ({result['best']['metric']} = {result['best']['value']:.6g}, "
+                                            f"epoch {result['best']['epoch']}) in {workdir / 'best.npz'}"
+                                            if result["best"] and result["best"]["value"] is not None else ""))
+        if args.curves:
+            from shardmill.curves import draw_curves
+
+            for path in draw_curves(workdir, workdir / "curves"):
+                print(f"wrote {path}")
     return 0
 
 
-def cmd_compile(args: argparse.Namespace) -> int:
+def cmd_compile(args: argparse.Namespace, notices: list[str]) -> int:
     """Compile what the job's step runs (its dtype, activations, loss, optimizer, exchange) on made-up rows."""
     from shardmill.bench import synthetic_dataset
-    from shardmill.config import load_job
     from shardmill.info import numba_cache_dir
     from shardmill.parallel.comm import Comm
     from shardmill.trainer import Trainer, warm_up_kernels
 
-    job = load_job(args.job)
+    job = read_job(args, notices)
     comm = Comm()
     m = job.model
     dataset = synthetic_dataset(m.layers, m.loss, max(4 * job.run.global_batch, 64), m.dtype)
@@ -202,19 +369,25 @@ def cmd_bench(args: argparse.Namespace) -> int:
     from shardmill.parallel.comm import Comm
 
     check_choice("model.activation", args.activation, name="--activation")
-    check_choice("optimizer.method", args.optimizer, name="--optimizer")
-    if args.message_mib <= 0:
+    check_choice("optimizer.method", args.method, name="--method")
+
+    if not args.message_mib > 0:
         raise JobError(f"`--message-mib` must be > 0; got {args.message_mib}")
+    if args.untimed < 0:
+        raise JobError(f"`--untimed` must be ≥ 0 steps; got {args.untimed}")
     comm = Comm()
-    result = run_bench(args.layers, args.batch, dtype=args.dtype, threads=args.threads, steps=args.steps,
-                       warmup=args.warmup, reduction=args.reduction, overlap=not args.no_overlap,
-                       activation=args.activation, method=args.optimizer, message_mib=args.message_mib,
+    result = run_bench(args.layers, args.global_batch, dtype=args.dtype, threads=args.threads, steps=args.steps,
+                       warmup=args.untimed, reduction=args.reduction, overlap=not args.no_overlap,
+                       activation=args.activation, method=args.method, message_mib=args.message_mib,
                        exact_chunk=args.exact_chunk, update=args.update, exact_format=args.exact_format,
                        progress=args.progress,
                        comm=comm)
     if comm.rank == 0:
-        if not args.json:
-            print(f"{result['samples_per_s']:,.0f} samples/s, {result['step_ms']:.2f} ms/step, "
-                  f"{result['ratio_to_floor']:.3f} of the BLAS floor", file=sys.stderr)
-        print(json.dumps(result))
+        if args.json:
+            print(json.dumps(result))
+        else:
+            phases = ", ".join(f"{name} {ms:.3f}" for name, ms in result["phase_ms"].items())
+            print(f"{result['samples_per_s']:,.0f} samples/s, {result['step_ms']:.3f} ms/step, "
+                  f"{result['ratio_to_floor']:.3f} of the BLAS floor ({result['floor_ms']:.3f} ms) on "
+                  f"{result['processes']} process(es); phases (ms): {phases}")
     return 0

@@ -29,6 +29,7 @@ INITS = ("he", "glorot")
 METHODS = ("sgd", "momentum", "nesterov", "adam", "adamw")
 SCHEDULES = ("constant", "step", "cosine")
 REDUCTIONS = ("fast", "exact")
+BEST_METRICS = ("validation.loss", "validation.accuracy", "validation.rmse")  # metrics.jsonl's own field paths
 # The output activation each loss implies; only squared_error lets the job choose another (`model.output`).
 IMPLIED_OUTPUT = {"softmax_cross_entropy": "softmax", "binary_cross_entropy": "sigmoid", "squared_error": "identity"}
 
@@ -104,10 +105,18 @@ SCHEMA: tuple[Key, ...] = (
     Key("model.output", "output", "auto", "output activation; softmax_cross_entropy implies softmax, "
         "binary_cross_entropy sigmoid, squared_error identity unless chosen here", choices=ACTIVATIONS + ("auto",),
         allowed="auto; with squared_error also " + ", ".join(sorted(ACTIVATIONS))),
-    Key("data.inputs", "file", "", "inputs (n, d): .npy (memory-mapped), .npz or .csv, relative to the job file; "
-        "needed to train", allowed="a .npy, .npz or .csv path"),
-    Key("data.targets", "file", "", "targets, one row per input row (see `model.loss`); needed to train",
-        allowed="a .npy, .npz or .csv path"),
+    Key("data.inputs", "file", "", "inputs (n, d): .npy (memory-mapped), .npz, .csv or .parquet, relative to the "
+        "job file; needed to train", allowed="a .npy, .npz, .csv or .parquet path"),
+    Key("data.targets", "file", "", "targets, one row per input row (see `model.loss`); needed to train unless "
+        "`data.target` names columns of `data.inputs`", allowed="a .npy, .npz, .csv or .parquet path"),
+    Key("data.target", "columns", "", "column name(s) of `data.inputs` that hold the targets, when one table "
+        "(.csv with a header row, or .parquet) holds features and targets; then `data.targets` stays empty",
+        allowed="a column name, or a list of them", digest_default=False),
+    Key("data.features", "columns", [], "column names of `data.inputs` used as the model's inputs, in this order; "
+        "empty: every column that is not a target", allowed="a list of column names", digest_default=False),
+    Key("data.header", "choice", "auto", "does a .csv file start with a row of column names: auto (yes when a "
+        "field of the first row is not a number), yes or no (columns are then named 0, 1, 2, …)",
+        choices=("auto", "yes", "no"), digest_default=False),
     Key("data.validation_fraction", "number", 0.1, "share of the rows held out for validation",
         low=0.0, high=0.9),
     Key("data.standardize", "flag", True, "scale each input column by the mean and standard deviation of the "
@@ -161,6 +170,12 @@ SCHEMA: tuple[Key, ...] = (
     Key("run.keep_checkpoints", "integer", 3, "newest checkpoints kept; older ones are removed once the index has "
         "moved on",
         low=1, trajectory=False),
+    Key("run.best_metric", "choice", "off", "validation metric that picks the best model: its checkpoint is kept "
+        "beside the newest and written as best.npz; off: none", choices=("off",) + BEST_METRICS, trajectory=False),
+    Key("run.patience", "integer", 0, "stop after this many epoch ends without an improvement of `run.best_metric`"
+        " by more than `run.min_improvement`; 0 = never stop early", low=0, trajectory=False),
+    Key("run.min_improvement", "number", 0.0, "smallest change of `run.best_metric` that counts as an "
+        "improvement (in the metric's own units)", low=0.0, trajectory=False),
     Key("run.workdir", "text", "run", "folder for metrics.jsonl, checkpoints/ and final.npz, relative to the job "
         "file", trajectory=False, allowed="a folder path"),
     Key("run.threads", "integer", 1, "BLAS threads per process", low=1, high=1024, trajectory=False),
@@ -227,8 +242,18 @@ def _names(key: Key, value: object) -> str | list[str]:
 
 def _file(path: str, value: object) -> str:
     if not isinstance(value, str):
-        raise JobError(f"`{path}` must be a file path (.npy, .npz or .csv); got {value!r}")
+        raise JobError(f"`{path}` must be a file path (.npy, .npz, .csv or .parquet); got {value!r}")
     return value
+
+
+def _columns(key: Key, value: object) -> str | list[str]:
+    """Column names: one name or a list (``data.target``), or a list (``data.features``); names are non-empty."""
+    names = [value] if isinstance(value, str) and not isinstance(key.default, list) else value
+    if not isinstance(names, list) or not all(isinstance(n, str) and n for n in names):
+        raise JobError(f"`{key.path}` must be {key.allowed}; got {value!r}")
+    if len(set(names)) != len(names):
+        raise JobError(f"`{key.path}` names a column twice; got {value!r}")
+    return value if isinstance(value, str) else list(names)
 
 
 def _check(key: Key, value: object) -> Any:
@@ -252,6 +277,8 @@ def _check(key: Key, value: object) -> Any:
         return _names(key, value)
     if key.kind == "output":
         return value
+    if key.kind == "columns":
+        return key.default if value == "" else _columns(key, value)
     raise AssertionError(key.kind)
 
 
@@ -273,7 +300,8 @@ def check_choice(path: str, value: object, name: str | None = None) -> str:
 
 
 _PYTHON_TYPES = {"layers": list[int], "names": list[str], "choice": str, "output": str, "integer": int,
-                 "number": float, "flag": bool, "file": str, "text": str}
+                 "number": float, "flag": bool, "file": str, "text": str,
+                 "columns": Any}
 
 
 def _spec_class(name: str, section: str, doc: str) -> type:
@@ -286,7 +314,12 @@ def _spec_class(name: str, section: str, doc: str) -> type:
         if key.section == section:
             kind = _PYTHON_TYPES[key.kind]
             given = key.default is REQUIRED or key.kind == "names"
-            fields.append((key.name, kind) if given else (key.name, kind, field(default=key.default)))
+            if given:
+                fields.append((key.name, kind))
+            elif isinstance(key.default, list):  # a fresh list per spec
+                fields.append((key.name, kind, field(default_factory=list(key.default).copy)))
+            else:
+                fields.append((key.name, kind, field(default=key.default)))
     cls = make_dataclass(name, fields, namespace={"__doc__": doc})
     cls.__module__ = __name__
     return cls
@@ -309,6 +342,8 @@ class Job:
     optimizer: OptimizerSpec = field(default_factory=OptimizerSpec)
     run: RunSpec = field(default_factory=RunSpec)
     base: str = "."
+    overrides: tuple[str, ...] = ()  # the --set assignments applied on top of the job file, as given
+    notices: tuple[str, ...] = ()  # one line per renamed key the job still uses (printed by the command)
 
     def path(self, name: str) -> Path:
         """A path from the job resolved against the job file's folder."""
@@ -349,6 +384,68 @@ def resumable_keys() -> tuple[str, ...]:
     return tuple(key.path for key in SCHEMA if not key.trajectory)
 
 
+RENAMED: dict[str, tuple[str, Any]] = {
+    # old path: (new path, value converter). An old key is read for one release, with a notice, then refused.
+    "run.bucket_mb": ("run.message_mib", lambda mb: mb * 1e6 / 2**20 if isinstance(mb, (int, float))
+                      and not isinstance(mb, bool) else mb),
+}
+"""Keys renamed in 0.2: accepted under their old name (converted to the new key's units) with a one-line notice."""
+
+
+def _renamed(raw: dict[str, Any]) -> list[str]:
+    """Move renamed keys of ``raw`` (changed in place) to their new names; the notices to print."""
+    notices = []
+    for old, (new, convert) in RENAMED.items():
+        section, name = old.split(".")
+        table = raw.get(section)
+        if not isinstance(table, dict) or name not in table:
+            continue
+        new_name = new.split(".")[1]
+        if new_name in table:
+            raise JobError(f"`{old}` is the old name of `{new}`; give only `{new}`")
+        value = convert(table.pop(name))
+        table[new_name] = value
+        notices.append(f"`{old}` is now `{new}` (read as {new_name} = {_toml(value)}); the old name is accepted "
+                       f"until the next release")
+    return notices
+
+
+def parse_override(text: str) -> tuple[str, Any]:
+    """``section.key=value`` (a ``--set`` argument) as (path, value); the value is read as TOML (numbers, true/false,
+    lists, quoted strings) and, when it is not TOML, taken as a bare string (``run.workdir=runs/b``)."""
+    path, eq, value_text = text.partition("=")
+    path = path.strip()
+    if not eq or path.count(".") != 1 or not all(path.split(".")):
+        raise JobError(f"`--set` takes section.key=value, e.g. optimizer.learning_rate=0.01; got {text!r}")
+    section, name = path.split(".")
+    if section not in SECTIONS:
+        raise JobError(f"`--set {path}`: `{section}` is not a known table; allowed: {', '.join(SECTIONS)}"
+                       f"{_hint(section, list(SECTIONS))}")
+    known = [key.name for key in SCHEMA if key.section == section] + [
+        old.split(".")[1] for old in RENAMED if old.startswith(section + ".")]
+    if name not in known:
+        raise JobError(f"`--set {path}`: `{path}` is not a known key; allowed: "
+                       f"{', '.join(k for k in known if f'{section}.{k}' not in RENAMED)}{_hint(name, known)}")
+    try:
+        value = tomllib.loads(f"v = {value_text.strip()}")["v"]
+    except tomllib.TOMLDecodeError:
+        value = value_text.strip()
+    return path, value
+
+
+def apply_overrides(raw: dict[str, Any], sets: list[str] | tuple[str, ...]) -> dict[str, Any]:
+    """A copy of the job ``raw`` (nested dicts, as read from TOML) with each ``--set`` assignment applied in order."""
+    raw = copy.deepcopy(raw)
+    for text in sets:
+        path, value = parse_override(text)
+        section, name = path.split(".")
+        table = raw.setdefault(section, {})
+        if not isinstance(table, dict):
+            raise JobError(f"`{section}` must be a table; got {table!r}")
+        table[name] = value
+    return raw
+
+
 def _check_keys(section: str, table: object) -> dict:
     if not isinstance(table, dict):
         raise JobError(f"`{section}` must be a table; got {table!r}")
@@ -383,9 +480,14 @@ def model_spec(table: dict[str, Any]) -> ModelSpec:
     return ModelSpec(**m)
 
 
-def job_from_dict(raw: dict[str, Any], base: str | Path = ".") -> Job:
-    """Validate a job given as nested dicts (as read from TOML) and fill in defaults."""
-    raw = copy.deepcopy(raw)
+def job_from_dict(raw: dict[str, Any], base: str | Path = ".", overrides: list[str] | tuple[str, ...] = ()) -> Job:
+    """Validate a job given as nested dicts (as read from TOML) and fill in defaults.
+
+    ``overrides``: ``section.key=value`` assignments (the command line's ``--set``) applied on top of ``raw``
+    before validation; the job records them (:attr:`Job.overrides`).
+    """
+    raw = apply_overrides(raw, overrides)
+    notices = _renamed(raw)
     for section in raw:
         if section not in SECTIONS:
             raise JobError(f"`{section}` is not a known table; allowed: {', '.join(SECTIONS)}"
@@ -398,11 +500,47 @@ def job_from_dict(raw: dict[str, Any], base: str | Path = ".") -> Job:
     if run.reduction == "exact" and run.global_batch % run.exact_chunk:
         raise JobError(f"`run.global_batch` must be a multiple of `run.exact_chunk` = {run.exact_chunk} when "
                        f"`run.reduction` = 'exact'; got {run.global_batch}")
-    return Job(model=model, data=data, optimizer=optimizer, run=run, base=str(base))
+    _check_data(data, model)
+    _check_best(run, data, model)
+    return Job(model=model, data=data, optimizer=optimizer, run=run, base=str(base), overrides=tuple(overrides),
+               notices=tuple(notices))
 
 
-def load_job(path: str | Path) -> Job:
-    """Read and validate a TOML job file; relative paths in it are taken from the file's folder."""
+def _check_data(data: DataSpec, model: ModelSpec) -> None:
+    if data.target and data.targets:
+        raise JobError(f"give `data.targets` (a file) or `data.target` (columns of `data.inputs`), not both; got "
+                       f"data.targets = {data.targets!r} and data.target = {data.target!r}")
+    targets = [data.target] if isinstance(data.target, str) and data.target else list(data.target or [])
+    both = sorted(set(targets) & set(data.features))
+    if both:
+        raise JobError(f"`data.features` must not hold a target column; got {both[0]!r} in both")
+    if data.features and len(data.features) != model.layers[0]:
+        raise JobError(f"`data.features` names {len(data.features)} columns but `model.layers` starts with "
+                       f"{model.layers[0]} inputs")
+
+
+def _check_best(run: RunSpec, data: DataSpec, model: ModelSpec) -> None:
+    if run.best_metric == "off":
+        if run.patience:
+            raise JobError(f"`run.patience` = {run.patience} needs `run.best_metric` (the metric to watch); "
+                           f"choose one of {', '.join(BEST_METRICS)}")
+        return
+    if data.validation_fraction == 0:
+        raise JobError(f"`run.best_metric` = {run.best_metric!r} needs validation rows; "
+                       f"`data.validation_fraction` is 0")
+    name = run.best_metric.split(".")[1]
+    regression = model.loss == "squared_error"
+    if (name == "accuracy" and regression) or (name == "rmse" and not regression):
+        allowed = "validation.loss, validation.rmse" if regression else "validation.loss, validation.accuracy"
+        raise JobError(f"`run.best_metric` must be one of {allowed} with `model.loss` = {model.loss!r}; "
+                       f"got {run.best_metric!r}")
+
+
+def load_job(path: str | Path, overrides: list[str] | tuple[str, ...] = ()) -> Job:
+    """Read and validate a TOML job file; relative paths in it are taken from the file's folder.
+
+    ``overrides``: ``section.key=value`` assignments applied on top of the file (see :func:`apply_overrides`).
+    """
     path = Path(path)
     if not path.is_file():
         raise JobError(f"job file {str(path)!r} does not exist")
@@ -417,7 +555,7 @@ def load_job(path: str | Path) -> Job:
         raise JobError(f"job file {str(path)!r} nests tables or arrays too deeply to read") from None
     except OSError as err:
         raise JobError(f"job file {str(path)!r} cannot be read: {err.strerror or err}") from None
-    return job_from_dict(raw, base=path.parent)
+    return job_from_dict(raw, base=path.parent, overrides=overrides)
 
 
 # --- the defaults table in README.md -----------------------------------------------------------------------------
@@ -428,7 +566,28 @@ README_END = "<!-- end of job keys -->"
 def _toml(value: object) -> str:
     if isinstance(value, bool):
         return "true" if value else "false"
-    return json.dumps(value) if isinstance(value, str) else repr(value)
+    if isinstance(value, list):
+        return "[" + ", ".join(_toml(v) for v in value) + "]"
+    if isinstance(value, float):
+        return repr(value) if math.isfinite(value) else ("nan" if value != value else ("inf" if value > 0 else "-inf"))
+    return json.dumps(value, ensure_ascii=False) if isinstance(value, str) else repr(value)
+
+
+def job_toml(job: Job) -> str:
+    """The resolved job as TOML: every key, defaults filled in, in table order (what ``shardmill resolve`` prints).
+
+    Reading it back gives the same job (and the same digest).
+    """
+    lines = [f"# shardmill job, resolved (digest {job.digest()[:16]})"]
+    if job.overrides:
+        lines.append("# with --set " + " --set ".join(job.overrides))
+    d = job.as_dict()
+    for section in SECTIONS:
+        lines.append(f"\n[{section}]")
+        for key in SCHEMA:
+            if key.section == section:
+                lines.append(f"{key.name} = {_toml(d[section][key.name])}")
+    return "\n".join(lines) + "\n"
 
 
 def _allowed(key: Key) -> str:

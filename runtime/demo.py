@@ -101,12 +101,15 @@ workdir = "run"
 
 
 def cmd_demo(args) -> int:
-    out = Path(args.out)
+    out = Path(args.out_dir)
     out.mkdir(parents=True, exist_ok=True)
     ranks = args.ranks or max(1, min(4, os.cpu_count() or 1))
     X, y = pump_windows(args.rows, seed=0)
     np.save(out / "windows.npy", X)
     np.save(out / "faults.npy", y)
+    # the same windows as one table with a header row and the label column, for the README's table examples
+    np.savetxt(out / "pumps.csv", np.column_stack([X, y]), delimiter=",", fmt=["%.9g"] * X.shape[1] + ["%d"],
+               header=",".join((*FEATURES, "fault")), comments="")
     (out / "job.toml").write_text(JOB.format(epochs=args.epochs))
     counts = np.bincount(y, minlength=len(CLASSES))
     print(f"demo: {args.rows} pump windows × {X.shape[1]} sensor features, classes "
@@ -119,8 +122,9 @@ def cmd_demo(args) -> int:
     if code != 0:
         return code
     seconds = time.perf_counter() - begin
-    last = json.loads((out / "run" / "metrics.jsonl").read_text().splitlines()[-1])
+    records = [json.loads(line) for line in (out / "run" / "metrics.jsonl").read_text().splitlines()]
+    last = [record for record in records if record.get("kind") == "epoch"][-1]
     print(f"demo: trained in {seconds:.1f} s; held-out accuracy {last['validation']['accuracy']:.3f}")
     print(f"demo: does the {ranks}-process gradient equal the serial one? shardmill verify {job} --ranks {ranks}")
     sys.stdout.flush()
-    return relaunch(ranks, ["verify", job, "--json", str(out / "verify.json")], timeout=600)
+    return relaunch(ranks, ["verify", job, "--out", str(out / "verify.json")], timeout=600)

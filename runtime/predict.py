@@ -1,35 +1,164 @@
-"""``shardmill predict``: outputs of a trained model (a checkpoint directory or final.npz) on new inputs."""
+"""A trained model as a predictor, and ``shardmill predict``: outputs or labels of a model (final.npz, best.npz, a
+checkpoint directory or a workdir) on new inputs."""
 
 from __future__ import annotations
 
 import json
+import zipfile
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 from shardmill.checkpoint import CheckpointError, load, resolve
 from shardmill.config import JobError
 from shardmill.data import read_array, squeeze_labels
 from shardmill.model import MLP
+from shardmill.tables import read_inputs
+
+CLASSIFIER_LOSSES = ("softmax_cross_entropy", "binary_cross_entropy")
 
 
-def load_model(path: Path) -> tuple[MLP, np.ndarray, np.ndarray]:
-    """(model, input_mean, input_inv_std) from ``final.npz``, a checkpoint directory or a workdir."""
-    if path.is_file() and path.suffix == ".npz":
-        with np.load(path, allow_pickle=False) as archive:
-            if "model_json" not in archive.files:
-                raise CheckpointError(f"{str(path)!r} is not a shardmill final.npz (no model_json)")
-            spec = json.loads(str(archive["model_json"]))
-            arrays = {k: archive[k] for k in archive.files}
+class Predictor:
+    """A trained MLP together with the input standardisation it was trained with.
+
+    Every method takes raw inputs X (n, d), as the training data held them (any real dtype), standardises them
+    with ``(X − input_mean) · input_inv_std`` in float64 (as training did), casts to the model's dtype and runs
+    the forward pass.
+
+    Parameters
+    ----------
+    model: the network (its ``loss`` decides what :meth:`predict` returns).
+    input_mean, input_inv_std: (d,) float64, the training rows' column means and inverse standard deviations.
+    feature_names: the d input column names when the training inputs came from a table with a header, else None.
+    job: the resolved training job (``Job.as_dict()``), digest: its SHA-256 digest, step: the global step the
+        parameters were saved at (None where unknown).
+    """
+
+    def __init__(self, model: MLP, input_mean: np.ndarray, input_inv_std: np.ndarray,
+                 feature_names: list[str] | None = None, job: dict[str, Any] | None = None,
+                 digest: str | None = None, step: int | None = None) -> None:
+        d = model.sizes[0]
+        self.model = model
+        self.input_mean = np.asarray(input_mean, dtype=np.float64)
+        self.input_inv_std = np.asarray(input_inv_std, dtype=np.float64)
+        if self.input_mean.shape != (d,) or self.input_inv_std.shape != (d,):
+            raise JobError(f"input statistics must have shape ({d},) for a model with {d} inputs; got mean "
+                           f"{self.input_mean.shape} and inv_std {self.input_inv_std.shape}")
+        if feature_names is not None and len(feature_names) != d:
+            raise JobError(f"`feature_names` must name the model's {d} inputs; got {len(feature_names)} names")
+        self.feature_names = list(feature_names) if feature_names is not None else None
+        self.job = job
+        self.digest = digest
+        self.step = step
+
+    @property
+    def n_inputs(self) -> int:
+        """Input width d (columns of X)."""
+        return self.model.sizes[0]
+
+    @property
+    def n_outputs(self) -> int:
+        """Output width k."""
+        return self.model.sizes[-1]
+
+    @property
+    def loss(self) -> str:
+        """The training loss: softmax_cross_entropy, binary_cross_entropy or squared_error."""
+        return self.model.loss
+
+    @property
+    def is_classifier(self) -> bool:
+        """True for the cross-entropy losses (labels and probabilities), False for squared_error."""
+        return self.model.loss in CLASSIFIER_LOSSES
+
+    def standardise(self, X: np.ndarray, name: str = "inputs") -> np.ndarray:
+        """(X − input_mean) · input_inv_std, (n, d) in the model's dtype, after checking X.
+
+        Refuses (JobError naming ``name``) anything but a 2-D array of real numbers of width d with finite values.
+        """
+        X = np.asarray(X)
+        if X.dtype.kind not in "biuf":
+            raise JobError(f"`{name}` must hold real numbers; got dtype {X.dtype}")
+        self.model.check_inputs(X, name)
+        X = np.asarray(X, dtype=np.float64)
+        finite = np.isfinite(X).all(axis=1)
+        if not finite.all():
+            raise JobError(f"`{name}` row {int(np.argmin(finite))} holds a non-finite value (NaN or inf)")
+        return ((X - self.input_mean) * self.input_inv_std).astype(self.model.dtype, copy=False)
+
+    def outputs(self, X: np.ndarray) -> np.ndarray:
+        """The output layer after its output activation, (n, k) in the model's dtype: softmax probabilities
+        (softmax_cross_entropy), sigmoid probabilities (binary_cross_entropy) or the regression outputs
+        (squared_error, after ``model.output``). What ``shardmill predict`` writes."""
+        return self.model.predict(self.standardise(X))
+
+    def predict_proba(self, X: np.ndarray) -> np.ndarray:
+        """Class probabilities of a classifier: (n, k) softmax rows summing to 1, or (n, k) independent
+        probabilities of the positive class of each output (binary_cross_entropy). A regression model refuses."""
+        if not self.is_classifier:
+            raise JobError(f"predict_proba needs a classifier (`model.loss` {' or '.join(CLASSIFIER_LOSSES)}); "
+                           f"this model's loss is {self.loss!r}: use predict() or outputs()")
+        return self.outputs(X)
+
+    def predict(self, X: np.ndarray) -> np.ndarray:
+        """Labels of a classifier, the outputs of a regression model.
+
+        softmax_cross_entropy: the class index of the largest probability, (n,) int64;
+        binary_cross_entropy: 1 where the probability exceeds 0.5, else 0, (n, k) int64;
+        squared_error: the outputs, (n, k) in the model's dtype.
+        """
+        return self.to_labels(self.outputs(X))
+
+    def to_labels(self, outputs: np.ndarray) -> np.ndarray:
+        """What :meth:`predict` returns, from outputs (n, k) that :meth:`outputs` gave."""
+        if self.loss == "softmax_cross_entropy":
+            return outputs.argmax(axis=1).astype(np.int64)
+        if self.loss == "binary_cross_entropy":
+            return (outputs > 0.5).astype(np.int64)
+        return outputs
+
+
+def _model_of(spec: dict[str, Any]) -> MLP:
+    return MLP(spec["layers"], activation=spec["activation"], loss=spec["loss"], dtype=spec["dtype"],
+               init=spec.get("init", "auto"), output=spec.get("output", "auto"))
+
+
+def load_model(path: Path | str) -> Predictor:
+    """The Predictor saved at ``path``: a final.npz or best.npz, a checkpoint directory, a ``checkpoints`` folder
+    or a workdir (its newest checkpoint). Checkpoint files are checked against their SHA-256 checksums."""
+    path = Path(path)
+    if not path.exists():
+        raise CheckpointError(f"no model at {str(path)!r}: give a final.npz, best.npz, a checkpoint directory or a "
+                              f"workdir")
+    if path.is_file() and path.suffix != ".npz":
+        raise CheckpointError(f"{str(path)!r} is not a model: give a final.npz, best.npz, a checkpoint directory or a "
+                              f"workdir")
+    if path.is_file():
+        try:
+            with np.load(path, allow_pickle=False) as archive:
+                if "model_json" not in archive.files:
+                    raise CheckpointError(f"{str(path)!r} is not a shardmill final.npz (no model_json)")
+                arrays = {k: archive[k] for k in archive.files}
+            spec, job, feature_names = (json.loads(str(arrays[k])) if k in arrays else None
+                                        for k in ("model_json", "job_json", "feature_names_json"))
+        except (ValueError, OSError, EOFError, zipfile.BadZipFile) as err:  # json's errors are ValueErrors
+            raise CheckpointError(f"{str(path)!r} cannot be read: {err or type(err).__name__}") from None
+        digest = str(arrays["job_digest"]) if "job_digest" in arrays else None
+        step = int(arrays["step"]) if "step" in arrays else None
     else:
         state, arrays, _ = load(resolve(path))
-        spec = state["job"]["model"]
-    model = MLP(spec["layers"], activation=spec["activation"], loss=spec["loss"], dtype=spec["dtype"],
-                init=spec.get("init", "auto"), output=spec.get("output", "auto"))
+        job, digest, feature_names = state["job"], state.get("job_digest"), state.get("feature_names")
+        spec, step = job["model"], int(state["step"])
+    model = _model_of(spec)
     for name, view in model.named(model.params).items():
         if name not in arrays or arrays[name].shape != view.shape:
             raise CheckpointError(f"{str(path)!r}: tensor {name} is missing or has the wrong shape")
         view[...] = arrays[name]
-    return model, arrays["input_mean"], arrays["input_inv_std"]
+    for name in ("input_mean", "input_inv_std"):
+        if name not in arrays or arrays[name].shape != (model.sizes[0],):
+            raise CheckpointError(f"{str(path)!r}: {name} is missing or has the wrong shape")
+    return Predictor(model, arrays["input_mean"], arrays["input_inv_std"], feature_names=feature_names, job=job,
+                     digest=digest, step=step)
 
 
 def metrics(model: MLP, outputs: np.ndarray, targets: np.ndarray) -> dict[str, float]:
@@ -56,33 +185,53 @@ def check_output(path: Path) -> str:
 
 
 def write_outputs(path: Path, outputs: np.ndarray) -> None:
-    """Save outputs (n, k) by the extension of ``path``: .npy (numpy's format) or .csv (one row per input, the
-    shortest decimal text that reads back to the same value: 9 significant digits for float32, 17 for float64)."""
+    """Save outputs (n, k) or labels (n,) / (n, k) int64 by the extension of ``path``: .npy (numpy's format) or
+    .csv (one row per input; floats in the shortest decimal text that reads back to the same value: 9 significant
+    digits for float32, 17 for float64; integers as integers)."""
     suffix = check_output(path)
     try:
         if suffix == ".npy":
             with open(path, "wb") as f:  # a file object: np.save would append .npy to a name without it
                 np.save(f, outputs, allow_pickle=False)
         else:
-            digits = 9 if outputs.dtype == np.float32 else 17  # IEEE 754: enough to read back the same value
-            np.savetxt(path, outputs, delimiter=",", fmt=f"%.{digits}g")
+            if outputs.dtype.kind in "iu":
+                fmt = "%d"
+            else:
+                fmt = f"%.{9 if outputs.dtype == np.float32 else 17}g"  # IEEE 754: enough to read back the value
+            np.savetxt(path, outputs, delimiter=",", fmt=fmt)
     except OSError as err:
         raise JobError(f"`--out` {str(path)!r} cannot be written: {err.strerror or err}") from None
 
 
+def read_inputs_for(predictor: Predictor, path: Path) -> np.ndarray:
+    """The rows of ``path`` the model takes, (n, d) float64: a table's columns picked by the model's feature names
+    (or, without names, every column but the training job's target columns); a plain array taken whole. A CSV's
+    header row is read as the training job said (``data.header``)."""
+    data = (predictor.job or {}).get("data", {})
+    target = data.get("target") or []
+    return read_inputs(path, "inputs", features=predictor.feature_names, header=data.get("header", "auto"),
+                       drop=[target] if isinstance(target, str) else list(target))
+
+
 def cmd_predict(args) -> int:
+    """``shardmill predict MODEL INPUTS --out FILE [--targets FILE] [--labels]``: writes the outputs (n, k), or with
+    ``--labels`` the labels of :meth:`Predictor.predict`; with targets, prints the metrics as one JSON line.
+
+    ``args.model``: what :func:`load_model` takes; ``args.inputs``: .npy, .npz, .csv or .parquet (a table's columns
+    are picked by the model's feature names when it has them)."""
     check_output(Path(args.out))
-    model, mean, inv_std = load_model(Path(args.checkpoint))
-    X = np.asarray(read_array(Path(args.inputs), "inputs"), dtype=np.float64)
-    model.check_inputs(X, "inputs")
-    finite = np.isfinite(X).all(axis=1)
-    if not finite.all():
-        raise JobError(f"`inputs` row {int(np.argmin(finite))} holds a non-finite value (NaN or inf)")
-    outputs = model.predict((X - mean) * inv_std)
-    write_outputs(Path(args.out), outputs)
-    print(f"wrote {outputs.shape[0]} × {outputs.shape[1]} outputs to {args.out}")
+    predictor = load_model(Path(args.model))
+    labels = bool(getattr(args, "labels", False))
+    if labels and not predictor.is_classifier:
+        raise JobError(f"`--labels` needs a classifier (`model.loss` {' or '.join(CLASSIFIER_LOSSES)}); this "
+                       f"model's loss is {predictor.loss!r}: leave `--labels` out to write its outputs")
+    outputs = predictor.outputs(read_inputs_for(predictor, Path(args.inputs)))
+    written, what = (predictor.to_labels(outputs), "labels") if labels else (outputs, "outputs")
+    write_outputs(Path(args.out), written)
+    shape = f"{written.shape[0]}" if written.ndim == 1 else f"{written.shape[0]} × {written.shape[1]}"
+    print(f"wrote {shape} {what} to {args.out}")
     if args.targets is not None:
         y = squeeze_labels(np.asarray(read_array(Path(args.targets), "targets", mmap=False)))
-        targets = model.check_targets(y, X.shape[0], "targets")
-        print(json.dumps(metrics(model, outputs, targets)))
+        targets = predictor.model.check_targets(y, outputs.shape[0], "targets")
+        print(json.dumps(metrics(predictor.model, outputs, targets)))
     return 0

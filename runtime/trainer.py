@@ -21,6 +21,7 @@ from typing import Any
 
 import numpy as np
 from shardmill import checkpoint
+from shardmill.best import BestTracker
 from shardmill.config import Job, JobError, LocalJobError
 from shardmill.data import (
     Sampler,
@@ -30,9 +31,7 @@ from shardmill.data import (
     column_statistics,
     first_of_ranks,
     gather,
-    read_array,
     split_rows,
-    squeeze_labels,
 )
 from shardmill.health import diagnose, warnings
 from shardmill.kernels import losses
@@ -42,6 +41,7 @@ from shardmill.optim import Optimizer
 from shardmill.parallel.comm import Comm, agree
 from shardmill.parallel.exchange import resolve_update
 from shardmill.parallel.exchange import strategy as exchange_strategy
+from shardmill.tables import open_job_data
 from shardmill.timing import PHASES, PhaseTimer
 from threadpoolctl import threadpool_limits
 
@@ -55,6 +55,7 @@ class Dataset:
     split: Split
     mean: np.ndarray
     inv_std: np.ndarray
+    feature_names: list[str] | None = None  # the inputs' column names when they came from a table with names
 
 
 def model_from_job(job: Job) -> MLP:
@@ -66,17 +67,15 @@ def model_from_job(job: Job) -> MLP:
 def load_dataset(job: Job, model: MLP, comm: Comm) -> Dataset:
     """Open and check the data on every rank; any rank's failure is raised identically on all ranks."""
     error: Exception | None = None
-    X = targets = None
+    targets = None
+    X, y, feature_names = open_job_data(job, comm)  # collective; its own failures are raised alike on every rank
+    where = "data.target" if job.data.target else "data.targets"
     try:
-        if not job.data.inputs or not job.data.targets:
-            raise JobError("`data.inputs` and `data.targets` must both name files")
-        X = np.asarray(read_array(job.path(job.data.inputs), "data.inputs"))
-        y = squeeze_labels(np.asarray(read_array(job.path(job.data.targets), "data.targets", mmap=False)))
-        X = as_numbers(X, "data.inputs")
+        X = as_numbers(np.asarray(X), "data.inputs")
         model.check_inputs(X, "data.inputs")
         if y.shape[0] != X.shape[0]:
-            raise JobError(f"`data.targets` has {y.shape[0]} rows but `data.inputs` has {X.shape[0]}")
-        targets = model.check_targets(y, X.shape[0], "data.targets")
+            raise JobError(f"`{where}` has {y.shape[0]} rows but `data.inputs` has {X.shape[0]}")
+        targets = model.check_targets(y, X.shape[0], where)
     except (JobError, OSError, MemoryError) as err:
         error = err if isinstance(err, JobError) else JobError(f"data cannot be loaded: {err}")
     agree(comm, error)
@@ -94,7 +93,7 @@ def load_dataset(job: Job, model: MLP, comm: Comm) -> Dataset:
         raise JobError(f"{where}`data.inputs` row {bad} holds a non-finite value (NaN or inf)")
     if not job.data.standardize:
         mean, inv_std = np.zeros(X.shape[1]), np.ones(X.shape[1])
-    return Dataset(X=X, targets=targets, split=split, mean=mean, inv_std=inv_std)
+    return Dataset(X=X, targets=targets, split=split, mean=mean, inv_std=inv_std, feature_names=feature_names)
 
 
 def _first_nonfinite(X: np.ndarray, rows: np.ndarray, comm: Comm) -> tuple[int, int]:
@@ -149,6 +148,8 @@ class Trainer:
         self.stop_signal = 0  # agreed after the last step's sum: a signal some rank received (0: none)
         self.checkpoint_due = False  # agreed after the last step's sum: run.save_minutes have passed
         self.last_save = time.perf_counter()
+        self.best = (BestTracker(run.best_metric, run.patience, run.min_improvement)
+                     if run.best_metric != "off" else None)  # the best model so far (run.best_metric)
         if not self.comm.all_equal(self.model.params):
             raise RuntimeError("initial parameters differ across ranks")
 
@@ -304,19 +305,24 @@ class Trainer:
             params=self.model.named(self.model.params), input_mean=self.data.mean, input_inv_std=self.data.inv_std,
             optimizer=optimizer, optimizer_updates=self.optimizer.updates, step=step,
             steps_per_epoch=self.sampler.steps_per_epoch, processes=self.comm.size, job=self.job,
-            layers=self.model.sizes, dtype=self.model.dtype.name)
+            layers=self.model.sizes, dtype=self.model.dtype.name,
+            feature_names=getattr(self.data, "feature_names", None),
+            best=self.best.state() if self.best is not None else None)
 
-    def save(self, step: int) -> checkpoint.TrainingState:
+    def save(self, step: int, best: bool = False) -> checkpoint.TrainingState:
         """Checkpoint ``step``: every rank calls it, rank 0 writes (parameters are identical on every rank).
 
-        Returns the state it saved.
+        ``best``: the model of this step is the best so far (``run.best_metric``): the index marks the checkpoint,
+        which is then kept beside the newest, and ``best.npz`` is rewritten. Returns the state it saved.
         """
         state = self.training_state(step)
         self.last_save = time.perf_counter()
         if self.comm.rank == 0:
             root = self.job.workdir / "checkpoints"
             try:
-                checkpoint.save(state, root, self.job.run.keep_checkpoints)
+                checkpoint.save(state, root, self.job.run.keep_checkpoints, best=best)
+                if best:
+                    checkpoint.write_final(self.job.workdir / "best.npz", state)
             except OSError as err:  # a full disk, a read-only file system: the previous checkpoint is intact
                 try:
                     last = checkpoint.latest_name(root)
@@ -355,6 +361,15 @@ class Trainer:
             array[...] = comm.broadcast(np.ascontiguousarray(full, dtype=array.dtype))[self.exchange.owned]
         self.optimizer.updates = int(state["optimizer_updates"])
         self.step_count = int(state["step"])
+        if self.best is not None:
+            run = self.job.run
+            self.best = BestTracker(run.best_metric, run.patience, run.min_improvement, state.get("best"))
+        given = state.get("overrides") or []
+        if comm.rank == 0 and given != list(self.job.overrides):
+            now = " --set ".join(self.job.overrides)
+            print(f"shardmill: note: the checkpoint's run was started with "
+                  f"{'--set ' + ' --set '.join(given) if given else 'no --set'}; this resume has "
+                  f"{'--set ' + now if now else 'none'}", file=sys.stderr, flush=True)
         return self.step_count
 
 
@@ -452,19 +467,17 @@ HEARTBEAT_S = 30.0
 
 
 def epoch_line(record: dict[str, Any]) -> str:
-    """One console line for an epoch record of metrics.jsonl (the same field names, fewer digits)."""
-    parts = [f"epoch {record['epoch']:>3}", f"step {record['step']:>6}", f"loss {record['train']['loss']:.4f}"]
-    for key in ("accuracy", "rmse"):
-        if key in record["train"]:
-            parts.append(f"{'acc' if key == 'accuracy' else key} {record['train'][key]:.4f}")
-    val = record.get("validation")
-    if val:
-        parts.append(f"val_loss {val['loss']:.4f}")
-        for key in ("accuracy", "rmse"):
-            if key in val:
-                parts.append(f"val_{key} {val[key]:.4f}")
-    parts.append(f"{record['samples_per_s']:,.0f} samples/s")
-    return "  ".join(parts)
+    """One console line for an epoch record of metrics.jsonl: its own field paths (``train.loss``,
+    ``validation.accuracy``…), fewer digits, and a ``*`` after the watched metric when it is the best so far."""
+    best = record.get("best") or {}
+    parts = [f"epoch={record['epoch']}", f"step={record['step']}"]
+    for section in ("train", "validation"):
+        for key in ("loss", "accuracy", "rmse"):
+            if key in (record.get(section) or {}):
+                mark = "*" if best.get("improved") and best.get("metric") == f"{section}.{key}" else ""
+                parts.append(f"{section}.{key}={record[section][key]:.4f}{mark}")
+    parts.append(f"samples_per_s={record['samples_per_s']:.0f}")
+    return " ".join(parts)
 
 
 def train(job: Job, comm: Comm | None = None, resume: bool = False, progress: bool = True,
@@ -554,17 +567,25 @@ def _train_loop(trainer: Trainer, resume: bool, progress: bool, echo: bool = Fal
     if echo and lead and compile_s > 1.0:
         print(f"kernels ready in {compile_s:.1f} s (compiled once, then loaded from Numba's cache)", flush=True)
     start_step = trainer.resume() if resume else 0
+    metrics_path = workdir / "metrics.jsonl"
     if lead:
         workdir.mkdir(parents=True, exist_ok=True)
+        _append(metrics_path, _start_record(trainer, start_step))
     steps_per_epoch = trainer.sampler.steps_per_epoch
     total = trainer.total_steps
+    best = trainer.best
+    if best is not None and best.should_stop:  # a resume of a run that had already stopped early
+        total = start_step
+        if echo and lead:
+            print(f"already stopped early at step {start_step}: {best.metric} did not improve for {best.patience} "
+                  f"epochs", flush=True)
     history: list[dict[str, Any]] = []
     bar = _progress_bar(total, start_step, lead and progress)
-    metrics_path = workdir / "metrics.jsonl"
     epoch_begin = time.perf_counter()
     epoch_steps = 0
     step = start_step
     beat = _Heartbeat(total, start_step, job.run.global_batch) if lead and echo and bar is None else None
+    improved = stopped_early = False
     while step < total:
         epoch, in_epoch = divmod(step, steps_per_epoch)
         trainer.step(epoch, in_epoch)
@@ -577,25 +598,43 @@ def _train_loop(trainer: Trainer, resume: bool, progress: bool, echo: bool = Fal
         end_of_epoch = step % steps_per_epoch == 0 or step == total
         if trainer.health:
             _write_health(trainer, metrics_path, lead)
+        improved = False
         if end_of_epoch:
             seconds = time.perf_counter() - epoch_begin
             record = _epoch_record(trainer, epoch, step, epoch_steps, seconds, compile_s)
+            if best is not None and step % steps_per_epoch == 0:  # whole epochs only, not a run.max_steps stop
+                # rank 0's value decides, so every rank takes the same decision whatever MPI's sums did
+                value = float(comm.broadcast(np.array([best.value_of(record)]))[0])
+                improved = best.update(value, epoch + 1, step)
+                record["best"] = {**best.state(), "improved": improved}
+                stopped_early = best.should_stop and step < total
             history.append(record)
             if lead:
-                with open(metrics_path, "a") as out:
-                    out.write(json.dumps(record) + "\n")
+                _append(metrics_path, record)
                 if bar is not None:
                     bar.set_postfix(loss=f"{record['train']['loss']:.4g}",
                                     samples_s=f"{record['samples_per_s']:.0f}")
                 if echo:
                     _say(epoch_line(record), bar)
+            if stopped_early:
+                stop = {"kind": "early_stop", "epoch": epoch + 1, "step": step, "metric": best.metric,
+                        "best_value": best.value, "best_epoch": best.epoch, "best_step": best.step,
+                        "patience": best.patience}
+                history.append(stop)
+                if lead:
+                    _append(metrics_path, stop)
+                    if echo:
+                        _say(f"early stop at epoch {epoch + 1}: {best.metric} has not improved by more than "
+                             f"{best.min_improvement:g} for {best.patience} epochs; the best, {best.value:.6g} at "
+                             f"epoch {best.epoch}, is in best.npz", bar)
             epoch_begin = time.perf_counter()
             epoch_steps = 0
-        if step >= total:
+        if step >= total or stopped_early:
             break  # the final checkpoint follows the loop
         signum, every = trainer.stop_signal, job.run.save_every
-        if signum or trainer.checkpoint_due or (step % every == 0 if every else end_of_epoch):
-            trainer.save(step)  # by step count, at each epoch end by default, by the clock, or before stopping
+        if improved or signum or trainer.checkpoint_due or (step % every == 0 if every else end_of_epoch):
+            trainer.save(step, best=improved)  # by step count, at each epoch end by default, by the clock, for a
+            # new best model, or before stopping
         if signum:  # every rank finished this step and the checkpoint is written: leave together
             if bar is not None:
                 bar.close()
@@ -603,12 +642,35 @@ def _train_loop(trainer: Trainer, resume: bool, progress: bool, echo: bool = Fal
             raise TrainingStopped(signum, step, workdir)
     if bar is not None:
         bar.close()
-    state = trainer.save(step)
+    state = trainer.save(step, best=improved)
     trainer.exchange.close()
     if lead:
         checkpoint.write_final(workdir / "final.npz", state)
-    return {"model": model, "history": history, "steps": step, "workdir": str(workdir),
-            "processes": comm.size, "compile_s": compile_s}
+    from shardmill.predict import Predictor
+
+    data = trainer.data
+    predictor = Predictor(model, data.mean, data.inv_std, feature_names=getattr(data, "feature_names", None),
+                          job=job.as_dict(), digest=job.digest(), step=step)
+    return {"model": model, "predictor": predictor, "input_mean": data.mean, "input_inv_std": data.inv_std,
+            "history": history, "steps": step, "workdir": str(workdir), "processes": comm.size,
+            "compile_s": compile_s, "best": best.state() if best is not None else None,
+            "stopped_early": stopped_early}
+
+
+def _append(path: Path, record: dict[str, Any]) -> None:
+    """Append one record to metrics.jsonl (rank 0), flushed as one line."""
+    with open(path, "a") as out:
+        out.write(json.dumps(record) + "\n")
+
+
+def _start_record(trainer: Trainer, start_step: int) -> dict[str, Any]:
+    """The first record of each run segment (a fresh start, or a resume): what ran, where, with which job."""
+    from shardmill import __version__
+
+    job = trainer.job
+    return {"kind": "start", "time": checkpoint.utc_now(), "version": __version__, "processes": trainer.comm.size,
+            "resumed_from_step": start_step, "job": job.as_dict(), "job_digest": job.digest(),
+            "overrides": list(job.overrides)}
 
 
 def _kernels_cached() -> bool:
@@ -648,11 +710,10 @@ class _Heartbeat:
 def _write_health(trainer: Trainer, path: Path, lead: bool) -> None:
     """Append pending health records to metrics.jsonl and print their warnings (rank 0)."""
     if lead:
-        with open(path, "a") as out:
-            for record in trainer.health:
-                out.write(json.dumps(record) + "\n")
-                for text in warnings(record):
-                    print(f"shardmill: warning: {text}", file=sys.stderr, flush=True)
+        for record in trainer.health:
+            _append(path, record)
+            for text in warnings(record):
+                print(f"shardmill: warning: {text}", file=sys.stderr, flush=True)
     trainer.health.clear()
 
 

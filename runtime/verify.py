@@ -23,7 +23,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-from shardmill.config import Job, load_job
+from shardmill.config import Job, JobError, load_job
 from shardmill.data import gather
 from shardmill.kernels import activations as act
 from shardmill.parallel.comm import Comm
@@ -186,14 +186,20 @@ DISAGREE_EXIT = 3
 """Exit status of ``shardmill verify`` when the gradients disagree (1 stays a crash, 2 a user error)."""
 
 
-def cmd_verify(args) -> int:
-    """``shardmill verify job.toml``: exit 0 on agreement, :data:`DISAGREE_EXIT` on disagreement."""
-    job = load_job(args.job)
+def cmd_verify(args, job: Job | None = None) -> int:
+    """``shardmill verify JOB``: exit 0 on agreement, :data:`DISAGREE_EXIT` on disagreement.
+
+    Prints the report as text, or as JSON with ``--json``; ``--out FILE`` also writes the JSON report.
+    """
+    job = job if job is not None else load_job(args.job, overrides=getattr(args, "sets", ()))
+    out = getattr(args, "out", None)
+    if out is not None and not Path(out).parent.is_dir():
+        raise JobError(f"`--out` folder {str(Path(out).parent)!r} does not exist")
     report = verify(job, Comm(), batches=args.batches, trajectory=args.trajectory)
     if report is None:
         return 0
-    print(format_report(report))
-    if args.json:
-        Path(args.json).write_text(json.dumps(report, indent=1))
+    print(json.dumps(report, indent=1) if getattr(args, "json", False) else format_report(report))
+    if out is not None:
+        Path(out).write_text(json.dumps(report, indent=1))
     sys.stdout.flush()
     return 0 if report["verdict"] == "agree" else DISAGREE_EXIT

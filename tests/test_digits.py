@@ -63,7 +63,8 @@ def test_digits_held_out_accuracy(trained):
 def test_metrics_lines_parse(trained):
     folder, _, _, job, result = trained
     lines = (folder / "run" / "metrics.jsonl").read_text().splitlines()
-    records = [json.loads(line) for line in lines]  # json.loads: one object per line
+    start, *records = [json.loads(line) for line in lines]  # json.loads: one object per line
+    assert start["kind"] == "start" and start["job"] == job.as_dict() and start["processes"] == 1
     assert len(records) == job.run.epochs == len(result["history"])
     assert [r["epoch"] for r in records] == list(range(1, job.run.epochs + 1))
     steps_per_epoch = (1797 - int(0.25 * 1797)) // 32

@@ -66,9 +66,12 @@ def test_each_epoch_line_is_printed_as_its_epoch_ends(tmp_path, capsys, monkeypa
     with pytest.raises(RuntimeError, match="epoch 2"):
         trainer_module.train(job, progress=False, echo=True)
     lines = capsys.readouterr().out.splitlines()
-    assert len(lines) == 1 and lines[0].startswith("epoch   1")  # already out before the failure
-    record = json.loads((tmp_path / "run" / "metrics.jsonl").read_text().splitlines()[0])
-    assert f"rmse {record['train']['rmse']:.4f}" in lines[0]  # the console mirrors metrics.jsonl's fields
+    assert len(lines) == 1 and lines[0].startswith("epoch=1 step=3 ")  # already out before the failure
+    start, record = (json.loads(line) for line in (tmp_path / "run" / "metrics.jsonl").read_text().splitlines())
+    assert start["kind"] == "start" and start["resumed_from_step"] == 0 and start["job_digest"] == job.digest()
+    # the console mirrors metrics.jsonl's own field paths
+    assert f"train.rmse={record['train']['rmse']:.4f}" in lines[0]
+    assert f"validation.loss={record['validation']['loss']:.4f}" in lines[0]
 
 
 def test_without_a_bar_a_heartbeat_says_where_the_run_is(tmp_path, capsys, monkeypatch):
@@ -94,22 +97,34 @@ def test_a_used_workdir_is_refused_unless_resumed_or_started_fresh(tmp_path):
     assert again.returncode == 2 and "Traceback" not in again.stderr  # a user error: one line, exit 2
     assert "holds an earlier run" in again.stderr and "--resume" in again.stderr and "--fresh" in again.stderr
     metrics = tmp_path / "run" / "metrics.jsonl"
-    assert len(metrics.read_text().splitlines()) == 2  # nothing appended by the refused run
+    assert len(metrics.read_text().splitlines()) == 3  # start + 2 epochs: nothing appended by the refused run
     assert run_cli(["train", str(job), "--no-progress", "--fresh"]).returncode == 0
-    epochs = [json.loads(line)["epoch"] for line in metrics.read_text().splitlines()]
-    assert epochs == [1, 2]  # the earlier run's records are gone, not mixed in
+    kinds = [(r["kind"], r.get("epoch")) for r in map(json.loads, metrics.read_text().splitlines())]
+    assert kinds == [("start", None), ("epoch", 1), ("epoch", 2)]  # the earlier run's records are gone
 
 
-def test_pruning_keeps_the_highest_steps_by_number_and_never_the_newest(tmp_path):
+def test_pruning_removes_exactly_the_folders_the_index_no_longer_lists(tmp_path):
     from shardmill.checkpoint import prune
 
     for step in (7, 99_999_999, 100_000_000):  # as names, 'step-100000000' sorts before 'step-99999999'
         (tmp_path / f"step-{step:08d}").mkdir()
-    prune(tmp_path, keep=1, newest="step-100000000")
-    assert sorted(p.name for p in tmp_path.iterdir()) == ["step-100000000"]
-    (tmp_path / "step-00000003").mkdir()  # a lower step just written (never the case in one run, but safe)
-    prune(tmp_path, keep=1, newest="step-00000003")
-    assert sorted(p.name for p in tmp_path.iterdir()) == ["step-00000003", "step-100000000"]
+    prune(tmp_path, {"step-00000007", "step-100000000"})  # e.g. the best one and the newest
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["step-00000007", "step-100000000"]
+
+
+def test_the_index_keeps_the_newest_by_step_number_not_by_name(tmp_path):
+    import json as _json
+
+    from shardmill import checkpoint
+    from shardmill.trainer import Trainer
+
+    trainer = Trainer(_job(tmp_path, epochs=1))
+    root = tmp_path / "ckpt"
+    for step in (99_999_999, 100_000_000):  # as names, 'step-100000000' sorts before 'step-99999999'
+        checkpoint.save(trainer.training_state(step), root, keep=1)
+    assert sorted(p.name for p in root.glob("step-*")) == ["step-100000000"]
+    index = _json.loads((root / "index.json").read_text())
+    assert [entry["step"] for entry in index["checkpoints"]] == [100_000_000]
 
 
 def test_a_full_disk_during_a_checkpoint_is_one_line_naming_the_last_good_one(tmp_path, monkeypatch):

@@ -40,7 +40,7 @@ def tiny_job(folder: Path, global_batch: int = G) -> Path:
 def run_study(folder: Path, mode: str, extra: list[str]) -> tuple[dict, Path]:
     job = tiny_job(folder)
     out = folder / "out"
-    done = run_cli(["scale", str(job), "--ranks", "1,2", "--mode", mode, "--steps", str(STEPS), "--out", str(out),
+    done = run_cli(["scale", str(job), "--sizes", "1,2", "--mode", mode, "--steps", str(STEPS), "--out-dir", str(out),
                     *extra], timeout=150)
     assert done.returncode == 0, done.stderr + done.stdout
     return json.loads((out / "scaling.json").read_text()), out
@@ -231,13 +231,13 @@ def test_report_names_mpi_library_every_p_and_assumptions(strong, weak) -> None:
     ("--network", "100Gbit/s,2us", ["`--network`", "Gb/s"]),
     ("--network", "100Gb/s", ["`--network`", "latency"]),
     ("--network", "100Gb/s,2 parsecs", ["`--network`", "parsecs"]),
-    ("--ranks", "2,4", ["`--ranks` must include 1"]),
-    ("--ranks", "1,two", ["`--ranks` must be comma-separated"]),
+    ("--sizes", "2,4", ["`--sizes` must include 1"]),
+    ("--sizes", "1,two", ["`--sizes` must be comma-separated"]),
 ])
 def test_bad_options_exit_2_with_a_clear_message(tmp_path, option, value, words) -> None:
     job = tiny_job(tmp_path)
     out = tmp_path / "out"
-    done = run_cli(["scale", str(job), option, value, "--out", str(out)], timeout=60)
+    done = run_cli(["scale", str(job), option, value, "--out-dir", str(out)], timeout=60)
     assert done.returncode == 2
     assert done.stderr.startswith("shardmill: error: ")
     for word in words:
@@ -248,14 +248,14 @@ def test_bad_options_exit_2_with_a_clear_message(tmp_path, option, value, words)
 
 def test_worker_user_error_is_reported_with_exit_2(tmp_path) -> None:
     job = tiny_job(tmp_path, global_batch=500)  # more than the 192 training rows
-    done = run_cli(["scale", str(job), "--ranks", "1", "--out", str(tmp_path / "out")], timeout=60)
+    done = run_cli(["scale", str(job), "--sizes", "1", "--out-dir", str(tmp_path / "out")], timeout=60)
     assert done.returncode == 2
     assert "the 1-process run stopped" in done.stderr and "192 training rows" in done.stderr
 
 
 def test_run_past_timeout_is_stopped(tmp_path) -> None:
     job = tiny_job(tmp_path)
-    done = run_cli(["scale", str(job), "--ranks", "1", "--timeout", "0.2", "--out", str(tmp_path / "out")],
+    done = run_cli(["scale", str(job), "--sizes", "1", "--timeout", "0.2", "--out-dir", str(tmp_path / "out")],
                    timeout=60)
     assert done.returncode == 124
     assert "ran past 0.2 s" in done.stderr
@@ -369,9 +369,11 @@ def sharded(tmp_path_factory) -> tuple[dict, Path, str]:
                     {"global_batch": G, "epochs": 1, "seed": 0, "update": "sharded"},
                     optimizer={"method": "adam", "learning_rate": 0.01})
     out = folder / "out"
+    # 0.1's flag names, still accepted for one release with a notice each
     done = run_cli(["scale", str(job), "--ranks", "1,2", "--steps", "3", "--out", str(out), "--no-progress"],
                    timeout=150)
     assert done.returncode == 0, done.stderr + done.stdout
+    assert "`scale --ranks` is now `--sizes`" in done.stderr and "`scale --out` is now `--out-dir`" in done.stderr
     return json.loads((out / "scaling.json").read_text()), out, done.stdout
 
 

@@ -22,6 +22,9 @@ from shardmill.config import JobError, job_from_dict
 README = Path(__file__).resolve().parents[1] / "README.md"
 # The run keys that fix the trajectory, as the digest has always taken them (the rest of [run] may change on resume).
 DIGEST_RUN_KEYS = ("global_batch", "seed", "reduction", "exact_chunk")
+# [data] keys added in 0.2 (tables): they enter the digest only away from their defaults, as the checkpoints on disk
+# were written without them.
+ADDED_DATA_KEYS = {"target": "", "features": [], "header": "auto"}
 FULL = {
     "model": {"layers": [784, 1024, 1024, 10], "activation": "relu", "loss": "softmax_cross_entropy",
               "dtype": "float32", "init": "auto"},
@@ -43,7 +46,8 @@ JOBS = [
 def digest_as_written(job: sm.Job) -> str:
     """The digest formula of the checkpoints on disk, spelled out independently of the schema."""
     d = job.as_dict()
-    kept = {"model": d["model"], "data": d["data"], "optimizer": d["optimizer"],
+    data = {k: v for k, v in d["data"].items() if k not in ADDED_DATA_KEYS or v != ADDED_DATA_KEYS[k]}
+    kept = {"model": d["model"], "data": data, "optimizer": d["optimizer"],
             "run": {k: d["run"][k] for k in DIGEST_RUN_KEYS}}
     return hashlib.sha256(json.dumps(kept, sort_keys=True).encode()).hexdigest()  # hashlib, json (stdlib)
 

@@ -60,25 +60,26 @@ def global_batch_at(job: Job, p: int, mode: str) -> int:
     return job.run.global_batch if mode == "strong" else job.run.global_batch * p
 
 
-def cmd_scale(args: argparse.Namespace) -> int:
-    """`shardmill scale JOB --ranks 1,2,4 --mode strong|weak --out DIR`: run, measure, model, report."""
+def cmd_scale(args: argparse.Namespace, job: Job | None = None) -> int:
+    """`shardmill scale JOB --sizes 1,2,4 --mode strong|weak --out-dir DIR`: run, measure, model, report."""
     from mpi4py import MPI
 
-    ranks = parse_counts(args.ranks, "--ranks")
+    ranks = parse_counts(args.sizes, "--sizes")
     if 1 not in ranks:
-        raise JobError(f"`--ranks` must include 1, the serial baseline of speedup and efficiency; got {args.ranks!r}")
+        raise JobError(f"`--sizes` must include 1, the serial baseline of speedup and efficiency; got {args.sizes!r}")
     project_to = parse_counts(args.project, "--project")
     network = parse_network_option(args.network)
     if MPI.COMM_WORLD.Get_size() > 1:
         raise JobError("`shardmill scale` starts its own mpiexec runs; start it as one process, without mpiexec")
-    job = load_job(args.job)
+    sets = list(getattr(args, "sets", []))
+    job = job if job is not None else load_job(args.job, overrides=sets)
     if args.mode == "strong" and job.run.global_batch < max(ranks):
         raise JobError(f"`run.global_batch` = {job.run.global_batch} is smaller than the largest process count "
                        f"{max(ranks)}; strong scaling needs at least one sample per rank")
     timeout = float(getattr(args, "timeout", 900.0))
     if not timeout > 0:
         raise JobError(f"`--timeout` must be > 0 seconds; got {timeout:g}")
-    out = Path(args.out)
+    out = Path(args.out_dir)
     (out / "runs").mkdir(parents=True, exist_ok=True)
     (out / "logs").mkdir(parents=True, exist_ok=True)
 
@@ -87,7 +88,7 @@ def cmd_scale(args: argparse.Namespace) -> int:
     try:
         for p in ranks:
             raws[p] = run_point(Path(args.job), p, global_batch_at(job, p, args.mode), args.steps, args.threads,
-                                args.pin, out, timeout, bar)
+                                args.pin, out, timeout, bar, sets)
             bar.update(1)
     except RunFailed as failure:
         bar.close()
@@ -115,15 +116,19 @@ def _progress(total: int, show: bool):
                 disable=None if show else True)
 
 
-def worker_args(job: Path, global_batch: int, steps: int, threads: int, pin: bool, result: Path) -> list[str]:
-    """Python arguments of one run: `-m shardmill.scaling.worker` with these settings (paths made absolute)."""
+def worker_args(job: Path, global_batch: int, steps: int, threads: int, pin: bool, result: Path,
+                sets: list[str] | tuple[str, ...] = ()) -> list[str]:
+    """Python arguments of one run: `-m shardmill.scaling.worker` with these settings (paths made absolute) and
+    the job's --set assignments."""
     args = ["-m", "shardmill.scaling.worker", "--job", str(job.resolve()), "--global-batch", str(global_batch),
             "--steps", str(steps), "--threads", str(threads), "--result", str(result.resolve())]
+    for text in sets:
+        args += ["--set", text]
     return args + (["--pin"] if pin else [])
 
 
 def run_point(job: Path, p: int, global_batch: int, steps: int, threads: int, pin: bool, out: Path,
-              timeout: float, bar: Any = None) -> dict[str, Any]:
+              timeout: float, bar: Any = None, sets: list[str] | tuple[str, ...] = ()) -> dict[str, Any]:
     """Run the worker on p processes and return what its rank 0 wrote (see `worker.run_worker`).
 
     Output of all ranks goes to out/logs/pP.log. A run past `timeout` seconds is stopped (its whole process
@@ -140,7 +145,7 @@ def run_point(job: Path, p: int, global_batch: int, steps: int, threads: int, pi
 
     with open(log_path, "w") as log, _sigterm_as_interrupt():
         try:
-            done = run_ranks(p, worker_args(job, global_batch, steps, threads, pin, result), threads=threads,
+            done = run_ranks(p, worker_args(job, global_batch, steps, threads, pin, result, sets), threads=threads,
                              timeout=timeout, stdout=log, stderr=subprocess.STDOUT, while_running=show)
         except subprocess.TimeoutExpired:
             raise RunFailed(f"the {p}-process run ran past {timeout:g} s and was stopped; see {log_path}",

@@ -113,7 +113,7 @@ def memory() -> dict[str, int]:
 
 
 def run_worker(job_path: Path, global_batch: int, steps: int, threads: int, pin: bool, result: Path,
-               comm_repeats: int = 5) -> int:
+               comm_repeats: int = 5, sets: list[str] | tuple[str, ...] = ()) -> int:
     """Time `steps` training steps of the job on every rank of MPI.COMM_WORLD; rank 0 writes `result` (JSON).
 
     Pinning happens before the trainer is built. After the kernel warm-up and WARMUP_STEPS untimed steps
@@ -129,7 +129,7 @@ def run_worker(job_path: Path, global_batch: int, steps: int, threads: int, pin:
 
     comm = Comm()
     pinned = pin_rank(comm.rank, threads) if pin else None
-    job = load_job(job_path)
+    job = load_job(job_path, overrides=sets)
     job.run.global_batch = global_batch
     job.run.threads = threads
     with threadpool_limits(limits=threads, user_api="blas"):
@@ -215,11 +215,12 @@ def worker_main(argv: list[str] | None = None) -> int:
     parser.add_argument("--pin", action="store_true")
     parser.add_argument("--result", type=Path, required=True)
     parser.add_argument("--comm-repeats", type=int, default=5)
+    parser.add_argument("--set", action="append", default=[], dest="sets")
     args = parser.parse_args(argv)
     from shardmill.parallel.comm import run_guarded
 
     return run_guarded(lambda: run_worker(args.job, args.global_batch, args.steps, args.threads, args.pin,
-                                          args.result, args.comm_repeats), user_errors=(JobError,))
+                                          args.result, args.comm_repeats, args.sets), user_errors=(JobError,))
 
 
 if __name__ == "__main__":

@@ -55,8 +55,8 @@ def plant(mode: str) -> None:
                 self.model.params[0] += 1e-9
         original_step(self, epoch, step_in_epoch)
 
-    def load_job(path):
-        job = original_load_job(path)
+    def load_job(path, overrides=()):
+        job = original_load_job(path, overrides=overrides)
         if rank == FAULTY_RANK:
             job.data.inputs = "no-such-inputs-on-this-node.npy"
         return job

@@ -1,0 +1,351 @@
+"""``shardmill export``: a trained model as an ONNX graph, and its model card (JSON).
+
+The graph computes what :meth:`shardmill.predict.Predictor.outputs` computes, from raw inputs:
+
+    inputs (N, d) ─ standardise ─ per layer l: MatMul W_l, Add b_l, activation ─ outputs (N, k)
+
+The standardisation stays two nodes (Sub input_mean, Mul input_inv_std) in float64, as training applied it
+(``kernels/data.py``: (x − mean) · inv_std in float64, stored in the model's dtype); a float32 graph casts its
+inputs to float64 for those two nodes and back. Folding them into W0 and b0 would be one matrix product less, but
+b0 − (mean · inv_std) W0 cancels when a column's mean is large against its spread, and the float32 graph would
+lose digits training never lost. Every activation is written out in the same primitive operations as its kernel
+(``kernels/activations.py``, ``kernels/losses.py``), so the graph means exactly our definition whatever the runtime:
+no fused GELU or Softplus op, whose definitions differ (erf or tanh form; log(1 + eˣ) without the stable split).
+"""
+
+from __future__ import annotations
+
+import json
+import os
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import onnx
+from onnx import TensorProto, helper, numpy_helper
+from shardmill.checkpoint import resolve
+from shardmill.config import JobError
+from shardmill.kernels import activations as act
+from shardmill.predict import Predictor, load_model
+
+MIN_OPSET = 13  # ReduceSum takes its axes as an input, GreaterOrEqual exists
+MAX_OPSET = onnx.defs.onnx_opset_version()  # the newest the installed onnx package knows
+DEFAULT_OPSET = 17
+EXTERNAL_DATA_BYTES = 1 << 30
+"""Parameters above this many bytes go to a ``.data`` file beside the .onnx (protobuf caps one file at 2 GiB)."""
+
+CARD_FORMAT = "shardmill-model-card"
+CARD_VERSION = 1
+
+ACTIVATION_FORMULAS = {
+    "identity": "f(z) = z",
+    "relu": "f(z) = max(z, 0)",
+    "leaky_relu": f"f(z) = max(z, 0) + {act.LEAKY_SLOPE}·min(z, 0)",
+    "gelu": f"f(z) = 0.5·z·(1 + tanh(√(2/π)·(z + {act._GELU_K}·z³))) (tanh form of Hendrycks & Gimpel 2016)",
+    "softplus": "f(z) = max(z, 0) + log1p(exp(−|z|))",
+    "sigmoid": "f(z) = 1 / (1 + exp(−z)) for z ≥ 0, exp(z) / (1 + exp(z)) for z < 0",
+    "tanh": "f(z) = tanh(z)",
+    "softmax": "f(z)_j = exp(z_j − max_i z_i) · (1 / Σ_i exp(z_i − max_i z_i)), per row",
+}
+LOSS_FORMULAS = {
+    "softmax_cross_entropy": "per row: logsumexp(z) − z_y, z the logits, y the class index",
+    "binary_cross_entropy": "per output: max(z, 0) + log1p(exp(−|z|)) − t·z, z the logit, t the 0/1 target",
+    "squared_error": "per row: ½ Σ_j (o_j − t_j)², o the outputs after the output activation",
+}
+LABEL_RULES = {
+    "softmax_cross_entropy": "the index of the largest output, (n,) int64",
+    "binary_cross_entropy": "1 where an output exceeds 0.5, else 0, (n, k) int64",
+    "squared_error": "none: the outputs are the prediction",
+}
+
+
+class _GraphBuilder:
+    """Nodes and initializers of one graph, in the model's element type, with fresh tensor names."""
+
+    def __init__(self, dtype: np.dtype, opset: int) -> None:
+        self.dtype = dtype
+        self.opset = opset
+        self.nodes: list[onnx.NodeProto] = []
+        self.initializers: list[onnx.TensorProto] = []
+        self._count = 0
+        self._constants: dict[tuple[str, float], str] = {}
+
+    def tensor(self, name: str, array: np.ndarray) -> str:
+        self.initializers.append(numpy_helper.from_array(np.ascontiguousarray(array), name))
+        return name
+
+    def scalar(self, value: float, dtype: np.dtype | None = None) -> str:
+        """A 0-d constant (broadcast by every elementwise op), shared by every node that uses the same value."""
+        dtype = np.dtype(dtype or self.dtype)
+        key = (dtype.name, float(value))
+        if key not in self._constants:
+            self._constants[key] = self.tensor(f"const_{dtype.name}_{len(self._constants)}", np.array(value, dtype))
+        return self._constants[key]
+
+    def op(self, op_type: str, *inputs: str, scope: str = "", **attributes: Any) -> str:
+        self._count += 1
+        out = f"{scope}{op_type.lower()}_{self._count}"
+        self.nodes.append(helper.make_node(op_type, list(inputs), [out], name=f"{scope}{op_type}_{self._count}",
+                                           **attributes))
+        return out
+
+    def reduce(self, op_type: str, x: str, scope: str) -> str:
+        """Reduce over axis 1 keeping it, (N, k) → (N, 1): axes an input from opset 18 (ReduceSum: 13), before
+        that an attribute."""
+        axes_as_input = self.opset >= (13 if op_type == "ReduceSum" else 18)
+        if axes_as_input:
+            axes = self.tensor(f"{scope}axes_{self._count}", np.array([1], dtype=np.int64))
+            return self.op(op_type, x, axes, scope=scope, keepdims=1)
+        return self.op(op_type, x, scope=scope, axes=[1], keepdims=1)
+
+    def activation(self, name: str, z: str, scope: str) -> str:
+        """f(z) for the activation ``name``, in the operations and order of its kernel."""
+        op, c = self.op, self.scalar
+        if name == "identity":
+            return z
+        if name == "relu":
+            return op("Relu", z, scope=scope)  # max(z, 0)
+        if name == "leaky_relu":  # max(z, 0) + slope·min(z, 0), the slope in the model's dtype (not a float attr)
+            return op("Add", op("Max", z, c(0.0), scope=scope),
+                      op("Mul", c(act.LEAKY_SLOPE), op("Min", z, c(0.0), scope=scope), scope=scope), scope=scope)
+        if name == "gelu":  # 0.5·z·(1 + tanh(C·(z + K·z·z·z))), multiplied left to right as the kernel does
+            cube = op("Mul", op("Mul", op("Mul", c(act._GELU_K), z, scope=scope), z, scope=scope), z, scope=scope)
+            t = op("Tanh", op("Mul", c(act._GELU_C), op("Add", z, cube, scope=scope), scope=scope), scope=scope)
+            return op("Mul", op("Mul", c(0.5), z, scope=scope), op("Add", c(1.0), t, scope=scope), scope=scope)
+        if name == "softplus":  # max(z, 0) + log1p(e^{−|z|})
+            u = op("Exp", op("Neg", op("Abs", z, scope=scope), scope=scope), scope=scope)
+            return op("Add", op("Max", z, c(0.0), scope=scope), self.log1p(u, scope), scope=scope)
+        if name == "sigmoid":  # e = e^{−|z|}: 1 / (1 + e) for z ≥ 0, e / (1 + e) for z < 0
+            e = op("Exp", op("Neg", op("Abs", z, scope=scope), scope=scope), scope=scope)
+            numerator = op("Where", op("GreaterOrEqual", z, c(0.0), scope=scope), c(1.0), e, scope=scope)
+            return op("Div", numerator, op("Add", c(1.0), e, scope=scope), scope=scope)
+        if name == "tanh":
+            return op("Tanh", z, scope=scope)
+        if name == "softmax":  # e = exp(z − row max); e · (1 / Σ e), as losses.softmax_rows
+            e = op("Exp", op("Sub", z, self.reduce("ReduceMax", z, scope), scope=scope), scope=scope)
+            return op("Mul", e, op("Reciprocal", self.reduce("ReduceSum", e, scope), scope=scope), scope=scope)
+        raise ValueError(f"no ONNX form for activation {name!r}")
+
+    def log1p(self, u: str, scope: str) -> str:
+        """log(1 + u) to a few ulps without a log1p op: w = 1 + u; u where w − 1 = 0, else u·log(w) / (w − 1)
+        (Goldberg 1991, Theorem 4). The other branch's 0/0 is computed and not selected."""
+        op, c = self.op, self.scalar
+        w = op("Add", c(1.0), u, scope=scope)
+        w_minus_1 = op("Sub", w, c(1.0), scope=scope)
+        ratio = op("Div", op("Mul", u, op("Log", w, scope=scope), scope=scope), w_minus_1, scope=scope)
+        return op("Where", op("Equal", w_minus_1, c(0.0), scope=scope), u, ratio, scope=scope)
+
+
+def output_activation(predictor: Predictor) -> str:
+    """The output layer's activation: softmax, sigmoid, or ``model.output`` of a squared_error model."""
+    model = predictor.model
+    if model.loss == "softmax_cross_entropy":
+        return "softmax"
+    if model.loss == "binary_cross_entropy":
+        return "sigmoid"
+    return model.output
+
+
+def check_opset(opset: int) -> int:
+    if isinstance(opset, bool) or not isinstance(opset, int) or not MIN_OPSET <= opset <= MAX_OPSET:
+        raise JobError(f"`--opset` must be an integer from {MIN_OPSET} to {MAX_OPSET}; got {opset!r}")
+    return opset
+
+
+def build_onnx(predictor: Predictor, opset: int = DEFAULT_OPSET) -> onnx.ModelProto:
+    """The ONNX model of ``predictor``: input "inputs" (N, d), output "outputs" (N, k), in the model's dtype."""
+    check_opset(opset)
+    model = predictor.model
+    dtype = model.dtype
+    elem = helper.np_dtype_to_tensor_dtype(dtype)
+    g = _GraphBuilder(dtype, opset)
+    scope = "standardise/"
+    x = "inputs"
+    if dtype != np.float64:
+        x = g.op("Cast", x, scope=scope, to=TensorProto.DOUBLE)
+    x = g.op("Sub", x, g.tensor("input_mean", predictor.input_mean.astype(np.float64)), scope=scope)
+    x = g.op("Mul", x, g.tensor("input_inv_std", predictor.input_inv_std.astype(np.float64)), scope=scope)
+    if dtype != np.float64:
+        x = g.op("Cast", x, scope=scope, to=elem)
+    activations = [*model.activations, output_activation(predictor)]
+    for l in range(model.n_layers):
+        scope = f"layer{l}/"
+        z = g.op("MatMul", x, g.tensor(f"W{l}", model.weights[l]), scope=scope)
+        z = g.op("Add", z, g.tensor(f"b{l}", model.biases[l]), scope=scope)
+        x = g.activation(activations[l], z, scope)
+    if g.nodes[-1].output[0] != x:
+        raise AssertionError("the graph's last node must produce its output")
+    g.nodes[-1].output[0] = "outputs"
+    d, k = model.sizes[0], model.sizes[-1]
+    graph = helper.make_graph(
+        g.nodes, "shardmill_mlp",
+        [helper.make_tensor_value_info("inputs", elem, ["N", d])],
+        [helper.make_tensor_value_info("outputs", elem, ["N", k])],
+        initializer=g.initializers,
+        doc_string=f"raw inputs (N, {d}) → {' → '.join(activations)} → outputs (N, {k}); loss {model.loss}")
+    opsets = [helper.make_opsetid("", opset)]
+    from shardmill import __version__
+
+    onnx_model = helper.make_model(graph, opset_imports=opsets, producer_name="shardmill",
+                                   producer_version=__version__, ir_version=helper.find_min_ir_version_for(opsets))
+    helper.set_model_props(onnx_model, {
+        "shardmill.loss": model.loss,
+        "shardmill.activations": json.dumps(activations),
+        "shardmill.job_digest": predictor.digest or "",
+        "shardmill.step": "" if predictor.step is None else str(predictor.step),
+        "shardmill.feature_names": json.dumps(predictor.feature_names),
+    })
+    return onnx_model
+
+
+def export_onnx(predictor: Predictor, path: Path, opset: int = DEFAULT_OPSET) -> list[Path]:
+    """Write ``predictor`` as an ONNX model to ``path``, checked by ``onnx.checker`` (full check, shape inference).
+
+    When the parameters take more than :data:`EXTERNAL_DATA_BYTES` bytes, every tensor above 64 bytes goes to
+    ``<path>.data`` beside it (ONNX's external data; the 0-d constants and axes stay inline). Returns the files
+    written. The file appears whole or not at all (written to a temporary name, then renamed).
+    """
+    path = Path(path)
+    onnx_model = build_onnx(predictor, opset)
+    external = predictor.model.params.nbytes > EXTERNAL_DATA_BYTES
+    tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
+    written = [path]
+    try:
+        if external:
+            data = path.with_name(path.name + ".data")
+            onnx.save_model(onnx_model, tmp, save_as_external_data=True, all_tensors_to_one_file=True,
+                            location=data.name, size_threshold=64)  # small constants stay inline for shape inference
+            onnx.checker.check_model(tmp, full_check=True)  # a path: the checker reads the data file beside it
+            written.append(data)
+        else:
+            onnx.checker.check_model(onnx_model, full_check=True)
+            onnx.save_model(onnx_model, tmp)
+        os.replace(tmp, path)
+    finally:
+        tmp.unlink(missing_ok=True)
+    return written
+
+
+def _workdir_of(source: Path) -> Path:
+    """The workdir a model file or checkpoint sits in: final.npz's folder, or the checkpoint's workdir."""
+    source = Path(source)
+    if source.is_file():
+        return source.parent
+    checkpoint_dir = resolve(source)
+    return checkpoint_dir.parent.parent if checkpoint_dir.parent.name == "checkpoints" else source
+
+
+def last_epoch_record(workdir: Path, step: int | None = None) -> dict[str, Any] | None:
+    """The last epoch record of ``workdir/metrics.jsonl`` at or before ``step`` (any step when None), or None
+    without one. A line cut short by a killed run is skipped."""
+    path = Path(workdir) / "metrics.jsonl"
+    if not path.is_file():
+        return None
+    found = None
+    for line in path.read_text().splitlines():
+        try:
+            record = json.loads(line)
+        except json.JSONDecodeError:
+            continue
+        if isinstance(record, dict) and record.get("kind") == "epoch" and (step is None or record["step"] <= step):
+            found = record
+    return found
+
+
+def model_card(predictor: Predictor, source: Path) -> dict[str, Any]:
+    """The model card of ``predictor`` loaded from ``source`` (what :func:`load_model` took), as a JSON-ready dict.
+
+    Fields: format, format_version, source, dtype, inputs (count, feature_names, mean, inv_std, std = 1/inv_std,
+    how they are applied), layers (fan_in, fan_out, tensor names, activation and its formula), output (activation,
+    formula, loss, loss formula, labels), training (job, digest, step) and metrics (the workdir's last epoch record
+    of metrics.jsonl up to the model's step, or null).
+    """
+    model = predictor.model
+    activations = [*model.activations, output_activation(predictor)]
+    layers = [{"index": l, "weights": f"W{l}", "bias": f"b{l}", "fan_in": model.sizes[l],
+               "fan_out": model.sizes[l + 1], "activation": activations[l],
+               "formula": ACTIVATION_FORMULAS[activations[l]]} for l in range(model.n_layers)]
+    mean, inv_std = predictor.input_mean, predictor.input_inv_std
+    return {
+        "format": CARD_FORMAT,
+        "format_version": CARD_VERSION,
+        "source": str(source),
+        "dtype": model.dtype.name,
+        "inputs": {
+            "count": model.sizes[0],
+            "feature_names": predictor.feature_names,
+            "mean": mean.tolist(),
+            "inv_std": inv_std.tolist(),
+            "std": (1.0 / inv_std).tolist(),
+            "standardisation": "x̃ = (x − mean) · inv_std per column, in float64, then cast to dtype "
+                               "(inv_std = 1 for a column without spread)",
+        },
+        "layers": layers,
+        "output": {
+            "count": model.sizes[-1],
+            "activation": activations[-1],
+            "formula": ACTIVATION_FORMULAS[activations[-1]],
+            "loss": model.loss,
+            "loss_formula": LOSS_FORMULAS[model.loss],
+            "labels": LABEL_RULES[model.loss],
+        },
+        "training": {"job": predictor.job, "digest": predictor.digest, "step": predictor.step},
+        "metrics": last_epoch_record(_workdir_of(source), predictor.step),
+    }
+
+
+def write_model_card(predictor: Predictor, source: Path, path: Path, onnx_path: Path | None = None,
+                     opset: int | None = None) -> dict[str, Any]:
+    """Write :func:`model_card` as indented JSON to ``path`` (atomically); with ``onnx_path``, the card also names
+    the graph file, its opset and its input and output. Returns the card."""
+    card = model_card(predictor, source)
+    if onnx_path is not None:
+        card["onnx"] = {"file": Path(onnx_path).name, "opset": opset, "input": "inputs", "output": "outputs"}
+    path = Path(path)
+    tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
+    tmp.write_text(json.dumps(card, indent=1, ensure_ascii=False) + "\n")
+    os.replace(tmp, path)
+    return card
+
+
+def cmd_export(args) -> int:
+    """``shardmill export MODEL --out model.onnx [--card FILE] [--opset N]``: the ONNX graph and the model card.
+
+    ``args.model``: a final.npz, best.npz, checkpoint directory or workdir; ``args.out``: the .onnx path (its
+    folder must exist); ``args.card``: the card's path (default: ``--out`` with ``.card.json`` for ``.onnx``);
+    ``args.opset``: the ONNX opset. Every argument is checked before any work.
+    """
+    out = Path(args.out)
+    if out.suffix.lower() != ".onnx":
+        raise JobError(f"`--out` must end in .onnx; got {str(out)!r}")
+    if not out.parent.is_dir():
+        raise JobError(f"`--out` folder {str(out.parent)!r} does not exist")
+    card = Path(args.card) if getattr(args, "card", None) is not None else out.with_suffix(".card.json")
+    if card.suffix.lower() != ".json":
+        raise JobError(f"`--card` must end in .json; got {str(card)!r}")
+    if not card.parent.is_dir():
+        raise JobError(f"`--card` folder {str(card.parent)!r} does not exist")
+    if card.resolve() == out.resolve():
+        raise JobError(f"`--card` must differ from `--out`; both are {str(out)!r}")
+    opset = getattr(args, "opset", None)
+    opset = check_opset(DEFAULT_OPSET if opset is None else opset)
+    source = Path(args.model)
+    if not source.exists():
+        raise JobError(f"`MODEL` {str(source)!r} does not exist; give a final.npz, best.npz, a checkpoint "
+                       f"directory or a workdir")
+    predictor = load_model(source)
+    try:
+        files = export_onnx(predictor, out, opset)
+    except OSError as err:
+        raise JobError(f"`--out` {str(out)!r} cannot be written: {err.strerror or err}") from None
+    try:
+        write_model_card(predictor, source, card, onnx_path=out, opset=opset)
+    except OSError as err:
+        raise JobError(f"`--card` {str(card)!r} cannot be written: {err.strerror or err}") from None
+    model = predictor.model
+    print(f"wrote {files[0]} (ONNX opset {opset}, {model.dtype.name}, {model.sizes[0]} inputs → "
+          f"{model.sizes[-1]} outputs)")
+    for extra in files[1:]:
+        print(f"wrote {extra} (the graph's parameters)")
+    print(f"wrote {card} (model card)")
+    return 0

@@ -366,12 +366,13 @@ def sharded(tmp_path_factory) -> tuple[dict, Path, str]:
     folder = tmp_path_factory.mktemp("sharded")
     make_classification(folder, rows=240, features=6, classes=3, seed=0)
     job = write_job(folder, {"layers": [6, 64, 64, 3], "activation": "tanh", "dtype": "float64"},
-                    {"global_batch": G, "epochs": 1, "seed": 0, "update": "sharded"},
+                    {"global_batch": G, "epochs": 1, "seed": 0},
                     optimizer={"method": "adam", "learning_rate": 0.01})
     out = folder / "out"
-    # 0.1's flag names, still accepted for one release with a notice each
-    done = run_cli(["scale", str(job), "--ranks", "1,2", "--steps", "3", "--out", str(out), "--no-progress"],
-                   timeout=150)
+    # 0.1's flag names, still accepted for one release with a notice each; the sharded update comes from --set,
+    # which the driver must hand to every worker it starts
+    done = run_cli(["scale", str(job), "--ranks", "1,2", "--steps", "3", "--out", str(out), "--no-progress",
+                    "--set", "run.update=sharded"], timeout=150)
     assert done.returncode == 0, done.stderr + done.stdout
     assert "`scale --ranks` is now `--sizes`" in done.stderr and "`scale --out` is now `--out-dir`" in done.stderr
     return json.loads((out / "scaling.json").read_text()), out, done.stdout

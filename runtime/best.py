@@ -33,11 +33,13 @@ class BestTracker:
         self.epoch = 0
         self.step = 0
         self.stale_epochs = 0
+        self.stopped = False  # the run ended here by early stopping (set by the trainer, kept by checkpoints)
         if state and state.get("metric") == metric:  # a resume: keep counting (another metric starts over)
             self.value = state.get("value")
             self.epoch = int(state.get("epoch", 0))
             self.step = int(state.get("step", 0))
             self.stale_epochs = int(state.get("stale_epochs", 0))
+            self.stopped = bool(state.get("stopped", False))
 
     def value_of(self, record: dict[str, Any]) -> float:
         """The watched metric in an epoch record (``record["validation"]["loss"]`` for "validation.loss")."""
@@ -65,6 +67,7 @@ class BestTracker:
         return self.patience > 0 and self.stale_epochs >= self.patience
 
     def state(self) -> dict[str, Any]:
-        """What a checkpoint and the epoch record keep: metric, best value, its epoch and step, stale epochs."""
+        """What a checkpoint and the epoch record keep: metric, best value, its epoch and step, stale epochs, and
+        whether the run stopped early."""
         return {"metric": self.metric, "value": self.value, "epoch": self.epoch, "step": self.step,
-                "stale_epochs": self.stale_epochs}
+                "stale_epochs": self.stale_epochs, "stopped": self.stopped}

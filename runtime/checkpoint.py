@@ -292,13 +292,28 @@ def load(directory: Path) -> tuple[dict[str, Any], dict[str, np.ndarray], dict[s
     return state, loaded[0], loaded[1]
 
 
-def load_latest(workdir: Path) -> tuple[dict[str, Any], dict[str, np.ndarray], dict[str, np.ndarray]]:
-    """Read and verify the newest complete checkpoint under ``workdir/checkpoints``: (state, params, optimizer)."""
+def load_newest_verified(workdir: Path) -> tuple[dict[str, Any], dict[str, np.ndarray], dict[str, np.ndarray],
+                                                 list[str]]:
+    """The newest checkpoint under ``workdir/checkpoints`` whose files match their checksums: (state, params,
+    optimizer, skipped), where ``skipped`` says which newer ones failed and why.
+
+    A damaged newest checkpoint (a disk error after it was written) does not strand the run: the resume continues
+    from the newest one that verifies, which replays the steps in between to the same parameters. Raises when none
+    verifies.
+    """
     root = workdir / "checkpoints"
-    name = latest_name(root) if root.is_dir() else None
-    if name is None:
+    entries = read_index(root) if root.is_dir() else []
+    if not entries:
         raise CheckpointError(f"nothing to resume: no checkpoint under {str(root)!r}")
-    return load(root / name)
+    skipped: list[str] = []
+    for entry in reversed(entries):
+        try:
+            state, params, opt = load(root / entry["name"])
+        except CheckpointError as err:
+            skipped.append(f"{entry['name']}: {err}")
+            continue
+        return state, params, opt, skipped
+    raise CheckpointError(f"no checkpoint under {str(root)!r} verifies; the newest: {skipped[0]}")
 
 
 def check_compatible(job: Job, shapes: dict[str, tuple[int, ...]], optimizer_shapes: dict[str, tuple[int, ...]],
@@ -309,7 +324,8 @@ def check_compatible(job: Job, shapes: dict[str, tuple[int, ...]], optimizer_sha
     if state.get("job_digest") != job.digest():
         diffs = job.trajectory_differences(state.get("job", {}))
         given = state.get("overrides") or []
-        hint = f"; its run was started with --set {' --set '.join(given)}" if given != list(job.overrides) else ""
+        hint = (f"; it was written by a run with --set {' --set '.join(given)}" if given != list(job.overrides)
+                else "")
         raise CheckpointError("checkpoint belongs to another job (its job digest differs"
                               + (f"; changed: {', '.join(diffs)}" if diffs else "") + f"{hint})")
     for name, shape in shapes.items():

@@ -27,14 +27,23 @@ def _layers(text: str) -> list[int]:
     return layers
 
 
-def _positive(text: str) -> int:
-    try:
-        value = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"must be a positive integer; got {text!r}") from None
-    if value < 1:
-        raise argparse.ArgumentTypeError(f"must be a positive integer; got {text!r}")
-    return value
+def _integer(low: int, what: str):
+    """An argparse type: an integer ≥ ``low``, refused as "must be WHAT; got 'TEXT'"."""
+
+    def parse(text: str) -> int:
+        try:
+            value = int(text)
+        except ValueError:
+            value = low - 1
+        if value < low:
+            raise argparse.ArgumentTypeError(f"must be {what}; got {text!r}")
+        return value
+
+    return parse
+
+
+_count = _integer(0, "an integer ≥ 0")
+_positive = _integer(1, "a positive integer")
 
 
 class _Help(argparse.HelpFormatter):
@@ -42,7 +51,7 @@ class _Help(argparse.HelpFormatter):
 
     def _get_help_string(self, action: argparse.Action) -> str:
         text = action.help or ""
-        shown = action.default not in (None, False, argparse.SUPPRESS) and action.option_strings
+        shown = action.default not in (None, False, [], argparse.SUPPRESS) and action.option_strings
         if shown and "%(default)" not in text and "default" not in text:
             text += " (default: %(default)s)"
         return text
@@ -53,7 +62,7 @@ class _Help(argparse.HelpFormatter):
 # writes into a folder.
 LEGACY_FLAGS: dict[str, dict[str, str]] = {
     "bench": {"--batch": "--global-batch", "--optimizer": "--method", "--warmup": "--untimed",
-              "--bucket-mb": "--message-mib"},
+              "--bucket-mb": "--message-mib", "--progress": "--comm-progress"},
     "scale": {"--ranks": "--sizes", "--out": "--out-dir"},
     "demo": {"--out": "--out-dir"},
     "verify": {"--json": "--out"},  # was a FILE; --json is now the stdout switch (a following path means the old use)
@@ -69,9 +78,9 @@ def modernise(argv: list[str]) -> tuple[list[str], list[str]]:
     for i, arg in enumerate(argv):
         flag, eq, value = arg.partition("=")
         new = renames.get(flag)
-        if new and command == "verify":  # only `--json FILE` is the old use; a bare --json is the switch
+        if new and command == "verify":  # only `--json FILE.json` is the old use; a bare --json is the switch
             following = argv[i + 1] if i + 1 < len(argv) else ""
-            if not eq and (not following or following.startswith("-")):
+            if not eq and not following.lower().endswith(".json"):
                 new = None
         if new:
             notices.append(f"`{command} {flag}` is now `{new}`; the old name is accepted until the next release")
@@ -121,7 +130,7 @@ def build_parser() -> argparse.ArgumentParser:
     p = command("verify", "compare the parallel gradient with the serial one on the job's batches")
     job_file(p)
     p.add_argument("--batches", type=_positive, default=3, metavar="N", help="global batches to compare")
-    p.add_argument("--trajectory", type=int, default=0, metavar="N",
+    p.add_argument("--trajectory", type=_count, default=0, metavar="N",
                    help="also train N steps serial and parallel and report the weight divergence per step")
     p.add_argument("--out", type=Path, default=None, metavar="FILE", help="also write the JSON report to FILE")
     json_switch(p, "the report")
@@ -136,7 +145,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--threads", type=_positive, default=default("run.threads"), metavar="N",
                    help="BLAS threads per process")
     p.add_argument("--steps", type=_positive, default=30, metavar="N", help="timed steps")
-    p.add_argument("--untimed", type=int, default=5, metavar="N",
+    p.add_argument("--untimed", type=_count, default=5, metavar="N",
                    help="steps run before timing starts (kernels compiled, caches warm)")
     p.add_argument("--reduction", choices=choices("run.reduction"), default=default("run.reduction"),
                    help="gradient sum, as the job key run.reduction")
@@ -144,18 +153,20 @@ def build_parser() -> argparse.ArgumentParser:
                    help="as the job key run.update: replicated, every rank updates everything; sharded, each rank "
                         "its own slice")
     p.add_argument("--exact-chunk", type=_positive, default=64, metavar="N",
-                   help="rows per fixed chunk in exact mode (run.exact_chunk)")
+                   help=f"rows per fixed chunk in exact mode (run.exact_chunk, whose default is "
+                        f"{default('run.exact_chunk')}; 64 here divides bench's global batches)")
     p.add_argument("--exact-format", choices=choices("run.exact_format"), default=default("run.exact_format"),
                    help="exact mode's accumulator (run.exact_format)")
-    p.add_argument("--progress", choices=choices("run.progress"), default=default("run.progress"),
-                   help="who drives the overlapped reductions (run.progress)")
+    p.add_argument("--comm-progress", choices=choices("run.progress"), default=default("run.progress"),
+                   help="who drives the overlapped reductions (the job key run.progress; not a progress bar)")
     p.add_argument("--no-overlap", action="store_true", help="one blocking allreduce after backward")
     p.add_argument("--message-mib", type=float, default=default("run.message_mib"), metavar="MIB",
                    help="smallest gradient message, MiB (run.message_mib)")
     p.add_argument("--activation", default=default("model.activation"), metavar="NAME",
                    help=f"hidden activation, one of {', '.join(choices('model.activation'))}")
     p.add_argument("--method", default="sgd", metavar="NAME",
-                   help=f"update rule timed with the step (optimizer.method), one of "
+                   help=f"update rule timed with the step (optimizer.method, whose default is "
+                        f"{default('optimizer.method')}; sgd here times the step with the cheapest update), one of "
                         f"{', '.join(choices('optimizer.method'))}")
     json_switch(p, "the result")
     ranks(p)
@@ -373,14 +384,12 @@ def cmd_bench(args: argparse.Namespace) -> int:
 
     if not args.message_mib > 0:
         raise JobError(f"`--message-mib` must be > 0; got {args.message_mib}")
-    if args.untimed < 0:
-        raise JobError(f"`--untimed` must be ≥ 0 steps; got {args.untimed}")
     comm = Comm()
     result = run_bench(args.layers, args.global_batch, dtype=args.dtype, threads=args.threads, steps=args.steps,
                        warmup=args.untimed, reduction=args.reduction, overlap=not args.no_overlap,
                        activation=args.activation, method=args.method, message_mib=args.message_mib,
                        exact_chunk=args.exact_chunk, update=args.update, exact_format=args.exact_format,
-                       progress=args.progress,
+                       progress=args.comm_progress,
                        comm=comm)
     if comm.rank == 0:
         if args.json:

@@ -426,15 +426,30 @@ def parse_override(text: str) -> tuple[str, Any]:
     if name not in known:
         raise JobError(f"`--set {path}`: `{path}` is not a known key; allowed: "
                        f"{', '.join(k for k in known if f'{section}.{k}' not in RENAMED)}{_hint(name, known)}")
+    text_value = value_text.strip()
+    if "\n" in text_value or "\r" in text_value:
+        raise JobError(f"`--set {path}`: the value must be one line; got {text_value!r}")
     try:
-        value = tomllib.loads(f"v = {value_text.strip()}")["v"]
+        value = tomllib.loads(f"v = {text_value}")["v"]
     except tomllib.TOMLDecodeError:
-        value = value_text.strip()
+        value = text_value
+    key = KEYS[RENAMED[path][0]] if path in RENAMED else KEYS[path]
+    if key.kind in _TEXT_KINDS and not isinstance(value, (str, list)):
+        value = text_value  # a text key takes the text as typed: data.target=16, run.workdir=2024, data.header=no
     return path, value
 
 
+_TEXT_KINDS = ("file", "text", "choice", "output", "names", "columns")
+"""Key kinds whose values are text: a --set value that TOML reads as a number, a date or true/false stays text."""
+
+
 def apply_overrides(raw: dict[str, Any], sets: list[str] | tuple[str, ...]) -> dict[str, Any]:
-    """A copy of the job ``raw`` (nested dicts, as read from TOML) with each ``--set`` assignment applied in order."""
+    """A copy of the job ``raw`` (nested dicts, as read from TOML) with each ``--set`` assignment applied in order.
+
+    Setting a renamed key under either name replaces the file's value under the other name.
+    """
+    if isinstance(sets, str):
+        raise JobError(f"overrides must be a list of section.key=value strings; got the single string {sets!r}")
     raw = copy.deepcopy(raw)
     for text in sets:
         path, value = parse_override(text)
@@ -442,6 +457,10 @@ def apply_overrides(raw: dict[str, Any], sets: list[str] | tuple[str, ...]) -> d
         table = raw.setdefault(section, {})
         if not isinstance(table, dict):
             raise JobError(f"`{section}` must be a table; got {table!r}")
+        for old, (new, _) in RENAMED.items():  # one key, two names: the assignment replaces both
+            if path in (old, new):
+                for other in (old, new):
+                    table.pop(other.split(".")[1], None)
         table[name] = value
     return raw
 

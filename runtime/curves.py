@@ -64,11 +64,11 @@ def metrics_path(source: Path) -> Path:
     if source.is_dir():
         path = source / METRICS_FILE
         if not path.is_file():
-            raise JobError(f"`source` {str(source)!r} holds no {METRICS_FILE}; give the workdir of a "
+            raise JobError(f"`RUN` {str(source)!r} holds no {METRICS_FILE}; give the workdir of a "
                            f"`shardmill train` run (its `run.workdir`) or the path of its {METRICS_FILE}")
         return path
     if not source.is_file():
-        raise JobError(f"`source` {str(source)!r} does not exist; give a workdir of `shardmill train` or its "
+        raise JobError(f"`RUN` {str(source)!r} does not exist; give a workdir of `shardmill train` or its "
                        f"{METRICS_FILE}")
     return source
 
@@ -93,7 +93,7 @@ def read_metrics(path: Path) -> dict[str, Any]:
     try:
         text = path.read_text(encoding="utf-8", errors="replace")
     except OSError as err:
-        raise JobError(f"`source` {str(path)!r} cannot be read: {err.strerror or err}") from None
+        raise JobError(f"`RUN` {str(path)!r} cannot be read: {err.strerror or err}") from None
     lines = text.split("\n")
     if lines and lines[-1] == "":
         lines.pop()  # the newline that ends the last complete record
@@ -147,7 +147,7 @@ def read_metrics(path: Path) -> dict[str, Any]:
                     notes.append(f"line {number}: the run resumed from step {resumed}, so the earlier records of "
                                  f"epoch(s) {', '.join(map(str, sorted(retired)))} past that step are not drawn")
     if not epochs:
-        raise JobError(f"`source` {str(path)!r} holds no epoch records ({len(lines)} line(s) read); curves need "
+        raise JobError(f"`RUN` {str(path)!r} holds no epoch records ({len(lines)} line(s) read); curves need "
                        f"at least one finished epoch")
     return {"path": str(path), "lines": len(lines), "epochs": [epochs[e] for e in sorted(epochs)],
             "health": [health[s] for s in sorted(health)], "starts": starts, "early_stop": early_stop,
@@ -371,7 +371,9 @@ def _draw_panel(ax, panel: dict[str, Any]) -> None:
         elif name == "epoch wall clock":
             ax.plot(series["x"], y, color=FRAME, linestyle=":", linewidth=1.2, label=name)
         else:
-            ax.plot(series["x"], y, color=SERIES_COLOURS[i % len(SERIES_COLOURS)], linewidth=1.3, marker="o",
+            # a layer keeps its colour in every panel (a panel of relu layers only still shows layer 1 as layer 1)
+            k = int(name.split()[1]) if name.startswith("layer ") and name.split()[1].isdigit() else i
+            ax.plot(series["x"], y, color=SERIES_COLOURS[k % len(SERIES_COLOURS)], linewidth=1.3, marker="o",
                     markersize=3, label=name)
     for marker in panel["markers"]:
         if marker["kind"] == "best" and marker["y"] is not None:
@@ -396,7 +398,7 @@ def _draw_panel(ax, panel: dict[str, Any]) -> None:
         ax.spines[side].set_visible(False)
     for side in ("left", "bottom"):
         ax.spines[side].set_color(FRAME)
-    if len(panel["series"]) + len(panel["markers"]) > 1:
+    if len(panel["series"]) + len(panel["markers"]) > 1 or any(name.startswith("layer ") for name in panel["series"]):
         ax.legend(fontsize=7, frameon=False, loc="best", ncols=2 if len(panel["series"]) > 4 else 1)
 
 

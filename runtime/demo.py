@@ -14,6 +14,7 @@ import time
 from pathlib import Path
 
 import numpy as np
+from shardmill.config import JobError
 from shardmill.parallel.launch import relaunch
 
 CLASSES = ("healthy", "cavitation", "bearing_wear", "impeller_imbalance", "seal_leak")
@@ -101,6 +102,9 @@ workdir = "run"
 
 
 def cmd_demo(args) -> int:
+    if args.rows < 400:  # the demo job: G = 256 from the 80 % of rows that are not held out
+        raise JobError(f"`--rows` must be ≥ 400 (the demo trains with 256 rows per step on 80 % of them); got "
+                       f"{args.rows}")
     out = Path(args.out_dir)
     out.mkdir(parents=True, exist_ok=True)
     ranks = args.ranks or max(1, min(4, os.cpu_count() or 1))

@@ -162,13 +162,20 @@ def load_model(path: Path | str) -> Predictor:
 
 
 def metrics(model: MLP, outputs: np.ndarray, targets: np.ndarray) -> dict[str, float]:
-    """Loss-appropriate metrics of outputs against targets: accuracy for classification, RMSE for regression."""
+    """The loss (mean per row, as training logs it; see docs/metrics.md) and accuracy for a classifier, or RMSE for
+    a regression model, of outputs (n, k) against targets. Losses are computed from the outputs in float64, so an
+    output probability rounded to 0 or 1 is clipped to the smallest positive double."""
+    o = outputs.astype(np.float64)
     if model.loss == "softmax_cross_entropy":
-        p = np.clip(outputs[np.arange(targets.size), targets].astype(np.float64), 1e-300, None)
+        p = np.clip(o[np.arange(targets.size), targets], 1e-300, None)
         return {"accuracy": float(np.mean(outputs.argmax(axis=1) == targets)), "loss": float(-np.log(p).mean())}
     if model.loss == "binary_cross_entropy":
-        return {"accuracy": float(np.mean((outputs > 0.5) == (targets > 0.5)))}
-    return {"rmse": float(np.sqrt(np.mean((outputs - targets) ** 2)))}
+        t = targets.astype(np.float64).reshape(o.shape)
+        p = np.clip(o, 1e-300, 1.0 - 2.0**-53)
+        row = -(t * np.log(p) + (1.0 - t) * np.log1p(-p)).sum(axis=1)  # summed over the k outputs, as trained
+        return {"accuracy": float(np.mean((outputs > 0.5) == (t > 0.5))), "loss": float(row.mean())}
+    t = targets.astype(np.float64).reshape(o.shape)
+    return {"rmse": float(np.sqrt(np.mean((o - t) ** 2))), "loss": float(0.5 * ((o - t) ** 2).sum(axis=1).mean())}
 
 
 OUTPUT_SUFFIXES = (".npy", ".csv")
@@ -225,13 +232,16 @@ def cmd_predict(args) -> int:
     if labels and not predictor.is_classifier:
         raise JobError(f"`--labels` needs a classifier (`model.loss` {' or '.join(CLASSIFIER_LOSSES)}); this "
                        f"model's loss is {predictor.loss!r}: leave `--labels` out to write its outputs")
-    outputs = predictor.outputs(read_inputs_for(predictor, Path(args.inputs)))
+    X = read_inputs_for(predictor, Path(args.inputs))
+    targets = None
+    if args.targets is not None:  # checked before anything is written
+        y = squeeze_labels(np.asarray(read_array(Path(args.targets), "targets", mmap=False)))
+        targets = predictor.model.check_targets(y, X.shape[0], "targets")
+    outputs = predictor.outputs(X)
     written, what = (predictor.to_labels(outputs), "labels") if labels else (outputs, "outputs")
     write_outputs(Path(args.out), written)
     shape = f"{written.shape[0]}" if written.ndim == 1 else f"{written.shape[0]} × {written.shape[1]}"
     print(f"wrote {shape} {what} to {args.out}")
-    if args.targets is not None:
-        y = squeeze_labels(np.asarray(read_array(Path(args.targets), "targets", mmap=False)))
-        targets = predictor.model.check_targets(y, outputs.shape[0], "targets")
+    if targets is not None:
         print(json.dumps(metrics(predictor.model, outputs, targets)))
     return 0

@@ -334,7 +334,7 @@ class Trainer:
         return state
 
     def resume(self) -> int:
-        """Restore params, optimizer state and position from ``workdir/checkpoints/latest``; returns the step.
+        """Restore params, optimizer state and position from the newest checkpoint that verifies; returns the step.
 
         Rank 0 reads and verifies; every rank receives the same arrays by broadcast (node-local disks work).
         Any refusal is raised identically on all ranks.
@@ -344,7 +344,10 @@ class Trainer:
         state: dict[str, Any] | None = None
         if comm.rank == 0:
             try:
-                state, params, opt = checkpoint.load_latest(self.job.workdir)
+                state, params, opt, skipped = checkpoint.load_newest_verified(self.job.workdir)
+                for reason in skipped:
+                    print(f"shardmill: warning: skipping a damaged checkpoint, {reason}", file=sys.stderr,
+                          flush=True)
                 shapes = {name: view.shape for name, view in model.named(model.params).items()}
                 optimizer_shapes = {name: (model.n_params,) for name in self.optimizer.state}
                 checkpoint.check_compatible(self.job, shapes, optimizer_shapes, state, params, opt)
@@ -367,7 +370,7 @@ class Trainer:
         given = state.get("overrides") or []
         if comm.rank == 0 and given != list(self.job.overrides):
             now = " --set ".join(self.job.overrides)
-            print(f"shardmill: note: the checkpoint's run was started with "
+            print(f"shardmill: note: the checkpoint was written by a run with "
                   f"{'--set ' + ' --set '.join(given) if given else 'no --set'}; this resume has "
                   f"{'--set ' + now if now else 'none'}", file=sys.stderr, flush=True)
         return self.step_count
@@ -427,10 +430,13 @@ class TrainingStopped(Exception):
     ``exit_code`` is 128 + the signal number (143 for SIGTERM, 130 for SIGINT), as a shell reports it.
     """
 
-    def __init__(self, signum: int, step: int, workdir: Path) -> None:
+    def __init__(self, signum: int, step: int, workdir: Path, overrides: tuple[str, ...] = ()) -> None:
+        import shlex
+
         name = signal.Signals(signum).name
+        sets = "".join(f" --set {shlex.quote(text)}" for text in overrides)
         super().__init__(f"stopped by {name} after step {step}; checkpoint written under {workdir / 'checkpoints'}; "
-                         f"continue with `shardmill train JOB --resume`")
+                         f"continue with `shardmill train JOB --resume{sets}`")
         self.exit_code = 128 + signum
         self.step = step
 
@@ -491,7 +497,9 @@ def train(job: Job, comm: Comm | None = None, resume: bool = False, progress: bo
     """
     comm = comm or Comm()
     with _WorkdirLock(job.workdir, comm):
-        if not resume:
+        if resume:
+            _check_resumable(job.workdir, comm)  # before the data is read (a table may take a while to convert)
+        else:
             _claim_workdir(job.workdir, fresh, comm)
         with threadpool_limits(limits=job.run.threads, user_api="blas"), _StopSignals() as stop:
             trainer = Trainer(job, comm)
@@ -510,6 +518,7 @@ class _WorkdirLock:
     def __init__(self, workdir: Path, comm: Comm) -> None:
         self.workdir, self.comm = workdir, comm
         self._file: Any = None
+        self._created = False  # rank 0 made the folder: a job that fails before it trains leaves none behind
 
     def __enter__(self) -> _WorkdirLock:
         import fcntl
@@ -518,6 +527,7 @@ class _WorkdirLock:
         if self.comm.rank == 0:
             path = self.workdir / ".shardmill.lock"
             try:
+                self._created = not self.workdir.exists()
                 self.workdir.mkdir(parents=True, exist_ok=True)
                 self._file = open(path, "a+")  # noqa: SIM115 - held open for the whole job
                 fcntl.flock(self._file, fcntl.LOCK_EX | fcntl.LOCK_NB)
@@ -538,9 +548,33 @@ class _WorkdirLock:
         agree(self.comm, error)
         return self
 
-    def __exit__(self, *exc_info: object) -> None:
-        if self._file is not None:
-            self._file.close()  # closing releases the lock
+    def __exit__(self, exc_type: Any, *exc_info: object) -> None:
+        if self._file is None:
+            return
+        if exc_type is not None and self._created and not checkpoint.holds_a_run(self.workdir):
+            # A job refused before its first record (a bad column, a missing file) leaves no folder behind: only
+            # the lock and an empty table cache can be in it. A finished table conversion is kept for the retry.
+            (self.workdir / ".shardmill.lock").unlink(missing_ok=True)
+            for folder in (self.workdir / "tables", self.workdir):
+                try:
+                    folder.rmdir()  # only when empty
+                except OSError:
+                    pass
+        self._file.close()  # closing releases the lock
+
+
+def _check_resumable(workdir: Path, comm: Comm) -> None:
+    """Refuse --resume (every rank alike) when the workdir has no checkpoint index to resume from."""
+    error: Exception | None = None
+    if comm.rank == 0:
+        root = workdir / "checkpoints"
+        try:
+            if not (root.is_dir() and checkpoint.latest_name(root)):
+                error = JobError(f"nothing to resume: no checkpoint under {str(root)!r}; start the run without "
+                                 f"--resume")
+        except checkpoint.CheckpointError as err:
+            error = err
+    agree(comm, error)
 
 
 def _claim_workdir(workdir: Path, fresh: bool, comm: Comm) -> None:
@@ -552,7 +586,8 @@ def _claim_workdir(workdir: Path, fresh: bool, comm: Comm) -> None:
             checkpoint.clear_run(workdir)
         elif found:
             error = JobError(f"`run.workdir` {str(workdir)!r} holds an earlier run ({found}); continue it with "
-                             f"--resume, start over with --fresh, or choose another `run.workdir`")
+                             f"--resume (resume=True in Python), start over with --fresh (fresh=True), or choose "
+                             f"another `run.workdir`")
     agree(comm, error)
 
 
@@ -567,6 +602,13 @@ def _train_loop(trainer: Trainer, resume: bool, progress: bool, echo: bool = Fal
     if echo and lead and compile_s > 1.0:
         print(f"kernels ready in {compile_s:.1f} s (compiled once, then loaded from Numba's cache)", flush=True)
     start_step = trainer.resume() if resume else 0
+    if start_step > trainer.total_steps:  # the same on every rank: the checkpoint's step was broadcast
+        run = job.run
+        limit = (f"run.max_steps = {run.max_steps}" if run.max_steps and run.max_steps < run.epochs *
+                 trainer.sampler.steps_per_epoch else f"run.epochs = {run.epochs} of "
+                 f"{trainer.sampler.steps_per_epoch} steps")
+        raise JobError(f"the checkpoint is at step {start_step}, past this job's last step {trainer.total_steps} "
+                       f"({limit}); raise it to continue (e.g. --set run.epochs=…)")
     metrics_path = workdir / "metrics.jsonl"
     if lead:
         workdir.mkdir(parents=True, exist_ok=True)
@@ -574,18 +616,25 @@ def _train_loop(trainer: Trainer, resume: bool, progress: bool, echo: bool = Fal
     steps_per_epoch = trainer.sampler.steps_per_epoch
     total = trainer.total_steps
     best = trainer.best
-    if best is not None and best.should_stop:  # a resume of a run that had already stopped early
+    history: list[dict[str, Any]] = []
+    if best is not None and best.should_stop and best.stopped:  # a resume of a run that had stopped early
         total = start_step
         if echo and lead:
-            print(f"already stopped early at step {start_step}: {best.metric} did not improve for {best.patience} "
-                  f"epochs", flush=True)
-    history: list[dict[str, Any]] = []
+            print(f"already stopped early at step {start_step}: {best.metric} had not improved for "
+                  f"{best.stale_epochs} epochs (run.patience = {best.patience}); raise run.patience to go on",
+                  flush=True)
+    elif best is not None and best.should_stop:  # a resume with a smaller run.patience: it is reached already
+        total = start_step
+        history.append(_stop_early(best, start_step // steps_per_epoch, start_step, metrics_path, lead and echo,
+                                   f"early stop at once: {best.metric} has not improved for {best.stale_epochs} "
+                                   f"epochs, which reaches run.patience = {best.patience}", None, lead))
     bar = _progress_bar(total, start_step, lead and progress)
     epoch_begin = time.perf_counter()
     epoch_steps = 0
     step = start_step
     beat = _Heartbeat(total, start_step, job.run.global_batch) if lead and echo and bar is None else None
-    improved = stopped_early = False
+    improved = False
+    stopped_early = best is not None and best.stopped  # already, on a resume (see above)
     while step < total:
         epoch, in_epoch = divmod(step, steps_per_epoch)
         trainer.step(epoch, in_epoch)
@@ -617,16 +666,9 @@ def _train_loop(trainer: Trainer, resume: bool, progress: bool, echo: bool = Fal
                 if echo:
                     _say(epoch_line(record), bar)
             if stopped_early:
-                stop = {"kind": "early_stop", "epoch": epoch + 1, "step": step, "metric": best.metric,
-                        "best_value": best.value, "best_epoch": best.epoch, "best_step": best.step,
-                        "patience": best.patience}
-                history.append(stop)
-                if lead:
-                    _append(metrics_path, stop)
-                    if echo:
-                        _say(f"early stop at epoch {epoch + 1}: {best.metric} has not improved by more than "
-                             f"{best.min_improvement:g} for {best.patience} epochs; the best, {best.value:.6g} at "
-                             f"epoch {best.epoch}, is in best.npz", bar)
+                history.append(_stop_early(best, epoch + 1, step, metrics_path, lead and echo,
+                                           f"early stop at epoch {epoch + 1}: {best.metric} has not improved by more "
+                                           f"than {best.min_improvement:g} for {best.patience} epochs", bar, lead))
             epoch_begin = time.perf_counter()
             epoch_steps = 0
         if step >= total or stopped_early:
@@ -639,7 +681,7 @@ def _train_loop(trainer: Trainer, resume: bool, progress: bool, echo: bool = Fal
             if bar is not None:
                 bar.close()
             trainer.exchange.close()
-            raise TrainingStopped(signum, step, workdir)
+            raise TrainingStopped(signum, step, workdir, job.overrides)
     if bar is not None:
         bar.close()
     state = trainer.save(step, best=improved)
@@ -655,6 +697,20 @@ def _train_loop(trainer: Trainer, resume: bool, progress: bool, echo: bool = Fal
             "history": history, "steps": step, "workdir": str(workdir), "processes": comm.size,
             "compile_s": compile_s, "best": best.state() if best is not None else None,
             "stopped_early": stopped_early}
+
+
+def _stop_early(best: BestTracker, epoch: int, step: int, metrics_path: Path, say: bool, why: str, bar: Any,
+                lead: bool) -> dict[str, Any]:
+    """Early stopping ends the run at ``epoch`` (global ``step``): mark the tracker, write the ``early_stop`` record
+    (rank 0) and, when ``say``, print ``why`` and where the best model is. Returns the record."""
+    best.stopped = True
+    record = {"kind": "early_stop", "epoch": epoch, "step": step, "metric": best.metric, "best_value": best.value,
+              "best_epoch": best.epoch, "best_step": best.step, "patience": best.patience}
+    if lead:
+        _append(metrics_path, record)
+    if say:
+        _say(f"{why}; the best, {best.value:.6g} at epoch {best.epoch}, is in best.npz", bar)
+    return record
 
 
 def _append(path: Path, record: dict[str, Any]) -> None:

@@ -165,3 +165,29 @@ def test_train_prints_where_the_best_model_is(tmp_path):
     assert done.returncode == 0, done.stderr
     assert "the best (validation.accuracy = " in done.stdout and "best.npz" in done.stdout
     assert (tmp_path / "run" / "best.npz").is_file()
+
+
+def test_a_resume_with_a_smaller_patience_stops_at_once_and_says_so(tmp_path):
+    raw = _wine_job(tmp_path, patience=0)  # watch the metric, never stop
+    train(job_from_dict({**raw, "run": {**raw["run"], "epochs": 12}}), progress=False)
+    stale = json.loads((tmp_path / "run" / "metrics.jsonl").read_text().splitlines()[-1])["best"]["stale_epochs"]
+    assert stale >= 2  # this run's validation loss stopped improving before epoch 10 (seen when written)
+    again = train(job_from_dict({**raw, "run": {**raw["run"], "epochs": 12, "patience": 2}}), progress=False,
+                  resume=True)
+    assert again["stopped_early"] and again["history"][-1]["kind"] == "early_stop"
+    assert again["history"][-1]["patience"] == 2 and again["steps"] == 12 * 7  # no step run; 125 rows / 16
+    # a job that ends before the checkpoint's step is refused, naming the key to raise
+    with pytest.raises(JobError, match=r"the checkpoint is at step 84, past this job's last step 35 "
+                                       r"\(run.epochs = 5 of 7 steps\)"):
+        train(job_from_dict({**raw, "run": {**raw["run"], "epochs": 5}}), progress=False, resume=True)
+
+
+def test_a_refused_job_leaves_no_workdir_behind(tmp_path):
+    raw = _wine_job(tmp_path)
+    with pytest.raises(JobError, match="nothing to resume"):
+        train(job_from_dict(raw), progress=False, resume=True)
+    assert not (tmp_path / "run").exists()
+    bad = {**raw, "data": {**raw["data"], "inputs": str(tmp_path / "missing.npy")}}
+    with pytest.raises(JobError, match="does not exist"):
+        train(job_from_dict(bad), progress=False)
+    assert not (tmp_path / "run").exists()

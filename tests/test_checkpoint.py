@@ -208,25 +208,51 @@ def _refused_by_cli(folder: Path, raw: dict, fragment: str, processes: int = 1) 
     assert proc.stderr.count("shardmill: error:") == 1 and "Traceback" not in proc.stderr
 
 
+def _every_checkpoint(workdir: Path) -> list[Path]:
+    root = workdir / "checkpoints"
+    return [root / entry["name"] for entry in checkpoint.read_index(root)]
+
+
 def test_flipped_byte_is_refused(damaged, tmp_path: Path) -> None:
     workdir, raw = damaged
-    path = checkpoint.resolve(workdir) / "params.npz"
-    data = bytearray(path.read_bytes())
-    data[len(data) // 2] ^= 0x01
-    path.write_bytes(bytes(data))
+    assert len(_every_checkpoint(workdir)) > 1
+    for folder in _every_checkpoint(workdir):  # every checkpoint damaged: nothing to fall back on
+        path = folder / "params.npz"
+        data = bytearray(path.read_bytes())
+        data[len(data) // 2] ^= 0x01
+        path.write_bytes(bytes(data))
     with pytest.raises(CheckpointError, match=r"params\.npz' is corrupted or truncated: SHA-256"):
         checkpoint.load(checkpoint.resolve(workdir))
-    _refused_by_api(raw, r"params\.npz' is corrupted or truncated")
+    _refused_by_api(raw, r"no checkpoint under .* verifies; the newest: step-\d+: .*params\.npz' is corrupted")
     _refused_by_cli(tmp_path / "job-p2", raw, "params.npz' is corrupted or truncated", processes=2)
 
 
 def test_truncated_optimizer_state_is_refused(damaged, tmp_path: Path) -> None:
     workdir, raw = damaged
-    path = checkpoint.resolve(workdir) / "optimizer.npz"
-    data = path.read_bytes()
-    path.write_bytes(data[: len(data) // 2])
+    for folder in _every_checkpoint(workdir):
+        path = folder / "optimizer.npz"
+        data = path.read_bytes()
+        path.write_bytes(data[: len(data) // 2])
     _refused_by_api(raw, r"optimizer\.npz' is corrupted or truncated")
     _refused_by_cli(tmp_path / "job", raw, "optimizer.npz' is corrupted or truncated")
+
+
+def test_a_damaged_newest_checkpoint_resumes_from_the_one_before(damaged, data_dir: Path, tmp_path: Path) -> None:
+    workdir, raw = damaged
+    newest, before = _every_checkpoint(workdir)[-1], _every_checkpoint(workdir)[-2]
+    path = newest / "params.npz"
+    data = bytearray(path.read_bytes())
+    data[len(data) // 2] ^= 0x01
+    path.write_bytes(bytes(data))
+    (workdir / "final.npz").unlink()
+    proc = run_cli(["train", str(job_file(tmp_path / "job", raw)), "--resume", "--no-progress"], timeout=120)
+    assert proc.returncode == 0, proc.stderr[-3000:]
+    assert f"skipping a damaged checkpoint, {newest.name}: checkpoint file" in proc.stderr
+    starts = [json.loads(line) for line in (workdir / "metrics.jsonl").read_text().splitlines()
+              if json.loads(line)["kind"] == "start"]
+    assert starts[-1]["resumed_from_step"] == int(before.name.removeprefix("step-"))
+    # exact mode: the replayed steps give the straight run's parameters bit for bit
+    assert digest(final_arrays(workdir)) == digest(final_arrays(data_dir / "exact-straight"))
 
 
 @pytest.mark.parametrize("change, field", [

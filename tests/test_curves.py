@@ -212,7 +212,7 @@ def test_a_torn_last_line_is_skipped_with_a_note(iris_run, tmp_path):
 
 
 def test_a_missing_source_or_one_without_epochs_is_one_clear_error(iris_run, tmp_path):
-    with pytest.raises(JobError, match="`source` .*nowhere.* does not exist"):
+    with pytest.raises(JobError, match="`RUN` .*nowhere.* does not exist"):
         read_metrics(tmp_path / "nowhere")
     with pytest.raises(JobError, match="holds no metrics.jsonl"):
         draw_curves(tmp_path, tmp_path / "curves")

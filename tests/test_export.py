@@ -23,7 +23,7 @@ from shardmill.model import MLP
 from shardmill.predict import Predictor, cmd_predict, load_model
 from shardmill.trainer import Trainer, train
 from sklearn.datasets import load_breast_cancer, load_diabetes, load_iris, load_wine
-from sklearn.metrics import accuracy_score, mean_squared_error
+from sklearn.metrics import accuracy_score, log_loss, mean_squared_error
 
 DATASETS = {"iris": load_iris, "wine": load_wine, "breast_cancer": load_breast_cancer, "diabetes": load_diabetes}
 # name: (data set, loss, hidden activations, output activation); together the hidden layers cover all seven
@@ -263,6 +263,9 @@ def test_classifier_follows_scikit_learn_conventions(models, case: str, dtype: s
     else:
         assert labels.shape == y.shape and set(np.unique(labels)) <= {0, 1}
         assert np.array_equal(labels, (proba > 0.5).astype(np.int64))  # scikit-learn: threshold 0.5
+        # one output: the mean binary cross-entropy per row is scikit-learn's log_loss
+        assert printed["loss"] == pytest.approx(log_loss(y.ravel(), proba.astype(np.float64).ravel()),
+                                                rel=1e-9 if dtype == "float64" else 1e-6)
     accuracy = accuracy_score(y.ravel(), labels.ravel())  # sklearn.metrics.accuracy_score
     assert printed["accuracy"] == pytest.approx(accuracy, abs=1e-12)
     assert accuracy > 0.5  # the model learned something in its few steps
@@ -289,6 +292,14 @@ def test_regression_predicts_outputs_and_refuses_probabilities(models, capsys) -
     printed = json.loads(capsys.readouterr().out.strip().splitlines()[-1])
     rmse = np.sqrt(mean_squared_error(model["Y"], outputs))  # sklearn.metrics.mean_squared_error
     assert printed["rmse"] == pytest.approx(rmse, rel=1e-12) and rmse < 1.0  # below the targets' std
+    # the loss as training logs it, ½ Σ_k (o − t)² per row: half the mean squared error for one output
+    assert printed["loss"] == pytest.approx(0.5 * mean_squared_error(model["Y"], outputs), rel=1e-12)
+    # --targets is read and checked before anything is written
+    out = model["root"] / "never.npy"
+    with pytest.raises(JobError, match="does not exist"):
+        cmd_predict(argparse.Namespace(model=model["workdir"], inputs=model["x"], out=out,
+                                       targets=model["root"] / "missing.npy", labels=False))
+    assert not out.exists()
 
 
 def test_load_model_reads_every_source_kind(models) -> None:

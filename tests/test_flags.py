@@ -90,3 +90,11 @@ def test_the_readme_documents_every_flag():
             for flag in action.option_strings:
                 if flag not in ("-h", "--help"):
                     assert f"`{flag}" in section, (name, flag)
+
+
+def test_the_demo_refuses_too_few_rows_before_writing_anything(tmp_path):
+    from helpers import run_cli
+
+    done = run_cli(["demo", "--rows", "300", "--out-dir", str(tmp_path / "demo")])
+    assert done.returncode == 2 and "`--rows` must be ≥ 400" in done.stderr and "Traceback" not in done.stderr
+    assert not (tmp_path / "demo").exists()

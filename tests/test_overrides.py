@@ -29,13 +29,16 @@ BASE = {"model": {"layers": [13, 8, 3]}, "optimizer": {"learning_rate": 0.001}}
     ('model.activation="tanh"', "model.activation", "tanh"),
     ("model.activation=tanh", "model.activation", "tanh"),  # not TOML: taken as text
     ("run.workdir=runs/b", "run.workdir", "runs/b"),
+    ("run.workdir=2024", "run.workdir", "2024"),  # a text key keeps the text TOML would read as a number
+    ("data.target=16", "data.target", "16"),  # the 17th column of a CSV without a header row
+    ("data.inputs=2024-01-01.csv", "data.inputs", "2024-01-01.csv"),
+    ("data.header=no", "data.header", "no"),
     (" run.seed = 3 ", "run.seed", 3),
 ])
 def test_a_set_value_is_read_as_toml_reads_it(text, path, value):
     got_path, got = parse_override(text)
     assert got_path == path and got == value and type(got) is type(value)
-    # tomllib (standard library): the same value from a TOML line, where the value is valid TOML
-    if text.partition("=")[2].strip() not in ("tanh", "runs/b"):
+    if not isinstance(value, str):  # tomllib (standard library) reads the same value from a TOML line
         assert tomllib.loads(f"v = {text.partition('=')[2].strip()}")["v"] == value
 
 
@@ -82,6 +85,8 @@ def test_a_renamed_key_is_read_in_its_new_units_with_a_notice():
                            "old name is accepted until the next release",)
     with pytest.raises(JobError, match="give only `run.message_mib`"):
         job_from_dict({**BASE, "run": {"bucket_mb": 4.0, "message_mib": 4.0}})
+    # an assignment under the new name replaces the file's old one (and the other way round)
+    assert job_from_dict({**BASE, "run": {"bucket_mb": 4.0}}, overrides=["run.message_mib=2"]).run.message_mib == 2
     assert job_from_dict(BASE, overrides=["run.bucket_mb=1"]).run.message_mib == pytest.approx(1e6 / 2**20)
 
 
@@ -125,10 +130,10 @@ def test_a_run_records_its_overrides_and_a_resume_names_them(wine_job, tmp_path)
     again = run_cli(["train", str(wine_job), "--no-progress", "--resume", sets[0], sets[1]])
     assert again.returncode == 2
     assert "changed: optimizer.learning_rate" in again.stderr
-    assert "its run was started with --set" in again.stderr and "optimizer.learning_rate=0.02" in again.stderr
+    assert "it was written by a run with --set" in again.stderr and "optimizer.learning_rate=0.02" in again.stderr
     resumed = run_cli(["train", str(wine_job), "--no-progress", "--resume", *sets, "--set", "run.epochs=3"])
     assert resumed.returncode == 0, resumed.stderr
-    assert "the checkpoint's run was started with" in resumed.stderr  # run.epochs=3 is new: a note, not a refusal
+    assert "the checkpoint was written by a run with" in resumed.stderr  # run.epochs=3 is new: a note, not a refusal
     starts = [json.loads(line) for line in (tmp_path / "run" / "metrics.jsonl").read_text().splitlines()
               if json.loads(line)["kind"] == "start"]
     assert [s["resumed_from_step"] for s in starts] == [0, 2 * ((178 - 35) // 32)]  # 35 = ⌊0.2·178⌋ held out
@@ -159,6 +164,8 @@ def test_old_flag_names_work_for_one_release_with_a_notice(tmp_path):
                                                 "until the next release")
     assert modernise(["verify", "job.toml", "--json"]) == (["verify", "job.toml", "--json"], [])  # today's switch
     assert modernise(["verify", "job.toml", "--json", "r.json"])[0] == ["verify", "job.toml", "--out", "r.json"]
+    assert modernise(["verify", "--json", "job.toml"]) == (["verify", "--json", "job.toml"], [])  # JOB, not a report
+    assert modernise(["bench", "--progress", "thread"])[0] == ["bench", "--comm-progress", "thread"]
     assert modernise(["train", "job.toml", "--out", "x"])[0] == ["train", "job.toml", "--out", "x"]  # not renamed
     make_classification(tmp_path)
     done = run_cli(["bench", "--layers", "6,8,3", "--batch", "32", "--steps", "2", "--warmup", "1", "--json"],

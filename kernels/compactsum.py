@@ -36,21 +36,16 @@ is adds, multiplies by a power of two and integer ops, which vectorise on AVX2 a
 
 import numpy as np
 from numba import njit
-from shardmill.kernels.exactsum import round_to_int  # rint through the significand, exact for |v| <= 2**51
+
+# rint and its inverse through the significand (exact for |v| <= 2**51, see exactsum), and its argument checks
+from shardmill.kernels.exactsum import _check_vector as _check_float_vector
+from shardmill.kernels.exactsum import _describe, float_of_int, round_to_int
 
 TERM_BITS = 51  # |x * 2**S| < 2**TERM_BITS: the range in which the 1.5 * 2**52 trick converts exactly
 NARROW_TERM_BITS = 30  # the same for an int32 accumulator: sums of K <= 2**h terms stay within |k| <= 2**30
 MAX_SHIFT = 1022  # 2**-1022 is the smallest normal float64: read-back k * 2**-S stays exact for k != 0
 MAX_CHUNKS = 2**20
 MIN_SHIFT = TERM_BITS - 20 - 1024  # -993 for M < 2**1024 and K <= MAX_CHUNKS: 2**S and 2**-S are normal float64
-
-# Exact integer <-> float64 conversion through the significand (common practice): for float64 |v| <= 2**51,
-# v + 1.5 * 2**52 lies in [2**52, 2**53], where the ulp is 1, so the sum is v rounded to an integer (ties to even,
-# as rint: the constant is even) and its bit pattern is the constant's plus that integer. Read the other way, the
-# float64 with the bit pattern of the constant plus an int64 |k| <= 2**51 is 1.5 * 2**52 + k, and subtracting the
-# constant is exact (Sterbenz). Plain conversions need AVX-512 (vcvtpd2qq, vcvtqq2pd) to vectorise.
-_ROUND_MAGIC = 1.5 * 2.0**52
-_ROUND_MAGIC_BITS = np.int64(np.array([_ROUND_MAGIC]).view(np.int64)[0])
 
 # Per input dtype: the same-width integer type and, as a scalar of it, the magnitude mask (all bits but the sign).
 _MAGNITUDE = {
@@ -158,10 +153,7 @@ def _powers_of_two(exponents):
 
 
 def _check_vector(x, name):
-    if not isinstance(x, np.ndarray) or x.ndim != 1 or x.dtype not in (np.float32, np.float64):
-        raise TypeError(f"{name} must be a 1-D float32 or float64 numpy array; got {_describe(x)}")
-    if not x.flags.c_contiguous:
-        raise ValueError(f"{name} must be C-contiguous")
+    _check_float_vector(x, name)
     if name == "out" and not x.flags.writeable:
         raise ValueError("out must be writable")
 
@@ -207,12 +199,6 @@ def _check_accumulator(acc, m):
         raise ValueError("acc must be C-contiguous")
 
 
-def _describe(a):
-    if isinstance(a, np.ndarray):
-        return f"{a.dtype} array of shape {a.shape}"
-    return type(a).__name__
-
-
 @njit(cache=True, inline="always")
 def _bucket_range(bounds, b, offset, m):
     """Local indices [lo, hi) of bucket b within the elements [offset, offset + m), as 0 <= lo <= hi <= m.
@@ -222,12 +208,6 @@ def _bucket_range(bounds, b, offset, m):
     """
     hi = min(max(bounds[b + 1] - offset, 0), m)
     return min(max(bounds[b] - offset, 0), hi), hi
-
-
-@njit(cache=True, inline="always")
-def _exact_float(k):
-    """int64 |k| <= 2**51 as float64, exactly, without an int-to-float conversion instruction."""
-    return np.int64(k + _ROUND_MAGIC_BITS).view(np.float64) - _ROUND_MAGIC
 
 
 @njit(cache=True)
@@ -301,4 +281,4 @@ def _to_float(acc, bounds, scale, out, offset):
 @njit(cache=True, inline="always")
 def _scale_down(acc, down, out):
     for i in range(out.shape[0]):
-        out[i] = _exact_float(acc[i]) * down
+        out[i] = float_of_int(acc[i]) * down

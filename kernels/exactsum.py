@@ -61,7 +61,9 @@ _LOW_SCALE = 2.0**-FRACTION_BITS
 # Exact integer <-> float64 conversion through the significand (common practice): for an integer-valued
 # float64 |v| < 2**51, v + 1.5 * 2**52 lies in [2**52, 2**53), where the ulp is 1, so the sum is exact and its
 # bit pattern is that of the constant plus v; for an int64 0 <= k < 2**52, the float64 with the bit pattern of
-# 2**52 plus k is 2**52 + k. Adding the constant to a non-integer rounds it to nearest, ties to even, as rint.
+# 2**52 plus k is 2**52 + k, and for an int64 |k| <= 2**51 the float64 with the bit pattern of 1.5 * 2**52 plus k
+# is 1.5 * 2**52 + k, from which subtracting the constant is exact (Sterbenz). Adding the constant to a non-integer
+# rounds it to nearest, ties to even, as rint.
 # Plain conversions need AVX-512 (vcvtqq2pd, vcvtpd2qq) to vectorise; these are adds and integer ops on any CPU.
 _ROUND_MAGIC = 1.5 * 2.0**52
 _ROUND_MAGIC_BITS = np.int64(np.array([_ROUND_MAGIC]).view(np.int64)[0])
@@ -243,6 +245,13 @@ def _assign_pair(x, x_bits, y, y_bits, acc, limit_bits, magnitude_mask):
 def round_to_int(v):
     """rint(v) as an int64 for float64 |v| < 2**51, without a float-to-int conversion instruction."""
     return np.float64(v + _ROUND_MAGIC).view(np.int64) - _ROUND_MAGIC_BITS
+
+
+@njit(cache=True, inline="always")
+def float_of_int(k):
+    """int64 |k| <= 2**51 as float64, exactly, without an int-to-float conversion instruction (round_to_int's
+    inverse; the compact and narrow formats read their sums back with it)."""
+    return np.int64(k + _ROUND_MAGIC_BITS).view(np.float64) - _ROUND_MAGIC
 
 
 @njit(cache=True, inline="always")

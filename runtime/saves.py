@@ -8,9 +8,12 @@ and whether every file still matches the SHA-256 recorded when it was written. `
 from __future__ import annotations
 
 import json
+import zipfile
+from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
+import numpy as np
 from shardmill import checkpoint
 from shardmill.config import JobError
 
@@ -77,10 +80,6 @@ def list_saves(workdir: Path) -> list[dict[str, Any]]:
 
 def _model_file(path: Path, losses: dict[int, dict[str, float | None]]) -> dict[str, Any]:
     """A row for final.npz or best.npz: its step, and whether numpy can read every array in it."""
-    import zipfile
-
-    import numpy as np
-
     step: int | None = None
     try:
         with np.load(path, allow_pickle=False) as archive:
@@ -90,8 +89,6 @@ def _model_file(path: Path, losses: dict[int, dict[str, float | None]]) -> dict[
         verified: bool | str = True
     except (OSError, ValueError, zipfile.BadZipFile, EOFError) as err:
         verified = f"cannot be read: {err}"
-    from datetime import UTC, datetime
-
     written = datetime.fromtimestamp(path.stat().st_mtime, UTC).isoformat(timespec="seconds")
     return {"name": path.name, "step": step, "epoch": None, "written": written,
             **losses.get(step if step is not None else -1, {"train_loss": None, "validation_loss": None}),

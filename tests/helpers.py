@@ -11,6 +11,7 @@ from __future__ import annotations
 import json
 import subprocess
 import sys
+from fractions import Fraction
 from pathlib import Path
 
 import numpy as np
@@ -79,3 +80,23 @@ def write_job(path: Path, model: dict, run: dict, optimizer: dict | None = None,
     job = path / "job.toml"
     job.write_text("\n".join(lines))
     return job
+
+
+FLOAT32_OVERFLOW = Fraction(2**128 - 2**103)  # float32 max + half an ulp: from here RN gives inf (IEEE 754 §4.3.1)
+
+
+def is_nearest_float32(result: np.float32, exact: Fraction) -> bool:
+    """IEEE 754-2019 §4.3.1 roundTiesToEven: no float32 is closer to exact; on a tie the significand is even."""
+    if abs(exact) >= FLOAT32_OVERFLOW:
+        return bool(np.isinf(result)) and (result > 0) == (exact > 0)
+    error = abs(Fraction(float(result)) - exact)
+    for direction in (-np.inf, np.inf):
+        neighbour = np.nextafter(result, np.float32(direction))
+        if np.isinf(neighbour):
+            continue
+        neighbour_error = abs(Fraction(float(neighbour)) - exact)
+        if neighbour_error < error:
+            return False
+        if neighbour_error == error and np.array([result]).view(np.uint32)[0] & 1:
+            return False
+    return True

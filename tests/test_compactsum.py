@@ -13,11 +13,10 @@ from fractions import Fraction
 
 import numpy as np
 import pytest
+from helpers import is_nearest_float32
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from shardmill.kernels import compactsum
-
-FLOAT32_OVERFLOW = Fraction(2**128 - 2**103)  # float32 max + half an ulp: from here RN gives inf (IEEE 754 §4.3.1)
 
 
 def buckets(bounds: np.ndarray) -> list[tuple[int, int]]:
@@ -43,23 +42,6 @@ def fixed_point(v: float, shift: int) -> int:
 def float32_ulp(x: np.float32) -> Fraction:
     """The gap from |x| to the next float32 away from zero (numpy.spacing, IEEE 754 nextUp)."""
     return Fraction(float(np.spacing(np.abs(x))))
-
-
-def is_nearest_float32(result: np.float32, exact: Fraction) -> bool:
-    """IEEE 754-2019 §4.3.1 roundTiesToEven: no float32 is closer to exact; on a tie the significand is even."""
-    if abs(exact) >= FLOAT32_OVERFLOW:
-        return bool(np.isinf(result)) and (result > 0) == (exact > 0)
-    error = abs(Fraction(float(result)) - exact)
-    for direction in (-np.inf, np.inf):
-        neighbour = np.nextafter(result, np.float32(direction))
-        if np.isinf(neighbour):
-            continue
-        neighbour_error = abs(Fraction(float(neighbour)) - exact)
-        if neighbour_error < error:
-            return False
-        if neighbour_error == error and np.array([result]).view(np.uint32)[0] & 1:
-            return False
-    return True
 
 
 def mixed_chunks(rng: np.random.Generator, k: int, dtype) -> tuple[np.ndarray, np.ndarray]:

@@ -121,14 +121,18 @@ def test_one_process_costs_nothing(algorithm: str) -> None:
     assert best_allreduce(1, MIB, ALPHA, BETA) == (NO_COMMUNICATION, 0.0)
 
 
-@settings(max_examples=200, deadline=None)
-@given(
+# Process counts, message sizes and α, β, γ of any network worth projecting to (the property tests' inputs)
+NETWORKS = dict(
     p=st.integers(min_value=2, max_value=1024),
     n_bytes=st.floats(min_value=0.0, max_value=1e10),
     alpha=st.floats(min_value=0.0, max_value=1e-3),
     beta=st.floats(min_value=0.0, max_value=1e-8),
     gamma=st.floats(min_value=0.0, max_value=1e-8),
 )
+
+
+@settings(max_examples=200, deadline=None)
+@given(**NETWORKS)
 def test_best_is_the_minimum_and_ring_is_bandwidth_optimal(
     p: int, n_bytes: float, alpha: float, beta: float, gamma: float
 ) -> None:
@@ -429,13 +433,7 @@ def test_best_reduce_scatter_switches_with_size_at_odd_p() -> None:
 
 
 @settings(max_examples=200, deadline=None)
-@given(
-    p=st.integers(min_value=2, max_value=1024),
-    n_bytes=st.floats(min_value=0.0, max_value=1e10),
-    alpha=st.floats(min_value=0.0, max_value=1e-3),
-    beta=st.floats(min_value=0.0, max_value=1e-8),
-    gamma=st.floats(min_value=0.0, max_value=1e-8),
-)
+@given(**NETWORKS)
 def test_reduce_scatter_then_allgather_is_an_allreduce(
     p: int, n_bytes: float, alpha: float, beta: float, gamma: float
 ) -> None:

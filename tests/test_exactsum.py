@@ -11,6 +11,7 @@ from fractions import Fraction
 
 import numpy as np
 import pytest
+from helpers import is_nearest_float32
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from shardmill.kernels import exactsum
@@ -41,19 +42,6 @@ def limb_value(acc: np.ndarray, i: int) -> Fraction:
     """Exact value of element i: sum_k acc[k, i] 2**(40 k - 88)."""
     units = sum(int(acc[k, i]) << (exactsum.LIMB_BITS * k) for k in range(exactsum.LIMBS))
     return units * RESOLUTION
-
-
-def is_nearest_float32(result: np.float32, exact: Fraction) -> bool:
-    """IEEE 754 roundTiesToEven: no float32 is closer to exact; on a tie the significand is even."""
-    error = abs(Fraction(float(result)) - exact)
-    for direction in (-np.inf, np.inf):
-        neighbour = np.nextafter(result, np.float32(direction))
-        neighbour_error = abs(Fraction(float(neighbour)) - exact)
-        if neighbour_error < error:
-            return False
-        if neighbour_error == error and np.array([result]).view(np.uint32)[0] & 1:
-            return False
-    return True
 
 
 def adversarial_columns(rng: np.random.Generator, m: int) -> np.ndarray:

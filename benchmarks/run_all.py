@@ -80,7 +80,7 @@ def targets(results: dict[str, Any]) -> list[dict[str, Any]]:
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--quick", action="store_true", help="smoke versions of every script")
-    parser.add_argument("--ranks", default="1,2", help="process counts for strong_scaling (default 1,2)")
+    parser.add_argument("--sizes", default="1,2", help="process counts for strong_scaling (default 1,2)")
     parser.add_argument("--bind", action="store_true", help="strong_scaling: -bind-to core (MPICH mpiexec)")
     parser.add_argument("--wait-quiet", type=float, default=0.0, metavar="S",
                         help="before each script, wait up to S seconds for other processes to leave the cores idle")
@@ -91,14 +91,14 @@ def main(argv: list[str] | None = None) -> int:
         "step_vs_floor": ([str(BENCHMARKS / "step_vs_floor.py"), *quick], 150 if args.quick else 480),
         "exchange_vs_raw": ([str(BENCHMARKS / "exchange_vs_raw.py"), "--ranks", "2", *quick],
                             120 if args.quick else 300),
-        "strong_scaling": ([str(BENCHMARKS / "strong_scaling.py"), "--ranks", args.ranks, *quick,
+        "strong_scaling": ([str(BENCHMARKS / "strong_scaling.py"), "--sizes", args.sizes, *quick,
                             *(["--bind"] if args.bind else [])], 400 if args.quick else 900),
         "update_bandwidth": ([str(BENCHMARKS / "update_bandwidth.py"), *quick], 120 if args.quick else 300),
         "overlap_hidden": ([str(BENCHMARKS / "overlap_hidden.py"), *quick], 180 if args.quick else 600),
         "cold_start": ([str(BENCHMARKS / "cold_start.py"), *quick], 120 if args.quick else 300),
     }
     meter = LoadMeter()
-    combined: dict[str, Any] = {"benchmark": "run_all", "quick": args.quick, "ranks": args.ranks,
+    combined: dict[str, Any] = {"benchmark": "run_all", "quick": args.quick, "ranks": args.sizes,
                                 "command": " ".join(["python", "benchmarks/run_all.py", *sys.argv[1:]])}
     seconds: dict[str, float] = {}
     waits: dict[str, Any] = {}

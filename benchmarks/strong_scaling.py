@@ -260,7 +260,7 @@ def breakdown(repetitions: int) -> int:
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--quick", action="store_true", help="short smoke version (< 30 s)")
-    parser.add_argument("--ranks", default="1,2", help="process counts, e.g. 1,2,4,8,16 (default 1,2)")
+    parser.add_argument("--sizes", default="1,2", help="process counts, e.g. 1,2,4,8,16 (default 1,2)")
     parser.add_argument("--steps", type=int, default=None, help="timed steps per run (default 30, quick 6)")
     parser.add_argument("--rounds", type=int, default=None,
                         help="rounds over all variants (default 3, or 2 with more than 8 runs per round; quick 1)")
@@ -270,7 +270,7 @@ def main(argv: list[str] | None = None) -> int:
     args = parser.parse_args(argv)
     if args.breakdown is not None:
         return breakdown(args.breakdown)
-    ranks = sorted({int(p) for p in args.ranks.split(",")})
+    ranks = sorted({int(p) for p in args.sizes.split(",")})
     if ranks[0] != 1:
         ranks = [1, *ranks]  # every efficiency needs T1
     todo = variants(ranks)

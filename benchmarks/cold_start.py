@@ -17,8 +17,8 @@ import time
 from pathlib import Path
 
 import numpy as np
-from shardmill.benchsupport import LoadMeter, emit, log, machine_record
-from shardmill.demo import JOB, pump_windows
+from benchsupport import LoadMeter, emit, log, machine_record
+from shardmill.commands.demo import JOB, pump_windows
 from shardmill.parallel.launch import rank_environment, run_command
 from shardmill.timing import median
 

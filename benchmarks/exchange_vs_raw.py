@@ -28,7 +28,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-from shardmill.benchsupport import MID_MODEL, LoadMeter, emit, log, machine_record
+from benchsupport import MID_MODEL, LoadMeter, emit, log, machine_record
 from shardmill.parallel.launch import run_for_status
 from shardmill.timing import median, slowest_call
 from threadpoolctl import threadpool_limits
@@ -53,7 +53,7 @@ def relaunch(ranks: int, argv: list[str], timeout: float) -> int:
 def measure(comm, dtype: str, message_mib: float | None, repetitions: int, warmup: int) -> dict[str, Any]:
     """One configuration: overlap off when message_mib is None, else messages of at least message_mib MiB."""
     from mpi4py import MPI
-    from shardmill.model import MLP
+    from shardmill.model.mlp import MLP
     from shardmill.parallel.exchange import MessageExchange
 
     model = MLP(MID_MODEL, dtype=dtype)

@@ -42,7 +42,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-from shardmill.benchsupport import MID_MODEL, LoadMeter, emit, last_json, log, machine_record
+from benchsupport import MID_MODEL, LoadMeter, emit, last_json, log, machine_record
 from shardmill.parallel.launch import mpiexec_command, rank_environment, run_command
 from shardmill.timing import median, slowest_call
 from threadpoolctl import threadpool_limits
@@ -61,7 +61,7 @@ _LAUNCH_MARKERS = ("PMI_RANK", "PMI_SIZE", "PMIX_RANK", "OMPI_COMM_WORLD_SIZE", 
 
 def measure(repetitions: int, warmup: int) -> None:
     """Median seconds of every contender on this job's ranks, and the ratios; rank 0 prints them (JSON)."""
-    from shardmill.model import MLP
+    from shardmill.model.mlp import MLP
     from shardmill.parallel.comm import Comm
     from shardmill.parallel.exchange import MessageExchange
     from shardmill.parallel.progress import CommThread

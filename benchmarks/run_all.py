@@ -20,7 +20,7 @@ import time
 from pathlib import Path
 from typing import Any
 
-from shardmill.benchsupport import LoadMeter, log, machine_record, run_child, wait_until_quiet
+from benchsupport import LoadMeter, log, machine_record, run_child, wait_until_quiet
 
 BENCHMARKS = Path(__file__).resolve().parent
 

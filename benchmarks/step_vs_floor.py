@@ -2,7 +2,7 @@
 
 Prints one JSON object. For each reference model and dtype:
 
-* ``shardmill``: :func:`shardmill.bench.run_bench` as it is (SGD; Adam rows for the mid model): median step
+* ``shardmill``: :func:`shardmill.commands.bench.run_bench` as it is (SGD; Adam rows for the mid model): median step
   time and ``ratio_to_floor`` = floor / step, where the floor is the same process timing the three GEMMs
   per layer (Z = A W, dW = Aᵀ dZ, dA = dZ Wᵀ) on the same shapes, step and floor in alternating blocks.
 * ``paired``: a second measurement in which four things take turns, one repetition each in round-robin
@@ -27,12 +27,12 @@ from collections.abc import Callable
 from typing import Any
 
 import numpy as np
-from shardmill.bench import gemm_floor_step, run_bench, synthetic_dataset
-from shardmill.benchsupport import LoadMeter, emit, log, machine_record
+from benchsupport import LoadMeter, emit, log, machine_record
+from shardmill.commands.bench import gemm_floor_step, run_bench, synthetic_dataset
 from shardmill.config import job_from_dict
 from shardmill.parallel.comm import Comm
 from shardmill.timing import PHASES, median, median_time
-from shardmill.trainer import Trainer, warm_up_kernels
+from shardmill.training.trainer import Trainer, warm_up_kernels
 from threadpoolctl import threadpool_limits
 
 MODELS = {
@@ -220,10 +220,10 @@ def paired(row: dict[str, Any], layers: list[int], batch: int) -> dict[str, Any]
 
 def kernel_times(trainer: Trainer, repeats: int) -> dict[str, float]:
     """Median milliseconds of each non-GEMM piece of one step on this trainer's shapes, timed alone."""
-    from shardmill.data import gather
+    from shardmill.data.rows import gather
     from shardmill.kernels import activations as act
     from shardmill.kernels import losses
-    from shardmill.optim import Optimizer
+    from shardmill.training.optim import Optimizer
 
     ws, model, data = trainer.ws, trainer.model, trainer.data
     n = ws.rows

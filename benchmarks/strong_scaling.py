@@ -1,7 +1,7 @@
 """Scaling of the mid model (784-1024-1024-10, float32, one BLAS thread per rank) over process counts.
 
 Prints one JSON object. Every measurement is one ``mpiexec -n P python -m shardmill bench … --json`` run
-(median step time after warm-up, see shardmill.bench.run_bench); all variants run once per round, the order
+(median step time after warm-up, see shardmill.commands.bench.run_bench); all variants run once per round, the order
 reversed every other round, and each variant's figure is the median over rounds. Ratios:
 
 * strong scaling (G = 512 at every P): efficiency T1 / (P·TP), target ≥ 0.92 at P = 2; beside it the same
@@ -26,7 +26,7 @@ import time
 from pathlib import Path
 from typing import Any
 
-from shardmill.benchsupport import MID_MODEL, LoadMeter, emit, log, machine_record, run_child
+from benchsupport import MID_MODEL, LoadMeter, emit, log, machine_record, run_child
 from shardmill.scaling.study import add_speedup
 from shardmill.timing import median, slowest_call
 
@@ -188,10 +188,10 @@ def nothing_added(results: dict[str, dict[str, Any]], split: dict[str, Any] | No
 
 def breakdown(repetitions: int) -> int:
     """Median ms per part of an exact step and of a fast step, max over ranks; rank 0 prints the JSON."""
-    from shardmill.bench import synthetic_dataset
+    from shardmill.commands.bench import synthetic_dataset
     from shardmill.config import job_from_dict
     from shardmill.parallel.comm import Comm
-    from shardmill.trainer import Trainer, warm_up_kernels
+    from shardmill.training.trainer import Trainer, warm_up_kernels
     from threadpoolctl import threadpool_limits
 
     comm = Comm()

@@ -32,8 +32,8 @@ from collections.abc import Callable
 from typing import Any
 
 import numpy as np
+from benchsupport import MID_MODEL, LoadMeter, emit, log, machine_record
 from numba import njit
-from shardmill.benchsupport import MID_MODEL, LoadMeter, emit, log, machine_record
 from shardmill.kernels import optim as kernels
 from shardmill.timing import median
 from threadpoolctl import threadpool_limits

@@ -20,9 +20,10 @@ from __future__ import annotations
 from importlib.metadata import PackageNotFoundError, version
 from typing import Any
 
-from shardmill.config import Job, JobError, job_from_dict, load_job
-from shardmill.model import MLP
-from shardmill.predict import Predictor, load_model
+from shardmill.config import Job, job_from_dict, load_job
+from shardmill.errors import JobError
+from shardmill.model.mlp import MLP
+from shardmill.model.predictor import Predictor, load_model
 
 try:
     __version__ = version("shardmill")  # pyproject.toml is the one place the version is written
@@ -37,6 +38,6 @@ def train(job: Job, resume: bool = False, progress: bool = True, fresh: bool = F
     A workdir that holds an earlier run is refused unless ``resume`` (continue it) or ``fresh`` (clear it first).
     The result's ``"predictor"`` is a :class:`Predictor` of the final model (raw inputs in, see above).
     """
-    from shardmill.trainer import train as _train
+    from shardmill.training.trainer import train as _train
 
     return _train(job, resume=resume, progress=progress, fresh=fresh)

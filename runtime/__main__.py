@@ -1,3 +1,3 @@
-from shardmill.cli import main
+from shardmill.commands.cli import main
 
 raise SystemExit(main())

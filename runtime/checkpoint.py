@@ -25,7 +25,8 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-from shardmill.config import Job, JobError
+from shardmill.config import Job
+from shardmill.errors import JobError
 
 FORMAT = "shardmill-checkpoint-1"
 

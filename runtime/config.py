@@ -22,6 +22,8 @@ from dataclasses import dataclass, field, make_dataclass
 from pathlib import Path
 from typing import Any
 
+from shardmill.errors import JobError
+
 ACTIVATIONS = ("identity", "sigmoid", "tanh", "relu", "leaky_relu", "gelu", "softplus")
 LOSSES = ("softmax_cross_entropy", "binary_cross_entropy", "squared_error")
 DTYPES = ("float32", "float64")
@@ -37,15 +39,6 @@ IMPLIED_OUTPUT = {"softmax_cross_entropy": "softmax", "binary_cross_entropy": "s
 MAX_PARAMS = 2**31
 """The most parameters a model may have: flat offsets stay within int32-sized views, and 2^31 float32 values
 are 8 GiB for the parameters alone (gradients and optimizer state come on top)."""
-
-
-class JobError(ValueError):
-    """A job (or command-line value) that cannot run; the message names the field, the value and what is allowed."""
-
-
-class LocalJobError(JobError):
-    """A user error that one rank found on its own, mid-step (a bad row in its shard): the other ranks cannot know,
-    so the job must end on every rank (``run_guarded`` aborts) instead of returning as a start-up error does."""
 
 
 class _Required:

@@ -16,7 +16,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from shardmill.config import JobError
+from shardmill.errors import JobError
 from shardmill.parallel.launch import find_mpiexec, rank_environment, run_command, run_ranks
 
 

@@ -16,7 +16,8 @@ from helpers import make_classification, run_cli, write_job
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from shardmill import config
-from shardmill.config import JobError, job_from_dict, load_job
+from shardmill.config import job_from_dict, load_job
+from shardmill.errors import JobError
 
 values = st.recursive(st.none() | st.booleans() | st.integers(-2**70, 2**70) | st.floats() | st.text(max_size=8),
                       lambda inner: st.lists(inner, max_size=3) | st.dictionaries(st.text(max_size=5), inner,

@@ -15,9 +15,10 @@ import numpy as np
 import pytest
 import scipy.special
 from helpers import run_cli, write_job
-from shardmill.best import BestTracker
-from shardmill.config import JobError, job_from_dict
-from shardmill.trainer import Trainer, train
+from shardmill.config import job_from_dict
+from shardmill.errors import JobError
+from shardmill.training.best import BestTracker
+from shardmill.training.trainer import Trainer, train
 from sklearn.datasets import load_wine
 from sklearn.metrics import log_loss
 

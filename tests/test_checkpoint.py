@@ -20,7 +20,7 @@ from helpers import make_classification, run_cli, run_mpi, write_job
 from shardmill import checkpoint
 from shardmill.checkpoint import CheckpointError
 from shardmill.config import job_from_dict, load_job
-from shardmill.trainer import Trainer
+from shardmill.training.trainer import Trainer
 
 pytestmark = pytest.mark.mpi
 

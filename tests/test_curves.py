@@ -1,7 +1,7 @@
 """Curves from metrics.jsonl: the figures are real PNGs and draw exactly what the file's records say.
 
 Data: scikit-learn's bundled iris (classification) and diabetes (regression) sets, trained for a few epochs by
-`shardmill.trainer.train`, so every figure comes from a real metrics.jsonl. What was drawn (curves.json) is
+`shardmill.training.trainer.train`, so every figure comes from a real metrics.jsonl. What was drawn (curves.json) is
 compared with the file as Python's own json module reads it, line by line.
 """
 
@@ -15,8 +15,9 @@ from pathlib import Path
 import matplotlib.image
 import numpy as np
 import pytest
-from shardmill.config import JobError, job_from_dict
-from shardmill.curves import cmd_curves, draw_curves, read_metrics
+from shardmill.commands.curves import cmd_curves, draw_curves, read_metrics
+from shardmill.config import job_from_dict
+from shardmill.errors import JobError
 from sklearn.datasets import load_diabetes, load_iris
 
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"  # PNG specification (ISO/IEC 15948:2004), §5.2 PNG signature
@@ -58,7 +59,7 @@ def _last_per_epoch(records: list[dict]) -> dict[int, dict]:
 
 @pytest.fixture(scope="module")
 def iris_run(tmp_path_factory) -> Path:
-    from shardmill.trainer import train
+    from shardmill.training.trainer import train
 
     folder = tmp_path_factory.mktemp("iris")
     train(_iris_job(folder), progress=False)
@@ -124,7 +125,7 @@ def test_each_figure_is_a_png_drawing_the_records_of_metrics_jsonl(iris_run, tmp
 
 
 def test_a_regression_draws_rmse_and_marks_the_early_stop(iris_run, tmp_path):
-    from shardmill.trainer import train
+    from shardmill.training.trainer import train
 
     out = tmp_path / "curves"
     draw_curves(iris_run, out)  # a classification drawing first: its accuracy.png must not survive the next
@@ -150,7 +151,7 @@ def test_a_regression_draws_rmse_and_marks_the_early_stop(iris_run, tmp_path):
 
 
 def test_a_resumed_run_draws_each_epoch_once_from_its_latest_record(tmp_path, monkeypatch):
-    from shardmill import trainer as trainer_module
+    from shardmill.training import trainer as trainer_module
 
     job = _diabetes_job(tmp_path, save_every=4, health_every=1)  # 353 training rows, G = 64: 5 steps an epoch
     real_step = trainer_module.Trainer.step

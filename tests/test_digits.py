@@ -14,7 +14,7 @@ import numpy as np
 import pytest
 import shardmill as sm
 from helpers import write_job
-from shardmill.data import split_rows
+from shardmill.data.rows import split_rows
 from sklearn.datasets import load_digits
 
 

@@ -15,8 +15,9 @@ from pathlib import Path
 import numpy as np
 import pytest
 from helpers import make_classification, run_cli, run_mpi, write_job
-from shardmill.config import JobError, job_from_dict
-from shardmill.trainer import model_from_job
+from shardmill.config import job_from_dict
+from shardmill.errors import JobError
+from shardmill.model.mlp import model_from_job
 
 pytestmark = pytest.mark.mpi
 

@@ -15,11 +15,11 @@ import numpy as np
 import pytest
 from helpers import make_classification
 from shardmill.config import job_from_dict
-from shardmill.data import gather
-from shardmill.model import MLP
+from shardmill.data.rows import gather
+from shardmill.model.mlp import MLP
 from shardmill.parallel.comm import Comm
 from shardmill.parallel.exchange import ExactExchange, MessageExchange
-from shardmill.trainer import Trainer
+from shardmill.training.trainer import Trainer
 
 
 def trainer(folder, reduction: str, global_batch: int, chunk: int = 8, dtype: str = "float64") -> Trainer:

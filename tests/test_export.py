@@ -15,13 +15,15 @@ import onnxruntime
 import pytest
 import scipy.special
 from helpers import run_cli
-from shardmill import export
 from shardmill.checkpoint import CheckpointError, best_name, load, resolve
-from shardmill.config import JobError, job_from_dict
-from shardmill.export import ACTIVATION_FORMULAS, cmd_export, export_onnx, model_card
-from shardmill.model import MLP
-from shardmill.predict import Predictor, cmd_predict, load_model
-from shardmill.trainer import Trainer, train
+from shardmill.commands import export
+from shardmill.commands.export import ACTIVATION_FORMULAS, cmd_export, export_onnx, model_card
+from shardmill.commands.predict import cmd_predict
+from shardmill.config import job_from_dict
+from shardmill.errors import JobError
+from shardmill.model.mlp import MLP
+from shardmill.model.predictor import Predictor, load_model
+from shardmill.training.trainer import Trainer, train
 from sklearn.datasets import load_breast_cancer, load_diabetes, load_iris, load_wine
 from sklearn.metrics import accuracy_score, log_loss, mean_squared_error
 

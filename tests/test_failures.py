@@ -19,7 +19,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 from helpers import make_classification, run_cli, run_mpi, write_job
-from shardmill.data import split_rows
+from shardmill.data.rows import split_rows
 
 pytestmark = pytest.mark.mpi
 

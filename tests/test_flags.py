@@ -7,7 +7,7 @@ from __future__ import annotations
 import argparse
 
 import pytest
-from shardmill.cli import build_parser
+from shardmill.commands.cli import build_parser
 
 GRAMMAR = {
     # flag: (kind of value, what it means) — the README's table

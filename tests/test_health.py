@@ -3,10 +3,10 @@
 from __future__ import annotations
 
 import numpy as np
-from shardmill.bench import synthetic_dataset
+from shardmill.commands.bench import synthetic_dataset
 from shardmill.config import job_from_dict
-from shardmill.health import SATURATION_Z, warnings
-from shardmill.trainer import Trainer
+from shardmill.training.health import SATURATION_Z, warnings
+from shardmill.training.trainer import Trainer
 
 
 def _trainer(activation: str, scale: float) -> Trainer:

@@ -12,7 +12,7 @@ import math
 import numpy as np
 import pytest
 from shardmill.config import job_from_dict
-from shardmill.trainer import Trainer
+from shardmill.training.trainer import Trainer
 from sklearn.datasets import load_diabetes
 
 
@@ -52,7 +52,7 @@ def _job(tmp_path, epochs: int = 3):
 
 
 def test_each_epoch_line_is_printed_as_its_epoch_ends(tmp_path, capsys, monkeypatch):
-    from shardmill import trainer as trainer_module
+    from shardmill.training import trainer as trainer_module
 
     job = _job(tmp_path)
     real_step = trainer_module.Trainer.step
@@ -75,7 +75,7 @@ def test_each_epoch_line_is_printed_as_its_epoch_ends(tmp_path, capsys, monkeypa
 
 
 def test_without_a_bar_a_heartbeat_says_where_the_run_is(tmp_path, capsys, monkeypatch):
-    from shardmill import trainer as trainer_module
+    from shardmill.training import trainer as trainer_module
 
     monkeypatch.setattr(trainer_module, "HEARTBEAT_S", 0.0)  # every step
     trainer_module.train(_job(tmp_path, epochs=1), progress=False, echo=True)
@@ -116,7 +116,7 @@ def test_the_index_keeps_the_newest_by_step_number_not_by_name(tmp_path):
     import json as _json
 
     from shardmill import checkpoint
-    from shardmill.trainer import Trainer
+    from shardmill.training.trainer import Trainer
 
     trainer = Trainer(_job(tmp_path, epochs=1))
     root = tmp_path / "ckpt"
@@ -131,8 +131,8 @@ def test_a_full_disk_during_a_checkpoint_is_one_line_naming_the_last_good_one(tm
     import errno
 
     from shardmill import checkpoint
-    from shardmill.config import LocalJobError
-    from shardmill.trainer import train
+    from shardmill.errors import LocalJobError
+    from shardmill.training.trainer import train
 
     job = _job(tmp_path, epochs=2)
     job.run.save_every = 1
@@ -168,7 +168,7 @@ def test_compile_fills_the_cache_without_the_data(tmp_path):
 
 
 def test_checkpoints_by_default_at_each_epoch_end_and_by_the_clock(tmp_path):
-    from shardmill.trainer import train
+    from shardmill.training.trainer import train
 
     job = _job(tmp_path, epochs=3)  # 3 steps per epoch
     job.run.keep_checkpoints = 100
@@ -186,7 +186,7 @@ def test_checkpoints_by_default_at_each_epoch_end_and_by_the_clock(tmp_path):
 
 def test_an_interrupted_checkpoint_write_is_cleaned_up_when_the_next_job_starts(tmp_path):
     from shardmill.parallel.comm import Comm
-    from shardmill.trainer import _WorkdirLock
+    from shardmill.training.trainer import _WorkdirLock
 
     stale = tmp_path / "run" / "checkpoints" / ".tmp-step-00000009-12345"
     stale.mkdir(parents=True)
@@ -199,7 +199,7 @@ def test_the_checkpoint_index_lists_the_kept_checkpoints_and_refuses_damage(tmp_
     import hashlib
 
     from shardmill import checkpoint
-    from shardmill.trainer import train
+    from shardmill.training.trainer import train
 
     job = _job(tmp_path, epochs=4)  # a checkpoint at each of the 4 epoch ends; 3 kept
     train(job, progress=False)
@@ -224,12 +224,12 @@ def test_the_checkpoint_index_lists_the_kept_checkpoints_and_refuses_damage(tmp_
 
 
 def test_a_first_run_says_it_is_compiling_before_it_does(tmp_path, capsys, monkeypatch):
-    from shardmill import info
-    from shardmill import trainer as trainer_module
+    from shardmill import machine
+    from shardmill.training import trainer as trainer_module
 
     cache = tmp_path / "cache"
     cache.mkdir()
-    monkeypatch.setattr(info, "numba_cache_dir", lambda: str(cache))
+    monkeypatch.setattr(machine, "numba_cache_dir", lambda: str(cache))
     assert not trainer_module._kernels_cached()  # an empty cache: nothing compiled yet
     trainer_module.train(_job(tmp_path, epochs=1), progress=False, echo=True)
     assert capsys.readouterr().out.splitlines()[0].startswith("compiling kernels for float64 (first run only")

@@ -1,4 +1,4 @@
-"""shardmill.optim (Optimizer, learning_rate) against the published algorithms, recomputed here in NumPy.
+"""shardmill.training.optim (Optimizer, learning_rate) against the published algorithms, recomputed here in NumPy.
 
 Sources: Kingma & Ba 2015 (Adam, Algorithm 1); Loshchilov & Hutter 2019 (AdamW, Algorithm 2); Sutskever, Martens,
 Dahl & Hinton 2013 (classical and Nesterov momentum, eq. 1–4); Loshchilov & Hutter 2017 (SGDR cosine annealing,
@@ -20,7 +20,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from shardmill.config import OptimizerSpec
-from shardmill.optim import STATE_NAMES, Optimizer, learning_rate
+from shardmill.training.optim import STATE_NAMES, Optimizer, learning_rate
 
 N = 37
 STEPS = 12

@@ -15,7 +15,8 @@ import tomllib
 import numpy as np
 import pytest
 from helpers import make_classification, run_cli, write_job
-from shardmill.config import JobError, apply_overrides, job_from_dict, job_toml, load_job, parse_override
+from shardmill.config import apply_overrides, job_from_dict, job_toml, load_job, parse_override
+from shardmill.errors import JobError
 from sklearn.datasets import load_wine
 
 BASE = {"model": {"layers": [13, 8, 3]}, "optimizer": {"learning_rate": 0.001}}
@@ -156,7 +157,7 @@ def test_version_and_info_json():
 
 
 def test_old_flag_names_work_for_one_release_with_a_notice(tmp_path):
-    from shardmill.cli import modernise
+    from shardmill.commands.cli import modernise
 
     argv, notices = modernise(["bench", "--batch", "64", "--optimizer=adam", "--warmup", "1", "--bucket-mb", "2"])
     assert argv == ["bench", "--global-batch", "64", "--method=adam", "--untimed", "1", "--message-mib", "2"]

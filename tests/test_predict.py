@@ -11,7 +11,7 @@ import pytest
 import scipy.special
 from helpers import make_classification, run_cli
 from shardmill.config import job_from_dict
-from shardmill.trainer import Trainer, train
+from shardmill.training.trainer import Trainer, train
 from sklearn.metrics import accuracy_score, log_loss
 
 LAYERS = [6, 16, 8, 3]

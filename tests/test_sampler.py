@@ -11,8 +11,8 @@ import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
-from shardmill.config import JobError
-from shardmill.data import Sampler, block_range, shard, split_rows
+from shardmill.data.rows import Sampler, block_range, shard, split_rows
+from shardmill.errors import JobError
 
 
 @st.composite

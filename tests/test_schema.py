@@ -16,8 +16,9 @@ import pytest
 import shardmill as sm
 from helpers import run_cli
 from shardmill import config
-from shardmill.cli import build_parser
-from shardmill.config import JobError, job_from_dict
+from shardmill.commands.cli import build_parser
+from shardmill.config import job_from_dict
+from shardmill.errors import JobError
 
 README = Path(__file__).resolve().parents[1] / "README.md"
 # The run keys that fix the trajectory, as the digest has always taken them (the rest of [run] may change on resume).

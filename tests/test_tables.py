@@ -19,11 +19,13 @@ import pyarrow.parquet as pq
 import pytest
 import shardmill as sm
 from helpers import run_mpi, write_job
-from shardmill import tables
-from shardmill.config import JobError, job_from_dict
-from shardmill.data import read_array
+from shardmill.config import job_from_dict
+from shardmill.data import tables
+from shardmill.data.dataset import load_dataset
+from shardmill.data.files import read_array
+from shardmill.errors import JobError
+from shardmill.model.mlp import model_from_job
 from shardmill.parallel.comm import Comm
-from shardmill.trainer import load_dataset, model_from_job
 from sklearn.datasets import load_diabetes, load_wine
 
 WINE = load_wine()

@@ -18,8 +18,9 @@ import numpy as np
 import pytest
 import shardmill as sm
 from helpers import make_classification, run_cli, write_job
-from shardmill.config import JobError, job_from_dict
-from shardmill.data import split_rows
+from shardmill.config import job_from_dict
+from shardmill.data.rows import split_rows
+from shardmill.errors import JobError
 
 ROWS, FEATURES, CLASSES = 240, 6, 3
 SEED = 1

@@ -2,7 +2,7 @@
 reduction is caught.
 
 Runs under real mpiexec at P = 2, 3, 4. ``mpi_scripts/verify_cases.py`` makes, per P, the full cross product
-float32/float64 × fast/exact through ``shardmill.verify.verify`` (honest, one rank's share dropped, one element
+float32/float64 × fast/exact through ``shardmill.training.verify.verify`` (honest, one rank's share dropped, one element
 perturbed); four ``shardmill verify`` command lines cover every P, dtype and mode of the CLI once. The bound
 itself is checked against Higham's formula, and the serial reference against autograd.
 """
@@ -20,8 +20,8 @@ import pytest
 from autograd import grad
 from helpers import make_classification, run_mpi, write_job
 from shardmill.config import job_from_dict
-from shardmill.trainer import Trainer
-from shardmill.verify import gamma, serial_gradient
+from shardmill.training.trainer import Trainer
+from shardmill.training.verify import gamma, serial_gradient
 
 pytestmark = pytest.mark.mpi
 
@@ -239,7 +239,7 @@ def test_cli_trajectory_reports_small_divergence(cli_runs: dict) -> None:
 def test_cli_exit_status_tells_disagreement_from_a_crash(monkeypatch, tmp_path: Path) -> None:
     import argparse
 
-    from shardmill import verify as verify_module
+    from shardmill.training import verify as verify_module
 
     tables = job_tables(tmp_path, "float64", "fast")
     job = write_job(tmp_path, tables["model"], tables["run"], tables["optimizer"], tables["data"])

@@ -24,7 +24,7 @@ import numpy as np
 # mpi4py's default, MPI_THREAD_MULTIPLE, is kept on purpose: with the MPICH wheel, single-thread mode measured
 # 5.7 ms per 4 MB allreduce at P = 2 against 0.38 ms, and seconds per MB once ranks share a core.
 from mpi4py import MPI
-from shardmill.config import JobError, LocalJobError
+from shardmill.errors import JobError, LocalJobError
 
 # Seconds a failing rank waits between writing its message and calling MPI_Abort. Hydra's launcher forwards a
 # rank's stderr and its abort request on separate channels; when the abort wins, the message is lost and the

@@ -30,11 +30,12 @@ from collections.abc import Iterator
 from typing import Any
 
 import numpy as np
-from shardmill.config import Job, JobError, RunSpec
-from shardmill.data import block_range, shard
+from shardmill.config import Job, RunSpec
+from shardmill.data.rows import block_range, shard
+from shardmill.errors import JobError
 from shardmill.kernels import compactsum, exactsum
 from shardmill.kernels import optim as kernels_optim
-from shardmill.model import MLP
+from shardmill.model.mlp import MLP
 from shardmill.parallel.comm import Comm
 from shardmill.parallel.progress import CommThread
 

@@ -20,7 +20,7 @@ from collections.abc import Callable, Mapping, Sequence
 from pathlib import Path
 from typing import IO, Any
 
-from shardmill.config import JobError
+from shardmill.errors import JobError
 
 LAUNCHED = "SHARDMILL_LAUNCHED"
 """Set in the environment of processes shardmill started under mpiexec, so they do not start mpiexec again."""

@@ -20,7 +20,8 @@ from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
 
-from shardmill.config import Job, JobError, load_job
+from shardmill.config import Job, load_job
+from shardmill.errors import JobError
 from shardmill.parallel.launch import run_ranks
 from shardmill.scaling import costmodel
 from shardmill.scaling.study import build_study, write_study

@@ -287,7 +287,7 @@ def build_study(job: Job, job_path: Path, mode: str, steps: int, threads: int, p
                 raws: dict[int, dict[str, Any]], project_to: list[int], network_spec: str | None,
                 network: tuple[float, float] | None) -> dict[str, Any]:
     """Everything a report needs, as plain JSON values: settings, machine, job, rows, per-rank records, model."""
-    from shardmill.info import machine
+    from shardmill.machine import machine
 
     points = [measured_point(raws[p]) for p in sorted(raws)]
     add_speedup(points, mode)

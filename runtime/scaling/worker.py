@@ -16,7 +16,8 @@ import time
 from pathlib import Path
 from typing import Any
 
-from shardmill.config import JobError, load_job
+from shardmill.config import load_job
+from shardmill.errors import JobError
 from shardmill.parallel.exchange import resolve_update
 from shardmill.scaling.measure import COMM_BUDGET_S, MESSAGE_SIZES, measure_reduction_gamma, time_allreduce
 from shardmill.timing import median, repeat_times
@@ -124,7 +125,7 @@ def run_worker(job_path: Path, global_batch: int, steps: int, threads: int, pin:
     """
     from mpi4py import MPI
     from shardmill.parallel.comm import Comm
-    from shardmill.trainer import Trainer, warm_up_kernels
+    from shardmill.training.trainer import Trainer, warm_up_kernels
     from threadpoolctl import threadpool_limits
 
     comm = Comm()

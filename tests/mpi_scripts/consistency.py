@@ -19,7 +19,7 @@ import sys
 import numpy as np
 from shardmill.config import job_from_dict
 from shardmill.parallel.comm import Comm
-from shardmill.trainer import Trainer
+from shardmill.training.trainer import Trainer
 
 
 def named_lists(trainer: Trainer, flat: np.ndarray) -> dict[str, list]:

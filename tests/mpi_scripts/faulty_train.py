@@ -24,9 +24,10 @@ import sys
 
 import numpy as np
 from mpi4py import MPI
-from shardmill import cli, config
-from shardmill.data import shard
-from shardmill.trainer import Trainer
+from shardmill import config
+from shardmill.commands import cli
+from shardmill.data.rows import shard
+from shardmill.training.trainer import Trainer
 
 FAULTY_RANK = 1
 FAULTY_STEP = 3  # 1-based

@@ -21,7 +21,7 @@ import sys
 import time
 
 import numpy as np
-from shardmill.model import MLP
+from shardmill.model.mlp import MLP
 from shardmill.parallel.comm import Comm, run_guarded
 from shardmill.parallel.exchange import MessageExchange
 from shardmill.parallel.progress import CommThread

@@ -1,4 +1,4 @@
-"""Run under ``mpiexec -n P``: ``shardmill.verify.verify`` on several jobs, honest and with tampered reductions.
+"""Run under ``mpiexec -n P``: ``training.verify.verify`` on several jobs, honest and with tampered reductions.
 
 Usage: ``python verify_cases.py SPEC.json OUT.json``. SPEC holds ``{"base": folder, "cases": [{"name", "job",
 "trajectory"}]}``. For each case three reports are made on the same batches:
@@ -21,10 +21,10 @@ import sys
 import numpy as np
 from mpi4py import MPI
 from shardmill.config import job_from_dict
-from shardmill.data import block_range
+from shardmill.data.rows import block_range
 from shardmill.parallel.comm import Comm
-from shardmill.trainer import Trainer
-from shardmill.verify import verify
+from shardmill.training.trainer import Trainer
+from shardmill.training.verify import verify
 
 RELATIVE_CHANGE = 1e-3
 

@@ -1,6 +1,6 @@
 """``shardmill export``: a trained model as an ONNX graph, and its model card (JSON).
 
-The graph computes what :meth:`shardmill.predict.Predictor.outputs` computes, from raw inputs:
+The graph computes what :meth:`shardmill.model.predictor.Predictor.outputs` computes, from raw inputs:
 
     inputs (N, d) ─ standardise ─ per layer l: MatMul W_l, Add b_l, activation ─ outputs (N, k)
 
@@ -24,9 +24,9 @@ import numpy as np
 import onnx
 from onnx import TensorProto, helper, numpy_helper
 from shardmill.checkpoint import resolve
-from shardmill.config import JobError
+from shardmill.errors import JobError
 from shardmill.kernels import activations as act
-from shardmill.predict import Predictor, load_model
+from shardmill.model.predictor import Predictor, load_model
 
 MIN_OPSET = 13  # ReduceSum takes its axes as an input, GreaterOrEqual exists
 MAX_OPSET = onnx.defs.onnx_opset_version()  # the newest the installed onnx package knows
@@ -184,7 +184,7 @@ def build_onnx(predictor: Predictor, opset: int = DEFAULT_OPSET) -> onnx.ModelPr
         initializer=g.initializers,
         doc_string=f"raw inputs (N, {d}) → {' → '.join(activations)} → outputs (N, {k}); loss {model.loss}")
     opsets = [helper.make_opsetid("", opset)]
-    from shardmill import __version__
+    from shardmill.version import __version__
 
     onnx_model = helper.make_model(graph, opset_imports=opsets, producer_name="shardmill",
                                    producer_version=__version__, ir_version=helper.find_min_ir_version_for(opsets))

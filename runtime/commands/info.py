@@ -2,36 +2,11 @@
 
 from __future__ import annotations
 
-import os
 import platform
 import sys
 from typing import Any
 
-
-def machine() -> dict[str, Any]:
-    """What the numbers came from: CPU, cores, BLAS library, Python and numpy versions."""
-    import numpy as np
-    from threadpoolctl import threadpool_info
-
-    blas = [i for i in threadpool_info() if i.get("user_api") == "blas"]
-    return {
-        "cpu": platform.processor() or platform.machine(),
-        "cores": os.cpu_count(),
-        "python": platform.python_version(),
-        "numpy": np.__version__,
-        "blas": [f"{i.get('internal_api')} {i.get('version')} ({i.get('architecture')})" for i in blas],
-        "node": platform.node(),
-    }
-
-
-def numba_cache_dir() -> str:
-    """Where Numba keeps compiled kernels: NUMBA_CACHE_DIR if set, else __pycache__ beside kernels/."""
-    from numba.core import config
-    from shardmill import kernels
-
-    if config.CACHE_DIR:
-        return str(config.CACHE_DIR)
-    return os.path.join(os.path.dirname(kernels.__file__), "__pycache__")
+from shardmill.machine import numba_cache_dir
 
 
 def facts() -> dict[str, Any]:
@@ -41,7 +16,7 @@ def facts() -> dict[str, Any]:
     import numpy as np
     import psutil
     from mpi4py import MPI
-    from shardmill import __version__
+    from shardmill.version import __version__
     from threadpoolctl import threadpool_info
 
     return {

@@ -11,7 +11,8 @@ from __future__ import annotations
 from collections.abc import Iterator
 
 import numpy as np
-from shardmill.config import IMPLIED_OUTPUT, JobError, default, model_spec
+from shardmill.config import IMPLIED_OUTPUT, Job, default, model_spec
+from shardmill.errors import JobError
 from shardmill.kernels import activations as act
 from shardmill.kernels import losses
 
@@ -275,3 +276,9 @@ class Workspace:
                 act.backward(self.Z[l - 1][:n], self.A[l][:n], dA, m.hidden_codes[l - 1])
                 which = 1 - which
             yield l, dZ
+
+
+def model_from_job(job: Job) -> MLP:
+    m = job.model
+    return MLP(m.layers, activation=m.activation, loss=m.loss, dtype=m.dtype, seed=job.run.seed, init=m.init,
+               output=m.output)

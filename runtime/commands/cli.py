@@ -13,7 +13,8 @@ import os
 import sys
 from pathlib import Path
 
-from shardmill.config import JobError, choices, default
+from shardmill.config import choices, default
+from shardmill.errors import JobError
 from shardmill.parallel.launch import LAUNCHED, relaunch, strip_ranks
 
 
@@ -90,7 +91,7 @@ def modernise(argv: list[str]) -> tuple[list[str], list[str]]:
 
 
 def build_parser() -> argparse.ArgumentParser:
-    from shardmill import __version__
+    from shardmill.version import __version__
 
     parser = argparse.ArgumentParser(prog="shardmill", description="Data-parallel MLP training on CPUs over MPI.",
                                      formatter_class=_Help)
@@ -272,7 +273,7 @@ def dispatch(args: argparse.Namespace, notices: list[str] | None = None) -> int:
     if args.command == "train":
         return cmd_train(args, notices)
     if args.command == "verify":
-        from shardmill.verify import cmd_verify
+        from shardmill.training.verify import cmd_verify
 
         return cmd_verify(args, read_job(args, notices))
     if args.command == "bench":
@@ -282,35 +283,35 @@ def dispatch(args: argparse.Namespace, notices: list[str] | None = None) -> int:
 
         return cmd_scale(args, read_job(args, notices))
     if args.command == "predict":
-        from shardmill.predict import cmd_predict
+        from shardmill.commands.predict import cmd_predict
 
         return cmd_predict(args)
     if args.command == "export":
         try:
-            from shardmill.export import cmd_export
+            from shardmill.commands.export import cmd_export
         except ImportError as missing:
             raise JobError(f"`shardmill export` needs the onnx package ({missing}); install it with "
                            f"pip install \"shardmill[onnx]\"") from None
 
         return cmd_export(args)
     if args.command == "curves":
-        from shardmill.curves import cmd_curves
+        from shardmill.commands.curves import cmd_curves
 
         return cmd_curves(args)
     if args.command == "resolve":
         return cmd_resolve(args, notices)
     if args.command == "saves":
-        from shardmill.saves import cmd_saves
+        from shardmill.commands.saves import cmd_saves
 
         return cmd_saves(args)
     if args.command == "compile":
         return cmd_compile(args, notices)
     if args.command == "info":
-        from shardmill.info import cmd_info
+        from shardmill.commands.info import cmd_info
 
         return cmd_info(args.json)
     if args.command == "demo":
-        from shardmill.demo import cmd_demo
+        from shardmill.commands.demo import cmd_demo
 
         return cmd_demo(args)
     raise AssertionError(args.command)
@@ -331,7 +332,7 @@ def cmd_resolve(args: argparse.Namespace, notices: list[str]) -> int:
 
 def cmd_train(args: argparse.Namespace, notices: list[str]) -> int:
     from shardmill.parallel.comm import Comm
-    from shardmill.trainer import TrainingStopped, train
+    from shardmill.training.trainer import TrainingStopped, train
 
     job = read_job(args, notices)
     comm = Comm()
@@ -348,7 +349,7 @@ def cmd_train(args: argparse.Namespace, notices: list[str]) -> int:
                                             f"epoch {result['best']['epoch']}) in {workdir / 'best.npz'}"
                                             if result["best"] and result["best"]["value"] is not None else ""))
         if args.curves:
-            from shardmill.curves import draw_curves
+            from shardmill.commands.curves import draw_curves
 
             for path in draw_curves(workdir, workdir / "curves"):
                 print(f"wrote {path}")
@@ -357,10 +358,10 @@ def cmd_train(args: argparse.Namespace, notices: list[str]) -> int:
 
 def cmd_compile(args: argparse.Namespace, notices: list[str]) -> int:
     """Compile what the job's step runs (its dtype, activations, loss, optimizer, exchange) on made-up rows."""
-    from shardmill.bench import synthetic_dataset
-    from shardmill.info import numba_cache_dir
+    from shardmill.commands.bench import synthetic_dataset
+    from shardmill.machine import numba_cache_dir
     from shardmill.parallel.comm import Comm
-    from shardmill.trainer import Trainer, warm_up_kernels
+    from shardmill.training.trainer import Trainer, warm_up_kernels
 
     job = read_job(args, notices)
     comm = Comm()
@@ -375,7 +376,7 @@ def cmd_compile(args: argparse.Namespace, notices: list[str]) -> int:
 
 
 def cmd_bench(args: argparse.Namespace) -> int:
-    from shardmill.bench import run_bench
+    from shardmill.commands.bench import run_bench
     from shardmill.config import check_choice
     from shardmill.parallel.comm import Comm
 

@@ -13,7 +13,7 @@ from typing import Any
 import numpy as np
 from shardmill.kernels import activations as act
 from shardmill.kernels import optim as kernels
-from shardmill.model import MLP, Workspace
+from shardmill.model.mlp import MLP, Workspace
 from shardmill.parallel.comm import Comm
 
 SATURATION_Z = 4.0

@@ -6,11 +6,12 @@ from typing import Any
 
 import numpy as np
 from shardmill.config import default, job_from_dict
-from shardmill.data import Split
-from shardmill.info import machine
+from shardmill.data.dataset import Dataset
+from shardmill.data.rows import Split
+from shardmill.machine import machine
 from shardmill.parallel.comm import Comm
 from shardmill.timing import median, slowest_call, time_call
-from shardmill.trainer import Dataset, Trainer, warm_up_kernels
+from shardmill.training.trainer import Trainer, warm_up_kernels
 from threadpoolctl import threadpool_limits
 
 

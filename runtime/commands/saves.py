@@ -15,7 +15,7 @@ from typing import Any
 
 import numpy as np
 from shardmill import checkpoint
-from shardmill.config import JobError
+from shardmill.errors import JobError
 
 
 def _size(path: Path) -> int:

@@ -1,59 +1,20 @@
 """Data sets, the sampler and sharding.
 
 Inputs are read lazily: ``.npy`` files are memory-mapped, so each rank touches only the rows of its shards
-(tables, .csv and .parquet, are converted to memory-mapped .npy caches by ``shardmill.tables``).
+(tables, .csv and .parquet, are converted to memory-mapped .npy caches by ``shardmill.data.tables``).
 The sampler draws a seeded permutation per epoch that does not depend on the number of processes; each
 rank takes one contiguous slice of every global batch.
 """
 
 from __future__ import annotations
 
-import zipfile
 from dataclasses import dataclass
-from pathlib import Path
 
 import numpy as np
-from shardmill.config import JobError, LocalJobError
+from shardmill.errors import JobError, LocalJobError
 from shardmill.kernels import data as data_kernels
 
 _STATS_BLOCK = 1024  # smallest block of the standardisation pass; blocks are fixed, so statistics do not depend on P
-
-
-def read_array(path: Path, field_name: str, mmap: bool = True) -> np.ndarray:
-    """Read a .npy (memory-mapped), .npz (its only array, or `x`/`y`), .csv (comma-separated numbers, with or
-    without a header row) or .parquet (every column, float64, in memory; needs pyarrow).
-
-    A .csv whose first row holds a field that is not a number, and any .parquet, are read by
-    :mod:`shardmill.tables` (every column, float64, in memory); a plain numeric .csv by ``numpy.loadtxt``.
-    """
-    if not path.is_file():
-        raise JobError(f"`{field_name}` file {str(path)!r} does not exist")
-    suffix = path.suffix.lower()
-    if suffix in (".csv", ".parquet"):
-        from shardmill import tables  # tables reads through this module: imported here, not at the top
-
-        table = tables.describe(path, field_name)
-        if table.named:
-            return tables.read_table(table, list(range(len(table.columns))))
-    try:
-        if suffix == ".npy":
-            return np.load(path, mmap_mode="r" if mmap else None, allow_pickle=False)
-        if suffix == ".npz":
-            with np.load(path, allow_pickle=False) as archive:
-                keys = list(archive.keys())
-                key = keys[0] if len(keys) == 1 else next((k for k in ("x", "y", "X", "inputs", "targets")
-                                                            if k in keys), None)
-                if key is None:
-                    raise JobError(f"`{field_name}` archive {str(path)!r} holds {keys}; store one array")
-                return archive[key]
-        if suffix == ".csv":
-            return np.loadtxt(path, delimiter=",", ndmin=2, dtype=np.float64)
-    except JobError:
-        raise
-    except (ValueError, OSError, EOFError, KeyError, zipfile.BadZipFile) as err:
-        # numpy's own messages for an empty, truncated or damaged file (a bad CRC, a short header…)
-        raise JobError(f"`{field_name}` file {str(path)!r} cannot be read: {err or type(err).__name__}") from None
-    raise JobError(f"`{field_name}` must be a .npy, .npz, .csv or .parquet file; got {str(path)!r}")
 
 
 def as_numbers(X: np.ndarray, field_name: str) -> np.ndarray:

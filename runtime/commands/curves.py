@@ -18,7 +18,7 @@ import sys
 from pathlib import Path
 from typing import Any
 
-from shardmill.config import JobError
+from shardmill.errors import JobError
 from shardmill.timing import PHASES
 
 METRICS_FILE = "metrics.jsonl"
@@ -38,7 +38,7 @@ HEALTH_PANELS = {
     "saturated_fraction": "saturated units (|z| > 4)",
     "dead_fraction": "dead units (zero on every row)",
 }
-"""Per-layer fields of a health record (shardmill.health.diagnose) → the axis label of their panel."""
+"""Per-layer fields of a health record (shardmill.training.health.diagnose) → the axis label of their panel."""
 
 DPI = 100
 WIDTH_IN, PANEL_HEIGHT_IN, HEALTH_PANEL_HEIGHT_IN = 6.4, 3.2, 2.4

@@ -15,97 +15,29 @@ import signal
 import sys
 import threading
 import time
-from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 from shardmill import checkpoint
-from shardmill.best import BestTracker
-from shardmill.config import Job, JobError, LocalJobError
-from shardmill.data import (
+from shardmill.config import Job
+from shardmill.data.dataset import Dataset, load_dataset
+from shardmill.data.rows import (
     Sampler,
-    Split,
-    as_numbers,
-    block_range,
-    column_statistics,
-    first_of_ranks,
     gather,
-    split_rows,
 )
-from shardmill.health import diagnose, warnings
+from shardmill.errors import JobError, LocalJobError
 from shardmill.kernels import losses
 from shardmill.kernels import optim as kernels_optim
-from shardmill.model import MLP
-from shardmill.optim import Optimizer
+from shardmill.model.mlp import model_from_job
 from shardmill.parallel.comm import Comm, agree
 from shardmill.parallel.exchange import resolve_update
 from shardmill.parallel.exchange import strategy as exchange_strategy
-from shardmill.tables import open_job_data
 from shardmill.timing import PHASES, PhaseTimer
+from shardmill.training.best import BestTracker
+from shardmill.training.health import diagnose, warnings
+from shardmill.training.optim import Optimizer
 from threadpoolctl import threadpool_limits
-
-
-@dataclass
-class Dataset:
-    """Inputs (possibly memory-mapped), validated targets, the split, and standardisation statistics."""
-
-    X: np.ndarray
-    targets: np.ndarray
-    split: Split
-    mean: np.ndarray
-    inv_std: np.ndarray
-    feature_names: list[str] | None = None  # the inputs' column names when they came from a table with names
-
-
-def model_from_job(job: Job) -> MLP:
-    m = job.model
-    return MLP(m.layers, activation=m.activation, loss=m.loss, dtype=m.dtype, seed=job.run.seed, init=m.init,
-               output=m.output)
-
-
-def load_dataset(job: Job, model: MLP, comm: Comm) -> Dataset:
-    """Open and check the data on every rank; any rank's failure is raised identically on all ranks."""
-    error: Exception | None = None
-    targets = None
-    X, y, feature_names = open_job_data(job, comm)  # collective; its own failures are raised alike on every rank
-    where = "data.target" if job.data.target else "data.targets"
-    try:
-        X = as_numbers(np.asarray(X), "data.inputs")
-        model.check_inputs(X, "data.inputs")
-        if y.shape[0] != X.shape[0]:
-            raise JobError(f"`{where}` has {y.shape[0]} rows but `data.inputs` has {X.shape[0]}")
-        targets = model.check_targets(y, X.shape[0], where)
-    except (JobError, OSError, MemoryError) as err:
-        error = err if isinstance(err, JobError) else JobError(f"data cannot be loaded: {err}")
-    agree(comm, error)
-    split = split_rows(X.shape[0], job.data.validation_fraction, job.run.seed)
-    if split.train.size == 0:
-        raise JobError("`data.validation_fraction` leaves no training rows")
-    mean, inv_std, (bad, rank) = column_statistics(X, split.train if job.data.standardize else split.train[:0],
-                                                   comm)
-    if bad < 0 and not job.data.standardize:  # the statistics pass above checked no training row
-        bad, rank = _first_nonfinite(X, split.train, comm)
-    if bad < 0 and split.validation.size:
-        bad, rank = _first_nonfinite(X, split.validation, comm)
-    if bad >= 0:
-        where = f"[rank {rank}] " if comm.size > 1 else ""
-        raise JobError(f"{where}`data.inputs` row {bad} holds a non-finite value (NaN or inf)")
-    if not job.data.standardize:
-        mean, inv_std = np.zeros(X.shape[1]), np.ones(X.shape[1])
-    return Dataset(X=X, targets=targets, split=split, mean=mean, inv_std=inv_std, feature_names=feature_names)
-
-
-def _first_nonfinite(X: np.ndarray, rows: np.ndarray, comm: Comm) -> tuple[int, int]:
-    """The first row of ``rows`` (in this rank's block order) holding a NaN or inf, and the rank that read it."""
-    lo, hi = block_range(rows.size, comm.rank, comm.size)
-    bad: int | None = None
-    for start in range(lo, hi, 4096):  # blocks: a rank's part of a memory-mapped set may not fit in memory
-        finite = np.isfinite(np.asarray(X[rows[start:min(start + 4096, hi)]])).all(axis=1)
-        if not finite.all():
-            bad = int(rows[start + int(np.argmin(finite))])
-            break
-    return first_of_ranks(bad, comm)
 
 
 class Trainer:
@@ -688,7 +620,7 @@ def _train_loop(trainer: Trainer, resume: bool, progress: bool, echo: bool = Fal
     trainer.exchange.close()
     if lead:
         checkpoint.write_final(workdir / "final.npz", state)
-    from shardmill.predict import Predictor
+    from shardmill.model.predictor import Predictor
 
     data = trainer.data
     predictor = Predictor(model, data.mean, data.inv_std, feature_names=getattr(data, "feature_names", None),
@@ -721,7 +653,7 @@ def _append(path: Path, record: dict[str, Any]) -> None:
 
 def _start_record(trainer: Trainer, start_step: int) -> dict[str, Any]:
     """The first record of each run segment (a fresh start, or a resume): what ran, where, with which job."""
-    from shardmill import __version__
+    from shardmill.version import __version__
 
     job = trainer.job
     return {"kind": "start", "time": checkpoint.utc_now(), "version": __version__, "processes": trainer.comm.size,
@@ -731,7 +663,7 @@ def _start_record(trainer: Trainer, start_step: int) -> dict[str, Any]:
 
 def _kernels_cached() -> bool:
     """True when Numba's cache already holds compiled shardmill kernels (its index files, *.nbi)."""
-    from shardmill.info import numba_cache_dir
+    from shardmill.machine import numba_cache_dir
 
     folder = Path(numba_cache_dir())
     return folder.is_dir() and any(folder.rglob("*.nbi"))

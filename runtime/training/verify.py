@@ -23,11 +23,12 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-from shardmill.config import Job, JobError, load_job
-from shardmill.data import gather
+from shardmill.config import Job, load_job
+from shardmill.data.rows import gather
+from shardmill.errors import JobError
 from shardmill.kernels import activations as act
 from shardmill.parallel.comm import Comm
-from shardmill.trainer import Trainer, warm_up_kernels
+from shardmill.training.trainer import Trainer, warm_up_kernels
 from threadpoolctl import threadpool_limits
 
 Tamper = Callable[[np.ndarray, Comm], None]

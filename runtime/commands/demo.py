@@ -14,7 +14,7 @@ import time
 from pathlib import Path
 
 import numpy as np
-from shardmill.config import JobError
+from shardmill.errors import JobError
 from shardmill.parallel.launch import relaunch
 
 CLASSES = ("healthy", "cavitation", "bearing_wear", "impeller_imbalance", "seal_leak")

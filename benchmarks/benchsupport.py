@@ -16,7 +16,7 @@ from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import Any
 
-from shardmill.info import machine
+from shardmill.machine import machine
 from shardmill.parallel.launch import BLAS_THREAD_VARIABLES, mpiexec_command, rank_environment, run_command
 
 MID_MODEL = [784, 1024, 1024, 10]

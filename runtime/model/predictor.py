@@ -1,5 +1,4 @@
-"""A trained model as a predictor, and ``shardmill predict``: outputs or labels of a model (final.npz, best.npz, a
-checkpoint directory or a workdir) on new inputs."""
+"""A trained model with its input standardisation: ``Predictor`` and ``load_model``."""
 
 from __future__ import annotations
 
@@ -10,10 +9,8 @@ from typing import Any
 
 import numpy as np
 from shardmill.checkpoint import CheckpointError, load, resolve
-from shardmill.config import JobError
-from shardmill.data import read_array, squeeze_labels
-from shardmill.model import MLP
-from shardmill.tables import read_inputs
+from shardmill.errors import JobError
+from shardmill.model.mlp import MLP
 
 CLASSIFIER_LOSSES = ("softmax_cross_entropy", "binary_cross_entropy")
 
@@ -176,72 +173,3 @@ def metrics(model: MLP, outputs: np.ndarray, targets: np.ndarray) -> dict[str, f
         return {"accuracy": float(np.mean((outputs > 0.5) == (t > 0.5))), "loss": float(row.mean())}
     t = targets.astype(np.float64).reshape(o.shape)
     return {"rmse": float(np.sqrt(np.mean((o - t) ** 2))), "loss": float(0.5 * ((o - t) ** 2).sum(axis=1).mean())}
-
-
-OUTPUT_SUFFIXES = (".npy", ".csv")
-
-
-def check_output(path: Path) -> str:
-    """Refuse an output path before any work: its extension (returned, lower case) and its folder."""
-    suffix = path.suffix.lower()
-    if suffix not in OUTPUT_SUFFIXES:
-        raise JobError(f"`--out` must end in {' or '.join(OUTPUT_SUFFIXES)}; got {str(path)!r}")
-    if not path.parent.is_dir():
-        raise JobError(f"`--out` folder {str(path.parent)!r} does not exist")
-    return suffix
-
-
-def write_outputs(path: Path, outputs: np.ndarray) -> None:
-    """Save outputs (n, k) or labels (n,) / (n, k) int64 by the extension of ``path``: .npy (numpy's format) or
-    .csv (one row per input; floats in the shortest decimal text that reads back to the same value: 9 significant
-    digits for float32, 17 for float64; integers as integers)."""
-    suffix = check_output(path)
-    try:
-        if suffix == ".npy":
-            with open(path, "wb") as f:  # a file object: np.save would append .npy to a name without it
-                np.save(f, outputs, allow_pickle=False)
-        else:
-            if outputs.dtype.kind in "iu":
-                fmt = "%d"
-            else:
-                fmt = f"%.{9 if outputs.dtype == np.float32 else 17}g"  # IEEE 754: enough to read back the value
-            np.savetxt(path, outputs, delimiter=",", fmt=fmt)
-    except OSError as err:
-        raise JobError(f"`--out` {str(path)!r} cannot be written: {err.strerror or err}") from None
-
-
-def read_inputs_for(predictor: Predictor, path: Path) -> np.ndarray:
-    """The rows of ``path`` the model takes, (n, d) float64: a table's columns picked by the model's feature names
-    (or, without names, every column but the training job's target columns); a plain array taken whole. A CSV's
-    header row is read as the training job said (``data.header``)."""
-    data = (predictor.job or {}).get("data", {})
-    target = data.get("target") or []
-    return read_inputs(path, "inputs", features=predictor.feature_names, header=data.get("header", "auto"),
-                       drop=[target] if isinstance(target, str) else list(target))
-
-
-def cmd_predict(args) -> int:
-    """``shardmill predict MODEL INPUTS --out FILE [--targets FILE] [--labels]``: writes the outputs (n, k), or with
-    ``--labels`` the labels of :meth:`Predictor.predict`; with targets, prints the metrics as one JSON line.
-
-    ``args.model``: what :func:`load_model` takes; ``args.inputs``: .npy, .npz, .csv or .parquet (a table's columns
-    are picked by the model's feature names when it has them)."""
-    check_output(Path(args.out))
-    predictor = load_model(Path(args.model))
-    labels = bool(getattr(args, "labels", False))
-    if labels and not predictor.is_classifier:
-        raise JobError(f"`--labels` needs a classifier (`model.loss` {' or '.join(CLASSIFIER_LOSSES)}); this "
-                       f"model's loss is {predictor.loss!r}: leave `--labels` out to write its outputs")
-    X = read_inputs_for(predictor, Path(args.inputs))
-    targets = None
-    if args.targets is not None:  # checked before anything is written
-        y = squeeze_labels(np.asarray(read_array(Path(args.targets), "targets", mmap=False)))
-        targets = predictor.model.check_targets(y, X.shape[0], "targets")
-    outputs = predictor.outputs(X)
-    written, what = (predictor.to_labels(outputs), "labels") if labels else (outputs, "outputs")
-    write_outputs(Path(args.out), written)
-    shape = f"{written.shape[0]}" if written.ndim == 1 else f"{written.shape[0]} × {written.shape[1]}"
-    print(f"wrote {shape} {what} to {args.out}")
-    if targets is not None:
-        print(json.dumps(metrics(predictor.model, outputs, targets)))
-    return 0

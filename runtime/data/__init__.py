@@ -1,0 +1,1 @@
+"""The data readers: files and tables in, the split, standardisation, the sampler and sharding."""

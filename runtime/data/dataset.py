@@ -1,0 +1,69 @@
+"""A job's data set on one rank: inputs (possibly memory-mapped), checked targets, the split and statistics."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from shardmill.config import Job
+from shardmill.data.files import open_job_data
+from shardmill.data.rows import Split, as_numbers, block_range, column_statistics, first_of_ranks, split_rows
+from shardmill.errors import JobError
+from shardmill.model.mlp import MLP
+from shardmill.parallel.comm import Comm, agree
+
+
+@dataclass
+class Dataset:
+    """Inputs (possibly memory-mapped), validated targets, the split, and standardisation statistics."""
+
+    X: np.ndarray
+    targets: np.ndarray
+    split: Split
+    mean: np.ndarray
+    inv_std: np.ndarray
+    feature_names: list[str] | None = None  # the inputs' column names when they came from a table with names
+
+
+def load_dataset(job: Job, model: MLP, comm: Comm) -> Dataset:
+    """Open and check the data on every rank; any rank's failure is raised identically on all ranks."""
+    error: Exception | None = None
+    targets = None
+    X, y, feature_names = open_job_data(job, comm)  # collective; its own failures are raised alike on every rank
+    where = "data.target" if job.data.target else "data.targets"
+    try:
+        X = as_numbers(np.asarray(X), "data.inputs")
+        model.check_inputs(X, "data.inputs")
+        if y.shape[0] != X.shape[0]:
+            raise JobError(f"`{where}` has {y.shape[0]} rows but `data.inputs` has {X.shape[0]}")
+        targets = model.check_targets(y, X.shape[0], where)
+    except (JobError, OSError, MemoryError) as err:
+        error = err if isinstance(err, JobError) else JobError(f"data cannot be loaded: {err}")
+    agree(comm, error)
+    split = split_rows(X.shape[0], job.data.validation_fraction, job.run.seed)
+    if split.train.size == 0:
+        raise JobError("`data.validation_fraction` leaves no training rows")
+    mean, inv_std, (bad, rank) = column_statistics(X, split.train if job.data.standardize else split.train[:0],
+                                                   comm)
+    if bad < 0 and not job.data.standardize:  # the statistics pass above checked no training row
+        bad, rank = _first_nonfinite(X, split.train, comm)
+    if bad < 0 and split.validation.size:
+        bad, rank = _first_nonfinite(X, split.validation, comm)
+    if bad >= 0:
+        where = f"[rank {rank}] " if comm.size > 1 else ""
+        raise JobError(f"{where}`data.inputs` row {bad} holds a non-finite value (NaN or inf)")
+    if not job.data.standardize:
+        mean, inv_std = np.zeros(X.shape[1]), np.ones(X.shape[1])
+    return Dataset(X=X, targets=targets, split=split, mean=mean, inv_std=inv_std, feature_names=feature_names)
+
+
+def _first_nonfinite(X: np.ndarray, rows: np.ndarray, comm: Comm) -> tuple[int, int]:
+    """The first row of ``rows`` (in this rank's block order) holding a NaN or inf, and the rank that read it."""
+    lo, hi = block_range(rows.size, comm.rank, comm.size)
+    bad: int | None = None
+    for start in range(lo, hi, 4096):  # blocks: a rank's part of a memory-mapped set may not fit in memory
+        finite = np.isfinite(np.asarray(X[rows[start:min(start + 4096, hi)]])).all(axis=1)
+        if not finite.all():
+            bad = int(rows[start + int(np.argmin(finite))])
+            break
+    return first_of_ranks(bad, comm)

@@ -20,7 +20,7 @@ import pytest
 import shardmill as sm
 from helpers import run_mpi, write_job
 from shardmill.config import job_from_dict
-from shardmill.data import tables
+from shardmill.data import files, tables
 from shardmill.data.dataset import load_dataset
 from shardmill.data.files import read_array
 from shardmill.errors import JobError
@@ -136,40 +136,40 @@ def test_read_array_keeps_plain_csv_and_reads_headed_csv(wine, tmp_path):
 
 
 def test_read_inputs_selects_features_by_name_or_drops_the_target(wine):
-    picked = tables.read_inputs(wine / "wine.parquet", "inputs", features=["hue", "alcohol"])
+    picked = files.read_inputs(wine / "wine.parquet", "inputs", features=["hue", "alcohol"])
     assert np.array_equal(picked, WINE.data[:, [10, 0]])  # reference: scikit-learn's arrays
-    dropped = tables.read_inputs(wine / "wine.csv", "inputs", drop=["class", "not-there"])
+    dropped = files.read_inputs(wine / "wine.csv", "inputs", drop=["class", "not-there"])
     assert np.array_equal(dropped, WINE.data)
-    bare = tables.read_inputs(wine / "wine-bare.csv", "inputs", features=[str(j) for j in range(14)])
+    bare = files.read_inputs(wine / "wine-bare.csv", "inputs", features=[str(j) for j in range(14)])
     assert np.array_equal(bare[:, :13], WINE.data)
     with pytest.raises(JobError, match=r"no header row and 14 columns; the model takes 13 columns"):
-        tables.read_inputs(wine / "wine-bare.csv", "inputs", features=WINE_NAMES)
+        files.read_inputs(wine / "wine-bare.csv", "inputs", features=WINE_NAMES)
 
 
 # --- a job's data -------------------------------------------------------------------------------------------------
 
 def test_target_column_by_name_and_feature_order(wine, tmp_path):
     for source in ("wine.csv", "wine.parquet"):
-        X, y, names = tables.open_job_data(job(tmp_path, {"inputs": str(wine / source), "target": "class"},
+        X, y, names = files.open_job_data(job(tmp_path, {"inputs": str(wine / source), "target": "class"},
                                                [13, 8, 3]), Comm())
         assert isinstance(X, np.memmap) and not X.flags.writeable  # every rank maps the cache read-only
         assert names == WINE_NAMES and np.array_equal(X, WINE.data)  # reference: scikit-learn's arrays
         assert y.dtype == np.int64 and np.array_equal(y, WINE.target)
     features = ["proline", "alcohol", "hue"]
-    X, y, names = tables.open_job_data(job(tmp_path, {"inputs": str(wine / "wine.csv"), "target": ["class"],
+    X, y, names = files.open_job_data(job(tmp_path, {"inputs": str(wine / "wine.csv"), "target": ["class"],
                                                       "features": features}, [3, 8, 3]), Comm())
     assert names == features and np.array_equal(X, WINE.data[:, [12, 0, 10]])  # the order asked for
 
 
 def test_headerless_table_with_target_by_position(wine, tmp_path):
-    X, y, names = tables.open_job_data(job(tmp_path, {"inputs": str(wine / "wine-bare.csv"), "target": "13"},
+    X, y, names = files.open_job_data(job(tmp_path, {"inputs": str(wine / "wine-bare.csv"), "target": "13"},
                                            [13, 8, 3]), Comm())
     assert names is None and np.array_equal(X, WINE.data) and np.array_equal(y, WINE.target)
 
 
 def test_inputs_table_with_a_one_column_targets_table(wine, tmp_path):
     write_csv(tmp_path / "labels.csv", {"class": WINE.target.astype(np.int64)})
-    X, y, names = tables.open_job_data(job(tmp_path, {"inputs": str(wine / "wine.parquet"), "features": WINE_NAMES,
+    X, y, names = files.open_job_data(job(tmp_path, {"inputs": str(wine / "wine.parquet"), "features": WINE_NAMES,
                                                       "targets": "labels.csv"}, [13, 8, 3]), Comm())
     assert names == WINE_NAMES and y.shape == (178,) and y.dtype == np.int64 and np.array_equal(y, WINE.target)
     dataset = load_dataset(job(tmp_path, {"inputs": str(wine / "wine.parquet"), "features": WINE_NAMES,
@@ -182,11 +182,11 @@ def test_plain_arrays_are_read_as_before(tmp_path):
     np.save(tmp_path / "x.npy", WINE.data)
     np.save(tmp_path / "y.npy", WINE.target)
     np.savetxt(tmp_path / "y.csv", WINE.target, fmt="%d")
-    X, y, names = tables.open_job_data(job(tmp_path, {"inputs": "x.npy", "targets": "y.npy"}, [13, 8, 3]), Comm())
+    X, y, names = files.open_job_data(job(tmp_path, {"inputs": "x.npy", "targets": "y.npy"}, [13, 8, 3]), Comm())
     assert names is None and isinstance(X, np.memmap) and np.array_equal(X, WINE.data)
     assert y.dtype == WINE.target.dtype and np.array_equal(y, WINE.target)
     assert not (tmp_path / "run" / "tables").exists()  # nothing converted for .npy files
-    _, y, _ = tables.open_job_data(job(tmp_path, {"inputs": "x.npy", "targets": "y.csv"}, [13, 8, 3]), Comm())
+    _, y, _ = files.open_job_data(job(tmp_path, {"inputs": "x.npy", "targets": "y.csv"}, [13, 8, 3]), Comm())
     assert y.shape == (178,) and np.array_equal(y, WINE.target)  # a numeric .csv of labels: (n,) as before
 
 
@@ -194,7 +194,7 @@ def test_the_cache_is_reused_and_renewed_when_the_source_changes(wine, tmp_path,
     source = tmp_path / "wine.csv"
     source.write_bytes((wine / "wine.csv").read_bytes())
     the_job = job(tmp_path, {"inputs": "wine.csv", "target": "class"}, [13, 8, 3])
-    tables.open_job_data(the_job, Comm())
+    files.open_job_data(the_job, Comm())
     sidecars = list((tmp_path / "run" / "tables").glob("*.json"))
     record = json.loads(sidecars[0].read_text())
     assert len(sidecars) == 1 and record["rows"] == 178 and record["parts"]["targets"] == ["class"]
@@ -203,12 +203,12 @@ def test_the_cache_is_reused_and_renewed_when_the_source_changes(wine, tmp_path,
         raise AssertionError("converted again")
 
     monkeypatch.setattr(tables, "_convert_csv", refuse)
-    X, _, _ = tables.open_job_data(the_job, Comm())  # a resume: the cache is found
+    X, _, _ = files.open_job_data(the_job, Comm())  # a resume: the cache is found
     assert np.array_equal(X, WINE.data)
     monkeypatch.undo()
     stat = source.stat()
     os.utime(source, ns=(stat.st_atime_ns, stat.st_mtime_ns + 10**9))  # the file changed
-    tables.open_job_data(the_job, Comm())
+    files.open_job_data(the_job, Comm())
     assert len(list((tmp_path / "run" / "tables").glob("*.json"))) == 2
 
 
@@ -226,12 +226,12 @@ def damaged_wine(folder: Path, row: int, column: int, text: str) -> Path:
 
 def test_a_missing_column_is_named_with_the_closest_one(wine, tmp_path):
     with pytest.raises(JobError) as caught:
-        tables.open_job_data(job(tmp_path, {"inputs": str(wine / "wine.csv"), "target": "clas"}, [13, 8, 3]), Comm())
+        files.open_job_data(job(tmp_path, {"inputs": str(wine / "wine.csv"), "target": "clas"}, [13, 8, 3]), Comm())
     message = str(caught.value)
     assert "`data.target` column 'clas'" in message and "did you mean 'class'?" in message
     assert "'alcohol', 'malic_acid'" in message
     with pytest.raises(JobError, match=r"`data.features` column 'prolin' .*did you mean 'proline'"):
-        tables.open_job_data(job(tmp_path, {"inputs": str(wine / "wine.parquet"), "target": "class",
+        files.open_job_data(job(tmp_path, {"inputs": str(wine / "wine.parquet"), "target": "class",
                                             "features": ["prolin", "hue"]}, [2, 3]), Comm())
 
 
@@ -279,7 +279,7 @@ def test_missing_pyarrow_says_what_to_install(wine, monkeypatch):
 def test_column_selection_on_a_plain_array_is_refused(tmp_path):
     np.save(tmp_path / "x.npy", WINE.data)
     with pytest.raises(JobError, match=r"`data.target` selects columns by name, but `data.inputs` .*x.npy"):
-        tables.open_job_data(job(tmp_path, {"inputs": "x.npy", "target": "class"}, [13, 8, 3]), Comm())
+        files.open_job_data(job(tmp_path, {"inputs": "x.npy", "target": "class"}, [13, 8, 3]), Comm())
 
 
 # --- training -----------------------------------------------------------------------------------------------------

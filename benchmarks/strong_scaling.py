@@ -35,7 +35,7 @@ EXACT_CHUNK = 256  # 2 chunks of G = 512: P ≤ 2. Chunk 64 measured 1.53× fast
 TARGETS = {"strong_efficiency_at_2_at_least": 0.88, "exact_over_fast_at_most": 1.25,
            "compact_exact_over_fast_at_most": 1.15, "update_at_P_over_update_at_1_per_P_at_most": 1.2,
            "optimizer_memory_at_4_over_1_at_most": 0.3, "step_over_compute_plus_raw_allreduce_at_most": 1.03}
-ADAM = ["--optimizer", "adam"]  # the update that the sharded step divides by P (sgd's is too small to see)
+ADAM = ["--method", "adam"]  # the update that the sharded step divides by P (sgd's is too small to see)
 
 
 def variants(ranks: list[int]) -> list[dict[str, Any]]:

@@ -11,17 +11,15 @@ fails identically everywhere before any collective. Errors are :class:`JobError`
 from __future__ import annotations
 
 import copy
-import difflib
 import hashlib
-import itertools
 import json
 import math
-import numbers
 import tomllib
-from dataclasses import dataclass, field, make_dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+from shardmill.checks import KINDS, allowed, check, choice, hint
 from shardmill.errors import JobError
 
 ACTIVATIONS = ("identity", "sigmoid", "tanh", "relu", "leaky_relu", "gelu", "softplus")
@@ -36,11 +34,6 @@ BEST_METRICS = ("validation.loss", "validation.accuracy", "validation.rmse")  # 
 IMPLIED_OUTPUT = {"softmax_cross_entropy": "softmax", "binary_cross_entropy": "sigmoid", "squared_error": "identity"}
 
 
-MAX_PARAMS = 2**31
-"""The most parameters a model may have: flat offsets stay within int32-sized views, and 2^31 float32 values
-are 8 GiB for the parameters alone (gradients and optimizer state come on top)."""
-
-
 class _Required:
     def __repr__(self) -> str:
         return "REQUIRED"
@@ -53,10 +46,9 @@ REQUIRED: Any = _Required()  # the default of a key the job must give
 class Key:
     """One key of the job file.
 
-    ``kind`` says how the value is checked: ``choice`` (one of ``choices``), ``integer`` / ``number`` (within
-    ``low`` … ``high``; ``low_open`` excludes ``low``), ``flag`` (true or false), ``file`` (a path string),
-    ``text`` (anything, kept as a string), ``layers`` (the widths), ``names`` (one of ``choices`` or a list of
-    them) and ``output`` (allowed values depend on ``model.loss``: checked after the table pass).
+    ``kind`` names how the value is checked, typed and described: one entry of ``checks.KINDS`` (choice,
+    names, output, integer, number, flag, layers, file, text, columns), which reads ``choices``, ``low``,
+    ``high`` (``low_open`` excludes ``low``) and ``allowed`` from here.
     ``trajectory``: the key enters :meth:`Job.digest`, so a checkpoint resumes only with the same value.
     ``allowed``: the README's "allowed" cell where the kind alone does not say it.
     """
@@ -73,6 +65,10 @@ class Key:
     allowed: str = ""
     digest_default: bool = True  # False for a key added later: at its default it stays out of the digest, so
     # checkpoints written before the key existed still resume
+
+    def __post_init__(self) -> None:
+        if self.kind not in KINDS:  # a key of an unknown kind would be checked nowhere
+            raise AssertionError(f"{self.path}: kind {self.kind!r} is not one of {sorted(KINDS)}")
 
     @property
     def section(self) -> str:
@@ -182,99 +178,6 @@ KEYS: dict[str, Key] = {key.path: key for key in SCHEMA}
 SECTIONS: tuple[str, ...] = ("model", "data", "optimizer", "run")
 
 
-def _hint(value: object, allowed: tuple[str, ...] | list[str]) -> str:
-    close = difflib.get_close_matches(str(value), list(allowed), n=1, cutoff=0.6)
-    return f" (did you mean '{close[0]}'?)" if close else ""
-
-
-def _choice(path: str, value: object, allowed: tuple[str, ...]) -> str:
-    if not isinstance(value, str) or value not in allowed:
-        raise JobError(
-            f"`{path}` must be one of {', '.join(sorted(allowed))}; got {value!r}{_hint(value, allowed)}"
-        )
-    return value
-
-
-def _number(path: str, value: object, *, low: float | None = None, high: float | None = None,
-            low_open: bool = False, integer: bool = False) -> Any:
-    kind = "an integer" if integer else "a number"
-    ok_type = isinstance(value, int) if integer else isinstance(value, (int, float))
-    if isinstance(value, bool) or not ok_type or (not integer and not math.isfinite(value)):
-        raise JobError(f"`{path}` must be {kind}; got {value!r}")
-    if low is not None and (value <= low if low_open else value < low):
-        raise JobError(f"`{path}` must be {'>' if low_open else '≥'} {low:g}; got {value!r}")
-    if high is not None and value > high:
-        raise JobError(f"`{path}` must be ≤ {high:g}; got {value!r}")
-    return int(value) if integer else float(value)
-
-
-def _flag(path: str, value: object) -> bool:
-    if not isinstance(value, bool):
-        raise JobError(f"`{path}` must be true or false; got {value!r}")
-    return value
-
-
-def _layers(path: str, value: object) -> list[int]:
-    # numbers.Integral also admits numpy integers, so MLP(np.array([...])) works; they are stored as int.
-    if (not isinstance(value, list) or len(value) < 2
-            or not all(isinstance(n, numbers.Integral) and not isinstance(n, bool) and n >= 1 for n in value)):
-        raise JobError(f"`{path}` must be a list of at least two positive integers "
-                       f"(inputs, hidden…, outputs); got {value!r}")
-    widths = [int(n) for n in value]
-    params = sum(a * b + b for a, b in itertools.pairwise(widths))
-    if params > MAX_PARAMS:
-        raise JobError(f"`{path}` = {widths} gives {params:,} parameters; at most {MAX_PARAMS:,} (2^31) are allowed")
-    return widths
-
-
-def _names(key: Key, value: object) -> str | list[str]:
-    if isinstance(value, (list, tuple)):
-        return [_choice(key.path, name, key.choices) for name in value]
-    return _choice(key.path, value, key.choices)
-
-
-def _file(path: str, value: object) -> str:
-    if not isinstance(value, str):
-        raise JobError(f"`{path}` must be a file path (.npy, .npz, .csv or .parquet); got {value!r}")
-    return value
-
-
-def _columns(key: Key, value: object) -> str | list[str]:
-    """Column names: one name or a list (``data.target``), or a list (``data.features``); names are non-empty."""
-    names = [value] if isinstance(value, str) and not isinstance(key.default, list) else value
-    if not isinstance(names, list) or not all(isinstance(n, str) and n for n in names):
-        raise JobError(f"`{key.path}` must be {key.allowed}; got {value!r}")
-    if len(set(names)) != len(names):
-        raise JobError(f"`{key.path}` names a column twice; got {value!r}")
-    return value if isinstance(value, str) else list(names)
-
-
-def _check(key: Key, value: object) -> Any:
-    """The value of ``key`` checked against its row of the table, in the type the spec holds."""
-    if key.kind == "choice":
-        return _choice(key.path, value, key.choices)
-    if key.kind in ("integer", "number"):
-        return _number(key.path, value, low=key.low, high=key.high, low_open=key.low_open,
-                       integer=key.kind == "integer")
-    if key.kind == "flag":
-        return _flag(key.path, value)
-    if key.kind == "file":
-        return _file(key.path, value)
-    if key.kind == "text":
-        if not isinstance(value, str) or not value.strip():
-            raise JobError(f"`{key.path}` must be {key.allowed or 'text'}; got {value!r}")
-        return value
-    if key.kind == "layers":
-        return _layers(key.path, value)
-    if key.kind == "names":
-        return _names(key, value)
-    if key.kind == "output":
-        return value
-    if key.kind == "columns":
-        return key.default if value == "" else _columns(key, value)
-    raise AssertionError(key.kind)
-
-
 def choices(path: str) -> tuple[str, ...]:
     """The allowed names of a key with a fixed set of them, e.g. ``choices("model.dtype")``."""
     if not KEYS[path].choices:
@@ -289,41 +192,82 @@ def default(path: str) -> Any:
 
 def check_choice(path: str, value: object, name: str | None = None) -> str:
     """``value`` if it is one of ``choices(path)``, else a JobError naming ``name`` (default ``path``)."""
-    return _choice(name or path, value, choices(path))
+    return choice(name or path, value, choices(path))
 
 
-_PYTHON_TYPES = {"layers": list[int], "names": list[str], "choice": str, "output": str, "integer": int,
-                 "number": float, "flag": bool, "file": str, "text": str,
-                 "columns": Any}
+@dataclass
+class ModelSpec:
+    """The validated ``[model]`` table; ``activation`` is one name per hidden layer, ``init`` and ``output`` may
+    still be "auto" (MLP resolves them)."""
+
+    layers: list[int]
+    activation: list[str]
+    loss: str = default("model.loss")
+    dtype: str = default("model.dtype")
+    init: str = default("model.init")
+    output: str = default("model.output")
 
 
-def _spec_class(name: str, section: str, doc: str) -> type:
-    """A dataclass with one field per key of ``section``, in table order, defaulting as the table says.
+@dataclass
+class DataSpec:
+    """The validated ``[data]`` table."""
 
-    ``names`` keys get no default: their validated value, one name per hidden layer, depends on ``model.layers``.
-    """
-    fields: list[tuple[str, Any] | tuple[str, Any, Any]] = []
-    for key in SCHEMA:
-        if key.section == section:
-            kind = _PYTHON_TYPES[key.kind]
-            given = key.default is REQUIRED or key.kind == "names"
-            if given:
-                fields.append((key.name, kind))
-            elif isinstance(key.default, list):  # a fresh list per spec
-                fields.append((key.name, kind, field(default_factory=list(key.default).copy)))
-            else:
-                fields.append((key.name, kind, field(default=key.default)))
-    cls = make_dataclass(name, fields, namespace={"__doc__": doc})
-    cls.__module__ = __name__
-    return cls
+    inputs: str = default("data.inputs")
+    targets: str = default("data.targets")
+    target: str | list[str] = default("data.target")
+    features: list[str] = field(default_factory=list)
+    header: str = default("data.header")
+    validation_fraction: float = default("data.validation_fraction")
+    standardize: bool = default("data.standardize")
 
 
-ModelSpec = _spec_class("ModelSpec", "model", "The validated ``[model]`` table; activation is one name per hidden "
-                        "layer, init and output may still be 'auto' (MLP resolves them).")
-DataSpec = _spec_class("DataSpec", "data", "The validated ``[data]`` table.")
-OptimizerSpec = _spec_class("OptimizerSpec", "optimizer", "The validated ``[optimizer]`` table.")
-RunSpec = _spec_class("RunSpec", "run", "The validated ``[run]`` table.")
-_SPECS = {"model": ModelSpec, "data": DataSpec, "optimizer": OptimizerSpec, "run": RunSpec}
+@dataclass
+class OptimizerSpec:
+    """The validated ``[optimizer]`` table."""
+
+    method: str = default("optimizer.method")
+    learning_rate: float = default("optimizer.learning_rate")
+    weight_decay: float = default("optimizer.weight_decay")
+    momentum: float = default("optimizer.momentum")
+    beta1: float = default("optimizer.beta1")
+    beta2: float = default("optimizer.beta2")
+    eps: float = default("optimizer.eps")
+    schedule: str = default("optimizer.schedule")
+    warmup: int = default("optimizer.warmup")
+    step_every: int = default("optimizer.step_every")
+    step_factor: float = default("optimizer.step_factor")
+    clip_global_norm: float = default("optimizer.clip_global_norm")
+
+
+@dataclass
+class RunSpec:
+    """The validated ``[run]`` table."""
+
+    epochs: int = default("run.epochs")
+    global_batch: int = default("run.global_batch")
+    seed: int = default("run.seed")
+    reduction: str = default("run.reduction")
+    exact_format: str = default("run.exact_format")
+    exact_chunk: int = default("run.exact_chunk")
+    message_mib: float = default("run.message_mib")
+    update: str = default("run.update")
+    progress: str = default("run.progress")
+    overlap: bool = default("run.overlap")
+    save_every: int = default("run.save_every")
+    save_minutes: float = default("run.save_minutes")
+    keep_checkpoints: int = default("run.keep_checkpoints")
+    best_metric: str = default("run.best_metric")
+    patience: int = default("run.patience")
+    min_improvement: float = default("run.min_improvement")
+    workdir: str = default("run.workdir")
+    threads: int = default("run.threads")
+    max_steps: int = default("run.max_steps")
+    check_every: int = default("run.check_every")
+    health_every: int = default("run.health_every")
+
+
+SPECS: dict[str, type] = {"model": ModelSpec, "data": DataSpec, "optimizer": OptimizerSpec, "run": RunSpec}
+"""The spec dataclass of each section; their fields are the schema's keys, in table order (tests/test_schema.py)."""
 
 
 @dataclass
@@ -336,7 +280,6 @@ class Job:
     run: RunSpec = field(default_factory=RunSpec)
     base: str = "."
     overrides: tuple[str, ...] = ()  # the --set assignments applied on top of the job file, as given
-    notices: tuple[str, ...] = ()  # one line per renamed key the job still uses (printed by the command)
 
     def path(self, name: str) -> Path:
         """A path from the job resolved against the job file's folder."""
@@ -377,32 +320,6 @@ def resumable_keys() -> tuple[str, ...]:
     return tuple(key.path for key in SCHEMA if not key.trajectory)
 
 
-RENAMED: dict[str, tuple[str, Any]] = {
-    # old path: (new path, value converter). An old key is read for one release, with a notice, then refused.
-    "run.bucket_mb": ("run.message_mib", lambda mb: mb * 1e6 / 2**20 if isinstance(mb, (int, float))
-                      and not isinstance(mb, bool) else mb),
-}
-"""Keys renamed in 0.2: accepted under their old name (converted to the new key's units) with a one-line notice."""
-
-
-def _renamed(raw: dict[str, Any]) -> list[str]:
-    """Move renamed keys of ``raw`` (changed in place) to their new names; the notices to print."""
-    notices = []
-    for old, (new, convert) in RENAMED.items():
-        section, name = old.split(".")
-        table = raw.get(section)
-        if not isinstance(table, dict) or name not in table:
-            continue
-        new_name = new.split(".")[1]
-        if new_name in table:
-            raise JobError(f"`{old}` is the old name of `{new}`; give only `{new}`")
-        value = convert(table.pop(name))
-        table[new_name] = value
-        notices.append(f"`{old}` is now `{new}` (read as {new_name} = {_toml(value)}); the old name is accepted "
-                       f"until the next release")
-    return notices
-
-
 def parse_override(text: str) -> tuple[str, Any]:
     """``section.key=value`` (a ``--set`` argument) as (path, value); the value is read as TOML (numbers, true/false,
     lists, quoted strings) and, when it is not TOML, taken as a bare string (``run.workdir=runs/b``)."""
@@ -413,12 +330,11 @@ def parse_override(text: str) -> tuple[str, Any]:
     section, name = path.split(".")
     if section not in SECTIONS:
         raise JobError(f"`--set {path}`: `{section}` is not a known table; allowed: {', '.join(SECTIONS)}"
-                       f"{_hint(section, list(SECTIONS))}")
-    known = [key.name for key in SCHEMA if key.section == section] + [
-        old.split(".")[1] for old in RENAMED if old.startswith(section + ".")]
+                       f"{hint(section, list(SECTIONS))}")
+    known = [key.name for key in SCHEMA if key.section == section]
     if name not in known:
         raise JobError(f"`--set {path}`: `{path}` is not a known key; allowed: "
-                       f"{', '.join(k for k in known if f'{section}.{k}' not in RENAMED)}{_hint(name, known)}")
+                       f"{', '.join(known)}{hint(name, known)}")
     text_value = value_text.strip()
     if "\n" in text_value or "\r" in text_value:
         raise JobError(f"`--set {path}`: the value must be one line; got {text_value!r}")
@@ -426,20 +342,13 @@ def parse_override(text: str) -> tuple[str, Any]:
         value = tomllib.loads(f"v = {text_value}")["v"]
     except tomllib.TOMLDecodeError:
         value = text_value
-    key = KEYS[RENAMED[path][0]] if path in RENAMED else KEYS[path]
-    if key.kind in _TEXT_KINDS and not isinstance(value, (str, list)):
+    if KINDS[KEYS[path].kind].text and not isinstance(value, (str, list)):
         value = text_value  # a text key takes the text as typed: data.target=16, run.workdir=2024, data.header=no
     return path, value
 
 
-_TEXT_KINDS = ("file", "text", "choice", "output", "names", "columns")
-"""Key kinds whose values are text: a --set value that TOML reads as a number, a date or true/false stays text."""
-
-
 def apply_overrides(raw: dict[str, Any], sets: list[str] | tuple[str, ...]) -> dict[str, Any]:
     """A copy of the job ``raw`` (nested dicts, as read from TOML) with each ``--set`` assignment applied in order.
-
-    Setting a renamed key under either name replaces the file's value under the other name.
     """
     if isinstance(sets, str):
         raise JobError(f"overrides must be a list of section.key=value strings; got the single string {sets!r}")
@@ -450,10 +359,6 @@ def apply_overrides(raw: dict[str, Any], sets: list[str] | tuple[str, ...]) -> d
         table = raw.setdefault(section, {})
         if not isinstance(table, dict):
             raise JobError(f"`{section}` must be a table; got {table!r}")
-        for old, (new, _) in RENAMED.items():  # one key, two names: the assignment replaces both
-            if path in (old, new):
-                for other in (old, new):
-                    table.pop(other.split(".")[1], None)
         table[name] = value
     return raw
 
@@ -465,13 +370,13 @@ def _check_keys(section: str, table: object) -> dict:
     for name in table:
         if name not in allowed:
             raise JobError(f"`{section}.{name}` is not a known key; allowed: {', '.join(allowed)}"
-                           f"{_hint(name, allowed)}")
+                           f"{hint(name, allowed)}")
     return table
 
 
 def _section(section: str, table: dict) -> dict[str, Any]:
     """The table-driven pass over one section: every key checked, absent ones take the table's default."""
-    return {key.name: _check(key, table.get(key.name, None if key.default is REQUIRED else key.default))
+    return {key.name: check(key, table.get(key.name, None if key.default is REQUIRED else key.default))
             for key in SCHEMA if key.section == section}
 
 
@@ -486,7 +391,7 @@ def model_spec(table: dict[str, Any]) -> ModelSpec:
     m["activation"] = act if isinstance(act, list) else [act] * n_hidden
     loss, output = m["loss"], m["output"]
     if loss == "squared_error":
-        _choice("model.output", output, KEYS["model.output"].choices)
+        choice("model.output", output, KEYS["model.output"].choices)
     elif output not in ("auto", IMPLIED_OUTPUT[loss]):
         raise JobError(f"`model.output` is implied by `model.loss` = {loss!r}; leave it out; got {output!r}")
     return ModelSpec(**m)
@@ -499,23 +404,21 @@ def job_from_dict(raw: dict[str, Any], base: str | Path = ".", overrides: list[s
     before validation; the job records them (:attr:`Job.overrides`).
     """
     raw = apply_overrides(raw, overrides)
-    notices = _renamed(raw)
     for section in raw:
         if section not in SECTIONS:
             raise JobError(f"`{section}` is not a known table; allowed: {', '.join(SECTIONS)}"
-                           f"{_hint(section, list(SECTIONS))}")
+                           f"{hint(section, list(SECTIONS))}")
     if "model" not in raw:
         raise JobError("`model` table is missing; it needs at least `model.layers`")
     tables = {s: _check_keys(s, raw.get(s, {})) for s in SECTIONS}
     model = model_spec(tables["model"])
-    data, optimizer, run = (_SPECS[s](**_section(s, tables[s])) for s in ("data", "optimizer", "run"))
+    data, optimizer, run = (SPECS[s](**_section(s, tables[s])) for s in ("data", "optimizer", "run"))
     if run.reduction == "exact" and run.global_batch % run.exact_chunk:
         raise JobError(f"`run.global_batch` must be a multiple of `run.exact_chunk` = {run.exact_chunk} when "
                        f"`run.reduction` = 'exact'; got {run.global_batch}")
     _check_data(data, model)
     _check_best(run, data, model)
-    return Job(model=model, data=data, optimizer=optimizer, run=run, base=str(base), overrides=tuple(overrides),
-               notices=tuple(notices))
+    return Job(model=model, data=data, optimizer=optimizer, run=run, base=str(base), overrides=tuple(overrides))
 
 
 def _check_data(data: DataSpec, model: ModelSpec) -> None:
@@ -602,30 +505,13 @@ def job_toml(job: Job) -> str:
     return "\n".join(lines) + "\n"
 
 
-def _allowed(key: Key) -> str:
-    if key.allowed:
-        return key.allowed
-    if key.kind == "choice":
-        return ", ".join(sorted(key.choices))
-    if key.kind == "names":
-        return ", ".join(sorted(key.choices)) + "; or a list of them"
-    if key.kind == "flag":
-        return "true, false"
-    if key.kind == "layers":
-        return "a list of ≥ 2 positive integers"
-    integer = "integer " if key.kind == "integer" else ""
-    if key.high is None:
-        return f"{integer}{'>' if key.low_open else '≥'} {key.low:g}"
-    return f"{integer}{'(' if key.low_open else '['}{key.low:g}, {key.high:.12g}]"  # :g would show 0.999999999 as 1
-
-
 def defaults_markdown() -> str:
     """Every job key as a Markdown table (key, default, allowed, meaning): the block between README's markers."""
     rows = ["| key | default | allowed | meaning |", "|---|---|---|---|"]
     for key in SCHEMA:
         mark = "" if key.trajectory else " †"
         default = "required" if key.default is REQUIRED else f"`{_toml(key.default)}`"
-        rows.append(f"| `{key.path}`{mark} | {default} | {_allowed(key)} | {key.meaning} |")
+        rows.append(f"| `{key.path}`{mark} | {default} | {allowed(key)} | {key.meaning} |")
     rows.append("")
     rows.append("† may differ between a checkpoint and the job that resumes it; every other key enters the job "
                 "digest and must match.")

@@ -1,9 +1,8 @@
-"""Changing a job from the command line (``--set``), printing it resolved, renamed keys and flags, the version and
+"""Changing a job from the command line (``--set``), printing it resolved, the 0.2 names refused, the version and
 ``info --json``.
 
 References: values after ``--set`` are read with Python's own TOML reader (tomllib, standard library) and the printed
-job is read back with it; the MB → MiB conversion of the renamed message size follows IEC 80000-13 (1 MB = 10⁶ bytes,
-1 MiB = 2²⁰ bytes); the version is compared with importlib.metadata (standard library); info's figures with the
+job is read back with it; the version is compared with importlib.metadata (standard library); info's figures with the
 libraries' own ``__version__`` and psutil.
 """
 
@@ -79,16 +78,12 @@ def test_the_resolved_job_reads_back_to_the_same_job():
         assert set(tomllib.loads(text)[section]) == set(job.as_dict()[section])  # every key, defaults filled
 
 
-def test_a_renamed_key_is_read_in_its_new_units_with_a_notice():
-    job = job_from_dict({**BASE, "run": {"bucket_mb": 4.0}})
-    assert job.run.message_mib == pytest.approx(4e6 / 2**20)  # IEC 80000-13: MB = 10⁶ bytes, MiB = 2²⁰ bytes
-    assert job.notices == ("`run.bucket_mb` is now `run.message_mib` (read as message_mib = 3.814697265625); the "
-                           "old name is accepted until the next release",)
-    with pytest.raises(JobError, match="give only `run.message_mib`"):
-        job_from_dict({**BASE, "run": {"bucket_mb": 4.0, "message_mib": 4.0}})
-    # an assignment under the new name replaces the file's old one (and the other way round)
-    assert job_from_dict({**BASE, "run": {"bucket_mb": 4.0}}, overrides=["run.message_mib=2"]).run.message_mib == 2
-    assert job_from_dict(BASE, overrides=["run.bucket_mb=1"]).run.message_mib == pytest.approx(1e6 / 2**20)
+def test_a_key_renamed_in_0_2_is_refused_now_naming_the_keys_allowed():
+    # the 0.2 compatibility names were promised for one release only; 0.3 refuses them like any unknown key
+    with pytest.raises(JobError, match=r"`run.bucket_mb` is not a known key; allowed: .*message_mib"):
+        job_from_dict({**BASE, "run": {"bucket_mb": 4.0}})
+    with pytest.raises(JobError, match=r"`--set run.bucket_mb`: `run.bucket_mb` is not a known key"):
+        job_from_dict(BASE, overrides=["run.bucket_mb=1"])
 
 
 @pytest.fixture(scope="module")
@@ -156,20 +151,8 @@ def test_version_and_info_json():
     assert info["blas"] and all(pool["threads"] >= 1 for pool in info["blas"])
 
 
-def test_old_flag_names_work_for_one_release_with_a_notice(tmp_path):
-    from shardmill.commands.cli import modernise
-
-    argv, notices = modernise(["bench", "--batch", "64", "--optimizer=adam", "--warmup", "1", "--bucket-mb", "2"])
-    assert argv == ["bench", "--global-batch", "64", "--method=adam", "--untimed", "1", "--message-mib", "2"]
-    assert len(notices) == 4 and notices[0] == ("`bench --batch` is now `--global-batch`; the old name is accepted "
-                                                "until the next release")
-    assert modernise(["verify", "job.toml", "--json"]) == (["verify", "job.toml", "--json"], [])  # today's switch
-    assert modernise(["verify", "job.toml", "--json", "r.json"])[0] == ["verify", "job.toml", "--out", "r.json"]
-    assert modernise(["verify", "--json", "job.toml"]) == (["verify", "--json", "job.toml"], [])  # JOB, not a report
-    assert modernise(["bench", "--progress", "thread"])[0] == ["bench", "--comm-progress", "thread"]
-    assert modernise(["train", "job.toml", "--out", "x"])[0] == ["train", "job.toml", "--out", "x"]  # not renamed
+def test_a_flag_renamed_in_0_2_is_refused_now(tmp_path):
+    # the 0.2 compatibility flags went with the release after it: argparse refuses them (exit 2) and names them
     make_classification(tmp_path)
-    done = run_cli(["bench", "--layers", "6,8,3", "--batch", "32", "--steps", "2", "--warmup", "1", "--json"],
-                   cwd=tmp_path)
-    assert done.returncode == 0, done.stderr
-    assert json.loads(done.stdout)["global_batch"] == 32 and "`bench --batch` is now" in done.stderr
+    done = run_cli(["bench", "--layers", "6,8,3", "--batch", "32", "--steps", "2", "--json"], cwd=tmp_path)
+    assert done.returncode == 2 and "unrecognized arguments: --batch 32" in done.stderr

@@ -369,12 +369,10 @@ def sharded(tmp_path_factory) -> tuple[dict, Path, str]:
                     {"global_batch": G, "epochs": 1, "seed": 0},
                     optimizer={"method": "adam", "learning_rate": 0.01})
     out = folder / "out"
-    # 0.1's flag names, still accepted for one release with a notice each; the sharded update comes from --set,
-    # which the driver must hand to every worker it starts
-    done = run_cli(["scale", str(job), "--ranks", "1,2", "--steps", "3", "--out", str(out), "--no-progress",
+    # the sharded update comes from --set, which the driver must hand to every worker it starts
+    done = run_cli(["scale", str(job), "--sizes", "1,2", "--steps", "3", "--out-dir", str(out), "--no-progress",
                     "--set", "run.update=sharded"], timeout=150)
     assert done.returncode == 0, done.stderr + done.stdout
-    assert "`scale --ranks` is now `--sizes`" in done.stderr and "`scale --out` is now `--out-dir`" in done.stderr
     return json.loads((out / "scaling.json").read_text()), out, done.stdout
 
 

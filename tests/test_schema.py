@@ -168,3 +168,30 @@ def test_a_key_added_later_enters_the_digest_only_away_from_its_default():
     compact = job_from_dict({**raw, "run": {**raw["run"], "exact_format": "compact"}})
     assert compact.digest() != wide.digest()  # another trajectory, another digest. common practice
     assert compact.trajectory_differences(wide.as_dict()) == ["run.exact_format"]
+
+
+def test_spec_dataclasses_hold_the_schema_keys_in_table_order():
+    # convention: the spec dataclasses are written out (grep and type checkers find their fields) and must say
+    # exactly what the schema table says: the same keys, in table order, with the table's defaults
+    import dataclasses
+
+    for section, spec in config.SPECS.items():
+        fields = dataclasses.fields(spec)
+        keys = [key for key in config.SCHEMA if key.section == section]
+        assert [f.name for f in fields] == [key.name for key in keys]
+        for f, key in zip(fields, keys, strict=True):
+            if f.default is not dataclasses.MISSING:
+                assert f.default == key.default
+            elif f.default_factory is not dataclasses.MISSING:
+                assert f.default_factory() == key.default
+            else:  # no default: a required key, or the activation list whose length follows model.layers
+                assert key.default is config.REQUIRED or key.kind == "names"
+
+
+def test_every_key_kind_is_interpreted_in_one_table():
+    # convention: one entry per kind in checks.KINDS; a key of an unknown kind is refused when the schema is built
+    from shardmill.checks import KINDS
+
+    assert {key.kind for key in config.SCHEMA} <= set(KINDS)
+    with pytest.raises(AssertionError, match="kind 'colour'"):
+        config.Key("model.colour", "colour", "red", "a key of no known kind")

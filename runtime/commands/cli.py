@@ -61,35 +61,6 @@ class _Help(argparse.HelpFormatter):
 # One grammar for every command (README, "Flags"): JOB is a job file; --set changes one of its keys; --ranks N starts
 # N processes; --sizes lists process counts; --json prints JSON on stdout; --out FILE writes a file; --out-dir DIR
 # writes into a folder.
-LEGACY_FLAGS: dict[str, dict[str, str]] = {
-    "bench": {"--batch": "--global-batch", "--optimizer": "--method", "--warmup": "--untimed",
-              "--bucket-mb": "--message-mib", "--progress": "--comm-progress"},
-    "scale": {"--ranks": "--sizes", "--out": "--out-dir"},
-    "demo": {"--out": "--out-dir"},
-    "verify": {"--json": "--out"},  # was a FILE; --json is now the stdout switch (a following path means the old use)
-}
-"""Flags renamed in 0.2, per command: accepted for one release with a one-line notice, then refused."""
-
-
-def modernise(argv: list[str]) -> tuple[list[str], list[str]]:
-    """argv with 0.1's flag names replaced by today's (see :data:`LEGACY_FLAGS`), and the notices to print."""
-    command = next((a for a in argv if not a.startswith("-")), None)
-    renames = LEGACY_FLAGS.get(command or "", {})
-    out, notices = [], []
-    for i, arg in enumerate(argv):
-        flag, eq, value = arg.partition("=")
-        new = renames.get(flag)
-        if new and command == "verify":  # only `--json FILE.json` is the old use; a bare --json is the switch
-            following = argv[i + 1] if i + 1 < len(argv) else ""
-            if not eq and not following.lower().endswith(".json"):
-                new = None
-        if new:
-            notices.append(f"`{command} {flag}` is now `{new}`; the old name is accepted until the next release")
-            arg = new + eq + value
-        out.append(arg)
-    return out, notices
-
-
 def build_parser() -> argparse.ArgumentParser:
     from shardmill.version import __version__
 
@@ -236,52 +207,35 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv: list[str] | None = None) -> int:
-    argv, notices = modernise(list(sys.argv[1:] if argv is None else argv))
+    argv = list(sys.argv[1:] if argv is None else argv)
     args = build_parser().parse_args(argv)
     if args.command in ("train", "verify", "bench") and args.ranks and not os.environ.get(LAUNCHED):
-        for text in notices:
-            print(f"shardmill: notice: {text}", file=sys.stderr, flush=True)
         return relaunch(args.ranks, strip_ranks(argv))
     from shardmill.parallel.comm import run_guarded
 
-    return run_guarded(lambda: dispatch(args, notices), user_errors=(JobError,))
+    return run_guarded(lambda: dispatch(args), user_errors=(JobError,))
 
 
-def _lead() -> bool:
-    """Rank 0 of the world (or no MPI launch at all): the process that prints notices."""
-    from mpi4py import MPI
-
-    return MPI.COMM_WORLD.Get_rank() == 0
-
-
-def read_job(args: argparse.Namespace, notices: list[str] | None = None):
-    """The job of a command (its JOB and --set), with renamed-key notices printed once (rank 0)."""
+def read_job(args: argparse.Namespace):
+    """The job of a command: its JOB file with the --set assignments applied."""
     from shardmill.config import load_job
 
-    job = load_job(args.job, overrides=args.sets)
-    if _lead():
-        for text in [*(notices or []), *job.notices]:
-            print(f"shardmill: notice: {text}", file=sys.stderr, flush=True)
-    return job
+    return load_job(args.job, overrides=args.sets)
 
 
-def dispatch(args: argparse.Namespace, notices: list[str] | None = None) -> int:
-    notices = notices or []
-    if not hasattr(args, "job") and notices and _lead():
-        for text in notices:
-            print(f"shardmill: notice: {text}", file=sys.stderr, flush=True)
+def dispatch(args: argparse.Namespace) -> int:
     if args.command == "train":
-        return cmd_train(args, notices)
+        return cmd_train(args)
     if args.command == "verify":
         from shardmill.training.verify import cmd_verify
 
-        return cmd_verify(args, read_job(args, notices))
+        return cmd_verify(args, read_job(args))
     if args.command == "bench":
         return cmd_bench(args)
     if args.command == "scale":
         from shardmill.scaling.driver import cmd_scale
 
-        return cmd_scale(args, read_job(args, notices))
+        return cmd_scale(args, read_job(args))
     if args.command == "predict":
         from shardmill.commands.predict import cmd_predict
 
@@ -299,13 +253,13 @@ def dispatch(args: argparse.Namespace, notices: list[str] | None = None) -> int:
 
         return cmd_curves(args)
     if args.command == "resolve":
-        return cmd_resolve(args, notices)
+        return cmd_resolve(args)
     if args.command == "saves":
         from shardmill.commands.saves import cmd_saves
 
         return cmd_saves(args)
     if args.command == "compile":
-        return cmd_compile(args, notices)
+        return cmd_compile(args)
     if args.command == "info":
         from shardmill.commands.info import cmd_info
 
@@ -317,11 +271,11 @@ def dispatch(args: argparse.Namespace, notices: list[str] | None = None) -> int:
     raise AssertionError(args.command)
 
 
-def cmd_resolve(args: argparse.Namespace, notices: list[str]) -> int:
+def cmd_resolve(args: argparse.Namespace) -> int:
     """``shardmill resolve JOB``: the job checked, printed with every key (TOML, or JSON with --json)."""
     from shardmill.config import job_toml
 
-    job = read_job(args, notices)
+    job = read_job(args)
     if args.json:
         print(json.dumps({"job": job.as_dict(), "job_digest": job.digest(), "overrides": list(job.overrides),
                           "workdir": str(job.workdir)}, indent=1))
@@ -330,11 +284,11 @@ def cmd_resolve(args: argparse.Namespace, notices: list[str]) -> int:
     return 0
 
 
-def cmd_train(args: argparse.Namespace, notices: list[str]) -> int:
+def cmd_train(args: argparse.Namespace) -> int:
     from shardmill.parallel.comm import Comm
     from shardmill.training.trainer import TrainingStopped, train
 
-    job = read_job(args, notices)
+    job = read_job(args)
     comm = Comm()
     try:
         result = train(job, comm, resume=args.resume, progress=not args.no_progress, echo=True, fresh=args.fresh)
@@ -356,14 +310,14 @@ def cmd_train(args: argparse.Namespace, notices: list[str]) -> int:
     return 0
 
 
-def cmd_compile(args: argparse.Namespace, notices: list[str]) -> int:
+def cmd_compile(args: argparse.Namespace) -> int:
     """Compile what the job's step runs (its dtype, activations, loss, optimizer, exchange) on made-up rows."""
     from shardmill.commands.bench import synthetic_dataset
     from shardmill.machine import numba_cache_dir
     from shardmill.parallel.comm import Comm
     from shardmill.training.trainer import Trainer, warm_up_kernels
 
-    job = read_job(args, notices)
+    job = read_job(args)
     comm = Comm()
     m = job.model
     dataset = synthetic_dataset(m.layers, m.loss, max(4 * job.run.global_batch, 64), m.dtype)

@@ -11,24 +11,24 @@ from shardmill.machine import numba_cache_dir
 
 def facts() -> dict[str, Any]:
     """What ``shardmill info --json`` prints: versions, MPI, cores, memory, BLAS pools and the Numba cache."""
-    import mpi4py
     import numba
     import numpy as np
     import psutil
-    from mpi4py import MPI
+    from shardmill.parallel.comm import library
     from shardmill.version import __version__
     from threadpoolctl import threadpool_info
 
+    mpi = library()
     return {
         "shardmill": __version__,
         "python": platform.python_version(),
         "python_executable": sys.executable,
         "numpy": np.__version__,
         "numba": numba.__version__,
-        "mpi4py": mpi4py.__version__,
-        "mpi_library": MPI.Get_library_version().splitlines()[0].strip(),
-        "mpi_standard": ".".join(map(str, MPI.Get_version())),
-        "world_size": MPI.COMM_WORLD.Get_size(),
+        "mpi4py": mpi["mpi4py"],
+        "mpi_library": mpi["mpi_library"],
+        "mpi_standard": mpi["mpi_standard"],
+        "world_size": mpi["world_size"],
         "cores_physical": psutil.cpu_count(logical=False),
         "cores_logical": psutil.cpu_count(),
         "memory_gib": psutil.virtual_memory().total / 2**30,

@@ -52,6 +52,11 @@ class Comm:
         node.Free()
         return bool(self.allreduce_max(alone)[0])
 
+    @classmethod
+    def alone(cls) -> Comm:
+        """This process by itself (MPI_COMM_SELF): a serial run inside a parallel job (``verify``)."""
+        return cls(MPI.COMM_SELF)
+
     def duplicate(self) -> Comm:
         """A Comm over a duplicate of this communicator (MPI_Comm_dup): every rank calls it at the same point.
 
@@ -167,6 +172,22 @@ class Comm:
     def abort(self, code: int = 1) -> None:
         """End every rank of the job now (after :data:`ABORT_GRACE_S`, so this rank's messages get out)."""
         abort_world(code, self.comm)
+
+
+THREAD_LEVELS = {MPI.THREAD_SINGLE: "single", MPI.THREAD_FUNNELED: "funneled", MPI.THREAD_SERIALIZED: "serialized",
+                 MPI.THREAD_MULTIPLE: "multiple"}
+"""MPI's thread support levels as words."""
+
+
+def library() -> dict[str, Any]:
+    """The MPI this process runs on: mpi4py's version, the library's first line, the standard, the thread level
+    it was initialised with (a word of :data:`THREAD_LEVELS`) and the world's size."""
+    import mpi4py
+
+    return {"mpi4py": mpi4py.__version__, "mpi_library": MPI.Get_library_version().splitlines()[0].strip(),
+            "mpi_standard": ".".join(map(str, MPI.Get_version())),
+            "mpi_thread_level": THREAD_LEVELS.get(MPI.Query_thread(), str(MPI.Query_thread())),
+            "world_size": MPI.COMM_WORLD.Get_size()}
 
 
 def abort_world(code: int, comm: Any = None) -> None:

@@ -63,14 +63,14 @@ def global_batch_at(job: Job, p: int, mode: str) -> int:
 
 def cmd_scale(args: argparse.Namespace, job: Job | None = None) -> int:
     """`shardmill scale JOB --sizes 1,2,4 --mode strong|weak --out-dir DIR`: run, measure, model, report."""
-    from mpi4py import MPI
+    from shardmill.parallel.comm import Comm
 
     ranks = parse_counts(args.sizes, "--sizes")
     if 1 not in ranks:
         raise JobError(f"`--sizes` must include 1, the serial baseline of speedup and efficiency; got {args.sizes!r}")
     project_to = parse_counts(args.project, "--project")
     network = parse_network_option(args.network)
-    if MPI.COMM_WORLD.Get_size() > 1:
+    if Comm().size > 1:
         raise JobError("`shardmill scale` starts its own mpiexec runs; start it as one process, without mpiexec")
     sets = list(getattr(args, "sets", []))
     job = job if job is not None else load_job(args.job, overrides=sets)

@@ -37,7 +37,8 @@ class Loss:
     output activation of the logits Z into O, where the kernel does it (nothing otherwise: the forward did).
     class_labels: targets are integer class labels (n,) in [0, k); else real targets (n, k), within
     target_range when given. targets_text: the targets in words (docs).
-    metric: the second metric's name in metrics.jsonl ("accuracy" or "rmse"). quality_sum(O, targets) → its sum
+    metric: the second metric's name in metrics.jsonl ("accuracy" or "rmse"), metric_text: it in words (docs).
+    quality_sum(O, targets) → its sum
     over a batch (a Numba kernel); metric_of(sum, rows, k) → the metric from the sums over all batches.
     metric_reference(o, targets) → the same metric in numpy, from float64 outputs o (n, k).
     labels(outputs) → what ``Predictor.predict`` returns (None: the outputs themselves); label_rule: that in words.
@@ -57,6 +58,7 @@ class Loss:
     target_range: tuple[float, float] | None
     targets_text: str
     metric: str
+    metric_text: str
     quality_sum: Callable[[np.ndarray, np.ndarray], float]
     metric_of: Callable[[float, float, int], float]
     metric_reference: Callable[[np.ndarray, np.ndarray], float]
@@ -212,7 +214,8 @@ _TABLE = (
     Loss("softmax_cross_entropy", kernels.SOFTMAX_CROSS_ENTROPY, "softmax", True,
          _softmax_cross_entropy, _softmax_outputs, class_labels=True, target_range=None,
          targets_text="integer class labels (n,) in [0, k)",
-         metric="accuracy", quality_sum=kernels.count_correct, metric_of=_fraction_of_rows,
+         metric="accuracy", metric_text="the share of rows whose label is the class",
+         quality_sum=kernels.count_correct, metric_of=_fraction_of_rows,
          metric_reference=_class_accuracy,
          labels=lambda outputs: outputs.argmax(axis=1).astype(np.int64),
          label_rule="the index of the largest output, (n,) int64",
@@ -222,7 +225,8 @@ _TABLE = (
     Loss("binary_cross_entropy", kernels.BINARY_CROSS_ENTROPY, "sigmoid", True,
          _binary_cross_entropy, _sigmoid_outputs, class_labels=False, target_range=(0.0, 1.0),
          targets_text="0/1 targets (n, k) (any value in [0, 1])",
-         metric="accuracy", quality_sum=kernels.count_correct_binary, metric_of=_fraction_of_outputs,
+         metric="accuracy", metric_text="the share of outputs whose label is the target's (t > 0.5)",
+         quality_sum=kernels.count_correct_binary, metric_of=_fraction_of_outputs,
          metric_reference=_output_accuracy,
          labels=lambda outputs: (outputs > 0.5).astype(np.int64),
          label_rule="1 where an output exceeds 0.5, else 0, (n, k) int64",
@@ -232,7 +236,8 @@ _TABLE = (
     Loss("squared_error", kernels.SQUARED_ERROR, "identity", False,
          _squared_error, _outputs_already_there, class_labels=False, target_range=None,
          targets_text="real targets (n, k)",
-         metric="rmse", quality_sum=kernels.squared_error_sum, metric_of=_root_mean_square,
+         metric="rmse", metric_text="√(Σ (o − t)² / (n·k)) over every output",
+         quality_sum=kernels.squared_error_sum, metric_of=_root_mean_square,
          metric_reference=_rmse,
          labels=None,
          label_rule="none: the outputs are the prediction",
@@ -256,7 +261,8 @@ def markdown() -> str:
             "|---|---|---|---|---|---|"]
     for name, entry in LOSSES.items():
         output = f"{entry.output} (or `model.output`)" if entry.output_choosable else entry.output
-        cells = (name, entry.targets_text, entry.formula, output, entry.label_rule, entry.metric)
+        cells = (name, entry.targets_text, entry.formula, output, entry.label_rule,
+                 f"{entry.metric}: {entry.metric_text}")
         rows.append("| " + " | ".join(cell.replace("|", "\\|") for cell in cells) + " |")
     return "\n".join(rows) + "\n"
 

@@ -23,8 +23,8 @@ CODES = {
     "softplus": SOFTPLUS,
 }
 LEAKY_SLOPE = 0.01
-_GELU_C = math.sqrt(2.0 / math.pi)  # tanh approximation of Hendrycks & Gimpel 2016
-_GELU_K = 0.044715
+GELU_C = math.sqrt(2.0 / math.pi)  # tanh approximation of Hendrycks & Gimpel 2016
+GELU_K = 0.044715
 
 
 @njit(cache=True, inline="always")
@@ -54,7 +54,7 @@ def forward(code, z):
     if code == LEAKY_RELU:
         return max(z, 0.0) + LEAKY_SLOPE * min(z, 0.0)
     if code == GELU:
-        return 0.5 * z * (1.0 + math.tanh(_GELU_C * (z + _GELU_K * z * z * z)))
+        return 0.5 * z * (1.0 + math.tanh(GELU_C * (z + GELU_K * z * z * z)))
     if code == SOFTPLUS:
         return softplus(z)
     return z
@@ -73,8 +73,8 @@ def derivative(code, z, a):
     if code == LEAKY_RELU:
         return LEAKY_SLOPE + (1.0 - LEAKY_SLOPE) * (z > 0.0)
     if code == GELU:
-        t = math.tanh(_GELU_C * (z + _GELU_K * z * z * z))
-        return 0.5 * (1.0 + t) + 0.5 * z * (1.0 - t * t) * _GELU_C * (1.0 + 3.0 * _GELU_K * z * z)
+        t = math.tanh(GELU_C * (z + GELU_K * z * z * z))
+        return 0.5 * (1.0 + t) + 0.5 * z * (1.0 - t * t) * GELU_C * (1.0 + 3.0 * GELU_K * z * z)
     if code == SOFTPLUS:
         return sigmoid(z)  # d/dz log(1 + e^z) = σ(z)
     return 1.0

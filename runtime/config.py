@@ -21,17 +21,17 @@ from typing import Any
 
 from shardmill.checks import KINDS, allowed, check, choice, hint
 from shardmill.errors import JobError
+from shardmill.model.activations import ACTIVATIONS as ACTIVATION_TABLE
+from shardmill.model.losses import LOSSES as LOSS_TABLE
 
-ACTIVATIONS = ("identity", "sigmoid", "tanh", "relu", "leaky_relu", "gelu", "softplus")
-LOSSES = ("softmax_cross_entropy", "binary_cross_entropy", "squared_error")
+ACTIVATIONS = tuple(ACTIVATION_TABLE)  # the names of the tables' entries (model/activations.py, model/losses.py)
+LOSSES = tuple(LOSS_TABLE)
 DTYPES = ("float32", "float64")
 INITS = ("he", "glorot")
 METHODS = ("sgd", "momentum", "nesterov", "adam", "adamw")
 SCHEDULES = ("constant", "step", "cosine")
 REDUCTIONS = ("fast", "exact")
 BEST_METRICS = ("validation.loss", "validation.accuracy", "validation.rmse")  # metrics.jsonl's own field paths
-# The output activation each loss implies; only squared_error lets the job choose another (`model.output`).
-IMPLIED_OUTPUT = {"softmax_cross_entropy": "softmax", "binary_cross_entropy": "sigmoid", "squared_error": "identity"}
 
 
 class _Required:
@@ -390,9 +390,9 @@ def model_spec(table: dict[str, Any]) -> ModelSpec:
                        f"layer); got a list of {len(act)}")
     m["activation"] = act if isinstance(act, list) else [act] * n_hidden
     loss, output = m["loss"], m["output"]
-    if loss == "squared_error":
+    if LOSS_TABLE[loss].output_choosable:  # else the loss implies its output activation
         choice("model.output", output, KEYS["model.output"].choices)
-    elif output not in ("auto", IMPLIED_OUTPUT[loss]):
+    elif output not in ("auto", LOSS_TABLE[loss].output):
         raise JobError(f"`model.output` is implied by `model.loss` = {loss!r}; leave it out; got {output!r}")
     return ModelSpec(**m)
 
@@ -443,11 +443,9 @@ def _check_best(run: RunSpec, data: DataSpec, model: ModelSpec) -> None:
     if data.validation_fraction == 0:
         raise JobError(f"`run.best_metric` = {run.best_metric!r} needs validation rows; "
                        f"`data.validation_fraction` is 0")
-    name = run.best_metric.split(".")[1]
-    regression = model.loss == "squared_error"
-    if (name == "accuracy" and regression) or (name == "rmse" and not regression):
-        allowed = "validation.loss, validation.rmse" if regression else "validation.loss, validation.accuracy"
-        raise JobError(f"`run.best_metric` must be one of {allowed} with `model.loss` = {model.loss!r}; "
+    offered = LOSS_TABLE[model.loss].best_metrics
+    if run.best_metric not in offered:
+        raise JobError(f"`run.best_metric` must be one of {', '.join(offered)} with `model.loss` = {model.loss!r}; "
                        f"got {run.best_metric!r}")
 
 

@@ -17,10 +17,11 @@ import scipy.special
 from helpers import run_cli
 from shardmill.checkpoint import CheckpointError, best_name, load, resolve
 from shardmill.commands import export
-from shardmill.commands.export import ACTIVATION_FORMULAS, cmd_export, export_onnx, model_card
+from shardmill.commands.export import cmd_export, export_onnx, model_card
 from shardmill.commands.predict import cmd_predict
 from shardmill.config import job_from_dict
 from shardmill.errors import JobError
+from shardmill.model.activations import FORMULAS as ACTIVATION_FORMULAS
 from shardmill.model.mlp import MLP
 from shardmill.model.predictor import Predictor, load_model
 from shardmill.training.trainer import Trainer, train

@@ -9,6 +9,7 @@ from shardmill.config import default, job_from_dict
 from shardmill.data.dataset import Dataset
 from shardmill.data.rows import Split
 from shardmill.machine import machine
+from shardmill.model.losses import LOSSES
 from shardmill.parallel.comm import Comm
 from shardmill.timing import median, slowest_call, time_call
 from shardmill.training.trainer import Trainer, warm_up_kernels
@@ -19,13 +20,7 @@ def synthetic_dataset(layers: list[int], loss: str, rows: int, dtype: str, seed:
     """Random standard-normal inputs and random targets of the right kind, already standardised."""
     rng = np.random.default_rng(seed)
     X = rng.standard_normal((rows, layers[0])).astype(dtype)
-    k = layers[-1]
-    if loss == "softmax_cross_entropy":
-        targets = rng.integers(0, k, size=rows).astype(np.int64)
-    elif loss == "binary_cross_entropy":
-        targets = rng.integers(0, 2, size=(rows, k)).astype(dtype)
-    else:
-        targets = rng.standard_normal((rows, k)).astype(dtype)
+    targets = LOSSES[loss].synthetic_targets(rng, rows, layers[-1], dtype)
     split = Split(train=np.arange(rows, dtype=np.int64), validation=np.zeros(0, dtype=np.int64))
     return Dataset(X=X, targets=targets, split=split, mean=np.zeros(layers[0]), inv_std=np.ones(layers[0]))
 

@@ -9,8 +9,9 @@ The standardisation stays two nodes (Sub input_mean, Mul input_inv_std) in float
 inputs to float64 for those two nodes and back. Folding them into W0 and b0 would be one matrix product less, but
 b0 − (mean · inv_std) W0 cancels when a column's mean is large against its spread, and the float32 graph would
 lose digits training never lost. Every activation is written out in the same primitive operations as its kernel
-(``kernels/activations.py``, ``kernels/losses.py``), so the graph means exactly our definition whatever the runtime:
-no fused GELU or Softplus op, whose definitions differ (erf or tanh form; log(1 + eˣ) without the stable split).
+(its entry's ONNX form in ``model/activations.py``, after ``kernels/activations.py`` and ``kernels/losses.py``), so
+the graph means exactly our definition whatever the runtime: no fused GELU or Softplus op, whose definitions differ
+(erf or tanh form; log(1 + eˣ) without the stable split).
 """
 
 from __future__ import annotations
@@ -25,7 +26,7 @@ import onnx
 from onnx import TensorProto, helper, numpy_helper
 from shardmill.checkpoint import resolve
 from shardmill.errors import JobError
-from shardmill.kernels import activations as act
+from shardmill.model.activations import OUTPUTS
 from shardmill.model.predictor import Predictor, load_model
 
 MIN_OPSET = 13  # ReduceSum takes its axes as an input, GreaterOrEqual exists
@@ -36,28 +37,6 @@ EXTERNAL_DATA_BYTES = 1 << 30
 
 CARD_FORMAT = "shardmill-model-card"
 CARD_VERSION = 1
-
-ACTIVATION_FORMULAS = {
-    "identity": "f(z) = z",
-    "relu": "f(z) = max(z, 0)",
-    "leaky_relu": f"f(z) = max(z, 0) + {act.LEAKY_SLOPE}·min(z, 0)",
-    "gelu": f"f(z) = 0.5·z·(1 + tanh(√(2/π)·(z + {act._GELU_K}·z³))) (tanh form of Hendrycks & Gimpel 2016)",
-    "softplus": "f(z) = max(z, 0) + log1p(exp(−|z|))",
-    "sigmoid": "f(z) = 1 / (1 + exp(−z)) for z ≥ 0, exp(z) / (1 + exp(z)) for z < 0",
-    "tanh": "f(z) = tanh(z)",
-    "softmax": "f(z)_j = exp(z_j − max_i z_i) · (1 / Σ_i exp(z_i − max_i z_i)), per row",
-}
-LOSS_FORMULAS = {
-    "softmax_cross_entropy": "per row: logsumexp(z) − z_y, z the logits, y the class index",
-    "binary_cross_entropy": "per output: max(z, 0) + log1p(exp(−|z|)) − t·z, z the logit, t the 0/1 target",
-    "squared_error": "per row: ½ Σ_j (o_j − t_j)², o the outputs after the output activation",
-}
-LABEL_RULES = {
-    "softmax_cross_entropy": "the index of the largest output, (n,) int64",
-    "binary_cross_entropy": "1 where an output exceeds 0.5, else 0, (n, k) int64",
-    "squared_error": "none: the outputs are the prediction",
-}
-
 
 class _GraphBuilder:
     """Nodes and initializers of one graph, in the model's element type, with fresh tensor names."""
@@ -99,51 +78,16 @@ class _GraphBuilder:
         return self.op(op_type, x, scope=scope, axes=[1], keepdims=1)
 
     def activation(self, name: str, z: str, scope: str) -> str:
-        """f(z) for the activation ``name``, in the operations and order of its kernel."""
-        op, c = self.op, self.scalar
-        if name == "identity":
-            return z
-        if name == "relu":
-            return op("Relu", z, scope=scope)  # max(z, 0)
-        if name == "leaky_relu":  # max(z, 0) + slope·min(z, 0), the slope in the model's dtype (not a float attr)
-            return op("Add", op("Max", z, c(0.0), scope=scope),
-                      op("Mul", c(act.LEAKY_SLOPE), op("Min", z, c(0.0), scope=scope), scope=scope), scope=scope)
-        if name == "gelu":  # 0.5·z·(1 + tanh(C·(z + K·z·z·z))), multiplied left to right as the kernel does
-            cube = op("Mul", op("Mul", op("Mul", c(act._GELU_K), z, scope=scope), z, scope=scope), z, scope=scope)
-            t = op("Tanh", op("Mul", c(act._GELU_C), op("Add", z, cube, scope=scope), scope=scope), scope=scope)
-            return op("Mul", op("Mul", c(0.5), z, scope=scope), op("Add", c(1.0), t, scope=scope), scope=scope)
-        if name == "softplus":  # max(z, 0) + log1p(e^{−|z|})
-            u = op("Exp", op("Neg", op("Abs", z, scope=scope), scope=scope), scope=scope)
-            return op("Add", op("Max", z, c(0.0), scope=scope), self.log1p(u, scope), scope=scope)
-        if name == "sigmoid":  # e = e^{−|z|}: 1 / (1 + e) for z ≥ 0, e / (1 + e) for z < 0
-            e = op("Exp", op("Neg", op("Abs", z, scope=scope), scope=scope), scope=scope)
-            numerator = op("Where", op("GreaterOrEqual", z, c(0.0), scope=scope), c(1.0), e, scope=scope)
-            return op("Div", numerator, op("Add", c(1.0), e, scope=scope), scope=scope)
-        if name == "tanh":
-            return op("Tanh", z, scope=scope)
-        if name == "softmax":  # e = exp(z − row max); e · (1 / Σ e), as losses.softmax_rows
-            e = op("Exp", op("Sub", z, self.reduce("ReduceMax", z, scope), scope=scope), scope=scope)
-            return op("Mul", e, op("Reciprocal", self.reduce("ReduceSum", e, scope), scope=scope), scope=scope)
-        raise ValueError(f"no ONNX form for activation {name!r}")
-
-    def log1p(self, u: str, scope: str) -> str:
-        """log(1 + u) to a few ulps without a log1p op: w = 1 + u; u where w − 1 = 0, else u·log(w) / (w − 1)
-        (Goldberg 1991, Theorem 4). The other branch's 0/0 is computed and not selected."""
-        op, c = self.op, self.scalar
-        w = op("Add", c(1.0), u, scope=scope)
-        w_minus_1 = op("Sub", w, c(1.0), scope=scope)
-        ratio = op("Div", op("Mul", u, op("Log", w, scope=scope), scope=scope), w_minus_1, scope=scope)
-        return op("Where", op("Equal", w_minus_1, c(0.0), scope=scope), u, ratio, scope=scope)
+        """f(z) for the activation ``name``, in the operations and order of its kernel (the entry's ONNX form)."""
+        if name not in OUTPUTS:
+            raise ValueError(f"no ONNX form for activation {name!r}")
+        return OUTPUTS[name].onnx(self, z, scope)
 
 
 def output_activation(predictor: Predictor) -> str:
-    """The output layer's activation: softmax, sigmoid, or ``model.output`` of a squared_error model."""
-    model = predictor.model
-    if model.loss == "softmax_cross_entropy":
-        return "softmax"
-    if model.loss == "binary_cross_entropy":
-        return "sigmoid"
-    return model.output
+    """The output layer's activation: the one the loss implies (softmax, sigmoid), or ``model.output`` where the
+    loss lets the job choose it (MLP resolves "auto" to the implied one)."""
+    return predictor.model.output
 
 
 def check_opset(opset: int) -> int:
@@ -264,7 +208,7 @@ def model_card(predictor: Predictor, source: Path) -> dict[str, Any]:
     activations = [*model.activations, output_activation(predictor)]
     layers = [{"index": l, "weights": f"W{l}", "bias": f"b{l}", "fan_in": model.sizes[l],
                "fan_out": model.sizes[l + 1], "activation": activations[l],
-               "formula": ACTIVATION_FORMULAS[activations[l]]} for l in range(model.n_layers)]
+               "formula": OUTPUTS[activations[l]].formula} for l in range(model.n_layers)]
     mean, inv_std = predictor.input_mean, predictor.input_inv_std
     return {
         "format": CARD_FORMAT,
@@ -284,10 +228,10 @@ def model_card(predictor: Predictor, source: Path) -> dict[str, Any]:
         "output": {
             "count": model.sizes[-1],
             "activation": activations[-1],
-            "formula": ACTIVATION_FORMULAS[activations[-1]],
+            "formula": OUTPUTS[activations[-1]].formula,
             "loss": model.loss,
-            "loss_formula": LOSS_FORMULAS[model.loss],
-            "labels": LABEL_RULES[model.loss],
+            "loss_formula": model.loss_entry.formula,
+            "labels": model.loss_entry.label_rule,
         },
         "training": {"job": predictor.job, "digest": predictor.digest, "step": predictor.step},
         "metrics": last_epoch_record(_workdir_of(source), predictor.step),

@@ -10,7 +10,8 @@ import numpy as np
 from shardmill.data.files import read_array, read_inputs
 from shardmill.data.rows import squeeze_labels
 from shardmill.errors import JobError
-from shardmill.model.predictor import CLASSIFIER_LOSSES, Predictor, load_model, metrics
+from shardmill.model.losses import CLASSIFIER_LOSSES
+from shardmill.model.predictor import Predictor, load_model, metrics
 
 OUTPUT_SUFFIXES = (".npy", ".csv")
 

@@ -15,6 +15,7 @@ from shardmill.config import Job
 from shardmill.data.rows import squeeze_labels
 from shardmill.data.tables import _errors, _listing, cached_columns, describe, is_table, read_table, select
 from shardmill.errors import JobError
+from shardmill.model.losses import LOSSES
 
 if TYPE_CHECKING:
     from shardmill.parallel.comm import Comm  # not at run time: predict reads files without MPI
@@ -63,12 +64,8 @@ def _names(value: str | list[str]) -> list[str]:
 
 def _labels(y: np.ndarray, loss: str) -> np.ndarray:
     """Class labels read from a table arrive as float64; whole numbers become int64 (as ``MLP.check_targets``
-    takes them). Anything else is left for ``check_targets`` to refuse with its row."""
-    if loss == "softmax_cross_entropy" and y.ndim == 1 and y.dtype.kind == "f":
-        finite = np.isfinite(y)
-        if finite.all() and np.array_equal(y, np.round(y)):
-            return y.astype(np.int64)
-    return y
+    takes them). Anything else is left for ``check_targets`` to refuse with its row (``Loss.table_labels``)."""
+    return LOSSES[loss].table_labels(y)
 
 
 def open_job_data(job: Job, comm: Comm) -> tuple[np.ndarray, np.ndarray, list[str] | None]:

@@ -11,12 +11,11 @@ from __future__ import annotations
 from collections.abc import Iterator
 
 import numpy as np
-from shardmill.config import IMPLIED_OUTPUT, Job, default, model_spec
+from shardmill.config import Job, default, model_spec
 from shardmill.errors import JobError
 from shardmill.kernels import activations as act
-from shardmill.kernels import losses
-
-RELU_FAMILY = ("relu", "leaky_relu", "gelu", "softplus")
+from shardmill.model.activations import ACTIVATIONS, relu_family_only
+from shardmill.model.losses import LOSSES
 
 
 class MLP:
@@ -46,13 +45,15 @@ class MLP:
         self.activations = spec.activation
         self.loss = spec.loss
         self.dtype = np.dtype(spec.dtype)
-        self.output = IMPLIED_OUTPUT[self.loss] if spec.output == "auto" else spec.output
+        self.loss_entry = LOSSES[self.loss]  # the loss's kernels, targets, metrics and labels
+        self.output = self.loss_entry.output if spec.output == "auto" else spec.output
         self.init = spec.init
         if self.init == "auto":
-            self.init = "he" if self.activations and all(a in RELU_FAMILY for a in self.activations) else "glorot"
-        self.hidden_codes = [act.code_of(a) for a in self.activations]
-        self.output_code = act.code_of(self.output) if self.loss == "squared_error" else act.IDENTITY
-        self.loss_code = losses.CODES[self.loss]
+            self.init = "he" if relu_family_only(self.activations) else "glorot"
+        self.hidden_codes = [ACTIVATIONS[a].code for a in self.activations]
+        # the code the forward pass applies to the output layer: the identity where the loss kernel applies it
+        self.output_code = act.IDENTITY if self.loss_entry.from_logits else ACTIVATIONS[self.output].code
+        self.loss_code = self.loss_entry.code
 
         # Layout: last layer first, W before b within a layer.
         self.slices: list[tuple[int, int]] = [(0, 0)] * self.n_layers  # (start, stop) of layer l in params
@@ -131,35 +132,7 @@ class MLP:
 
     def check_targets(self, y: np.ndarray, n: int, name: str = "y") -> np.ndarray:
         """Validate targets for this model's loss and return them in the dtype the kernels take."""
-        k = self.sizes[-1]
-        if self.loss == "softmax_cross_entropy":
-            if y.shape != (n,):
-                raise JobError(f"`{name}` must be integer labels of shape ({n},) for softmax_cross_entropy; "
-                               f"got shape {y.shape}")
-            if y.dtype.kind == "f":
-                wrong = ~np.isfinite(y) | (y != np.round(y))
-                if np.any(wrong):
-                    row = int(np.flatnonzero(wrong)[0])
-                    raise JobError(f"`{name}` must hold whole-number class labels; got {float(y[row])!r} in row {row}")
-            elif y.dtype.kind not in "iu":
-                raise JobError(f"`{name}` must hold integer class labels; got dtype {y.dtype}")
-            labels = np.asarray(y, dtype=np.int64)
-            if labels.size and (labels.min() < 0 or labels.max() >= k):
-                bad = int(labels[(labels < 0) | (labels >= k)][0])
-                raise JobError(f"`{name}` labels must lie in [0, {k - 1}] for {k} outputs; got {bad}")
-            return labels
-        y2 = y.reshape(-1, 1) if (y.ndim == 1 and k == 1) else y
-        if y2.shape != (n, k):
-            raise JobError(f"`{name}` must have shape ({n}, {k}) for {self.loss}; got {y.shape}")
-        values = np.asarray(y2, dtype=self.dtype)
-        if not np.all(np.isfinite(values)):
-            row = int(np.flatnonzero(~np.isfinite(values).all(axis=1))[0])
-            raise JobError(f"`{name}` row {row} holds a non-finite value (NaN or inf)")
-        if self.loss == "binary_cross_entropy" and (values.min() < 0 or values.max() > 1):
-            row, col = (int(i) for i in np.argwhere((values < 0) | (values > 1))[0])
-            raise JobError(f"`{name}` must hold values in [0, 1] for binary_cross_entropy; got {values[row, col]:g} "
-                           f"in row {row}")
-        return values
+        return self.loss_entry.check_targets(y, n, self.sizes[-1], self.dtype, name)
 
     def loss_and_grad(self, X: np.ndarray, y: np.ndarray) -> tuple[float, np.ndarray]:
         """Mean loss over the n rows of X and its gradient, flat in the params layout (a new array)."""
@@ -223,10 +196,10 @@ class Workspace:
             np.matmul(self.A[l][:n], m.weights[l], out=Z)
             if l < m.n_layers - 1:
                 act.bias_forward(Z, m.biases[l], self.A[l + 1][:n], m.hidden_codes[l])
-            elif m.loss == "squared_error":
-                act.bias_forward(Z, m.biases[l], self.O[:n], m.output_code)
-            else:
+            elif m.loss_entry.from_logits:  # the loss kernel applies the output activation
                 act.bias_forward(Z, m.biases[l], Z, act.IDENTITY)
+            else:
+                act.bias_forward(Z, m.biases[l], self.O[:n], m.output_code)
         return self.Z[-1][:n]
 
     def forward_loss(self, n: int, targets: np.ndarray, scale: float) -> float:
@@ -234,24 +207,14 @@ class Workspace:
         m = self.model
         Z = self.forward(n)
         dZ = self.delta(0, n, m.sizes[-1])
-        O = self.O[:n]
-        if m.loss_code == losses.SOFTMAX_CROSS_ENTROPY:
-            return losses.softmax_cross_entropy(Z, targets[:n], scale, O, dZ)
-        if m.loss_code == losses.BINARY_CROSS_ENTROPY:
-            return losses.binary_cross_entropy(Z, targets[:n], scale, O, dZ)
-        total = losses.squared_error(O, targets[:n], scale, dZ)
-        act.backward(Z, O, dZ, m.output_code)
-        return total
+        return m.loss_entry.kernel(Z, self.O[:n], targets[:n], scale, dZ, m.output_code)
 
     def forward_outputs(self, n: int) -> np.ndarray:
         """Forward pass and output activation; returns O (n, k), a view into this workspace."""
         m = self.model
         Z = self.forward(n)
         O = self.O[:n]
-        if m.loss_code == losses.SOFTMAX_CROSS_ENTROPY:
-            losses.softmax_rows(Z, O)
-        elif m.loss_code == losses.BINARY_CROSS_ENTROPY:
-            act.bias_forward(Z, self._zero_bias, O, act.SIGMOID)
+        m.loss_entry.outputs(Z, O, self._zero_bias)
         return O
 
     def backward(self, n: int, grads: np.ndarray) -> Iterator[tuple[int, np.ndarray]]:

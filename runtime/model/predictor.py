@@ -10,9 +10,8 @@ from typing import Any
 import numpy as np
 from shardmill.checkpoint import CheckpointError, load, resolve
 from shardmill.errors import JobError
+from shardmill.model.losses import CLASSIFIER_LOSSES
 from shardmill.model.mlp import MLP
-
-CLASSIFIER_LOSSES = ("softmax_cross_entropy", "binary_cross_entropy")
 
 
 class Predictor:
@@ -66,7 +65,7 @@ class Predictor:
     @property
     def is_classifier(self) -> bool:
         """True for the cross-entropy losses (labels and probabilities), False for squared_error."""
-        return self.model.loss in CLASSIFIER_LOSSES
+        return self.model.loss_entry.classifier
 
     def standardise(self, X: np.ndarray, name: str = "inputs") -> np.ndarray:
         """(X − input_mean) · input_inv_std, (n, d) in the model's dtype, after checking X.
@@ -108,11 +107,8 @@ class Predictor:
 
     def to_labels(self, outputs: np.ndarray) -> np.ndarray:
         """What :meth:`predict` returns, from outputs (n, k) that :meth:`outputs` gave."""
-        if self.loss == "softmax_cross_entropy":
-            return outputs.argmax(axis=1).astype(np.int64)
-        if self.loss == "binary_cross_entropy":
-            return (outputs > 0.5).astype(np.int64)
-        return outputs
+        labels = self.model.loss_entry.labels
+        return outputs if labels is None else labels(outputs)
 
 
 def _model_of(spec: dict[str, Any]) -> MLP:
@@ -160,16 +156,9 @@ def load_model(path: Path | str) -> Predictor:
 
 def metrics(model: MLP, outputs: np.ndarray, targets: np.ndarray) -> dict[str, float]:
     """The loss (mean per row, as training logs it; see docs/metrics.md) and accuracy for a classifier, or RMSE for
-    a regression model, of outputs (n, k) against targets. Losses are computed from the outputs in float64, so an
-    output probability rounded to 0 or 1 is clipped to the smallest positive double."""
+    a regression model, of outputs (n, k) against targets, from the numpy references of the loss's entry
+    (:mod:`shardmill.model.losses`). Losses are computed from the outputs in float64, so an output probability
+    rounded to 0 or 1 is clipped to the smallest positive double."""
+    entry = model.loss_entry
     o = outputs.astype(np.float64)
-    if model.loss == "softmax_cross_entropy":
-        p = np.clip(o[np.arange(targets.size), targets], 1e-300, None)
-        return {"accuracy": float(np.mean(outputs.argmax(axis=1) == targets)), "loss": float(-np.log(p).mean())}
-    if model.loss == "binary_cross_entropy":
-        t = targets.astype(np.float64).reshape(o.shape)
-        p = np.clip(o, 1e-300, 1.0 - 2.0**-53)
-        row = -(t * np.log(p) + (1.0 - t) * np.log1p(-p)).sum(axis=1)  # summed over the k outputs, as trained
-        return {"accuracy": float(np.mean((outputs > 0.5) == (t > 0.5))), "loss": float(row.mean())}
-    t = targets.astype(np.float64).reshape(o.shape)
-    return {"rmse": float(np.sqrt(np.mean((o - t) ** 2))), "loss": float(0.5 * ((o - t) ** 2).sum(axis=1).mean())}
+    return {entry.metric: entry.metric_reference(o, targets), "loss": float(entry.reference(o, targets).mean())}

@@ -2,7 +2,8 @@
 
 Per layer: the gradient norm ‖g_l‖, the update-to-weight ratio ‖Δθ_l‖ / ‖θ_l‖, the fraction of saturated
 sigmoid/tanh units (|z| > 4, where σ' < 0.018 and tanh' < 0.0014) and the fraction of dead ReLU-family units
-(zero on every row of the global batch). Warnings name the layer and the symptom.
+(zero on every row of the global batch); which activation gets which is its entry's ``watch_saturation`` and
+``watch_dead`` (``model/activations.py``). Warnings name the layer and the symptom.
 """
 
 from __future__ import annotations
@@ -13,6 +14,7 @@ from typing import Any
 import numpy as np
 from shardmill.kernels import activations as act
 from shardmill.kernels import optim as kernels
+from shardmill.model.activations import ACTIVATIONS
 from shardmill.model.mlp import MLP, Workspace
 from shardmill.parallel.comm import Comm
 
@@ -51,9 +53,9 @@ def diagnose(model: MLP, ws: Workspace, n: int, grad_squares: np.ndarray, before
         if l < model.n_layers - 1:
             name = model.activations[l]
             record["activation"] = name
-            if name in ("sigmoid", "tanh"):
+            if ACTIVATIONS[name].watch_saturation:
                 record["saturated_fraction"] = counts[2 * l] / max(counts[2 * l + 1] * model.sizes[l + 1], 1)
-            if name in ("relu", "leaky_relu"):
+            if ACTIVATIONS[name].watch_dead:
                 record["dead_fraction"] = float(np.mean(alive[l] == 0))
         layers.append(record)
     return {"kind": "health", "step": step, "layers": layers}

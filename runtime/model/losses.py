@@ -1,0 +1,279 @@
+"""The loss table: one entry per loss, everything the package knows about it in one place.
+
+An entry names its Numba kernels (``kernels/losses.py``: the fused loss and output gradient, the metric count), the
+output activation it implies, what targets it takes (the check, how a table's labels are read, synthetic ones for
+benchmarks), its second metric (accuracy or RMSE: the per-batch sum, the summary, the numpy reference), its label
+rule (what ``predict`` returns), a numpy reference of the loss and its formula for the docs and the model card.
+
+Adding a loss: its kernels in ``kernels/losses.py`` (a new code), then one entry here. The model, trainer,
+predictor, export, config, bench and the docs read the entry.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Callable
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from shardmill.errors import JobError
+from shardmill.kernels import activations as activation_kernels
+from shardmill.kernels import losses as kernels
+from shardmill.model import activations
+
+
+@dataclass(frozen=True)
+class Loss:
+    """One loss: its kernels, targets, metrics, labels, reference and formula.
+
+    code: the kernel code in ``kernels/losses.py``. output: the output activation it implies (an
+    :data:`~shardmill.model.activations.OUTPUTS` name). from_logits: the loss kernel reads the logits and applies
+    that output activation itself, so the job may not choose another; otherwise the forward pass applies
+    ``model.output`` (the job's choice, ``output`` by default) and the kernel reads the outputs.
+    kernel(Z, O, targets, scale, dZ, output_code) → the loss SUM over the n rows (float64), leaving the outputs in
+    O and ∂(loss sum)/∂Z · scale in dZ; Z, O, dZ: (n, k) in the model's dtype. outputs(Z, O, zero_bias): the
+    output activation of the logits Z into O, where the kernel does it (nothing otherwise: the forward did).
+    class_labels: targets are integer class labels (n,) in [0, k); else real targets (n, k), within
+    target_range when given. targets_text: the targets in words (docs).
+    metric: the second metric's name in metrics.jsonl ("accuracy" or "rmse"), metric_text: it in words (docs).
+    quality_sum(O, targets) → its sum
+    over a batch (a Numba kernel); metric_of(sum, rows, k) → the metric from the sums over all batches.
+    metric_reference(o, targets) → the same metric in numpy, from float64 outputs o (n, k).
+    labels(outputs) → what ``Predictor.predict`` returns (None: the outputs themselves); label_rule: that in words.
+    reference(o, targets) → the loss of each row (n,) in numpy float64, from the outputs o after the output
+    activation (probabilities rounded to 0 or 1 are clipped to the smallest positive double). formula: the loss
+    as the kernel computes it (docs, model card). synthetic_targets(rng, rows, k, dtype): random targets of the
+    right kind (benchmarks).
+    """
+
+    name: str
+    code: int
+    output: str
+    from_logits: bool
+    kernel: Callable[..., float]
+    outputs: Callable[[np.ndarray, np.ndarray, np.ndarray], None]
+    class_labels: bool
+    target_range: tuple[float, float] | None
+    targets_text: str
+    metric: str
+    metric_text: str
+    quality_sum: Callable[[np.ndarray, np.ndarray], float]
+    metric_of: Callable[[float, float, int], float]
+    metric_reference: Callable[[np.ndarray, np.ndarray], float]
+    labels: Callable[[np.ndarray], np.ndarray] | None
+    label_rule: str
+    reference: Callable[[np.ndarray, np.ndarray], np.ndarray]
+    formula: str
+    synthetic_targets: Callable[[np.random.Generator, int, int, Any], np.ndarray]
+
+    @property
+    def output_choosable(self) -> bool:
+        """Whether the job may choose ``model.output`` (any hidden activation) for this loss."""
+        return not self.from_logits
+
+    @property
+    def classifier(self) -> bool:
+        """Whether the model predicts labels and probabilities (``predict_proba``), not values."""
+        return self.labels is not None
+
+    @property
+    def best_metrics(self) -> tuple[str, ...]:
+        """The ``run.best_metric`` values that make sense for this loss (metrics.jsonl's field paths)."""
+        return ("validation.loss", f"validation.{self.metric}")
+
+    def summary(self, sums: np.ndarray, k: int) -> dict[str, float]:
+        """{"loss": mean loss per row, metric: accuracy or RMSE} from (loss sum, quality sum, rows) over the
+        batches, k outputs (what metrics.jsonl logs; docs/metrics.md)."""
+        n = max(sums[2], 1.0)
+        return {"loss": float(sums[0] / n), self.metric: float(self.metric_of(sums[1], n, k))}
+
+    def check_targets(self, y: np.ndarray, n: int, k: int, dtype: np.dtype, name: str = "y") -> np.ndarray:
+        """Validate targets for n rows and k outputs; return them as the kernels take them: int64 labels (n,), or
+        (n, k) in ``dtype``. A (n,) array stands for (n, 1) when k = 1. Raises JobError naming ``name``."""
+        if self.class_labels:
+            return _class_labels(y, n, k, name, self.name)
+        y2 = y.reshape(-1, 1) if (y.ndim == 1 and k == 1) else y
+        if y2.shape != (n, k):
+            raise JobError(f"`{name}` must have shape ({n}, {k}) for {self.name}; got {y.shape}")
+        values = np.asarray(y2, dtype=dtype)
+        if not np.all(np.isfinite(values)):
+            row = int(np.flatnonzero(~np.isfinite(values).all(axis=1))[0])
+            raise JobError(f"`{name}` row {row} holds a non-finite value (NaN or inf)")
+        if self.target_range is not None:
+            low, high = self.target_range
+            if values.min() < low or values.max() > high:
+                row, col = (int(i) for i in np.argwhere((values < low) | (values > high))[0])
+                raise JobError(f"`{name}` must hold values in [{low:g}, {high:g}] for {self.name}; got "
+                               f"{values[row, col]:g} in row {row}")
+        return values
+
+    def table_labels(self, y: np.ndarray) -> np.ndarray:
+        """Targets read from a table arrive as float64: whole-number class labels become int64 (as
+        :meth:`check_targets` takes them); anything else is left for :meth:`check_targets` to refuse with its row."""
+        if self.class_labels and y.ndim == 1 and y.dtype.kind == "f":
+            if np.isfinite(y).all() and np.array_equal(y, np.round(y)):
+                return y.astype(np.int64)
+        return y
+
+
+def _class_labels(y: np.ndarray, n: int, k: int, name: str, loss: str) -> np.ndarray:
+    if y.shape != (n,):
+        raise JobError(f"`{name}` must be integer labels of shape ({n},) for {loss}; got shape {y.shape}")
+    if y.dtype.kind == "f":
+        wrong = ~np.isfinite(y) | (y != np.round(y))
+        if np.any(wrong):
+            row = int(np.flatnonzero(wrong)[0])
+            raise JobError(f"`{name}` must hold whole-number class labels; got {float(y[row])!r} in row {row}")
+    elif y.dtype.kind not in "iu":
+        raise JobError(f"`{name}` must hold integer class labels; got dtype {y.dtype}")
+    labels = np.asarray(y, dtype=np.int64)
+    if labels.size and (labels.min() < 0 or labels.max() >= k):
+        bad = int(labels[(labels < 0) | (labels >= k)][0])
+        raise JobError(f"`{name}` labels must lie in [0, {k - 1}] for {k} outputs; got {bad}")
+    return labels
+
+
+# The kernels, one call shape for every loss (see Loss.kernel and Loss.outputs).
+
+def _softmax_cross_entropy(Z, O, targets, scale, dZ, output_code):
+    return kernels.softmax_cross_entropy(Z, targets, scale, O, dZ)
+
+
+def _binary_cross_entropy(Z, O, targets, scale, dZ, output_code):
+    return kernels.binary_cross_entropy(Z, targets, scale, O, dZ)
+
+
+def _squared_error(Z, O, targets, scale, dZ, output_code):
+    total = kernels.squared_error(O, targets, scale, dZ)  # O: the forward pass applied the output activation
+    activation_kernels.backward(Z, O, dZ, output_code)  # chain dO through it: dZ = f'(Z) ⊙ dO
+    return total
+
+
+def _softmax_outputs(Z, O, zero_bias):
+    kernels.softmax_rows(Z, O)
+
+
+def _sigmoid_outputs(Z, O, zero_bias):
+    activation_kernels.bias_forward(Z, zero_bias, O, activation_kernels.SIGMOID)
+
+
+def _outputs_already_there(Z, O, zero_bias):
+    return None
+
+
+# The second metric: from the summed counts (training, evaluation) and in numpy (predict).
+
+def _fraction_of_rows(total, rows, k):
+    return total / rows
+
+
+def _fraction_of_outputs(total, rows, k):
+    return total / (rows * k)
+
+
+def _root_mean_square(total, rows, k):
+    return math.sqrt(total / (rows * k))
+
+
+def _values(targets: np.ndarray, o: np.ndarray) -> np.ndarray:
+    return targets.astype(np.float64).reshape(o.shape)
+
+
+def _class_accuracy(o, targets):
+    return float(np.mean(o.argmax(axis=1) == targets))
+
+
+def _output_accuracy(o, targets):
+    return float(np.mean((o > 0.5) == (_values(targets, o) > 0.5)))
+
+
+def _rmse(o, targets):
+    return float(np.sqrt(np.mean((o - _values(targets, o)) ** 2)))
+
+
+# The numpy references of the losses, per row, from the outputs after the output activation.
+
+def _cross_entropy_of_class(o, targets):
+    p = np.clip(o[np.arange(targets.size), targets], 1e-300, None)
+    return -np.log(p)
+
+
+def _cross_entropy_of_outputs(o, targets):
+    t = _values(targets, o)
+    p = np.clip(o, 1e-300, 1.0 - 2.0**-53)
+    return -(t * np.log(p) + (1.0 - t) * np.log1p(-p)).sum(axis=1)  # summed over the k outputs, as trained
+
+
+def _half_squared_error(o, targets):
+    return 0.5 * ((o - _values(targets, o)) ** 2).sum(axis=1)
+
+
+_TABLE = (
+    Loss("softmax_cross_entropy", kernels.SOFTMAX_CROSS_ENTROPY, "softmax", True,
+         _softmax_cross_entropy, _softmax_outputs, class_labels=True, target_range=None,
+         targets_text="integer class labels (n,) in [0, k)",
+         metric="accuracy", metric_text="the share of rows whose label is the class",
+         quality_sum=kernels.count_correct, metric_of=_fraction_of_rows,
+         metric_reference=_class_accuracy,
+         labels=lambda outputs: outputs.argmax(axis=1).astype(np.int64),
+         label_rule="the index of the largest output, (n,) int64",
+         reference=_cross_entropy_of_class,
+         formula="per row: logsumexp(z) − z_y, z the logits, y the class index",
+         synthetic_targets=lambda rng, rows, k, dtype: rng.integers(0, k, size=rows).astype(np.int64)),
+    Loss("binary_cross_entropy", kernels.BINARY_CROSS_ENTROPY, "sigmoid", True,
+         _binary_cross_entropy, _sigmoid_outputs, class_labels=False, target_range=(0.0, 1.0),
+         targets_text="0/1 targets (n, k) (any value in [0, 1])",
+         metric="accuracy", metric_text="the share of outputs whose label is the target's (t > 0.5)",
+         quality_sum=kernels.count_correct_binary, metric_of=_fraction_of_outputs,
+         metric_reference=_output_accuracy,
+         labels=lambda outputs: (outputs > 0.5).astype(np.int64),
+         label_rule="1 where an output exceeds 0.5, else 0, (n, k) int64",
+         reference=_cross_entropy_of_outputs,
+         formula="per output: max(z, 0) + log1p(exp(−|z|)) − t·z, z the logit, t the 0/1 target",
+         synthetic_targets=lambda rng, rows, k, dtype: rng.integers(0, 2, size=(rows, k)).astype(dtype)),
+    Loss("squared_error", kernels.SQUARED_ERROR, "identity", False,
+         _squared_error, _outputs_already_there, class_labels=False, target_range=None,
+         targets_text="real targets (n, k)",
+         metric="rmse", metric_text="√(Σ (o − t)² / (n·k)) over every output",
+         quality_sum=kernels.squared_error_sum, metric_of=_root_mean_square,
+         metric_reference=_rmse,
+         labels=None,
+         label_rule="none: the outputs are the prediction",
+         reference=_half_squared_error,
+         formula="per row: ½ Σ_j (o_j − t_j)², o the outputs after the output activation",
+         synthetic_targets=lambda rng, rows, k, dtype: rng.standard_normal((rows, k)).astype(dtype)),
+)
+LOSSES: dict[str, Loss] = {entry.name: entry for entry in _TABLE}
+"""The losses by name, in the order of the kernels' codes."""
+
+CLASSIFIER_LOSSES = tuple(name for name, entry in LOSSES.items() if entry.classifier)
+"""The losses whose models predict labels and probabilities."""
+
+DOCS_BEGIN = "<!-- losses: generated by shardmill.model.losses.markdown(), do not edit by hand -->"
+DOCS_END = "<!-- end of losses -->"
+
+
+def markdown() -> str:
+    """The loss table of docs/models.md (targets, formula, output activation, labels, second metric)."""
+    rows = ["| Loss | Targets | Formula (the code's) | Output activation | `predict(X)` | Metric |",
+            "|---|---|---|---|---|---|"]
+    for name, entry in LOSSES.items():
+        output = f"{entry.output} (or `model.output`)" if entry.output_choosable else entry.output
+        cells = (name, entry.targets_text, entry.formula, output, entry.label_rule,
+                 f"{entry.metric}: {entry.metric_text}")
+        rows.append("| " + " | ".join(cell.replace("|", "\\|") for cell in cells) + " |")
+    return "\n".join(rows) + "\n"
+
+
+def write_docs(path: str | Path = "docs/models.md") -> None:
+    """Replace the generated blocks of ``path`` (the activation and loss tables) by the tables' current text."""
+    path = Path(path)
+    text = path.read_text()
+    for begin, end, block in ((activations.DOCS_BEGIN, activations.DOCS_END, activations.markdown()),
+                              (DOCS_BEGIN, DOCS_END, markdown())):
+        head, rest = text.split(begin + "\n", 1)
+        _, tail = rest.split(end, 1)
+        text = head + begin + "\n" + block + end + tail
+    path.write_text(text)

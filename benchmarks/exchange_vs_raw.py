@@ -3,7 +3,7 @@
 Prints one JSON object (rank 0). The buffer is a ``grads`` array with the mid model's layout
 (784-1024-1024-10, 1,863,690 parameters). One repetition of each contender:
 
-* exchange: fill ``grads``; barrier; start the clock; ``MessageExchange.layer_done(l)`` for every layer in
+* exchange: fill ``grads``; barrier; start the clock; ``MessageSum.layer_done(l)`` for every layer in
   backward order (l = L−1 … 0), which starts each message's non-blocking allreduce as it closes; ``finish()``;
   stop the clock. With overlap off, ``finish()`` is one blocking allreduce of the whole buffer.
 * raw: fill the same ``grads``; barrier; start the clock; ``comm.Allreduce(MPI.IN_PLACE, grads)``; stop.
@@ -54,7 +54,8 @@ def measure(comm, dtype: str, message_mib: float | None, repetitions: int, warmu
     """One configuration: overlap off when message_mib is None, else messages of at least message_mib MiB."""
     from mpi4py import MPI
     from shardmill.model.mlp import MLP
-    from shardmill.parallel.exchange import MessageExchange
+    from shardmill.parallel.ownership import Replicated
+    from shardmill.parallel.summation import MessageSum
 
     model = MLP(MID_MODEL, dtype=dtype)
     grads = np.zeros_like(model.params)
@@ -63,7 +64,8 @@ def measure(comm, dtype: str, message_mib: float | None, repetitions: int, warmu
     fill = base * (comm.rank + 1)
     expected = base * (comm.size * (comm.size + 1) // 2)
     overlap = message_mib is not None
-    exchange = MessageExchange(comm, model, grads, message_mib if overlap else 4.0, overlap=overlap)
+    exchange = MessageSum(comm, model, grads, Replicated(comm, grads.size), message_mib if overlap else 4.0,
+                          overlap=overlap)
     layers = list(reversed(range(model.n_layers)))
     raw = MPI.COMM_WORLD  # the baseline is plain mpi4py, not our wrapper
 

@@ -2,7 +2,7 @@
 
 Two ranks, one BLAS thread each. The compute phase stands in for a training step's backward: twelve float32 GEMMs
 (256×1024)·(1024×1024) into a preallocated output. The exchange is the mid model's gradient (784-1024-1024-10,
-1,863,690 float32 values, 7.45 MB) in the two messages ``MessageExchange`` makes of it at 4 MB. Five contenders,
+1,863,690 float32 values, 7.45 MB) in the two messages ``MessageSum`` makes of it at 4 MB. Five contenders,
 round-robin (which one goes first rotates), each repetition timed as the slowest rank's after a barrier, the fill
 of the buffer outside the clock:
 
@@ -49,7 +49,7 @@ from threadpoolctl import threadpool_limits
 
 GEMMS = 12
 GEMM_SHAPE = (256, 1024, 1024)  # (rows, inner, columns): one layer's dW- or dA-sized product in float32
-MESSAGE_MIB = 4.0  # MessageExchange's default: two messages of the mid model
+MESSAGE_MIB = 4.0  # MessageSum's default: two messages of the mid model
 CONTENDERS = ("exchange", "compute", "blocking", "iallreduce", "thread", "thread_exchange")
 SHAPED_ENVIRONMENT = {"MPIR_CVAR_NOLOCAL": "1", "MPIR_CVAR_CH4_NETMOD": "ofi"}
 LIBRARY_PROGRESS = {"MPIR_CVAR_ASYNC_PROGRESS": "1"}
@@ -63,14 +63,16 @@ def measure(repetitions: int, warmup: int) -> None:
     """Median seconds of every contender on this job's ranks, and the ratios; rank 0 prints them (JSON)."""
     from shardmill.model.mlp import MLP
     from shardmill.parallel.comm import Comm
-    from shardmill.parallel.exchange import MessageExchange
+    from shardmill.parallel.ownership import Replicated
     from shardmill.parallel.progress import CommThread
+    from shardmill.parallel.summation import MessageSum
 
     comm = Comm()
     thread = CommThread(comm)
     model = MLP(MID_MODEL, dtype="float32")
     grads = np.zeros_like(model.params)
-    messages = [grads[start:stop] for start, stop in MessageExchange(comm, model, grads, MESSAGE_MIB).messages]
+    message_sum = MessageSum(comm, model, grads, Replicated(comm, grads.size), MESSAGE_MIB)
+    messages = [grads[start:stop] for start, stop in message_sum.messages]
     base = (np.arange(grads.size) % 7 + 1).astype(np.float32)  # small integers: every sum exact
     fill, expected = base * (comm.rank + 1), base * (comm.size * (comm.size + 1) // 2)
     rows, inner, columns = GEMM_SHAPE

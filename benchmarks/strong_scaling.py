@@ -221,7 +221,7 @@ def breakdown(repetitions: int) -> int:
         exact, fast = trainer("exact"), trainer("fast")
         blocking = trainer("fast", overlap=False)  # its finish() is one blocking allreduce, timed on its own
         rows = exact.sampler.batch(0, 0)
-        ex = exact.exchange
+        ex = exact.exchange.summation  # the exact sum's own steps, timed one by one
         chunks = list(ex.parts(rows))
         mine, _ = next(blocking.exchange.parts(rows))
 
@@ -238,7 +238,7 @@ def breakdown(repetitions: int) -> int:
             t = {}
             t["exact_chunk_gradients"] = timed(chunk_gradients)
             t["exact_accumulate"] = timed(accumulate_all)
-            t["exact_reduce_scatter_limbs"] = timed(ex.reduce_scatter_limbs)
+            t["exact_reduce_scatter_limbs"] = timed(ex.reduce_scatter)
             t["exact_to_float_slice"] = timed(ex.read_back)
             t["exact_allgather_grads"] = timed(ex.gather)
             t["exact_step"] = timed(lambda: exact.step(0, 0))
@@ -252,7 +252,7 @@ def breakdown(repetitions: int) -> int:
         ms = {n: median(parts[n]) * 1e3 for n in sorted(parts)}
         emit({"processes": comm.size, "chunks_per_rank": len(chunks), "rows_per_chunk": EXACT_CHUNK,
               "fast_rows_per_rank": int(mine.size), "repetitions": repetitions, "median_ms": ms,
-              "limb_bytes": int(ex.limbs.nbytes), "grad_bytes": int(fast.grads.nbytes),
+              "limb_bytes": int(ex.format.limbs.nbytes), "grad_bytes": int(fast.grads.nbytes),
               "how": "each part timed alone after a barrier, max over ranks per repetition, median"})
     return 0
 

@@ -1,7 +1,7 @@
-"""Compact exact sums: one int64 per value on a power-of-two scale shared by a bucket and fixed before the sum.
+"""Compact exact sums: one int64 per value on a power-of-two scale shared by a block and fixed before the sum.
 
-A flat vector of length n is cut into contiguous buckets: bucket b is ``[bounds[b], bounds[b + 1])``, with
-``bounds[0] = 0`` and ``bounds[-1] = n`` (B buckets, B + 1 bounds). Every chunk of a sum shares, per bucket, one
+A flat vector of length n is cut into contiguous blocks: block b is ``[bounds[b], bounds[b + 1])``, with
+``bounds[0] = 0`` and ``bounds[-1] = n`` (B blocks, B + 1 bounds). Every chunk of a sum shares, per block, one
 shift S_b, chosen before any value is converted from the largest magnitude M_b over all K chunks (a max is
 order-free, so its MPI MAX allreduce gives the same M_b for every process count). With the binary exponent E_b of
 M_b (``frexp``: M_b < 2**E_b) and the headroom h = ceil(log2 K),
@@ -12,22 +12,22 @@ Each value becomes the integer q = rint(x * 2**S_b) (to nearest, ties to even), 
 K <= 2**h of them stays within |k| <= 2**51. Integer addition is exact and associative, so the sum has the same
 bits however the K chunks are grouped by ranks and reduced. Reading back, k converts to float64 exactly
 (|k| <= 2**51) and k * 2**-S_b is exact too (S_b <= 1022 keeps it out of the subnormal range), so the only
-roundings are the K conversions and one final rounding to the output dtype. An all-zero bucket has M_b = 0,
+roundings are the K conversions and one final rounding to the output dtype. An all-zero block has M_b = 0,
 frexp gives E_b = 0, and every value converts to 0.
 
-Accuracy. Each conversion moves a value by at most 2**(-S_b - 1), so the read-back result r of a bucket element
+Accuracy. Each conversion moves a value by at most 2**(-S_b - 1), so the read-back result r of a block element
 whose exact sum is s satisfies
 
     |r - s| <= K * 2**(-S_b - 1) + ulp(r) / 2          (the last term only for float32 output)
 
-and, relative to the bucket's largest input magnitude M_b >= 2**(E_b - 1) when S_b is not clamped,
+and, relative to the block's largest input magnitude M_b >= 2**(E_b - 1) when S_b is not clamped,
 
     |r - s| / M_b <= K * 2**(h - 51) + ulp(r) / (2 M_b)   (<= 2**(2h - 51) + ...; 2**-39 at K = 64).
 
-The clamp at MAX_SHIFT only acts on float64 buckets with M_b < 2**(-971 - h); there the absolute bound
+The clamp at MAX_SHIFT only acts on float64 blocks with M_b < 2**(-971 - h); there the absolute bound
 K * 2**-1023 holds instead. For float32 gradients the fixed-point error is far below half an ulp of M_b (2**-24
 relative); for float64 it is not: the result is the fixed-point sum itself, exact to the grid 2**-S_b but not the
-correctly rounded sum (kernels.exactsum is). Elements much smaller than their bucket's maximum get the bucket's
+correctly rounded sum (kernels.exactsum is). Elements much smaller than their block's maximum get the block's
 absolute resolution, not their own.
 
 Conversions in both directions use the 1.5 * 2**52 significand trick (as kernels.exactsum does), so every hot loop
@@ -59,26 +59,26 @@ def headroom_bits(chunks: int) -> int:
     return (chunks - 1).bit_length()
 
 
-def bucket_max_abs(x: np.ndarray, bounds: np.ndarray, out: np.ndarray, offset: int = 0) -> float:
-    """Raise each bucket's running maximum to the largest |x| in it: out[b] = max(out[b], max |x in bucket b|).
+def block_max_abs(x: np.ndarray, bounds: np.ndarray, out: np.ndarray, offset: int = 0) -> float:
+    """Raise each block's running maximum to the largest |x| in it: out[b] = max(out[b], max |x in block b|).
 
     x: ``(m,)`` float32 or float64, C-contiguous; x[j] is flat element ``offset + j``. bounds: ``(B + 1,)``
-    int64 bucket bounds. out: ``(B,)`` float64, writable; start it at zeros. Buckets that do not meet
+    int64 block bounds. out: ``(B,)`` float64, writable; start it at zeros. Blocks that do not meet
     ``[offset, offset + m)`` are left alone.
 
     Returns the largest |x| as a float64: ``inf`` when some |x| is infinite and none is NaN, ``nan`` when some
-    input is NaN (out[b] then becomes nan for its bucket, and stays so). Call it on every chunk of this rank,
+    input is NaN (out[b] then becomes nan for its block, and stays so). Call it on every chunk of this rank,
     then MAX-allreduce ``out`` (after checking the return value: MPI's MAX is not defined for NaN).
     """
     _check_vector(x, "x")
     _check_span(bounds, offset, x.shape[0])
-    _check_per_bucket(out, "out", np.float64, bounds)
+    _check_per_block(out, "out", np.float64, bounds)
     bits_type, magnitude_mask = _MAGNITUDE[x.dtype]
     largest_bits = np.zeros(out.shape, dtype=bits_type)
-    _bucket_max_abs_bits(x.view(bits_type), bounds, largest_bits, int(offset), magnitude_mask)
+    _block_max_abs_bits(x.view(bits_type), bounds, largest_bits, int(offset), magnitude_mask)
     largest = largest_bits.view(x.dtype).astype(np.float64)  # exact, and NaN stays NaN
     np.maximum(out, largest, out=out)  # numpy's maximum propagates NaN: once in out[b], it stays
-    return float(largest.max())  # NaN if any bucket saw one
+    return float(largest.max())  # NaN if any block saw one
 
 
 def term_bits(acc_dtype: np.dtype) -> int:
@@ -87,11 +87,11 @@ def term_bits(acc_dtype: np.dtype) -> int:
 
 
 def shifts(max_abs: np.ndarray, chunks: int, bits: int = TERM_BITS) -> np.ndarray:
-    """Per-bucket shifts S_b = min(TERM_BITS - ceil(log2 chunks) - E_b, MAX_SHIFT), with M_b < 2**E_b (frexp).
+    """Per-block shifts S_b = min(TERM_BITS - ceil(log2 chunks) - E_b, MAX_SHIFT), with M_b < 2**E_b (frexp).
 
-    max_abs: ``(B,)`` float64, each bucket's largest |value| over all ``chunks`` chunks (finite, >= 0).
+    max_abs: ``(B,)`` float64, each block's largest |value| over all ``chunks`` chunks (finite, >= 0).
     chunks: K, the number of chunks whose conversions are summed, 1 <= K <= MAX_CHUNKS.
-    Returns ``(B,)`` int64: value x of bucket b converts to rint(x * 2**S_b).
+    Returns ``(B,)`` int64: value x of block b converts to rint(x * 2**S_b).
     """
     if not isinstance(chunks, (int, np.integer)) or isinstance(chunks, bool) or not 1 <= chunks <= MAX_CHUNKS:
         raise ValueError(f"chunks must be an integer in [1, {MAX_CHUNKS}]; got {chunks!r}")
@@ -101,7 +101,7 @@ def shifts(max_abs: np.ndarray, chunks: int, bits: int = TERM_BITS) -> np.ndarra
     if bad.any():
         b = int(np.argmax(bad))
         raise ValueError(f"max_abs[{b}] must be finite and >= 0; got {float(max_abs[b])!r}")
-    exponents = np.frexp(max_abs)[1].astype(np.int64)  # frexp(0) gives 0: an all-zero bucket converts to zeros
+    exponents = np.frexp(max_abs)[1].astype(np.int64)  # frexp(0) gives 0: an all-zero block converts to zeros
     if bits not in (TERM_BITS, NARROW_TERM_BITS):
         raise ValueError(f"bits must be {TERM_BITS} (int64 sums) or {NARROW_TERM_BITS} (int32 sums); got {bits!r}")
     return np.minimum(bits - headroom_bits(int(chunks)) - exponents, MAX_SHIFT)
@@ -112,7 +112,7 @@ def accumulate(
 ) -> float:
     """Add the fixed-point values of ``x`` into ``acc`` in place: acc[j] += rint(x[j] * 2**shift[b]).
 
-    x: ``(m,)`` float32 or float64, C-contiguous; x[j] and acc[j] are flat element ``offset + j``, in bucket b.
+    x: ``(m,)`` float32 or float64, C-contiguous; x[j] and acc[j] are flat element ``offset + j``, in block b.
     bounds: ``(B + 1,)`` int64; shift: ``(B,)`` int64 from :func:`shifts`. acc: ``(m,)`` int64 (or int32, with
     shifts made for NARROW_TERM_BITS), C-contiguous, writable. ``replace=True`` overwrites ``acc`` instead (the
     same as zeroing it first, in one write-only pass).
@@ -163,7 +163,7 @@ def _check_span(bounds, offset, m):
     if not isinstance(bounds, np.ndarray) or bounds.ndim != 1 or bounds.dtype != np.int64 or bounds.size < 2:
         raise TypeError(f"bounds must be a 1-D int64 numpy array of at least 2 entries; got {_describe(bounds)}")
     if bounds[0] != 0:
-        raise ValueError(f"bounds[0] must be 0 (buckets tile the vector from its start); got {bounds[0]}")
+        raise ValueError(f"bounds[0] must be 0 (blocks tile the vector from its start); got {bounds[0]}")
     steps = np.diff(bounds)
     if (steps < 0).any():
         b = int(np.argmax(steps < 0)) + 1
@@ -175,17 +175,17 @@ def _check_span(bounds, offset, m):
                          f"length)")
 
 
-def _check_per_bucket(a, name, dtype, bounds):
-    buckets = bounds.shape[0] - 1
-    if not isinstance(a, np.ndarray) or a.dtype != dtype or a.shape != (buckets,):
-        raise TypeError(f"{name} must be a numpy array of dtype {np.dtype(dtype)} and shape ({buckets},) "
-                        f"(one per bucket); got {_describe(a)}")
+def _check_per_block(a, name, dtype, bounds):
+    blocks = bounds.shape[0] - 1
+    if not isinstance(a, np.ndarray) or a.dtype != dtype or a.shape != (blocks,):
+        raise TypeError(f"{name} must be a numpy array of dtype {np.dtype(dtype)} and shape ({blocks},) "
+                        f"(one per block); got {_describe(a)}")
     if name == "out" and not a.flags.writeable:
         raise ValueError("out must be writable")
 
 
 def _check_shift(shift, bounds):
-    _check_per_bucket(shift, "shift", np.int64, bounds)
+    _check_per_block(shift, "shift", np.int64, bounds)
     outside = (shift < MIN_SHIFT) | (shift > MAX_SHIFT)
     if outside.any():
         b = int(np.argmax(outside))
@@ -200,8 +200,8 @@ def _check_accumulator(acc, m):
 
 
 @njit(cache=True, inline="always")
-def _bucket_range(bounds, b, offset, m):
-    """Local indices [lo, hi) of bucket b within the elements [offset, offset + m), as 0 <= lo <= hi <= m.
+def _block_range(bounds, b, offset, m):
+    """Local indices [lo, hi) of block b within the elements [offset, offset + m), as 0 <= lo <= hi <= m.
 
     Each kernel runs its element loop on the slices [lo, hi): a loop from 0 lets LLVM drop numba's negative-index
     wraparound, which otherwise keeps a read-modify-write loop scalar.
@@ -211,14 +211,14 @@ def _bucket_range(bounds, b, offset, m):
 
 
 @njit(cache=True)
-def _bucket_max_abs_bits(bits, bounds, largest, offset, magnitude_mask):
-    """largest[b] = max(largest[b], bit pattern of max |x| in bucket b) (bits: x viewed as the same-width int).
+def _block_max_abs_bits(bits, bounds, largest, offset, magnitude_mask):
+    """largest[b] = max(largest[b], bit pattern of max |x| in block b) (bits: x viewed as the same-width int).
 
     Non-negative IEEE floats order like their bit patterns read as integers, NaN above infinity: an integer max
     reduction keeps the loop vectorisable without fastmath and lets NaN win.
     """
     for b in range(largest.shape[0]):
-        lo, hi = _bucket_range(bounds, b, offset, bits.shape[0])
+        lo, hi = _block_range(bounds, b, offset, bits.shape[0])
         largest[b] = max(largest[b], _max_magnitude(bits[lo:hi], magnitude_mask))
 
 
@@ -232,10 +232,10 @@ def _max_magnitude(bits, magnitude_mask):
 
 @njit(cache=True)
 def _accumulate(x, bounds, scale, acc, offset):
-    """acc[j] += rint(x[j] * scale[b]) per bucket; returns the bit pattern of the largest |x[j] * scale[b]|."""
+    """acc[j] += rint(x[j] * scale[b]) per block; returns the bit pattern of the largest |x[j] * scale[b]|."""
     largest = np.int64(0)
     for b in range(scale.shape[0]):
-        lo, hi = _bucket_range(bounds, b, offset, x.shape[0])
+        lo, hi = _block_range(bounds, b, offset, x.shape[0])
         largest = max(largest, _add_scaled(x[lo:hi], scale[b], acc[lo:hi]))
     return largest
 
@@ -245,7 +245,7 @@ def _assign(x, bounds, scale, acc, offset):
     """As :func:`_accumulate`, but acc[j] = rint(x[j] * scale[b])."""
     largest = np.int64(0)
     for b in range(scale.shape[0]):
-        lo, hi = _bucket_range(bounds, b, offset, x.shape[0])
+        lo, hi = _block_range(bounds, b, offset, x.shape[0])
         largest = max(largest, _assign_scaled(x[lo:hi], scale[b], acc[lo:hi]))
     return largest
 
@@ -274,7 +274,7 @@ def _assign_scaled(x, up, acc):
 def _to_float(acc, bounds, scale, out, offset):
     """out[j] = acc[j] * scale[b] rounded once to out's dtype: the product is exact in float64 (or overflows)."""
     for b in range(scale.shape[0]):
-        lo, hi = _bucket_range(bounds, b, offset, out.shape[0])
+        lo, hi = _block_range(bounds, b, offset, out.shape[0])
         _scale_down(acc[lo:hi], scale[b], out[lo:hi])
 
 

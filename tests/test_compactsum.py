@@ -19,8 +19,8 @@ from hypothesis import strategies as st
 from shardmill.kernels import compactsum
 
 
-def buckets(bounds: np.ndarray) -> list[tuple[int, int]]:
-    """[(lo, hi)] of every bucket."""
+def blocks(bounds: np.ndarray) -> list[tuple[int, int]]:
+    """[(lo, hi)] of every block."""
     return [(int(lo), int(hi)) for lo, hi in itertools.pairwise(bounds)]
 
 
@@ -28,7 +28,7 @@ def expected_shifts(chunks: np.ndarray, bounds: np.ndarray) -> list[int]:
     """S_b from the design, with the exponents from math.frexp and the headroom from math.log2."""
     headroom = math.ceil(math.log2(chunks.shape[0]))
     shifts = []
-    for lo, hi in buckets(bounds):
+    for lo, hi in blocks(bounds):
         largest = float(np.max(np.abs(chunks[:, lo:hi]), initial=0.0))
         shifts.append(min(51 - headroom - math.frexp(largest)[1], 1022))
     return shifts
@@ -45,9 +45,9 @@ def float32_ulp(x: np.float32) -> Fraction:
 
 
 def mixed_chunks(rng: np.random.Generator, k: int, dtype) -> tuple[np.ndarray, np.ndarray]:
-    """(k, n) chunks of dtype and bucket bounds: every bucket its own magnitude, with zeros, signs and ties.
+    """(k, n) chunks of dtype and block bounds: every block its own magnitude, with zeros, signs and ties.
 
-    Buckets: wide-range normals; all zeros (and negative zeros); an empty one; values that use every significand
+    Blocks: wide-range normals; all zeros (and negative zeros); an empty one; values that use every significand
     bit; tiny values (float32 subnormals; float64 near 1e-300, where the shift is clamped, and subnormals lost
     below its grid); large values (1e30 in float32, 1e200 in float64); exact halves of the grid, which are ties.
     """
@@ -55,7 +55,7 @@ def mixed_chunks(rng: np.random.Generator, k: int, dtype) -> tuple[np.ndarray, n
     sizes = [37, 11, 0, 29, 23, 17, 13, 19]
     bounds = np.concatenate([[0], np.cumsum(sizes)]).astype(np.int64)
     chunks = np.zeros((k, sum(sizes)))
-    (wide, zeros, _, full, small, big, ties, normal) = [slice(lo, hi) for lo, hi in buckets(bounds)]
+    (wide, zeros, _, full, small, big, ties, normal) = [slice(lo, hi) for lo, hi in blocks(bounds)]
     chunks[:, wide] = rng.standard_normal((k, sizes[0])) * 10.0 ** rng.uniform(-6, 3, (k, sizes[0]))
     chunks[:, zeros] = np.resize([0.0, -0.0], (k, sizes[1]))
     chunks[:, full] = rng.uniform(0.5, 1.0, (k, sizes[3])) * 2.0 ** rng.integers(-30, 4, (k, sizes[3]))
@@ -63,7 +63,7 @@ def mixed_chunks(rng: np.random.Generator, k: int, dtype) -> tuple[np.ndarray, n
     chunks[:, big] = large * rng.uniform(0.01, 1.0, (k, sizes[5]))
     chunks[:, normal] = rng.standard_normal((k, sizes[7]))
     chunks[rng.random(chunks.shape) < 0.1] = 0.0
-    # Ties: the bucket maximum 0.75 gives E = 0, so the grid is 2**(h - 51); odd multiples of 2**(h - 52) are
+    # Ties: the block maximum 0.75 gives E = 0, so the grid is 2**(h - 51); odd multiples of 2**(h - 52) are
     # exact halves of it (and fit float32's 24 bits).
     headroom = math.ceil(math.log2(k))
     chunks[:, ties] = (2.0 * rng.integers(-(2**20), 2**20, (k, sizes[6])) + 1.0) * 2.0 ** (headroom - 52)
@@ -73,10 +73,10 @@ def mixed_chunks(rng: np.random.Generator, k: int, dtype) -> tuple[np.ndarray, n
 
 
 def compact_sum(chunks: np.ndarray, bounds: np.ndarray, total_chunks: int | None = None) -> tuple[np.ndarray, ...]:
-    """One rank's view: bucket maxima over its chunks, then shifts for total_chunks, then the int64 sum."""
+    """One rank's view: block maxima over its chunks, then shifts for total_chunks, then the int64 sum."""
     largest = np.zeros(len(bounds) - 1)
     for chunk in chunks:
-        compactsum.bucket_max_abs(chunk, bounds, largest)
+        compactsum.block_max_abs(chunk, bounds, largest)
     shifts = compactsum.shifts(largest, total_chunks or chunks.shape[0])
     acc = np.empty(chunks.shape[1], dtype=np.int64)
     for k, chunk in enumerate(chunks):
@@ -98,13 +98,13 @@ def test_sum_equals_exact_sum_on_the_grid_and_within_the_bound(dtype, k: int) ->
     result64 = read(acc, bounds, shifts, np.float64)
     result32 = read(acc, bounds, shifts, np.float32)
     headroom = math.ceil(math.log2(k))
-    for b, (lo, hi) in enumerate(buckets(bounds)):
-        bucket_max = float(np.max(np.abs(chunks[:, lo:hi]), initial=0.0))
-        assert largest[b] == bucket_max  # numpy max of |x|: exact and order-free
+    for b, (lo, hi) in enumerate(blocks(bounds)):
+        block_max = float(np.max(np.abs(chunks[:, lo:hi]), initial=0.0))
+        assert largest[b] == block_max  # numpy max of |x|: exact and order-free
         shift = expected_shifts(chunks, bounds)[b]
         ties = sum(Fraction(float(v)) * Fraction(2) ** shift % 1 == Fraction(1, 2) for v in chunks[:, lo:hi].flat)
         if b == 6:
-            assert ties > 0  # the ties bucket really holds exact halves of the grid
+            assert ties > 0  # the ties block really holds exact halves of the grid
         assert shifts[b] == shift  # the design's formula with math.frexp / math.log2
         unclamped = shift < 1022
         for i in range(lo, hi):
@@ -119,23 +119,23 @@ def test_sum_equals_exact_sum_on_the_grid_and_within_the_bound(dtype, k: int) ->
             exact = sum((Fraction(v) for v in column), Fraction(0))
             grid_error = k * Fraction(2) ** (-shift - 1)  # each of the k terms rounds by at most half a unit
             assert abs(on_grid - exact) <= grid_error, i
-            if np.isfinite(result32[i]):  # float64 buckets near 1e200 overflow float32 (is_nearest_float32 above)
+            if np.isfinite(result32[i]):  # float64 blocks near 1e200 overflow float32 (is_nearest_float32 above)
                 float32_error = abs(Fraction(float(result32[i])) - exact)
                 assert float32_error <= grid_error + float32_ulp(result32[i]) / 2, i
-            if unclamped and bucket_max > 0:
+            if unclamped and block_max > 0:
                 # the stated relative bound: |r - s| / M <= K 2**(h - 51) (plus the final rounding for float32)
-                assert abs(on_grid - exact) / Fraction(bucket_max) <= k * Fraction(2) ** (headroom - 51), i
+                assert abs(on_grid - exact) / Fraction(block_max) <= k * Fraction(2) ** (headroom - 51), i
             # math.fsum (Shewchuk 1997), within half an ulp of the exact sum, seen through the same bound
             fsum = math.fsum(column)
             assert abs(Fraction(float(result64[i])) - Fraction(fsum)) <= grid_error + Fraction(math.ulp(fsum)) / 2
 
 
-def test_ties_round_to_even_and_zero_buckets_give_zeros() -> None:
-    # One bucket with max 2.5: E = 2, K = 1, S = 49; scaled by 2**-49 the inputs below land on exact halves.
+def test_ties_round_to_even_and_zero_blocks_give_zeros() -> None:
+    # One block with max 2.5: E = 2, K = 1, S = 49; scaled by 2**-49 the inputs below land on exact halves.
     bounds = np.array([0, 6, 10], dtype=np.int64)
     halves = np.array([0.5, 1.5, 2.5, -0.5, -2.5, 3.5], dtype=np.float64) * 2.0**-49
     chunk = np.concatenate([halves, np.zeros(3), [-0.0]])
-    chunk[0] = 2.5  # the bucket maximum; 2.5 * 2**49 is an integer
+    chunk[0] = 2.5  # the block maximum; 2.5 * 2**49 is an integer
     largest, shifts, acc = compact_sum(chunk[None, :], bounds)
     assert list(shifts) == [51 - 2, 51]  # frexp(2.5) = (0.625, 2); frexp(0) = (0, 0), K = 1: h = 0
     # Python round(): half to even (0.5 -> 0, 1.5 -> 2, 2.5 -> 2, -0.5 -> 0, -2.5 -> -2, 3.5 -> 4)
@@ -188,7 +188,7 @@ def test_replace_equals_zeroing_then_adding() -> None:
     assert np.array_equal(replaced, zeroed)
     # and an explicit sum of the independently rounded terms (Python round-half-even on Fractions)
     shift = expected_shifts(chunks, bounds)
-    for b, (lo, hi) in enumerate(buckets(bounds)):
+    for b, (lo, hi) in enumerate(blocks(bounds)):
         assert [int(v) for v in replaced[lo:hi]] == [fixed_point(float(v), shift[b]) for v in chunks[0, lo:hi]]
 
 
@@ -210,8 +210,8 @@ def test_slices_read_back_and_accumulate_like_the_whole(dtype) -> None:
                                   offset=lo)
         assert np.array_equal(piece, acc[lo:hi]), (lo, hi)
         part_max = np.zeros(len(bounds) - 1)
-        compactsum.bucket_max_abs(np.ascontiguousarray(chunks[0, lo:hi]), bounds, part_max, offset=lo)
-        for b, (a, z) in enumerate(buckets(bounds)):
+        compactsum.block_max_abs(np.ascontiguousarray(chunks[0, lo:hi]), bounds, part_max, offset=lo)
+        for b, (a, z) in enumerate(blocks(bounds)):
             inside = np.abs(chunks[0, max(a, lo):min(z, hi)])
             assert part_max[b] == float(np.max(inside, initial=0.0)), (lo, hi, b)  # numpy max over the overlap
 
@@ -220,12 +220,12 @@ def test_non_finite_inputs_are_reported() -> None:
     bounds = np.array([0, 3, 6], dtype=np.int64)
     largest = np.zeros(2)
     x = np.array([1.0, np.inf, 2.0, 0.5, -3.0, 1.0], dtype=np.float32)
-    assert compactsum.bucket_max_abs(x, bounds, largest) == np.inf
+    assert compactsum.block_max_abs(x, bounds, largest) == np.inf
     assert list(largest) == [np.inf, 3.0]
     x[4] = np.nan
-    assert math.isnan(compactsum.bucket_max_abs(x, bounds, largest))
+    assert math.isnan(compactsum.block_max_abs(x, bounds, largest))
     assert largest[0] == np.inf and math.isnan(largest[1])
-    assert compactsum.bucket_max_abs(np.ones(6), bounds, largest) == 1.0
+    assert compactsum.block_max_abs(np.ones(6), bounds, largest) == 1.0
     assert largest[0] == np.inf and math.isnan(largest[1])  # a NaN, once recorded, stays
     with pytest.raises(ValueError, match=r"max_abs\[0\] must be finite and >= 0; got inf"):
         compactsum.shifts(largest, 2)
@@ -304,9 +304,9 @@ def test_any_value_converts_to_its_rounded_scaled_integer(data, chunks: int, dty
         (lambda s, a, x: compactsum.accumulate(x, np.array([0, 4, 6]), s, a[:5]), r"acc must be an int64 .* \(6,\)"),
         (lambda s, a, x: compactsum.accumulate(x, np.array([0, 4, 6]), s, a, offset=-1), r"offset must be an int"),
         (lambda s, a, x: compactsum.to_float(a, np.array([0, 4, 6]), s, np.zeros(6, np.int32)), r"out must be a 1-D"),
-        (lambda s, a, x: compactsum.bucket_max_abs(x, np.array([0, 4, 6]), np.zeros(3)), r"out must .* shape \(2,\)"),
-        (lambda s, a, x: compactsum.bucket_max_abs(x[::2], np.array([0, 2, 3]), np.zeros(2)), r"x must be C-contig"),
-        (lambda s, a, x: compactsum.bucket_max_abs(x, np.array([0]), np.zeros(0)), r"bounds must be a 1-D int64"),
+        (lambda s, a, x: compactsum.block_max_abs(x, np.array([0, 4, 6]), np.zeros(3)), r"out must .* shape \(2,\)"),
+        (lambda s, a, x: compactsum.block_max_abs(x[::2], np.array([0, 2, 3]), np.zeros(2)), r"x must be C-contig"),
+        (lambda s, a, x: compactsum.block_max_abs(x, np.array([0]), np.zeros(0)), r"bounds must be a 1-D int64"),
         (lambda s, a, x: compactsum.to_float(a, np.array([0, 4, 6]), np.array([0, 1023]), np.zeros(6)),
          r"shift\[1\] must be in \[-993, 1022\] \(as made by shifts\(\)\); got 1023"),
     ],
@@ -327,10 +327,10 @@ def test_int32_sums_are_exact_on_a_30_bit_grid_and_the_same_for_every_split(dtyp
     chunks, bounds = mixed_chunks(np.random.default_rng(7 * k), k, dtype)
     largest = np.zeros(bounds.shape[0] - 1)
     for chunk in chunks:
-        compactsum.bucket_max_abs(chunk, bounds, largest)
+        compactsum.block_max_abs(chunk, bounds, largest)
     shifts = compactsum.shifts(largest, k, compactsum.term_bits(np.int32))
     headroom = math.ceil(math.log2(k))
-    for b, (lo, hi) in enumerate(buckets(bounds)):
+    for b, (lo, hi) in enumerate(blocks(bounds)):
         top = float(np.max(np.abs(chunks[:, lo:hi]), initial=0.0))
         assert shifts[b] == min(30 - headroom - math.frexp(top)[1], 1022)  # math.frexp, math.log2
     reference = None
@@ -345,11 +345,11 @@ def test_int32_sums_are_exact_on_a_30_bit_grid_and_the_same_for_every_split(dtyp
         if reference is None:
             reference = total.copy()
         assert np.array_equal(total, reference), cut  # integer sums: associative
-    for b, (lo, hi) in enumerate(buckets(bounds)):
+    for b, (lo, hi) in enumerate(blocks(bounds)):
         for i in range(lo, min(hi, lo + 8)):
             column = [float(v) for v in chunks[:, i]]
             assert reference[i] == sum(fixed_point(v, int(shifts[b])) for v in column), i  # Fraction, half to even
     out = read(reference, bounds, shifts, np.float64)
-    for b, (lo, hi) in enumerate(buckets(bounds)):
+    for b, (lo, hi) in enumerate(blocks(bounds)):
         for i in range(lo, hi):
             assert Fraction(float(out[i])) == Fraction(int(reference[i])) / Fraction(2) ** int(shifts[b])  # exact

@@ -1,9 +1,9 @@
 """The exchange strategies on one process: what the step's single interface computes in each mode.
 
-ExactExchange: the gradient it leaves must be the correctly rounded sum of the chunk gradients, element by element,
+ExactSum: the gradient it leaves must be the correctly rounded sum of the chunk gradients, element by element,
 whether a rank's first two chunks go into the limbs in one pass or not (1, 2 and 3 chunks). The reference is
 ``math.fsum`` (Python's exactly rounded floating-point sum, Shewchuk's algorithm), independent of our limbs.
-MessageExchange: messages are contiguous runs of whole layers in backward order that tile the gradient buffer.
+MessageSum: messages are contiguous runs of whole layers in backward order that tile the gradient buffer.
 Both strategies give the same gradient up to summation order as ``MLP.loss_and_grad`` on the whole batch.
 """
 
@@ -18,7 +18,8 @@ from shardmill.config import job_from_dict
 from shardmill.data.rows import gather
 from shardmill.model.mlp import MLP
 from shardmill.parallel.comm import Comm
-from shardmill.parallel.exchange import ExactExchange, MessageExchange
+from shardmill.parallel.ownership import Replicated
+from shardmill.parallel.summation import ExactSum, MessageSum
 from shardmill.training.trainer import Trainer
 
 
@@ -34,7 +35,7 @@ def trainer(folder, reduction: str, global_batch: int, chunk: int = 8, dtype: st
 @pytest.mark.parametrize("chunks", [1, 2, 3])
 def test_exact_gradient_is_the_correctly_rounded_sum_of_the_chunks(tmp_path, chunks, dtype):
     t = trainer(tmp_path, "exact", global_batch=8 * chunks, dtype=dtype)
-    assert isinstance(t.exchange, ExactExchange)
+    assert isinstance(t.exchange.summation, ExactSum)
     rows = t.sampler.batch(0, 0)
     parts = []
     for part, _ in t.exchange.parts(rows):  # each chunk's gradient alone, as the step computes it
@@ -50,7 +51,8 @@ def test_exact_gradient_is_the_correctly_rounded_sum_of_the_chunks(tmp_path, chu
 def test_messages_tile_the_gradient_in_backward_order_with_whole_layers():
     model = MLP([30, 40, 50, 20, 4], seed=0)
     grads = np.zeros_like(model.params)
-    exchange = MessageExchange(Comm(), model, grads, message_mib=0.004)  # 4000 bytes: several messages
+    comm = Comm()
+    exchange = MessageSum(comm, model, grads, Replicated(comm, grads.size), message_mib=0.004)  # 4000 bytes: several
     starts = [start for start, _ in exchange.messages]
     stops = [stop for _, stop in exchange.messages]
     assert starts[0] == 0 and stops[-1] == grads.size and starts[1:] == stops[:-1]  # contiguous, tiling
@@ -74,7 +76,7 @@ def test_strategy_gradient_matches_the_whole_batch_gradient(tmp_path, reduction)
 
 @pytest.mark.parametrize("processes", [1, 2, 3, 4, 16])
 def test_owned_slices_tile_the_parameters_in_whole_blocks(processes):
-    from shardmill.parallel.exchange import BLOCK, owner_bounds
+    from shardmill.parallel.ownership import BLOCK, owner_bounds
 
     n = 784 * 1024 + 1024 + 1024 * 1024 + 1024 + 1024 * 10 + 10  # the mid model, 1 863 690 parameters
     bounds = owner_bounds(n, processes)

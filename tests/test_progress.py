@@ -84,7 +84,8 @@ def test_collectives_on_one_rank_give_the_sum_over_one_rank(thread):
     recv = np.zeros(10)
     gathered = np.arange(7, dtype=np.float64)
     handles = [thread.start_allreduce_sum(grads[:400]), thread.start_allreduce_sum(grads[400:]),
-               thread.start_reduce_scatter_sum(send, recv, [10]), thread.start_allgather(gathered, [7])]
+               thread.start_reduce_scatter_sum(send, recv, [10]),
+               thread.submit(lambda duplicate: duplicate.allgather(gathered, [7]), "allgather")]
     thread.wait(handles)
     np.testing.assert_array_equal(grads, expected)
     np.testing.assert_array_equal(recv, send)  # MPI standard 4.0, MPI_REDUCE_SCATTER: one rank gets it all

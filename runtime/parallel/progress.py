@@ -98,10 +98,6 @@ class CommThread:
         return self.submit(lambda comm: comm.reduce_scatter_sum(send, recv, counts),
                            f"reduce_scatter_sum of {send.size} values")
 
-    def start_allgather(self, array: np.ndarray, counts: list[int]) -> Handle:
-        """In place: every rank's contiguous part of ``array`` (counts[rank] elements, rank order) to all ranks."""
-        return self.submit(lambda comm: comm.allgather(array, counts), f"allgather of {array.size} values")
-
     # -- waiting ----------------------------------------------------------------------------------------------
 
     def wait(self, handles: Iterable[Handle]) -> None:

@@ -14,8 +14,9 @@ so one table of coefficients per collective (`_coefficients`, `_reduce_scatter_c
 least-squares fit of α and β to measured timings.
 
 A step sends one allreduce of the gradient (replicated update), or a reduce-scatter of the gradient and an
-allgather of the parameters (sharded update; exact mode reduce-scatters its integer sums either way):
-`step_collectives` lists them, `project_step` prices them.
+allgather of the parameters (sharded update; exact mode reduce-scatters its integer sums either way): each part of
+an exchange strategy states its own (`parallel/exchange.py`), `step_collectives` reads them, `project_step`
+prices them.
 
 The file reads top to bottom: formulas → cheapest algorithm → fitting → network specs → projection. It needs
 no MPI; the timings it is fitted to come from `measure.py`.
@@ -31,6 +32,10 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
+from shardmill.parallel.collectives import COLLECTIVES, Collective
+from shardmill.parallel.exactformats import FORMATS
+from shardmill.parallel.exchange import choose
+from shardmill.parallel.ownership import BLOCK
 
 ALGORITHMS: tuple[str, ...] = ("ring", "recursive_doubling", "rabenseifner")
 """Allreduce algorithms the model knows, in the order used to break ties in `best_allreduce`."""
@@ -41,18 +46,11 @@ REDUCE_SCATTER_ALGORITHMS: tuple[str, ...] = ("ring", "recursive_halving")
 ALLGATHER_ALGORITHMS: tuple[str, ...] = ("ring", "bruck")
 """Allgather algorithms the model knows, in the order used to break ties in `best_collective`."""
 
-COLLECTIVES: tuple[str, ...] = ("allreduce", "reduce_scatter", "allgather")
-"""The collectives a step sends (`Collective.kind`)."""
-
 UPDATES: tuple[str, ...] = ("replicated", "sharded")
 """How the optimizer update is split (the job's `run.update`): every rank updates everything, or its own slice."""
 
-EXACT_BYTES = {"wide": 24, "compact": 8, "narrow": 4}
-"""Bytes per parameter of exact mode's integer sums in each format (`run.exact_format`): 3 int64, 1 int64, 1 int32;
-wide sends one limb row per call."""
-
-COMPACT_SCALE_BLOCK = 256
-"""Parameters sharing one scale in the compact exact format (`parallel.exchange.BLOCK`; a test keeps them equal)."""
+COMPACT_SCALE_BLOCK = BLOCK
+"""Parameters sharing one scale in the compact exact format (`parallel.ownership.BLOCK`, which the strategy uses)."""
 
 NO_COMMUNICATION = "none"
 """Algorithm name reported by `best_allreduce` and `project` for p = 1, where nothing is sent."""
@@ -96,10 +94,6 @@ def _check_choice(value: str, allowed: tuple[str, ...], name: str) -> None:
     close = difflib.get_close_matches(str(value), allowed, n=1)
     hint = f" (did you mean '{close[0]}'?)" if close else ""
     raise ValueError(f"`{name}` must be one of {', '.join(allowed)}; got {value!r}{hint}")
-
-
-def _check_algorithm(algorithm: str, allowed: tuple[str, ...] = ALGORITHMS) -> None:
-    _check_choice(algorithm, allowed, "algorithm")
 
 
 def _check_processes(p: Any, name: str = "p") -> int:
@@ -252,7 +246,7 @@ def collective_time(kind: str, algorithm: str, p: int, n_bytes: float, alpha: fl
     """
     _check_choice(kind, COLLECTIVES, "kind")
     algorithms, coefficients = _COEFFICIENTS[kind]
-    _check_algorithm(algorithm, algorithms)
+    _check_choice(algorithm, algorithms, "algorithm")
     p = _check_processes(p)
     n_bytes = check_non_negative(n_bytes, "n_bytes")
     alpha = check_non_negative(alpha, "alpha")
@@ -305,19 +299,9 @@ def best_collective(kind: str, p: int, n_bytes: float, alpha: float, beta: float
     return best_name, best_time
 
 
-@dataclass(frozen=True)
-class Collective:
-    """One collective a step sends: kind (see `COLLECTIVES`), n_bytes of the whole vector (the paper's n, bytes),
-    and calls, the number of such calls per step (exact mode's wide format reduce-scatters each limb row alone)."""
-
-    kind: str
-    n_bytes: float
-    calls: int = 1
-
-
 def step_collectives(update: str, reduction: str, n_params: int, itemsize: int,
                      exact_format: str = "wide") -> tuple[Collective, ...]:
-    """The collectives of one step's exchange, as `parallel/exchange.py` sends them.
+    """The collectives of one step's exchange, as the strategy's two parts state them (`parallel/exchange.py`).
 
     update: "replicated" or "sharded" (`run.update`); reduction: "fast" or "exact" (`run.reduction`);
     n_params: parameters; itemsize: bytes per parameter (4 for float32, 8 for float64); exact_format: "wide"
@@ -327,28 +311,17 @@ def step_collectives(update: str, reduction: str, n_params: int, itemsize: int,
 
         fast, replicated   allreduce of the gradient (n_params·itemsize bytes)
         fast, sharded      reduce-scatter of the gradient, allgather of the parameters (both n_params·itemsize)
-        exact, either      reduce-scatter of the integer sums (n_params·EXACT_BYTES bytes), allgather of the
+        exact, either      reduce-scatter of the integer sums (24, 8 or 4 bytes per parameter), allgather of the
                            gradient (replicated) or of the parameters (sharded), n_params·itemsize bytes
     """
     _check_choice(update, UPDATES, "update")
     _check_choice(reduction, ("fast", "exact"), "reduction")
-    _check_choice(exact_format, tuple(EXACT_BYTES), "exact_format")
+    _check_choice(exact_format, tuple(FORMATS), "exact_format")
     if isinstance(n_params, bool) or not isinstance(n_params, (int, np.integer)) or n_params < 0:
         raise ValueError(f"`n_params` must be a whole number of parameters >= 0; got {n_params!r}")
     if itemsize not in (2, 4, 8):
         raise ValueError(f"`itemsize` must be one of 2, 4, 8 bytes per parameter; got {itemsize!r}")
-    values = float(n_params * itemsize)
-    if reduction == "fast":
-        if update == "replicated":
-            return (Collective("allreduce", values),)
-        return Collective("reduce_scatter", values), Collective("allgather", values)
-    if exact_format == "wide":
-        scatter = (Collective("reduce_scatter", float(n_params * EXACT_BYTES["wide"] // 3), calls=3),)
-    else:
-        blocks = -(-n_params // COMPACT_SCALE_BLOCK)
-        scatter = (Collective("allreduce", float(blocks * 8)),
-                   Collective("reduce_scatter", float(n_params * EXACT_BYTES[exact_format])))
-    return (*scatter, Collective("allgather", values))
+    return choose(update, reduction, exact_format).collectives(int(n_params), itemsize)
 
 
 # --------------------------------------------------------------------------------------------------------
@@ -391,22 +364,6 @@ class Fit:
     def rms_relative_error(self) -> float:
         """Root mean square of the relative errors."""
         return math.sqrt(sum(error * error for error in self.relative_errors) / len(self.relative_errors))
-
-
-@dataclass(frozen=True)
-class LinearFit:
-    """Plain straight line T = intercept + slope·n fitted to timings.
-
-    intercept: seconds. slope: seconds per byte. relative_errors and r_squared as in `Fit`.
-    """
-
-    intercept: float
-    slope: float
-    sizes_bytes: tuple[float, ...]
-    times_s: tuple[float, ...]
-    predicted_s: tuple[float, ...]
-    relative_errors: tuple[float, ...]
-    r_squared: float
 
 
 def _timing_arrays(sizes_bytes: Iterable[float], times_s: Iterable[float]) -> tuple[np.ndarray, np.ndarray]:
@@ -457,10 +414,8 @@ def _non_negative_least_squares(A: np.ndarray, b: np.ndarray) -> np.ndarray:
     return best
 
 
-def _relative_least_squares(
-    design: np.ndarray, target: np.ndarray, times: np.ndarray, non_negative: bool
-) -> np.ndarray:
-    """Solve design·x ≈ target with every row divided by its measured time, columns scaled to unit norm.
+def _relative_least_squares(design: np.ndarray, target: np.ndarray, times: np.ndarray) -> np.ndarray:
+    """Solve design·x ≈ target, x ≥ 0, with every row divided by its measured time, columns scaled to unit norm.
 
     Timing noise is roughly multiplicative, so relative residuals weigh short and long messages alike; the
     column scaling puts α (≈ 1e-6 s) and β (≈ 1e-10 s/byte) on comparable footing for the solver.
@@ -468,11 +423,7 @@ def _relative_least_squares(
     rows = design / times[:, None]
     norms = np.linalg.norm(rows, axis=0)
     norms[norms == 0.0] = 1.0
-    if non_negative:
-        scaled = _non_negative_least_squares(rows / norms, target / times)
-    else:
-        scaled, *_ = np.linalg.lstsq(rows / norms, target / times, rcond=None)
-    return scaled / norms
+    return _non_negative_least_squares(rows / norms, target / times) / norms
 
 
 def fit_alpha_beta(
@@ -491,7 +442,7 @@ def fit_alpha_beta(
     Raises ValueError for p = 1 (nothing is communicated, so there is nothing to fit) and for fewer than two
     distinct sizes.
     """
-    _check_algorithm(algorithm)
+    _check_choice(algorithm, ALGORITHMS, "algorithm")
     p = _check_processes(p)
     if p == 1:
         raise ValueError(
@@ -503,7 +454,7 @@ def fit_alpha_beta(
     known = c_gamma * sizes * gamma
     design = np.column_stack([np.full_like(sizes, c_alpha), c_beta * sizes])
     # The known γ term moves to the target; rows are still weighted by the measured time.
-    alpha, beta = _relative_least_squares(design, times - known, times, non_negative=True)
+    alpha, beta = _relative_least_squares(design, times - known, times)
     predicted = c_alpha * alpha + c_beta * sizes * beta + known
     relative, r_squared = _fit_summary(times, predicted)
     return Fit(
@@ -512,28 +463,6 @@ def fit_alpha_beta(
         gamma=gamma,
         algorithm=algorithm,
         p=p,
-        sizes_bytes=tuple(float(size) for size in sizes),
-        times_s=tuple(float(t) for t in times),
-        predicted_s=tuple(float(t) for t in predicted),
-        relative_errors=relative,
-        r_squared=r_squared,
-    )
-
-
-def fit_linear(sizes_bytes: Sequence[float], times_s: Sequence[float]) -> LinearFit:
-    """Fit the plain line T = intercept + slope·n (seconds, seconds per byte) without constraints.
-
-    Same relative residuals as `fit_alpha_beta`; useful to read an effective latency and bandwidth off
-    timings without assuming an algorithm.
-    """
-    sizes, times = _timing_arrays(sizes_bytes, times_s)
-    design = np.column_stack([np.ones_like(sizes), sizes])
-    intercept, slope = _relative_least_squares(design, times, times, non_negative=False)
-    predicted = intercept + slope * sizes
-    relative, r_squared = _fit_summary(times, predicted)
-    return LinearFit(
-        intercept=float(intercept),
-        slope=float(slope),
         sizes_bytes=tuple(float(size) for size in sizes),
         times_s=tuple(float(t) for t in times),
         predicted_s=tuple(float(t) for t in predicted),

@@ -23,8 +23,9 @@ import time
 import numpy as np
 from shardmill.model.mlp import MLP
 from shardmill.parallel.comm import Comm, run_guarded
-from shardmill.parallel.exchange import MessageExchange
+from shardmill.parallel.ownership import Replicated
 from shardmill.parallel.progress import CommThread
+from shardmill.parallel.summation import MessageSum
 
 FAULTY_RANK = 1
 ROUNDS = 8
@@ -39,7 +40,8 @@ def fill(rank: int, size: int, round_: int) -> np.ndarray:
 def sums(comm: Comm, thread: CommThread, out: str) -> int:
     model = MLP([30, 40, 50, 20, 4], seed=0, dtype="float32")
     grads = np.zeros_like(model.params)
-    messages = MessageExchange(comm, model, grads, message_mib=0.004).messages  # several messages of whole layers
+    # several messages of whole layers
+    messages = MessageSum(comm, model, grads, Replicated(comm, grads.size), message_mib=0.004).messages
     checks: dict[str, bool] = {}
     for round_ in range(ROUNDS):
         grads[:] = fill(comm.rank, grads.size, round_)
@@ -59,7 +61,7 @@ def sums(comm: Comm, thread: CommThread, out: str) -> int:
     thread.start_reduce_scatter_sum(send, recv, counts)
     gathered = np.zeros(grads.size, dtype=np.float32)
     gathered[lo:lo + counts[comm.rank]] = comm.rank + 1
-    thread.start_allgather(gathered, counts)
+    thread.submit(lambda duplicate: duplicate.allgather(gathered, counts), "allgather")
     thread.wait_all()
     total = sum(fill(r, grads.size, ROUNDS) for r in range(comm.size))
     checks["reduce_scatter equals local sum"] = bool(np.array_equal(recv, total[lo:lo + counts[comm.rank]]))

@@ -11,7 +11,8 @@ from shardmill.data.rows import Split
 from shardmill.machine import machine
 from shardmill.parallel.comm import Comm
 from shardmill.timing import median, slowest_call, time_call
-from shardmill.training.trainer import Trainer, warm_up_kernels
+from shardmill.training.trainer import Trainer
+from shardmill.training.warmup import warm_up_kernels
 from threadpoolctl import threadpool_limits
 
 

@@ -68,24 +68,24 @@ def resume(trainer: Any) -> int:
     Any refusal is raised identically on all ranks.
     """
     comm, model, job = trainer.comm, trainer.model, trainer.job
+    arrays: dict[str, dict[str, np.ndarray]] = {}  # rank 0's parameters and optimizer state, as read
 
-    def load() -> tuple[dict[str, Any], dict[str, np.ndarray], dict[str, np.ndarray]]:
-        state, params, opt, skipped = checkpoint.load_newest_verified(job.workdir)
+    def load() -> dict[str, Any]:
+        state, arrays["params"], arrays["optimizer"], skipped = checkpoint.load_newest_verified(job.workdir)
         for reason in skipped:
             print(f"shardmill: warning: skipping a damaged checkpoint, {reason}", file=sys.stderr, flush=True)
         shapes = {name: view.shape for name, view in model.named(model.params).items()}
         optimizer_shapes = {name: (model.n_params,) for name in trainer.optimizer.state}
-        checkpoint.check_compatible(job, shapes, optimizer_shapes, state, params, opt)
-        return state, params, opt
+        checkpoint.check_compatible(job, shapes, optimizer_shapes, state, arrays["params"], arrays["optimizer"])
+        return state
 
-    loaded = lead_then_share(comm, load)  # rank 0's arrays; the others receive them below
-    state = comm.broadcast_object(loaded[0] if loaded is not None else None)
+    state = lead_then_share(comm, load, share=True)
     if comm.rank == 0:
         for name, view in model.named(model.params).items():
-            view[...] = loaded[1][name]
+            view[...] = arrays["params"][name]
     comm.broadcast(model.params)
     for name, array in trainer.optimizer.state.items():  # saved at full size; this rank keeps what it updates
-        full = loaded[2][name] if comm.rank == 0 else np.zeros(model.n_params, dtype=array.dtype)
+        full = arrays["optimizer"][name] if comm.rank == 0 else np.zeros(model.n_params, dtype=array.dtype)
         array[...] = comm.broadcast(np.ascontiguousarray(full, dtype=array.dtype))[trainer.exchange.owned]
     trainer.optimizer.updates = int(state["optimizer_updates"])
     trainer.step_count = int(state["step"])

@@ -32,7 +32,8 @@ from shardmill.commands.bench import gemm_floor_step, run_bench, synthetic_datas
 from shardmill.config import job_from_dict
 from shardmill.parallel.comm import Comm
 from shardmill.timing import PHASES, median, median_time
-from shardmill.training.trainer import Trainer, warm_up_kernels
+from shardmill.training.trainer import Trainer
+from shardmill.training.warmup import warm_up_kernels
 from threadpoolctl import threadpool_limits
 
 MODELS = {

@@ -191,7 +191,8 @@ def breakdown(repetitions: int) -> int:
     from shardmill.commands.bench import synthetic_dataset
     from shardmill.config import job_from_dict
     from shardmill.parallel.comm import Comm
-    from shardmill.training.trainer import Trainer, warm_up_kernels
+    from shardmill.training.trainer import Trainer
+    from shardmill.training.warmup import warm_up_kernels
     from threadpoolctl import threadpool_limits
 
     comm = Comm()

@@ -33,11 +33,11 @@ __all__ = ["MLP", "Job", "JobError", "Predictor", "job_from_dict", "load_job", "
 
 
 def train(job: Job, resume: bool = False, progress: bool = True, fresh: bool = False) -> dict[str, Any]:
-    """Train a job on every rank of MPI.COMM_WORLD (one process without a launcher); see trainer.train.
+    """Train a job on every rank of MPI.COMM_WORLD (one process without a launcher); see training.loop.train.
 
     A workdir that holds an earlier run is refused unless ``resume`` (continue it) or ``fresh`` (clear it first).
     The result's ``"predictor"`` is a :class:`Predictor` of the final model (raw inputs in, see above).
     """
-    from shardmill.training.trainer import train as _train
+    from shardmill.training.loop import train as _train
 
     return _train(job, resume=resume, progress=progress, fresh=fresh)

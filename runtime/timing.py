@@ -20,24 +20,38 @@ class PhaseTimer:
     """Seconds spent per phase since the last :meth:`reset`, one entry per name in :data:`PHASES`.
 
     ``start()`` marks the beginning of a step; ``lap("forward")`` charges the seconds since the previous mark
-    to that phase and moves the mark. ``seconds`` is the (len(PHASES),) float64 array of totals.
+    to that phase and moves the mark. A phase that another one interrupts (the exchange: the gradient's sum, then,
+    after the update, the parameters' publish) is ``hold``-ed where it pauses and lapped once, where it ends.
+    ``seconds`` is the (len(PHASES),) float64 array of totals.
     """
 
     def __init__(self) -> None:
         self.seconds = np.zeros(len(PHASES))
+        self._held = np.zeros(len(PHASES))  # seconds of the current step set aside for a later lap
         self._index = {name: i for i, name in enumerate(PHASES)}
         self._last = 0.0
 
     def start(self) -> None:
         self._last = time.perf_counter()
+        self._held[:] = 0.0
+
+    def hold(self, phase: str) -> None:
+        """Set the seconds since the mark aside for ``phase`` (charged by its next lap) and move the mark."""
+        now = time.perf_counter()
+        self._held[self._index[phase]] += now - self._last
+        self._last = now
 
     def lap(self, phase: str) -> None:
+        """Charge the seconds since the mark, and any held for ``phase``, to ``phase``; move the mark."""
         now = time.perf_counter()
-        self.seconds[self._index[phase]] += now - self._last
+        i = self._index[phase]
+        self.seconds[i] += now - self._last + self._held[i]
+        self._held[i] = 0.0
         self._last = now
 
     def reset(self) -> None:
         self.seconds[:] = 0.0
+        self._held[:] = 0.0
 
     def as_dict(self) -> dict[str, float]:
         """{phase: seconds} of the totals so far."""

@@ -18,7 +18,8 @@ from helpers import run_cli, write_job
 from shardmill.config import job_from_dict
 from shardmill.errors import JobError
 from shardmill.training.best import BestTracker
-from shardmill.training.trainer import Trainer, train
+from shardmill.training.loop import train
+from shardmill.training.trainer import Trainer
 from sklearn.datasets import load_wine
 from sklearn.metrics import log_loss
 

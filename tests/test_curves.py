@@ -1,7 +1,7 @@
 """Curves from metrics.jsonl: the figures are real PNGs and draw exactly what the file's records say.
 
 Data: scikit-learn's bundled iris (classification) and diabetes (regression) sets, trained for a few epochs by
-`shardmill.training.trainer.train`, so every figure comes from a real metrics.jsonl. What was drawn (curves.json) is
+`shardmill.training.loop.train`, so every figure comes from a real metrics.jsonl. What was drawn (curves.json) is
 compared with the file as Python's own json module reads it, line by line.
 """
 
@@ -59,7 +59,7 @@ def _last_per_epoch(records: list[dict]) -> dict[int, dict]:
 
 @pytest.fixture(scope="module")
 def iris_run(tmp_path_factory) -> Path:
-    from shardmill.training.trainer import train
+    from shardmill.training.loop import train
 
     folder = tmp_path_factory.mktemp("iris")
     train(_iris_job(folder), progress=False)
@@ -125,7 +125,7 @@ def test_each_figure_is_a_png_drawing_the_records_of_metrics_jsonl(iris_run, tmp
 
 
 def test_a_regression_draws_rmse_and_marks_the_early_stop(iris_run, tmp_path):
-    from shardmill.training.trainer import train
+    from shardmill.training.loop import train
 
     out = tmp_path / "curves"
     draw_curves(iris_run, out)  # a classification drawing first: its accuracy.png must not survive the next
@@ -151,7 +151,7 @@ def test_a_regression_draws_rmse_and_marks_the_early_stop(iris_run, tmp_path):
 
 
 def test_a_resumed_run_draws_each_epoch_once_from_its_latest_record(tmp_path, monkeypatch):
-    from shardmill.training import trainer as trainer_module
+    from shardmill.training import loop as trainer_module
 
     job = _diabetes_job(tmp_path, save_every=4, health_every=1)  # 353 training rows, G = 64: 5 steps an epoch
     real_step = trainer_module.Trainer.step

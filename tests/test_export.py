@@ -24,7 +24,8 @@ from shardmill.errors import JobError
 from shardmill.model.activations import FORMULAS as ACTIVATION_FORMULAS
 from shardmill.model.mlp import MLP
 from shardmill.model.predictor import Predictor, load_model
-from shardmill.training.trainer import Trainer, train
+from shardmill.training.loop import train
+from shardmill.training.trainer import Trainer
 from sklearn.datasets import load_breast_cancer, load_diabetes, load_iris, load_wine
 from sklearn.metrics import accuracy_score, log_loss, mean_squared_error
 

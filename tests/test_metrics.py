@@ -52,7 +52,7 @@ def _job(tmp_path, epochs: int = 3):
 
 
 def test_each_epoch_line_is_printed_as_its_epoch_ends(tmp_path, capsys, monkeypatch):
-    from shardmill.training import trainer as trainer_module
+    from shardmill.training import loop as trainer_module
 
     job = _job(tmp_path)
     real_step = trainer_module.Trainer.step
@@ -75,10 +75,10 @@ def test_each_epoch_line_is_printed_as_its_epoch_ends(tmp_path, capsys, monkeypa
 
 
 def test_without_a_bar_a_heartbeat_says_where_the_run_is(tmp_path, capsys, monkeypatch):
-    from shardmill.training import trainer as trainer_module
+    from shardmill.training import console, loop
 
-    monkeypatch.setattr(trainer_module, "HEARTBEAT_S", 0.0)  # every step
-    trainer_module.train(_job(tmp_path, epochs=1), progress=False, echo=True)
+    monkeypatch.setattr(console, "HEARTBEAT_S", 0.0)  # every step
+    loop.train(_job(tmp_path, epochs=1), progress=False, echo=True)
     beats = [line for line in capsys.readouterr().out.splitlines() if line.startswith("step")]
     assert beats and all("samples/s" in line and "s left" in line for line in beats)
     assert beats[0].split()[1] == "1/3"  # 353 training rows in batches of 128: 3 steps. common practice
@@ -132,7 +132,7 @@ def test_a_full_disk_during_a_checkpoint_is_one_line_naming_the_last_good_one(tm
 
     from shardmill import checkpoint
     from shardmill.errors import LocalJobError
-    from shardmill.training.trainer import train
+    from shardmill.training.loop import train
 
     job = _job(tmp_path, epochs=2)
     job.run.save_every = 1
@@ -168,7 +168,7 @@ def test_compile_fills_the_cache_without_the_data(tmp_path):
 
 
 def test_checkpoints_by_default_at_each_epoch_end_and_by_the_clock(tmp_path):
-    from shardmill.training.trainer import train
+    from shardmill.training.loop import train
 
     job = _job(tmp_path, epochs=3)  # 3 steps per epoch
     job.run.keep_checkpoints = 100
@@ -186,7 +186,7 @@ def test_checkpoints_by_default_at_each_epoch_end_and_by_the_clock(tmp_path):
 
 def test_an_interrupted_checkpoint_write_is_cleaned_up_when_the_next_job_starts(tmp_path):
     from shardmill.parallel.comm import Comm
-    from shardmill.training.trainer import _WorkdirLock
+    from shardmill.training.workdir import WorkdirLock as _WorkdirLock
 
     stale = tmp_path / "run" / "checkpoints" / ".tmp-step-00000009-12345"
     stale.mkdir(parents=True)
@@ -199,7 +199,7 @@ def test_the_checkpoint_index_lists_the_kept_checkpoints_and_refuses_damage(tmp_
     import hashlib
 
     from shardmill import checkpoint
-    from shardmill.training.trainer import train
+    from shardmill.training.loop import train
 
     job = _job(tmp_path, epochs=4)  # a checkpoint at each of the 4 epoch ends; 3 kept
     train(job, progress=False)
@@ -225,17 +225,17 @@ def test_the_checkpoint_index_lists_the_kept_checkpoints_and_refuses_damage(tmp_
 
 def test_a_first_run_says_it_is_compiling_before_it_does(tmp_path, capsys, monkeypatch):
     from shardmill import machine
-    from shardmill.training import trainer as trainer_module
+    from shardmill.training import console, loop
 
     cache = tmp_path / "cache"
     cache.mkdir()
     monkeypatch.setattr(machine, "numba_cache_dir", lambda: str(cache))
-    assert not trainer_module._kernels_cached()  # an empty cache: nothing compiled yet
-    trainer_module.train(_job(tmp_path, epochs=1), progress=False, echo=True)
+    assert not console.kernels_cached()  # an empty cache: nothing compiled yet
+    loop.train(_job(tmp_path, epochs=1), progress=False, echo=True)
     assert capsys.readouterr().out.splitlines()[0].startswith("compiling kernels for float64 (first run only")
     (cache / "kernels").mkdir()
     (cache / "kernels" / "optim.adam-50.py311.nbi").write_bytes(b"")  # Numba's index file of a cached kernel
-    assert trainer_module._kernels_cached()
+    assert console.kernels_cached()
     (tmp_path / "again").mkdir()
-    trainer_module.train(_job(tmp_path / "again", epochs=1), progress=False, echo=True)
+    loop.train(_job(tmp_path / "again", epochs=1), progress=False, echo=True)
     assert not any(line.startswith("compiling") for line in capsys.readouterr().out.splitlines())

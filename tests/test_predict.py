@@ -11,7 +11,8 @@ import pytest
 import scipy.special
 from helpers import make_classification, run_cli
 from shardmill.config import job_from_dict
-from shardmill.training.trainer import Trainer, train
+from shardmill.training.loop import train
+from shardmill.training.trainer import Trainer
 from sklearn.metrics import accuracy_score, log_loss
 
 LAYERS = [6, 16, 8, 3]

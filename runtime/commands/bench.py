@@ -12,7 +12,8 @@ from shardmill.machine import machine
 from shardmill.model.losses import LOSSES
 from shardmill.parallel.comm import Comm
 from shardmill.timing import median, slowest_call, time_call
-from shardmill.training.trainer import Trainer, warm_up_kernels
+from shardmill.training.trainer import Trainer
+from shardmill.training.warmup import warm_up_kernels
 from threadpoolctl import threadpool_limits
 
 

@@ -286,7 +286,8 @@ def cmd_resolve(args: argparse.Namespace) -> int:
 
 def cmd_train(args: argparse.Namespace) -> int:
     from shardmill.parallel.comm import Comm
-    from shardmill.training.trainer import TrainingStopped, train
+    from shardmill.training.loop import train
+    from shardmill.training.signals import TrainingStopped
 
     job = read_job(args)
     comm = Comm()
@@ -315,7 +316,8 @@ def cmd_compile(args: argparse.Namespace) -> int:
     from shardmill.commands.bench import synthetic_dataset
     from shardmill.machine import numba_cache_dir
     from shardmill.parallel.comm import Comm
-    from shardmill.training.trainer import Trainer, warm_up_kernels
+    from shardmill.training.trainer import Trainer
+    from shardmill.training.warmup import warm_up_kernels
 
     job = read_job(args)
     comm = Comm()

@@ -17,7 +17,7 @@ import time
 import traceback
 import zlib
 from collections.abc import Callable
-from typing import Any
+from typing import Any, TypeVar
 
 import numpy as np
 
@@ -30,6 +30,8 @@ from shardmill.errors import JobError, LocalJobError
 # rank's stderr and its abort request on separate channels; when the abort wins, the message is lost and the
 # user sees a bare exit code (seen once in CI: exit 2 with empty stderr). Half a second lets it drain.
 ABORT_GRACE_S = 0.5
+
+T = TypeVar("T")
 
 _MPI_TYPES = {np.dtype(np.float32): MPI.FLOAT, np.dtype(np.float64): MPI.DOUBLE, np.dtype(np.int64): MPI.INT64_T,
               np.dtype(np.int32): MPI.INT32_T}
@@ -254,3 +256,22 @@ def agree(comm: Comm, error: Exception | None) -> None:
     if failed:
         rank, text = failed[0]
         raise JobError(f"[rank {rank}] {text}")
+
+
+def lead_then_share(comm: Comm, work: Callable[[], T], share: bool = False) -> T | None:
+    """Rank 0 does ``work()``; every rank learns the outcome (start-up and checkpoint time, never in the step).
+
+    A :class:`JobError` that ``work`` raises is raised on every rank alike (through :func:`agree`: the error itself
+    on one rank, a JobError naming rank 0 on several); ``work`` maps other failures it expects (an OSError) to a
+    JobError itself. Returns rank 0's result on rank 0 and None elsewhere, or, with ``share``, rank 0's result on
+    every rank (a small picklable control object, broadcast).
+    """
+    result: T | None = None
+    error: Exception | None = None
+    if comm.rank == 0:
+        try:
+            result = work()
+        except JobError as err:
+            error = err
+    agree(comm, error)
+    return comm.broadcast_object(result) if share else result

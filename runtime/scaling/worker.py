@@ -125,7 +125,8 @@ def run_worker(job_path: Path, global_batch: int, steps: int, threads: int, pin:
     """
     from mpi4py import MPI
     from shardmill.parallel.comm import Comm
-    from shardmill.training.trainer import Trainer, warm_up_kernels
+    from shardmill.training.trainer import Trainer
+    from shardmill.training.warmup import warm_up_kernels
     from threadpoolctl import threadpool_limits
 
     comm = Comm()

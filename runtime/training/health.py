@@ -76,3 +76,34 @@ def warnings(record: dict[str, Any]) -> list[str]:
             out.append(f"step {step}: layer {l} ({layer['activation']}): {layer['dead_fraction']:.0%} of units "
                        f"dead (zero on every row of the batch)")
     return out
+
+
+class HealthWatch:
+    """Diagnostics every ``every`` steps (``run.health_every``; 0: never), taken around a step's update.
+
+    :meth:`before_update` keeps what :func:`diagnose` needs from before the update (Σ g² per layer of the clipped
+    gradient, a copy of the parameters), :meth:`after_update` makes the record; ``records`` holds the records not
+    yet written (the train loop writes them to metrics.jsonl). Every rank calls both at the same point: the
+    sums over ranks inside are collectives.
+    """
+
+    def __init__(self, every: int) -> None:
+        self.every = every
+        self.records: list[dict[str, Any]] = []
+        self._grad_squares: np.ndarray | None = None
+        self._before: np.ndarray | None = None
+
+    def before_update(self, trainer: Any) -> None:
+        """Before the update of global step ``trainer.step_count + 1``: keep its gradient norms and parameters."""
+        if not (self.every and (trainer.step_count + 1) % self.every == 0):
+            return
+        self._grad_squares = trainer.exchange.layer_sum_squares(trainer.model.slices)
+        self._before = trainer.model.params.copy()
+
+    def after_update(self, trainer: Any) -> None:
+        """After the update (``trainer.step_count`` counts it): the record of a watched step joins ``records``."""
+        if self._before is None:
+            return
+        self.records.append(diagnose(trainer.model, trainer.ws, trainer.last_part_rows, self._grad_squares,
+                                     self._before, trainer.comm, trainer.step_count))
+        self._grad_squares = self._before = None

@@ -28,7 +28,8 @@ from shardmill.data.rows import gather
 from shardmill.errors import JobError
 from shardmill.kernels import activations as act
 from shardmill.parallel.comm import Comm
-from shardmill.training.trainer import Trainer, warm_up_kernels
+from shardmill.training.trainer import Trainer
+from shardmill.training.warmup import warm_up_kernels
 from threadpoolctl import threadpool_limits
 
 Tamper = Callable[[np.ndarray, Comm], None]
@@ -43,9 +44,8 @@ def gamma(k: int, dtype: np.dtype) -> float:
 def parallel_gradient(trainer: Trainer, rows: np.ndarray, tamper: Tamper | None = None) -> np.ndarray:
     """The reduced gradient of one global batch exactly as a training step computes it (a new array)."""
     trainer.timer.start()
-    trainer.gradient(rows)
-    exchange = trainer.exchange
-    gradient = exchange.full(exchange.owned_gradient().copy())  # a sharded update holds only its slice
+    owned = trainer.gradient(rows)
+    gradient = trainer.exchange.full(owned.copy())  # a sharded update holds only its slice
     if tamper is not None:
         tamper(gradient, trainer.comm)
     return gradient

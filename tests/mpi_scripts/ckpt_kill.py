@@ -18,7 +18,7 @@ import numpy as np
 from shardmill import checkpoint
 from shardmill.config import load_job
 from shardmill.parallel.comm import Comm
-from shardmill.training.trainer import train
+from shardmill.training.loop import train
 
 calls = 0
 original = checkpoint._write_npz

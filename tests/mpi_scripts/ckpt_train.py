@@ -1,7 +1,7 @@
 """Run under ``mpiexec -n P``: a sequence of trainings in one process, each optionally resuming.
 
 Usage: ``python ckpt_train.py SPEC.json OUT.json``. SPEC holds ``{"base": folder, "runs": [...]}``; each run
-is ``{"name", "job": {...raw job tables...}, "resume": bool}`` and goes through ``shardmill.training.trainer.train``
+is ``{"name", "job": {...raw job tables...}, "resume": bool}`` and goes through ``shardmill.training.loop.train``
 exactly as ``shardmill train [--resume]`` does. Rank 0 writes OUT: per run the steps done and the SHA-256 of
 the final flat parameters on every rank (so a test can see that all ranks hold the same bits).
 """
@@ -15,7 +15,7 @@ import sys
 import numpy as np
 from shardmill.config import job_from_dict
 from shardmill.parallel.comm import Comm
-from shardmill.training.trainer import train
+from shardmill.training.loop import train
 
 
 def main() -> None:

@@ -1,0 +1,52 @@
+"""SIGTERM and SIGINT during training: noted by a handler, agreed after a step's sum, acted on after the step."""
+
+from __future__ import annotations
+
+import signal
+import threading
+from pathlib import Path
+from typing import Any
+
+
+class StopSignals:
+    """Remember SIGTERM (what a batch system sends before its time limit) and SIGINT (Ctrl-C) during training.
+
+    The handlers only note the signal; the step's agreement (:meth:`Trainer.agree`) shares it after every step's
+    sum, and all ranks stop together after the same step, so a checkpoint can be written collectively.
+    """
+
+    SIGNALS = (signal.SIGTERM, signal.SIGINT)
+
+    def __init__(self) -> None:
+        self.received = 0
+        self._previous: dict[int, Any] = {}
+
+    def __enter__(self) -> StopSignals:
+        if threading.current_thread() is threading.main_thread():  # handlers can only be set there
+            for signum in self.SIGNALS:
+                self._previous[signum] = signal.signal(signum, self._note)
+        return self
+
+    def __exit__(self, *exc_info: object) -> None:
+        for signum, handler in self._previous.items():
+            signal.signal(signum, handler)
+
+    def _note(self, signum: int, frame: Any) -> None:
+        self.received = self.received or signum
+
+
+class TrainingStopped(Exception):
+    """SIGTERM or SIGINT arrived during training: every rank finished its step and a checkpoint was written.
+
+    ``exit_code`` is 128 + the signal number (143 for SIGTERM, 130 for SIGINT), as a shell reports it.
+    """
+
+    def __init__(self, signum: int, step: int, workdir: Path, overrides: tuple[str, ...] = ()) -> None:
+        import shlex
+
+        name = signal.Signals(signum).name
+        sets = "".join(f" --set {shlex.quote(text)}" for text in overrides)
+        super().__init__(f"stopped by {name} after step {step}; checkpoint written under {workdir / 'checkpoints'}; "
+                         f"continue with `shardmill train JOB --resume{sets}`")
+        self.exit_code = 128 + signum
+        self.step = step

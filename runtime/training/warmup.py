@@ -1,0 +1,44 @@
+"""Compiling the step's kernels once before training: rank 0 first, then the others load Numba's cache."""
+
+from __future__ import annotations
+
+import time
+
+import numpy as np
+from shardmill.data.rows import gather
+from shardmill.kernels import optim as kernels_optim
+from shardmill.training.optim import Optimizer
+from shardmill.training.trainer import Trainer
+
+
+def warm_up_kernels(trainer: Trainer) -> float:
+    """Compile (or load from Numba's disk cache) every kernel the step uses; rank 0 first, then the others.
+
+    Ranks starting together would otherwise all compile and write the cache at once. Works on scratch
+    copies, so the model is untouched. Returns the seconds it took on this rank.
+    """
+    comm = trainer.comm
+    begin = time.perf_counter()
+
+    def run() -> None:
+        rows = trainer.data.split.train[: min(2, trainer.data.split.train.size)]
+        grads = np.zeros_like(trainer.grads)
+        gather(trainer.data.X, rows, trainer.data.mean, trainer.data.inv_std, trainer.ws.inputs)
+        targets = trainer.gather_targets(rows)
+        trainer.ws.forward_loss(rows.size, targets, 1.0)
+        trainer.quality_sum(rows.size, targets)
+        for _ in trainer.ws.backward(rows.size, grads):
+            pass
+        scratch = Optimizer(trainer.job.optimizer, grads.size, grads.dtype)
+        kernels_optim.sum_squares(grads)
+        kernels_optim.scale(grads, 1.0)
+        scratch.step(trainer.model.params.copy(), grads, 1)
+        trainer.exchange.warm_up()
+
+    if comm.rank == 0:
+        run()
+    comm.barrier()
+    if comm.rank != 0:
+        run()
+    comm.barrier()  # nobody's first timed step waits for another rank's compilation
+    return time.perf_counter() - begin

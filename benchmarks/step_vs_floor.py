@@ -245,7 +245,7 @@ def kernel_times(trainer: Trainer, repeats: int) -> dict[str, float]:
         Zout, O = ws.Z[-1][:n], ws.O[:n]
         dZ = ws.delta(0, n, model.sizes[-1])
         out["loss"] = median_time(lambda: losses.softmax_cross_entropy(Zout, targets[:n], 1.0 / n, O, dZ), repeats)
-        out["count_correct"] = median_time(lambda: trainer.count_correct(n, targets), repeats)
+        out["count_correct"] = median_time(lambda: trainer.quality_sum(n, targets), repeats)
         dbs = model.views(trainer.grads)[1]
         sums = back = 0.0
         for l in range(model.n_layers):

@@ -53,7 +53,6 @@ class MLP:
         self.hidden_codes = [ACTIVATIONS[a].code for a in self.activations]
         # the code the forward pass applies to the output layer: the identity where the loss kernel applies it
         self.output_code = act.IDENTITY if self.loss_entry.from_logits else ACTIVATIONS[self.output].code
-        self.loss_code = self.loss_entry.code
 
         # Layout: last layer first, W before b within a layer.
         self.slices: list[tuple[int, int]] = [(0, 0)] * self.n_layers  # (start, stop) of layer l in params

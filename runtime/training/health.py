@@ -79,31 +79,30 @@ def warnings(record: dict[str, Any]) -> list[str]:
 
 
 class HealthWatch:
-    """Diagnostics every ``every`` steps (``run.health_every``; 0: never), taken around a step's update.
+    """Diagnostics every ``every`` steps (``run.health_every``; 0: never), taken by the run loop around a step.
 
-    :meth:`before_update` keeps what :func:`diagnose` needs from before the update (Σ g² per layer of the clipped
-    gradient, a copy of the parameters), :meth:`after_update` makes the record; ``records`` holds the records not
-    yet written (the train loop writes them to metrics.jsonl). Every rank calls both at the same point: the
-    sums over ranks inside are collectives.
+    The loop calls :meth:`before_step` and :meth:`after_step` around ``Trainer.step``; ``records`` holds the records
+    not yet written (the loop writes them to metrics.jsonl). What :func:`diagnose` needs from before the update is
+    the parameters (a copy taken before the step: the gradient does not touch them) and Σ g² per layer of the
+    clipped gradient, read after the step from the exchange, which still holds it (the optimizer only reads the
+    gradient). Every rank calls both at the same point: the sums over ranks inside are collectives.
     """
 
     def __init__(self, every: int) -> None:
         self.every = every
         self.records: list[dict[str, Any]] = []
-        self._grad_squares: np.ndarray | None = None
         self._before: np.ndarray | None = None
 
-    def before_update(self, trainer: Any) -> None:
-        """Before the update of global step ``trainer.step_count + 1``: keep its gradient norms and parameters."""
-        if not (self.every and (trainer.step_count + 1) % self.every == 0):
-            return
-        self._grad_squares = trainer.exchange.layer_sum_squares(trainer.model.slices)
-        self._before = trainer.model.params.copy()
+    def before_step(self, trainer: Any) -> None:
+        """Before global step ``trainer.step_count + 1``: keep the parameters if that step is watched."""
+        if self.every and (trainer.step_count + 1) % self.every == 0:
+            self._before = trainer.model.params.copy()
 
-    def after_update(self, trainer: Any) -> None:
-        """After the update (``trainer.step_count`` counts it): the record of a watched step joins ``records``."""
+    def after_step(self, trainer: Any) -> None:
+        """After the step (``trainer.step_count`` counts it): the record of a watched step joins ``records``."""
         if self._before is None:
             return
-        self.records.append(diagnose(trainer.model, trainer.ws, trainer.last_part_rows, self._grad_squares,
+        grad_squares = trainer.exchange.layer_sum_squares(trainer.model.slices)
+        self.records.append(diagnose(trainer.model, trainer.ws, trainer.last_part_rows, grad_squares,
                                      self._before, trainer.comm, trainer.step_count))
-        self._grad_squares = self._before = None
+        self._before = None

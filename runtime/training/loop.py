@@ -18,6 +18,7 @@ from shardmill.errors import JobError
 from shardmill.parallel.comm import Comm
 from shardmill.training import saving
 from shardmill.training.console import Console, compiling_notice, kernels_cached, kernels_ready, say
+from shardmill.training.health import HealthWatch
 from shardmill.training.records import append, early_stop_record, epoch_record, start_record, write_health
 from shardmill.training.signals import StopSignals, TrainingStopped
 from shardmill.training.trainer import StepFlags, Trainer
@@ -76,6 +77,7 @@ class RunLoop:
         self.epoch_begin, self.epoch_steps = 0.0, 0  # when the current epoch began, and its steps so far
         self.improved = False  # the last epoch's model is the best so far
         self.stopped_early = False
+        self.watch = HealthWatch(trainer.job.run.health_every)  # diagnostics around the watched steps
         self.console: Console | None = None
 
     def run(self) -> dict[str, Any]:
@@ -99,14 +101,16 @@ class RunLoop:
         self.epoch_begin = time.perf_counter()
         while self.step < self.total:
             epoch, in_epoch = divmod(self.step, self.steps_per_epoch)
+            self.watch.before_step(trainer)
             trainer.step(epoch, in_epoch)
+            self.watch.after_step(trainer)
             self.check_drift()
             self.step += 1
             self.epoch_steps += 1
             console.step_done(self.step)
             end_of_epoch = self.step % self.steps_per_epoch == 0 or self.step == self.total
-            if trainer.health:
-                write_health(trainer.health, self.metrics_path, self.lead)
+            if self.watch.records:
+                write_health(self.watch.records, self.metrics_path, self.lead)
             self.improved = False
             if end_of_epoch:
                 self.end_epoch(epoch)

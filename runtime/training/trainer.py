@@ -18,14 +18,13 @@ from shardmill.config import Job
 from shardmill.data.dataset import Dataset, load_dataset
 from shardmill.data.rows import Sampler, gather
 from shardmill.errors import JobError
-from shardmill.kernels import losses
 from shardmill.model.mlp import model_from_job
 from shardmill.parallel.comm import Comm, agree
 from shardmill.parallel.exchange import resolve_update
 from shardmill.parallel.exchange import strategy as exchange_strategy
 from shardmill.timing import PHASES, PhaseTimer
+from shardmill.training import saving
 from shardmill.training.best import BestTracker
-from shardmill.training.health import HealthWatch
 from shardmill.training.optim import Optimizer
 
 
@@ -81,8 +80,6 @@ class Trainer:
         self.part_sums = np.zeros(3)
         self.problem: str | None = None  # why this step's loss cannot be trusted (a diverged run), or None
         self.last_part_rows = 0  # rows of the part whose activations the workspace holds (for health)
-        self.watch = HealthWatch(run.health_every)  # diagnostics around the update, every run.health_every steps
-        self.health = self.watch.records  # diagnostics records not yet written (the run loop writes them)
         self.flags = StepFlags()  # the run loop hands in its own: stop signals and the checkpoint clock
         self.best = (BestTracker(run.best_metric, run.patience, run.min_improvement)
                      if run.best_metric != "off" else None)  # the best model so far (run.best_metric)
@@ -103,9 +100,7 @@ class Trainer:
         rows = self.sampler.batch(epoch, step_in_epoch)  # sample: the G global indices
         gradient = self.gradient(rows)  # shard, gather, forward, loss, backward, exchange: of params[owned]
         self.clip(gradient)
-        self.watch.before_update(self)
         self.update(gradient)
-        self.watch.after_update(self)
 
     def gradient(self, rows: np.ndarray) -> np.ndarray:
         """The mean gradient of the global batch ``rows`` over every rank, of ``params[exchange.owned]``.
@@ -113,8 +108,7 @@ class Trainer:
         Returns the exchange's owned gradient, (owned_size,) in the model's dtype (a view: valid until the next
         call). Ends with the step's agreement (:meth:`agree`), so a diverged sum stops every rank here.
         """
-        # TODO(merge): the exchange will reset its own `problem` at the start of parts(); then drop it here.
-        self.problem = self.exchange.problem = None
+        self.problem = None  # the exchange resets its own at the start of parts()
         for part, part_grads in self.exchange.parts(rows):
             self.part_gradient(part, part_grads)
             self.exchange.add(part_grads)
@@ -175,18 +169,9 @@ class Trainer:
             self.exchange.layer_done(layer)
 
     def quality_sum(self, n: int, targets: np.ndarray) -> float:
-        """The second metric sum of the batch in the workspace: correct predictions, or Σ (o − t)² (regression)."""
-        if self.model.loss == "squared_error":
-            return losses.squared_error_sum(self.ws.O[:n], targets[:n])
-        return self.count_correct(n, targets)
-
-    def count_correct(self, n: int, targets: np.ndarray) -> int:
-        loss = self.model.loss_code
-        if loss == losses.SOFTMAX_CROSS_ENTROPY:
-            return losses.count_correct(self.ws.O[:n], targets[:n])  # O holds the softmax of this batch
-        if loss == losses.BINARY_CROSS_ENTROPY:
-            return losses.count_correct_binary(self.ws.O[:n], targets[:n])
-        return 0
+        """The second metric sum of the batch in the workspace (correct predictions, or Σ (o − t)²): the loss's entry
+        says which (``model/losses.py``)."""
+        return self.model.loss_entry.quality_sum(self.ws.O[:n], targets[:n])
 
     def take_train_sums(self) -> np.ndarray:
         """The training (loss sum, correct, rows) since the last call, summed over ranks; resets them.
@@ -218,16 +203,8 @@ class Trainer:
         return self.summarise(sums.reduce())
 
     def summarise(self, sums: np.ndarray) -> dict[str, float]:
-        n = max(sums[2], 1.0)
-        out = {"loss": float(sums[0] / n)}
-        k = self.model.sizes[-1]
-        if self.model.loss == "squared_error":
-            out["rmse"] = float(math.sqrt(sums[1] / (n * k)))
-        elif self.model.loss == "binary_cross_entropy":
-            out["accuracy"] = float(sums[1] / (n * k))
-        else:
-            out["accuracy"] = float(sums[1] / n)
-        return out
+        """(loss sum, quality sum, rows) as the logged metrics: loss and accuracy or RMSE, by the loss's entry."""
+        return self.model.loss_entry.summary(sums, self.model.sizes[-1])
 
     def reduce_phases(self) -> tuple[dict[str, float], dict[str, float]]:
         """Per-phase seconds since the last call: (max over ranks, mean over ranks)."""
@@ -240,15 +217,11 @@ class Trainer:
 
     def training_state(self, step: int) -> checkpoint.TrainingState:
         """The plain state a checkpoint holds (collective); see :func:`shardmill.training.saving.training_state`."""
-        from shardmill.training.saving import training_state
-
-        return training_state(self, step)
+        return saving.training_state(self, step)
 
     def resume(self) -> int:
         """Restore from the newest checkpoint that verifies; returns its step (collective); see ``saving.resume``."""
-        from shardmill.training.saving import resume
-
-        return resume(self)
+        return saving.resume(self)
 
 
 class Diverged(JobError):

@@ -94,6 +94,10 @@ def test_only_the_comm_module_touches_the_mpi_world() -> None:
     # convention: parallel/comm.py is the one door to MPI.COMM_WORLD (DEVELOPERS.md "Conventions")
     touching = sorted(name for name, path in MODULES.items() if "COMM_WORLD" in _code_of(path))
     assert touching == ["shardmill.parallel.comm"]
+    # and only it imports mpi4py, besides the raw-MPI timings that price MPI without our wrapper on purpose
+    importing = sorted(name for name, path in MODULES.items()
+                       if any(target.split(".")[0] == "mpi4py" for target, _ in imports_of(path)))
+    assert importing == ["shardmill.parallel.comm", "shardmill.scaling.measure"]
 
 
 def _code_of(path: Path) -> str:

@@ -86,7 +86,7 @@ def cli_runs(data_dir: Path) -> dict[str, tuple]:
         tables = job_tables(data_dir, dtype, mode)
         job = write_job(folder, tables["model"], tables["run"], tables["optimizer"], tables["data"])
         report = folder / "report.json"
-        args = ["-m", "shardmill", "verify", str(job), "--json", str(report)]
+        args = ["-m", "shardmill", "verify", str(job), "--out", str(report)]
         if trajectory:
             args += ["--trajectory", str(trajectory)]
         proc = run_mpi(P, args, timeout=120)

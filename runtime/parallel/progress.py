@@ -29,8 +29,7 @@ from collections.abc import Callable, Iterable
 from typing import Any
 
 import numpy as np
-from mpi4py import MPI
-from shardmill.parallel.comm import Comm
+from shardmill.parallel.comm import Comm, library
 
 CLOSE_TIMEOUT_S = 30.0
 """Seconds :meth:`CommThread.close` waits for the thread to finish its queue before leaving it behind."""
@@ -66,10 +65,10 @@ class CommThread:
     """
 
     def __init__(self, comm: Comm, name: str = "shardmill-comm") -> None:
-        if comm.size > 1 and MPI.Query_thread() < MPI.THREAD_MULTIPLE:
+        level = library()["mpi_thread_level"]
+        if comm.size > 1 and level != "multiple":
             # Two threads calling MPI at once without MPI_THREAD_MULTIPLE corrupts the library's state.
-            raise RuntimeError("a communication thread needs MPI initialised with MPI_THREAD_MULTIPLE; "
-                               f"got thread level {MPI.Query_thread()}")
+            raise RuntimeError(f"a communication thread needs MPI initialised with MPI_THREAD_MULTIPLE; got {level}")
         self.comm = comm.duplicate()
         self._queue: queue.SimpleQueue = queue.SimpleQueue()
         self._last: Handle | None = None  # every earlier handle finishes before it (one thread, in order)

@@ -123,8 +123,7 @@ def run_worker(job_path: Path, global_batch: int, steps: int, threads: int, pin:
     gather: a small control message after timing), the allreduce is timed over MESSAGE_SIZES (P > 1) and
     rank 0 measures γ at the message size.
     """
-    from mpi4py import MPI
-    from shardmill.parallel.comm import Comm
+    from shardmill.parallel.comm import Comm, library
     from shardmill.training.trainer import Trainer
     from shardmill.training.warmup import warm_up_kernels
     from threadpoolctl import threadpool_limits
@@ -166,8 +165,7 @@ def run_worker(job_path: Path, global_batch: int, steps: int, threads: int, pin:
     if comm.rank == 0:
         gamma_bytes = int(job.run.message_mib * 2**20)
         gamma = measure_reduction_gamma(gamma_bytes, repeats=comm_repeats, warmup=1, dtype=dtype)
-        import mpi4py
-
+        mpi = library()
         payload = {
             "p": comm.size,
             "global_batch": global_batch,
@@ -184,26 +182,17 @@ def run_worker(job_path: Path, global_batch: int, steps: int, threads: int, pin:
             "ranks": records,
             "allreduce": timings,
             "allreduce_skipped_bytes": skipped,
-            "mpi_thread_level": thread_level_name(MPI.Query_thread()),
+            "mpi_thread_level": mpi["mpi_thread_level"],
             "gamma_s_per_byte": gamma,
             "gamma_bytes": gamma_bytes,
-            "mpi_library": " ".join(MPI.Get_library_version().strip().splitlines()[0].split()),
-            "mpi4py": mpi4py.__version__,
+            "mpi_library": " ".join(mpi["mpi_library"].split()),
+            "mpi4py": mpi["mpi4py"],
         }
         partial = result.with_suffix(".tmp")
         partial.write_text(json.dumps(payload, allow_nan=False))
         partial.replace(result)
     comm.barrier()
     return 0
-
-
-def thread_level_name(level: int) -> str:
-    """MPI's thread support level as a word: single, funneled, serialized or multiple."""
-    from mpi4py import MPI
-
-    names = {MPI.THREAD_SINGLE: "single", MPI.THREAD_FUNNELED: "funneled", MPI.THREAD_SERIALIZED: "serialized",
-             MPI.THREAD_MULTIPLE: "multiple"}
-    return names.get(level, str(level))
 
 
 def worker_main(argv: list[str] | None = None) -> int:

@@ -115,7 +115,7 @@ def verify(job: Job, comm: Comm | None = None, batches: int = 3, trajectory: int
 
     Returns the report on rank 0 (None elsewhere). ``tamper`` (for tests) alters the reduced gradient
     before comparison, to show the check can fail. ``trajectory`` > 0 also trains that many steps
-    in parallel and serially (rank 0 alone, MPI.COMM_SELF) and reports the parameter divergence per step.
+    in parallel and serially (rank 0 alone, ``Comm.alone()``) and reports the parameter divergence per step.
     """
     comm = comm or Comm()
     with threadpool_limits(limits=job.run.threads, user_api="blas"):
@@ -147,10 +147,8 @@ def verify(job: Job, comm: Comm | None = None, batches: int = 3, trajectory: int
 
 
 def _trajectory(job: Job, comm: Comm, steps: int) -> list[dict[str, float]] | None:
-    from mpi4py import MPI
-
     parallel = Trainer(job, comm)
-    serial = Trainer(job, Comm(MPI.COMM_SELF)) if comm.rank == 0 else None
+    serial = Trainer(job, Comm.alone()) if comm.rank == 0 else None
     out = []
     spe = parallel.sampler.steps_per_epoch
     for step in range(steps):

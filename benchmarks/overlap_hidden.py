@@ -10,7 +10,7 @@ of the buffer outside the clock:
 * ``compute``: the GEMMs alone;
 * ``blocking``: compute, then the blocking allreduces (the step without overlap);
 * ``iallreduce``: every message's ``Iallreduce`` started, compute, then ``Waitall`` (MPI's own progress);
-* ``thread``: every message handed to the communication thread (``shardmill.parallel.progress``), compute, wait;
+* ``thread``: every message handed to the communication thread (``shardmill.parallel.commthread``), compute, wait;
 
 and, for reference, ``thread_exchange``: the messages through the thread with no compute. Medians over the
 repetitions. exposed = total − compute; hidden fraction = 1 − exposed / exchange (1: all hidden, 0: none, below 0:
@@ -63,8 +63,8 @@ def measure(repetitions: int, warmup: int) -> None:
     """Median seconds of every contender on this job's ranks, and the ratios; rank 0 prints them (JSON)."""
     from shardmill.model.mlp import MLP
     from shardmill.parallel.comm import Comm
+    from shardmill.parallel.commthread import CommThread
     from shardmill.parallel.ownership import Replicated
-    from shardmill.parallel.progress import CommThread
     from shardmill.parallel.summation import MessageSum
 
     comm = Comm()

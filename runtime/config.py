@@ -146,7 +146,7 @@ SCHEMA: tuple[Key, ...] = (
         "and the parameters are allgathered; auto: sharded on 2 or more processes when the optimizer keeps state "
         "(momentum, nesterov, adam, adamw), else replicated", choices=("auto", "replicated", "sharded"),
         trajectory=False),
-    Key("run.progress", "choice", "auto", "who drives the overlapped message reductions: library (MPI's "
+    Key("run.comm_driver", "choice", "auto", "who drives the overlapped message reductions: library (MPI's "
         "non-blocking calls; best on one node, where the exchange is CPU work anyway), thread (a communication "
         "thread per rank; hides the exchange on a network), auto (thread when the ranks span more than one node)",
         choices=("auto", "thread", "library"), trajectory=False),
@@ -251,7 +251,7 @@ class RunSpec:
     exact_chunk: int = default("run.exact_chunk")
     message_mib: float = default("run.message_mib")
     update: str = default("run.update")
-    progress: str = default("run.progress")
+    comm_driver: str = default("run.comm_driver")
     overlap: bool = default("run.overlap")
     save_every: int = default("run.save_every")
     save_minutes: float = default("run.save_minutes")

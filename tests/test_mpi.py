@@ -75,10 +75,11 @@ for update in ("replicated", "sharded"):
     ]
 CASES += [
     {"name": "wide_fast_sharded_thread", "kind": "train", "steps": STEPS,
-     "job": job(WIDE, "tanh", {"global_batch": 10, "update": "sharded", "progress": "thread", **TINY_MESSAGES},
+     "job": job(WIDE, "tanh", {"global_batch": 10, "update": "sharded", "comm_driver": "thread", **TINY_MESSAGES},
                 CLIPPED)},
     {"name": "train_fast_thread", "kind": "train", "steps": STEPS,
-     "job": job(LAYERS, "tanh", {"global_batch": 10, "check_every": 1, "progress": "thread", **TINY_MESSAGES}, ADAM)},
+     "job": job(LAYERS, "tanh", {"global_batch": 10, "check_every": 1, "comm_driver": "thread", **TINY_MESSAGES},
+                ADAM)},
     {"name": "wide_fast_sharded_no_overlap", "kind": "train", "steps": STEPS,
      "job": job(WIDE, "tanh", {"global_batch": 10, "update": "sharded", "overlap": False}, CLIPPED)},
     {"name": "train_exact_compact", "kind": "train", "steps": STEPS,

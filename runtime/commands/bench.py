@@ -55,7 +55,7 @@ def run_bench(layers: list[int], batch: int, dtype: str = default("model.dtype")
               overlap: bool = default("run.overlap"), activation: str = default("model.activation"),
               loss: str = default("model.loss"), method: str = "sgd", message_mib: float = default("run.message_mib"),
               exact_chunk: int = 64, update: str = default("run.update"),
-              exact_format: str = default("run.exact_format"), progress: str = default("run.progress"),
+              exact_format: str = default("run.exact_format"), comm_driver: str = default("run.comm_driver"),
               comm: Comm | None = None) -> dict[str, Any]:
     """Median time of full training steps (global batch ``batch`` over all ranks) and of the GEMM floor.
 
@@ -72,7 +72,7 @@ def run_bench(layers: list[int], batch: int, dtype: str = default("model.dtype")
         "optimizer": {"method": method, "learning_rate": 1e-4},
         "run": {"global_batch": batch, "threads": threads, "reduction": reduction, "overlap": overlap,
                 "message_mib": message_mib, "exact_chunk": exact_chunk, "update": update,
-                "exact_format": exact_format, "progress": progress, "epochs": 1},
+                "exact_format": exact_format, "comm_driver": comm_driver, "epochs": 1},
     })
     rows = max(4 * batch, 1024)
     with threadpool_limits(limits=threads, user_api="blas"):
@@ -113,7 +113,7 @@ def run_bench(layers: list[int], batch: int, dtype: str = default("model.dtype")
         "reduction": reduction,
         "update": update,
         "exact_format": exact_format,
-        "progress": progress,
+        "comm_driver": comm_driver,
         "overlap": overlap,
         "params": n_params,
         "steps": steps,

@@ -129,8 +129,8 @@ def build_parser() -> argparse.ArgumentParser:
                         f"{default('run.exact_chunk')}; 64 here divides bench's global batches)")
     p.add_argument("--exact-format", choices=choices("run.exact_format"), default=default("run.exact_format"),
                    help="exact mode's accumulator (run.exact_format)")
-    p.add_argument("--comm-progress", choices=choices("run.progress"), default=default("run.progress"),
-                   help="who drives the overlapped reductions (the job key run.progress; not a progress bar)")
+    p.add_argument("--comm-driver", choices=choices("run.comm_driver"), default=default("run.comm_driver"),
+                   help="who drives the overlapped reductions (the job key run.comm_driver)")
     p.add_argument("--no-overlap", action="store_true", help="one blocking allreduce after backward")
     p.add_argument("--message-mib", type=float, default=default("run.message_mib"), metavar="MIB",
                    help="smallest gradient message, MiB (run.message_mib)")
@@ -346,7 +346,7 @@ def cmd_bench(args: argparse.Namespace) -> int:
                        warmup=args.untimed, reduction=args.reduction, overlap=not args.no_overlap,
                        activation=args.activation, method=args.method, message_mib=args.message_mib,
                        exact_chunk=args.exact_chunk, update=args.update, exact_format=args.exact_format,
-                       progress=args.comm_progress,
+                       comm_driver=args.comm_driver,
                        comm=comm)
     if comm.rank == 0:
         if args.json:

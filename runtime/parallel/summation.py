@@ -98,7 +98,7 @@ class MessageSum:
     """
 
     def __init__(self, comm: Comm, model: MLP, grads: np.ndarray, ownership: Ownership, message_mib: float,
-                 overlap: bool = True, progress: str = "library") -> None:
+                 overlap: bool = True, driver: str = "library") -> None:
         self.comm = comm
         self.grads = grads
         self.ownership = ownership
@@ -106,11 +106,11 @@ class MessageSum:
         self.overlap = overlap
         # MPICH makes no progress on a non-blocking collective while this thread is inside BLAS; a communication
         # thread does, which pays on a network link (benchmarks/overlap_hidden.py) but costs a few % on one node.
-        if progress == "auto":
-            progress = "thread" if comm.spans_nodes() else "library"
+        if driver == "auto":
+            driver = "thread" if comm.spans_nodes() else "library"
         self.thread = None
-        if overlap and progress == "thread" and comm.size > 1:
-            from shardmill.parallel.progress import CommThread  # MPI-threaded machinery, only when asked for
+        if overlap and driver == "thread" and comm.size > 1:
+            from shardmill.parallel.commthread import CommThread  # MPI-threaded machinery, only when asked for
 
             self.thread = CommThread(comm)
         limit = message_mib * 2**20
@@ -136,7 +136,7 @@ class MessageSum:
     @classmethod
     def from_run(cls, comm: Comm, model: MLP, grads: np.ndarray, ownership: Ownership, run: RunSpec) -> MessageSum:
         """The summation with the settings of a job's ``[run]`` table."""
-        return cls(comm, model, grads, ownership, run.message_mib, run.overlap, run.progress)
+        return cls(comm, model, grads, ownership, run.message_mib, run.overlap, run.comm_driver)
 
     @staticmethod
     def check(run: RunSpec, processes: int) -> None:

@@ -1,6 +1,6 @@
-"""Run under ``mpiexec -n P``: collectives driven by the communication thread (``shardmill.parallel.progress``).
+"""Run under ``mpiexec -n P``: collectives driven by the communication thread (``shardmill.parallel.commthread``).
 
-Usage: ``python progress_collectives.py MODE OUT.json``. MODE is one of
+Usage: ``python commthread_collectives.py MODE OUT.json``. MODE is one of
 
 - ``sums``: for several rounds, the thread allreduces the messages of a gradient buffer while the main thread runs
   its own blocking allreduces of a copy on the world communicator; then a reduce-scatter and an allgather through
@@ -23,8 +23,8 @@ import time
 import numpy as np
 from shardmill.model.mlp import MLP
 from shardmill.parallel.comm import Comm, run_guarded
+from shardmill.parallel.commthread import CommThread
 from shardmill.parallel.ownership import Replicated
-from shardmill.parallel.progress import CommThread
 from shardmill.parallel.summation import MessageSum
 
 FAULTY_RANK = 1

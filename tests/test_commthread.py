@@ -1,4 +1,4 @@
-"""The communication thread (``shardmill.parallel.progress``): order, results, failures, shutdown.
+"""The communication thread (``shardmill.parallel.commthread``): order, results, failures, shutdown.
 
 One process: the thread runs what it is given on another thread, one operation at a time in submission order
 (MPI matches the collectives on a communicator by the order of the calls, MPI standard 4.0, collective
@@ -22,9 +22,9 @@ import pytest
 from helpers import run_mpi
 from mpi4py import MPI
 from shardmill.parallel.comm import Comm
-from shardmill.parallel.progress import CommThread
+from shardmill.parallel.commthread import CommThread
 
-SCRIPT = Path(__file__).parent / "mpi_scripts" / "progress_collectives.py"
+SCRIPT = Path(__file__).parent / "mpi_scripts" / "commthread_collectives.py"
 LIMIT_S = 30.0  # a failing job must be over within 30 s (tests/test_failures.py)
 HARD_TIMEOUT_S = 60.0
 

@@ -221,7 +221,7 @@ def paired(row: dict[str, Any], layers: list[int], batch: int) -> dict[str, Any]
 
 def kernel_times(trainer: Trainer, repeats: int) -> dict[str, float]:
     """Median milliseconds of each non-GEMM piece of one step on this trainer's shapes, timed alone."""
-    from shardmill.data.rows import gather
+    from shardmill.data.rows import take_rows
     from shardmill.kernels import activations as act
     from shardmill.kernels import losses
     from shardmill.training.optim import Optimizer
@@ -229,11 +229,11 @@ def kernel_times(trainer: Trainer, repeats: int) -> dict[str, float]:
     ws, model, data = trainer.ws, trainer.model, trainer.data
     n = ws.rows
     rows = trainer.sampler.batch(0, 0)[:n]
-    targets = trainer.gather_targets(rows)
+    targets = trainer.take_targets(rows)
     out: dict[str, float] = {}
     try:
-        out["gather"] = median_time(lambda: gather(data.X, rows, data.mean, data.inv_std, ws.inputs), repeats)
-        out["targets"] = median_time(lambda: trainer.gather_targets(rows), repeats)
+        out["take_rows"] = median_time(lambda: take_rows(data.X, rows, data.mean, data.inv_std, ws.inputs), repeats)
+        out["targets"] = median_time(lambda: trainer.take_targets(rows), repeats)
         bias = 0.0
         for l in range(model.n_layers):
             Z = ws.Z[l][:n]

@@ -8,7 +8,7 @@ from numba import njit
 
 
 @njit(cache=True)
-def gather_rows(X, rows, mean, inv_std, out):
+def take_rows(X, rows, mean, inv_std, out):
     """out[i] = (X[rows[i]] − mean) · inv_std; returns the index i of the first non-finite row, or −1.
 
     X: (N, d) any float dtype (often a memory map); rows: (n,) int64; mean, inv_std: (d,) float64;

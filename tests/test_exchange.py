@@ -15,7 +15,7 @@ import numpy as np
 import pytest
 from helpers import make_classification
 from shardmill.config import job_from_dict
-from shardmill.data.rows import gather
+from shardmill.data.rows import take_rows
 from shardmill.model.mlp import MLP
 from shardmill.parallel.comm import Comm
 from shardmill.parallel.ownership import Replicated
@@ -69,7 +69,7 @@ def test_strategy_gradient_matches_the_whole_batch_gradient(tmp_path, reduction)
     t.timer.start()
     t.gradient(rows)
     X = np.zeros((rows.size, 5))
-    gather(t.data.X, rows, t.data.mean, t.data.inv_std, X)
+    take_rows(t.data.X, rows, t.data.mean, t.data.inv_std, X)
     _, whole = t.model.loss_and_grad(X, t.data.targets[rows])  # one serial pass over all rows
     np.testing.assert_allclose(t.grads, whole, rtol=1e-12, atol=1e-15)  # float64: summation order only
 

@@ -276,7 +276,7 @@ def test_gather_rows(source, dtype, N, d, n, seed):
     mean = rng.standard_normal(d)
     inv_std = rng.random(d) + 0.5
     out = np.full((n + 2, d), 7.0, dtype=dtype)  # the buffer may be taller than the shard
-    assert data_kernels.gather_rows(X, rows, mean, inv_std, out) == -1
+    assert data_kernels.take_rows(X, rows, mean, inv_std, out) == -1
     expected = (X[rows].astype(np.float64) - mean) * inv_std  # numpy fancy indexing
     np.testing.assert_allclose(out[:n], expected, rtol=RTOL[dtype] * 4, atol=ATOL[dtype] * 4)
     np.testing.assert_array_equal(out[n:], 7.0)  # rows past the shard untouched
@@ -292,7 +292,7 @@ def test_gather_rows_reports_first_nonfinite_row(bad_value, N, d, seed):
     X[bad_row, int(rng.integers(0, d))] = bad_value
     rows = rng.permutation(N).astype(np.int64)
     out = np.empty((N, d))
-    got = data_kernels.gather_rows(X, rows, np.zeros(d), np.ones(d), out)
+    got = data_kernels.take_rows(X, rows, np.zeros(d), np.ones(d), out)
     expected = int(np.flatnonzero(~np.isfinite(X[rows]).all(axis=1))[0])  # position in `rows`, not in X
     assert got == expected
     assert rows[got] == bad_row

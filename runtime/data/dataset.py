@@ -10,7 +10,7 @@ from shardmill.data.files import open_job_data
 from shardmill.data.rows import Split, as_numbers, block_range, column_statistics, first_of_ranks, split_rows
 from shardmill.errors import JobError
 from shardmill.model.mlp import MLP
-from shardmill.parallel.comm import Comm, agree
+from shardmill.parallel.comm import Comm, share_error
 
 
 @dataclass
@@ -39,7 +39,7 @@ def load_dataset(job: Job, model: MLP, comm: Comm) -> Dataset:
         targets = model.check_targets(y, X.shape[0], where)
     except (JobError, OSError, MemoryError) as err:
         error = err if isinstance(err, JobError) else JobError(f"data cannot be loaded: {err}")
-    agree(comm, error)
+    share_error(comm, error)
     split = split_rows(X.shape[0], job.data.validation_fraction, job.run.seed)
     if split.train.size == 0:
         raise JobError("`data.validation_fraction` leaves no training rows")

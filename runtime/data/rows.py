@@ -136,8 +136,8 @@ def shard(global_rows: np.ndarray, rank: int, size: int) -> np.ndarray:
     return global_rows[lo:hi]
 
 
-def gather(X: np.ndarray, rows: np.ndarray, mean: np.ndarray, inv_std: np.ndarray, out: np.ndarray) -> None:
+def take_rows(X: np.ndarray, rows: np.ndarray, mean: np.ndarray, inv_std: np.ndarray, out: np.ndarray) -> None:
     """Copy the standardised rows of X into the batch buffer ``out[:len(rows)]``; raise on a non-finite row."""
-    bad = data_kernels.gather_rows(X, rows, mean, inv_std, out)
+    bad = data_kernels.take_rows(X, rows, mean, inv_std, out)
     if bad >= 0:
         raise LocalJobError(f"`data.inputs` row {int(rows[bad])} holds a non-finite value (NaN or inf)")

@@ -377,8 +377,8 @@ def _convert_csv(table: Table, positions: dict[str, list[int]], files: dict[str,
 
 
 def _errors(comm: Comm, work: Callable[[], Any]) -> Any:
-    """Run ``work()`` and agree on its failure: every rank raises the same JobError, or all get the result."""
-    from shardmill.parallel.comm import agree  # here, not at the top: predict reads tables without MPI
+    """Run ``work()`` on every rank and share a failure: every rank raises the same JobError, or all get results."""
+    from shardmill.parallel.comm import share_error  # here, not at the top: predict reads tables without MPI
 
     error: Exception | None = None
     result = None
@@ -388,7 +388,7 @@ def _errors(comm: Comm, work: Callable[[], Any]) -> Any:
         error = err
     except (OSError, MemoryError) as err:
         error = JobError(f"data cannot be loaded: {err}")  # the wording load_dataset always used
-    agree(comm, error)
+    share_error(comm, error)
     return result
 
 
@@ -398,7 +398,7 @@ def cached_columns(table: Table, header: str, parts: dict[str, list[str]], folde
 
     Collective: every rank calls it with the same arguments. A finished cache with the same key is reused;
     otherwise a CSV is converted by rank 0 and a Parquet file by all ranks (contiguous row-group blocks).
-    Every stage ends with :func:`shardmill.parallel.comm.agree`, so a failure anywhere is raised on every rank.
+    Every stage ends with :func:`shardmill.parallel.comm.share_error`, so a failure anywhere is raised on every rank.
     """
     def prepare():
         positions = {name: select(table, cols, table.field_name) for name, cols in parts.items()}

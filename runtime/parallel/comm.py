@@ -241,7 +241,7 @@ def run_guarded(main: Callable[[], int], user_errors: tuple[type[BaseException],
         return 1
 
 
-def agree(comm: Comm, error: Exception | None) -> None:
+def share_error(comm: Comm, error: Exception | None) -> None:
     """Start-up check point: if ``error`` is set on any rank, every rank raises the same JobError.
 
     Used where a failure can be local to one rank (a file missing on one node, a bad row in one shard).
@@ -261,8 +261,8 @@ def agree(comm: Comm, error: Exception | None) -> None:
 def lead_then_share(comm: Comm, work: Callable[[], T], share: bool = False) -> T | None:
     """Rank 0 does ``work()``; every rank learns the outcome (start-up and checkpoint time, never in the step).
 
-    A :class:`JobError` that ``work`` raises is raised on every rank alike (through :func:`agree`: the error itself
-    on one rank, a JobError naming rank 0 on several); ``work`` maps other failures it expects (an OSError) to a
+    A :class:`JobError` that ``work`` raises is raised on every rank alike (through :func:`share_error`: the error
+    itself on one rank, a JobError naming rank 0 on several); ``work`` maps other failures it expects (an OSError) to a
     JobError itself. Returns rank 0's result on rank 0 and None elsewhere, or, with ``share``, rank 0's result on
     every rank (a small picklable control object, broadcast).
     """
@@ -273,5 +273,5 @@ def lead_then_share(comm: Comm, work: Callable[[], T], share: bool = False) -> T
             result = work()
         except JobError as err:
             error = err
-    agree(comm, error)
+    share_error(comm, error)
     return comm.broadcast_object(result) if share else result

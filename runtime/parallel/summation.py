@@ -319,7 +319,7 @@ class ExactSum:
         self.reduce_scatter()
         self.read_back()
         if not self.ownership.sharded:
-            self.gather()
+            self.allgather_gradient()
 
     def reduce_scatter(self) -> None:
         """This rank's slice of the integer sums, summed over ranks."""
@@ -329,7 +329,7 @@ class ExactSum:
         """This rank's slice of the summed integers, rounded into ``grads[slice]``."""
         self.format.read_back(self.grads[self.slice], self.slice.start)
 
-    def gather(self) -> None:
+    def allgather_gradient(self) -> None:
         """Every rank's read-back slice to every rank: the whole gradient everywhere (replicated update)."""
         self.comm.allgather(self.grads, self.ownership.counts)
 

@@ -1,6 +1,6 @@
 """Data-parallel training: every rank runs the same step on its shard of each global batch.
 
-Read :meth:`Trainer.step` top to bottom: sample → gradient (this rank's parts: gather → forward → loss →
+Read :meth:`Trainer.step` top to bottom: sample → gradient (this rank's parts: take rows → forward → loss →
 backward, each layer handed to the exchange strategy as it completes; then the strategy finishes the sum over
 ranks, and the ranks agree the step may go on) → clip → update (then publish). The strategy
 (``shardmill.parallel.exchange``) is the only place the fast and exact modes differ. Metrics are summed per part
@@ -16,10 +16,10 @@ import numpy as np
 from shardmill import checkpoint
 from shardmill.config import Job
 from shardmill.data.dataset import Dataset, load_dataset
-from shardmill.data.rows import Sampler, gather
+from shardmill.data.rows import Sampler, take_rows
 from shardmill.errors import JobError
 from shardmill.model.mlp import model_from_job
-from shardmill.parallel.comm import Comm, agree
+from shardmill.parallel.comm import Comm, share_error
 from shardmill.parallel.exchange import resolve_update
 from shardmill.parallel.exchange import strategy as exchange_strategy
 from shardmill.timing import PHASES, PhaseTimer
@@ -61,7 +61,7 @@ class Trainer:
             params = sum(a * b + b for a, b in zip(layers, layers[1:], strict=False))
             error = JobError(f"`model.layers` = {layers} ({params:,} parameters, {job.model.dtype}) does not fit in "
                              f"this process's memory")
-        agree(self.comm, error)
+        share_error(self.comm, error)
         self.data = dataset if dataset is not None else load_dataset(job, self.model, self.comm)
         self.sampler = Sampler(self.data.split.train, run.global_batch, run.seed)
         self.grads = np.zeros_like(self.model.params)
@@ -90,7 +90,7 @@ class Trainer:
         total = self.job.run.epochs * self.sampler.steps_per_epoch
         return min(total, self.job.run.max_steps) if self.job.run.max_steps else total
 
-    def gather_targets(self, rows: np.ndarray) -> np.ndarray:
+    def take_targets(self, rows: np.ndarray) -> np.ndarray:
         np.take(self.data.targets, rows, axis=0, out=self.batch_targets[:rows.size])
         return self.batch_targets
 
@@ -98,7 +98,7 @@ class Trainer:
         """One global step of G samples, identical in effect on every rank."""
         self.timer.start()
         rows = self.sampler.batch(epoch, step_in_epoch)  # sample: the G global indices
-        gradient = self.gradient(rows)  # shard, gather, forward, loss, backward, exchange: of params[owned]
+        gradient = self.gradient(rows)  # shard, take rows, forward, loss, backward, exchange: of params[owned]
         self.clip(gradient)
         self.update(gradient)
 
@@ -155,8 +155,8 @@ class Trainer:
         Backward tells the exchange as each layer's gradient is complete, so it can start sending.
         """
         n, G = rows.size, self.job.run.global_batch
-        gather(self.data.X, rows, self.data.mean, self.data.inv_std, self.ws.inputs)
-        targets = self.gather_targets(rows)
+        take_rows(self.data.X, rows, self.data.mean, self.data.inv_std, self.ws.inputs)
+        targets = self.take_targets(rows)
         self.timer.lap("data")
         loss_sum = self.ws.forward_loss(n, targets, 1.0 / G)
         if not math.isfinite(loss_sum) and self.problem is None:
@@ -194,8 +194,8 @@ class Trainer:
         for start in range(0, part.size, width):
             chunk = part[start:start + width]
             n = chunk.size
-            gather(self.data.X, chunk, self.data.mean, self.data.inv_std, self.ws.inputs)
-            targets = self.gather_targets(chunk)
+            take_rows(self.data.X, chunk, self.data.mean, self.data.inv_std, self.ws.inputs)
+            targets = self.take_targets(chunk)
             chunk_sums[0] = self.ws.forward_loss(n, targets, 0.0)
             chunk_sums[1] = self.quality_sum(n, targets)
             chunk_sums[2] = n

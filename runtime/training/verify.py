@@ -24,7 +24,7 @@ from typing import Any
 
 import numpy as np
 from shardmill.config import Job, load_job
-from shardmill.data.rows import gather
+from shardmill.data.rows import take_rows
 from shardmill.errors import JobError
 from shardmill.kernels import activations as act
 from shardmill.parallel.comm import Comm
@@ -67,8 +67,8 @@ def serial_gradient(trainer: Trainer, rows: np.ndarray) -> tuple[np.ndarray, np.
         part = rows[lo:hi]
         n = part.size
         ws = trainer.model.workspace(trainer.ws.rows)
-        gather(trainer.data.X, part, trainer.data.mean, trainer.data.inv_std, ws.inputs)
-        ws.forward_loss(n, trainer.gather_targets(part), 1.0 / G)
+        take_rows(trainer.data.X, part, trainer.data.mean, trainer.data.inv_std, ws.inputs)
+        ws.forward_loss(n, trainer.take_targets(part), 1.0 / G)
         for l, dZ in ws.backward(n, scratch):
             A_full[l][lo:hi] = ws.A[l][:n]
             dZ_full[l][lo:hi] = dZ

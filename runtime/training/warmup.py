@@ -5,7 +5,7 @@ from __future__ import annotations
 import time
 
 import numpy as np
-from shardmill.data.rows import gather
+from shardmill.data.rows import take_rows
 from shardmill.kernels import optim as kernels_optim
 from shardmill.training.optim import Optimizer
 from shardmill.training.trainer import Trainer
@@ -23,8 +23,8 @@ def warm_up_kernels(trainer: Trainer) -> float:
     def run() -> None:
         rows = trainer.data.split.train[: min(2, trainer.data.split.train.size)]
         grads = np.zeros_like(trainer.grads)
-        gather(trainer.data.X, rows, trainer.data.mean, trainer.data.inv_std, trainer.ws.inputs)
-        targets = trainer.gather_targets(rows)
+        take_rows(trainer.data.X, rows, trainer.data.mean, trainer.data.inv_std, trainer.ws.inputs)
+        targets = trainer.take_targets(rows)
         trainer.ws.forward_loss(rows.size, targets, 1.0)
         trainer.quality_sum(rows.size, targets)
         for _ in trainer.ws.backward(rows.size, grads):

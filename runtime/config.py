@@ -20,6 +20,7 @@ from pathlib import Path
 from typing import Any
 
 from shardmill.checks import KINDS, allowed, check, choice, hint
+from shardmill.docblocks import replace_block
 from shardmill.errors import JobError
 from shardmill.model.activations import ACTIVATIONS as ACTIVATION_TABLE
 from shardmill.model.losses import LOSSES as LOSS_TABLE
@@ -518,8 +519,4 @@ def defaults_markdown() -> str:
 
 def write_defaults_markdown(readme: str | Path) -> None:
     """Replace the block between :data:`README_BEGIN` and :data:`README_END` in ``readme`` by the current table."""
-    readme = Path(readme)
-    text = readme.read_text()
-    head, rest = text.split(README_BEGIN + "\n", 1)
-    _, tail = rest.split(README_END, 1)
-    readme.write_text(head + README_BEGIN + "\n" + defaults_markdown() + README_END + tail)
+    replace_block(readme, README_BEGIN, README_END, defaults_markdown())

@@ -11,6 +11,7 @@ import numpy as np
 import pytest
 import scipy.special
 from shardmill import config
+from shardmill.docblocks import block_between
 from shardmill.kernels import activations as activation_kernels
 from shardmill.kernels import losses as loss_kernels
 from shardmill.model import activations, losses
@@ -218,7 +219,7 @@ def test_table_labels_become_integers_only_for_class_labels() -> None:
 def test_docs_tables_are_the_generated_ones(module) -> None:
     text = DOCS.read_text()
     assert text.count(module.DOCS_BEGIN) == 1 and text.count(module.DOCS_END) == 1
-    block = text.split(module.DOCS_BEGIN + "\n", 1)[1].split(module.DOCS_END, 1)[0]
+    block = block_between(text, module.DOCS_BEGIN, module.DOCS_END)
     assert block == module.markdown(), (
         "docs/models.md's tables are stale; run: python -c \"from shardmill.model.losses import write_docs; "
         "write_docs('docs/models.md')\"")

@@ -18,6 +18,7 @@ from helpers import run_cli
 from shardmill import config
 from shardmill.commands.cli import build_parser
 from shardmill.config import job_from_dict
+from shardmill.docblocks import block_between
 from shardmill.errors import JobError
 
 README = Path(__file__).resolve().parents[1] / "README.md"
@@ -96,7 +97,7 @@ def test_each_default_is_valid_and_is_what_a_missing_key_gives():
 def test_readme_table_is_the_generated_one():
     text = README.read_text()
     assert text.count(config.README_BEGIN) == 1 and text.count(config.README_END) == 1
-    block = text.split(config.README_BEGIN + "\n", 1)[1].split(config.README_END, 1)[0]
+    block = block_between(text, config.README_BEGIN, config.README_END)
     assert block == config.defaults_markdown(), (
         "README.md's table of job keys is stale; run: python -c \"from shardmill.config import "
         "write_defaults_markdown; write_defaults_markdown('README.md')\"")

@@ -18,6 +18,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+from shardmill.docblocks import replace_block
 from shardmill.errors import JobError
 from shardmill.kernels import activations as activation_kernels
 from shardmill.kernels import losses as kernels
@@ -269,11 +270,6 @@ def markdown() -> str:
 
 def write_docs(path: str | Path = "docs/models.md") -> None:
     """Replace the generated blocks of ``path`` (the activation and loss tables) by the tables' current text."""
-    path = Path(path)
-    text = path.read_text()
     for begin, end, block in ((activations.DOCS_BEGIN, activations.DOCS_END, activations.markdown()),
                               (DOCS_BEGIN, DOCS_END, markdown())):
-        head, rest = text.split(begin + "\n", 1)
-        _, tail = rest.split(end, 1)
-        text = head + begin + "\n" + block + end + tail
-    path.write_text(text)
+        replace_block(path, begin, end, block)

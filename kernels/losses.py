@@ -14,11 +14,14 @@ from numba import njit
 
 from .activations import sigmoid
 
-SOFTMAX_CROSS_ENTROPY, BINARY_CROSS_ENTROPY, SQUARED_ERROR = range(3)
+SOFTMAX_CROSS_ENTROPY, BINARY_CROSS_ENTROPY, SQUARED_ERROR, HUBER, ABSOLUTE_ERROR, POISSON = range(6)
 CODES = {
     "softmax_cross_entropy": SOFTMAX_CROSS_ENTROPY,
     "binary_cross_entropy": BINARY_CROSS_ENTROPY,
     "squared_error": SQUARED_ERROR,
+    "huber": HUBER,
+    "absolute_error": ABSOLUTE_ERROR,
+    "poisson": POISSON,
 }
 
 
@@ -88,6 +91,74 @@ def squared_error(O, T, scale, dO):
             total += 0.5 * d * d
             dO[i, j] = d * scale
     return total
+
+
+@njit(cache=True)
+def huber(O, T, delta, scale, dO):
+    """Per row: loss = Σ_k h(o_k − t_k) with h(r) = ½r² for |r| ≤ δ and δ·(|r| − ½δ) beyond (Huber 1964);
+    dO = clip(O − T, −δ, δ)·scale.
+
+    O, T, dO: (n, k); delta: δ > 0 in the targets' units (float64). Quadratic near zero, linear in the tails, so an
+    outlier's pull on the gradient is at most δ. O are the outputs after the output activation; the caller chains
+    dO through its backward rule, as for ``squared_error``.
+    """
+    n, k = O.shape
+    total = 0.0
+    for i in range(n):
+        for j in range(k):
+            r = O[i, j] - T[i, j]
+            if abs(r) <= delta:
+                total += 0.5 * r * r
+                dO[i, j] = r * scale
+            else:
+                total += delta * (abs(r) - 0.5 * delta)
+                dO[i, j] = math.copysign(delta, r) * scale
+    return total
+
+
+@njit(cache=True)
+def absolute_error(O, T, scale, dO):
+    """Per row: loss = Σ_k |o_k − t_k|; dO = sign(O − T)·scale, 0 where O = T (the subgradient numpy's sign takes).
+
+    O, T, dO: (n, k); O after the output activation, chained by the caller as for ``squared_error``.
+    """
+    n, k = O.shape
+    total = 0.0
+    for i in range(n):
+        for j in range(k):
+            r = O[i, j] - T[i, j]
+            total += abs(r)
+            dO[i, j] = (1.0 if r > 0.0 else (-1.0 if r < 0.0 else 0.0)) * scale
+    return total
+
+
+@njit(cache=True)
+def poisson(Z, T, scale, O, dZ):
+    """Poisson regression with the log link (McCullagh & Nelder 1989, §6.2): per row loss = Σ_k (e^z − t·z), the
+    negative log-likelihood of the counts t without its constant log(t!); O = e^z; dZ = (e^z − t)·scale.
+
+    Z: (n, k) logits (log of the expected count); T: (n, k) counts ≥ 0; O, dZ: (n, k). An e^z past the dtype's
+    range is inf, so the loss is inf and the run stops as diverged.
+    """
+    n, k = Z.shape
+    total = 0.0
+    for i in range(n):
+        for j in range(k):
+            z = Z[i, j]
+            o = math.exp(z)
+            total += o - T[i, j] * z
+            O[i, j] = o
+            dZ[i, j] = (o - T[i, j]) * scale
+    return total
+
+
+@njit(cache=True)
+def exp_rows(Z, O):
+    """O = e^Z elementwise (the log link's inverse: the outputs of a Poisson model). Z, O: (n, k)."""
+    n, k = Z.shape
+    for i in range(n):
+        for j in range(k):
+            O[i, j] = math.exp(Z[i, j])
 
 
 @njit(cache=True)

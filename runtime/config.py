@@ -23,10 +23,12 @@ from shardmill.checks import KINDS, allowed, check, choice, hint
 from shardmill.docblocks import replace_block
 from shardmill.errors import JobError
 from shardmill.model.activations import ACTIVATIONS as ACTIVATION_TABLE
+from shardmill.model.losses import HUBER_DELTA
 from shardmill.model.losses import LOSSES as LOSS_TABLE
 
 ACTIVATIONS = tuple(ACTIVATION_TABLE)  # the names of the tables' entries (model/activations.py, model/losses.py)
 LOSSES = tuple(LOSS_TABLE)
+LOSS_PARAMETERS = {name for entry in LOSS_TABLE.values() for name in entry.parameters}
 DTYPES = ("float32", "float64")
 INITS = ("he", "glorot")
 METHODS = ("sgd", "momentum", "nesterov", "adam", "adamw")
@@ -86,15 +88,21 @@ SCHEMA: tuple[Key, ...] = (
         choices=ACTIVATIONS),
     Key("model.loss", "choice", "softmax_cross_entropy",
         "softmax_cross_entropy: integer labels (n,); binary_cross_entropy (from logits): 0/1 targets (n, k); "
-        "squared_error: targets (n, k)", choices=LOSSES),
+        "squared_error, huber (see `model.huber_delta`), absolute_error: targets (n, k); poisson (log link): "
+        "counts ≥ 0 (n, k); formulas in docs/models.md", choices=LOSSES),
     Key("model.dtype", "choice", "float32", "floating-point type of parameters and arithmetic, end to end",
         choices=DTYPES),
     Key("model.init", "choice", "auto", "initial weights: he N(0, 2/fan_in), glorot U(±√(6/(fan_in + fan_out))); "
         "auto is he when every hidden activation is relu, leaky_relu, gelu or softplus, else glorot",
         choices=INITS + ("auto",)),
     Key("model.output", "output", "auto", "output activation; softmax_cross_entropy implies softmax, "
-        "binary_cross_entropy sigmoid, squared_error identity unless chosen here", choices=ACTIVATIONS + ("auto",),
-        allowed="auto; with squared_error also " + ", ".join(sorted(ACTIVATIONS))),
+        "binary_cross_entropy sigmoid, poisson exp; squared_error, huber and absolute_error identity unless chosen "
+        "here", choices=ACTIVATIONS + ("auto",),
+        allowed="auto; with " + ", ".join(name for name, entry in LOSS_TABLE.items() if entry.output_choosable)
+        + " also " + ", ".join(sorted(ACTIVATIONS))),
+    Key("model.huber_delta", "number", HUBER_DELTA, "δ of the huber loss, in the targets' units: residuals up to δ "
+        "count quadratically, beyond it linearly (Huber 1964); only with `model.loss` = 'huber'", low=0.0,
+        low_open=True, digest_default=False),
     Key("data.inputs", "file", "", "inputs (n, d): .npy (memory-mapped), .npz, .csv or .parquet, relative to the "
         "job file; needed to train", allowed="a .npy, .npz, .csv or .parquet path"),
     Key("data.targets", "file", "", "targets, one row per input row (see `model.loss`); needed to train unless "
@@ -207,6 +215,7 @@ class ModelSpec:
     dtype: str = default("model.dtype")
     init: str = default("model.init")
     output: str = default("model.output")
+    huber_delta: float = default("model.huber_delta")
 
 
 @dataclass
@@ -395,6 +404,12 @@ def model_spec(table: dict[str, Any]) -> ModelSpec:
         choice("model.output", output, KEYS["model.output"].choices)
     elif output not in ("auto", LOSS_TABLE[loss].output):
         raise JobError(f"`model.output` is implied by `model.loss` = {loss!r}; leave it out; got {output!r}")
+    for key in SCHEMA:  # a loss's parameter set for a loss that does not read it would be ignored without a word
+        if key.section == "model" and key.name in LOSS_PARAMETERS and key.name not in LOSS_TABLE[loss].parameters \
+                and m[key.name] != key.default:
+            users = ", ".join(name for name, entry in LOSS_TABLE.items() if key.name in entry.parameters)
+            raise JobError(f"`{key.path}` applies to `model.loss` = {users} only; got {key.path} = {m[key.name]!r} "
+                           f"with `model.loss` = {loss!r}")
     return ModelSpec(**m)
 
 

@@ -27,6 +27,8 @@ DIGEST_RUN_KEYS = ("global_batch", "seed", "reduction", "exact_chunk")
 # [data] keys added in 0.2 (tables): they enter the digest only away from their defaults, as the checkpoints on disk
 # were written without them.
 ADDED_DATA_KEYS = {"target": "", "features": [], "header": "auto"}
+# [model] keys added in 0.3 (the robust losses' parameters): likewise, at their defaults they stay out of the digest.
+ADDED_MODEL_KEYS = {"huber_delta": 1.0}
 FULL = {
     "model": {"layers": [784, 1024, 1024, 10], "activation": "relu", "loss": "softmax_cross_entropy",
               "dtype": "float32", "init": "auto"},
@@ -49,7 +51,8 @@ def digest_as_written(job: sm.Job) -> str:
     """The digest formula of the checkpoints on disk, spelled out independently of the schema."""
     d = job.as_dict()
     data = {k: v for k, v in d["data"].items() if k not in ADDED_DATA_KEYS or v != ADDED_DATA_KEYS[k]}
-    kept = {"model": d["model"], "data": data, "optimizer": d["optimizer"],
+    model = {k: v for k, v in d["model"].items() if k not in ADDED_MODEL_KEYS or v != ADDED_MODEL_KEYS[k]}
+    kept = {"model": model, "data": data, "optimizer": d["optimizer"],
             "run": {k: d["run"][k] for k in DIGEST_RUN_KEYS}}
     return hashlib.sha256(json.dumps(kept, sort_keys=True).encode()).hexdigest()  # hashlib, json (stdlib)
 

@@ -4,7 +4,8 @@ An entry names the Numba kernel code (``kernels/activations.py`` holds the forwa
 is of the ReLU family (``model.init = "auto"`` picks He initialisation then), what the health diagnostics watch for
 (saturation, dead units), a numpy reference of f(z) in float64, its ONNX form and its formula for the docs and the
 model card. :data:`ACTIVATIONS` holds the hidden-layer activations (the job's ``model.activation``; any of them may
-also be a squared_error model's ``model.output``); :data:`OUTPUTS` adds softmax, which only a loss implies.
+also be the ``model.output`` of a loss that lets the job choose); :data:`OUTPUTS` adds softmax and exp, which only a
+loss implies.
 
 Adding an activation: its forward and backward rule in ``kernels/activations.py`` (a new code), then one entry here.
 The rest of the package (model, health, export, predict, bench, the docs) reads the entry.
@@ -28,10 +29,11 @@ in the model's dtype) and ``reduce(type, x, scope)`` (over axis 1, kept), each r
 class Activation:
     """One activation f, applied elementwise (softmax: per row) to a layer's pre-activations z.
 
-    name: the job file's name. code: the kernel code in ``kernels/activations.py``, None for softmax (per row, its
-    kernel is ``kernels.losses.softmax_rows``, applied by its loss). relu_family: He initialisation suits it
-    (``model.init = "auto"``). watch_saturation: the health diagnostics report the fraction of units with
-    |z| > 4, where f' nearly vanishes; watch_dead: they report the fraction of units zero on every row.
+    name: the job file's name. code: the kernel code in ``kernels/activations.py``, None for the outputs only a loss
+    implies (softmax, per row, and exp: their kernels are in ``kernels/losses.py``, applied by the loss).
+    relu_family: He initialisation suits it (``model.init = "auto"``). watch_saturation: the health diagnostics
+    report the fraction of units with |z| > 4, where f' nearly vanishes; watch_dead: they report the fraction of
+    units zero on every row.
     forward: f(z) in numpy, float64 in and out, (n, m) → (n, m), in the kernel's own form (the reference
     tests compare with outside formulas). onnx: emits f(z) into a graph builder (``onnx(g, z, scope)`` → the
     output's name), in the kernel's operations and order. formula: f(z) as text (docs/models.md, the model card).
@@ -151,8 +153,12 @@ ACTIVATIONS: dict[str, Activation] = {entry.name: entry for entry in _TABLE}
 SOFTMAX = Activation("softmax", None, _softmax, _softmax_onnx,
                      "f(z)_j = exp(z_j − max_i z_i) · (1 / Σ_i exp(z_i − max_i z_i)), per row",
                      "`ReduceMax`, `Sub`, `Exp`, `ReduceSum`, `Reciprocal`, `Mul`")
-OUTPUTS: dict[str, Activation] = {**ACTIVATIONS, SOFTMAX.name: SOFTMAX}
-"""Every activation an output layer may have: the hidden ones and softmax (implied by softmax_cross_entropy)."""
+EXP = Activation("exp", None, np.exp, lambda g, z, scope: g.op("Exp", z, scope=scope), "f(z) = exp(z)", "`Exp`")
+"""The log link's inverse: a Poisson model's outputs are expected counts e^z (its kernel: ``kernels.losses.exp_rows``,
+or the loss itself in training)."""
+OUTPUTS: dict[str, Activation] = {**ACTIVATIONS, SOFTMAX.name: SOFTMAX, EXP.name: EXP}
+"""Every activation an output layer may have: the hidden ones, softmax (implied by softmax_cross_entropy) and exp
+(implied by poisson)."""
 
 FORMULAS: dict[str, str] = {name: entry.formula for name, entry in OUTPUTS.items()}
 """f(z) as text by activation name (the model card's ``formula``)."""

@@ -11,6 +11,7 @@ predictor, export, config, bench and the docs read the entry.
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from collections.abc import Callable
 from dataclasses import dataclass
@@ -46,7 +47,8 @@ class Loss:
     reference(o, targets) → the loss of each row (n,) in numpy float64, from the outputs o after the output
     activation (probabilities rounded to 0 or 1 are clipped to the smallest positive double). formula: the loss
     as the kernel computes it (docs, model card). synthetic_targets(rng, rows, k, dtype): random targets of the
-    right kind (benchmarks).
+    right kind (benchmarks). parameters: the ``[model]`` keys the loss reads (huber: huber_delta); bind(entry,
+    values) → the entry with them fixed (see :meth:`bound`).
     """
 
     name: str
@@ -68,6 +70,13 @@ class Loss:
     reference: Callable[[np.ndarray, np.ndarray], np.ndarray]
     formula: str
     synthetic_targets: Callable[[np.random.Generator, int, int, Any], np.ndarray]
+    parameters: tuple[str, ...] = ()
+    bind: Callable[[Loss, dict[str, float]], Loss] | None = None
+
+    def bound(self, **values: float) -> Loss:
+        """This entry with its parameters fixed (model keys such as ``huber_delta``; the others are ignored): the
+        kernel and the reference then need nothing more than every other loss's."""
+        return self if self.bind is None else self.bind(self, values)
 
     @property
     def output_choosable(self) -> bool:
@@ -152,6 +161,26 @@ def _squared_error(Z, O, targets, scale, dZ, output_code):
     return total
 
 
+def _huber(Z, O, targets, scale, dZ, output_code, delta):
+    total = kernels.huber(O, targets, delta, scale, dZ)
+    activation_kernels.backward(Z, O, dZ, output_code)  # chain dO through the output activation, as squared_error
+    return total
+
+
+def _absolute_error(Z, O, targets, scale, dZ, output_code):
+    total = kernels.absolute_error(O, targets, scale, dZ)
+    activation_kernels.backward(Z, O, dZ, output_code)
+    return total
+
+
+def _poisson(Z, O, targets, scale, dZ, output_code):
+    return kernels.poisson(Z, targets, scale, O, dZ)
+
+
+def _exp_outputs(Z, O, zero_bias):
+    kernels.exp_rows(Z, O)
+
+
 def _softmax_outputs(Z, O, zero_bias):
     kernels.softmax_rows(Z, O)
 
@@ -211,6 +240,35 @@ def _half_squared_error(o, targets):
     return 0.5 * ((o - _values(targets, o)) ** 2).sum(axis=1)
 
 
+def _huber_of_rows(o, targets, delta):
+    r = np.abs(o - _values(targets, o))
+    return np.where(r <= delta, 0.5 * r * r, delta * (r - 0.5 * delta)).sum(axis=1)
+
+
+def _absolute_error_of_rows(o, targets):
+    return np.abs(o - _values(targets, o)).sum(axis=1)
+
+
+def _poisson_of_rows(o, targets):
+    return (o - _values(targets, o) * np.log(np.clip(o, 1e-300, None))).sum(axis=1)
+
+
+def _bind_huber(entry: Loss, values: dict[str, float]) -> Loss:
+    delta = float(values.get("huber_delta", HUBER_DELTA))
+    return dataclasses.replace(
+        entry, bind=None,
+        kernel=lambda Z, O, targets, scale, dZ, output_code: _huber(Z, O, targets, scale, dZ, output_code, delta),
+        reference=lambda o, targets: _huber_of_rows(o, targets, delta))
+
+
+HUBER_DELTA = 1.0
+"""``model.huber_delta``'s default: residuals beyond one target unit count linearly."""
+
+
+def _normal(rng, rows, k, dtype):
+    return rng.standard_normal((rows, k)).astype(dtype)
+
+
 _TABLE = (
     Loss("softmax_cross_entropy", kernels.SOFTMAX_CROSS_ENTROPY, "softmax", True,
          _softmax_cross_entropy, _softmax_outputs, class_labels=True, target_range=None,
@@ -244,7 +302,42 @@ _TABLE = (
          label_rule="none: the outputs are the prediction",
          reference=_half_squared_error,
          formula="per row: ½ Σ_j (o_j − t_j)², o the outputs after the output activation",
-         synthetic_targets=lambda rng, rows, k, dtype: rng.standard_normal((rows, k)).astype(dtype)),
+         synthetic_targets=_normal),
+    Loss("huber", kernels.HUBER, "identity", False,
+         lambda *args: _huber(*args, HUBER_DELTA), _outputs_already_there, class_labels=False, target_range=None,
+         targets_text="real targets (n, k)",
+         metric="rmse", metric_text="√(Σ (o − t)² / (n·k)) over every output",
+         quality_sum=kernels.squared_error_sum, metric_of=_root_mean_square,
+         metric_reference=_rmse,
+         labels=None,
+         label_rule="none: the outputs are the prediction",
+         reference=lambda o, targets: _huber_of_rows(o, targets, HUBER_DELTA),
+         formula="per row: Σ_j h(o_j − t_j), h(r) = ½r² for |r| ≤ δ, δ·(|r| − ½δ) beyond, δ = `model.huber_delta` "
+                 "(Huber 1964)",
+         synthetic_targets=_normal, parameters=("huber_delta",), bind=_bind_huber),
+    Loss("absolute_error", kernels.ABSOLUTE_ERROR, "identity", False,
+         _absolute_error, _outputs_already_there, class_labels=False, target_range=None,
+         targets_text="real targets (n, k)",
+         metric="rmse", metric_text="√(Σ (o − t)² / (n·k)) over every output",
+         quality_sum=kernels.squared_error_sum, metric_of=_root_mean_square,
+         metric_reference=_rmse,
+         labels=None,
+         label_rule="none: the outputs are the prediction",
+         reference=_absolute_error_of_rows,
+         formula="per row: Σ_j |o_j − t_j|; its gradient is sign(o − t), 0 where o = t",
+         synthetic_targets=_normal),
+    Loss("poisson", kernels.POISSON, "exp", True,
+         _poisson, _exp_outputs, class_labels=False, target_range=(0.0, math.inf),
+         targets_text="counts (n, k), any value ≥ 0",
+         metric="rmse", metric_text="√(Σ (o − t)² / (n·k)) over every output, o the expected counts",
+         quality_sum=kernels.squared_error_sum, metric_of=_root_mean_square,
+         metric_reference=_rmse,
+         labels=None,
+         label_rule="none: the outputs (expected counts e^z) are the prediction",
+         reference=_poisson_of_rows,
+         formula="per row: Σ_j (e^{z_j} − t_j·z_j), z the logits (log link; the constant log(t!) left out; "
+                 "McCullagh & Nelder 1989)",
+         synthetic_targets=lambda rng, rows, k, dtype: rng.poisson(2.0, size=(rows, k)).astype(dtype)),
 )
 LOSSES: dict[str, Loss] = {entry.name: entry for entry in _TABLE}
 """The losses by name, in the order of the kernels' codes."""

@@ -26,26 +26,32 @@ class MLP:
     layers: widths, inputs first, outputs last (at least two entries).
     activation: hidden activation, one name or one per hidden layer (identity, sigmoid, tanh, relu, leaky_relu,
         gelu, softplus).
-    loss: softmax_cross_entropy (y: int labels (n,)), binary_cross_entropy (y: 0/1 (n, k)), squared_error
-        (y: targets (n, k)); the loss implies the output activation (softmax, sigmoid, identity).
+    loss: softmax_cross_entropy (y: int labels (n,)), binary_cross_entropy (y: 0/1 (n, k)), squared_error, huber,
+        absolute_error (y: targets (n, k)) or poisson (y: counts ≥ 0 (n, k)); the loss implies the output activation
+        (softmax, sigmoid, identity, exp; model/losses.py holds each loss's entry and formula).
     dtype: "float32" or "float64", used end to end.
     seed: seed of the numpy Generator that draws the initial weights; biases start at zero.
     init: "he" (normal, variance 2/fan_in), "glorot" (uniform, variance 2/(fan_in + fan_out)) or "auto"
         (he when every hidden activation is of the relu family, else glorot).
-    output: for squared_error only, an activation applied to the output layer (default identity).
+    output: for squared_error, huber and absolute_error, an activation applied to the output layer (default
+        identity).
+    huber_delta: δ of the huber loss (residuals beyond it count linearly), in the targets' units; huber only.
     """
 
     def __init__(self, layers: list[int], activation: str | list[str] = default("model.activation"),
                  loss: str = default("model.loss"), dtype: str = default("model.dtype"), seed: int = 0,
-                 init: str = default("model.init"), output: str = default("model.output")) -> None:
+                 init: str = default("model.init"), output: str = default("model.output"),
+                 huber_delta: float = default("model.huber_delta")) -> None:
         # The same checks and messages as the job file's [model] table (config.model_spec).
         spec = model_spec({"layers": list(layers), "activation": activation, "loss": loss, "dtype": dtype,
-                           "init": init, "output": output})
+                           "init": init, "output": output, "huber_delta": huber_delta})
         self.sizes = spec.layers
         self.activations = spec.activation
         self.loss = spec.loss
         self.dtype = np.dtype(spec.dtype)
-        self.loss_entry = LOSSES[self.loss]  # the loss's kernels, targets, metrics and labels
+        self.huber_delta = spec.huber_delta
+        # the loss's kernels, targets, metrics and labels, with its parameters (huber's δ) fixed
+        self.loss_entry = LOSSES[self.loss].bound(huber_delta=spec.huber_delta)
         self.output = self.loss_entry.output if spec.output == "auto" else spec.output
         self.init = spec.init
         if self.init == "auto":
@@ -243,4 +249,4 @@ class Workspace:
 def model_from_job(job: Job) -> MLP:
     m = job.model
     return MLP(m.layers, activation=m.activation, loss=m.loss, dtype=m.dtype, seed=job.run.seed, init=m.init,
-               output=m.output)
+               output=m.output, huber_delta=m.huber_delta)

@@ -9,6 +9,7 @@ from typing import Any
 
 import numpy as np
 from shardmill.checkpoint import CheckpointError, load, resolve
+from shardmill.config import default
 from shardmill.errors import JobError
 from shardmill.model.losses import CLASSIFIER_LOSSES
 from shardmill.model.mlp import MLP
@@ -113,7 +114,8 @@ class Predictor:
 
 def _model_of(spec: dict[str, Any]) -> MLP:
     return MLP(spec["layers"], activation=spec["activation"], loss=spec["loss"], dtype=spec["dtype"],
-               init=spec.get("init", "auto"), output=spec.get("output", "auto"))
+               init=spec.get("init", "auto"), output=spec.get("output", "auto"),
+               huber_delta=spec.get("huber_delta", default("model.huber_delta")))
 
 
 def load_model(path: Path | str) -> Predictor:

@@ -244,7 +244,9 @@ def kernel_times(trainer: Trainer, repeats: int) -> dict[str, float]:
         out["bias_activation_forward"] = bias
         Zout, O = ws.Z[-1][:n], ws.O[:n]
         dZ = ws.delta(0, n, model.sizes[-1])
-        out["loss"] = median_time(lambda: losses.softmax_cross_entropy(Zout, targets[:n], 1.0 / n, O, dZ), repeats)
+        weights = trainer.batch_weights
+        out["loss"] = median_time(lambda: losses.softmax_cross_entropy(Zout, targets[:n], weights, 1.0 / n, O, dZ),
+                                  repeats)
         out["count_correct"] = median_time(lambda: trainer.quality_sum(n, targets), repeats)
         dbs = model.views(trainer.grads)[1]
         sums = back = 0.0

@@ -57,6 +57,7 @@ class TrainingState:
     dtype: str
     feature_names: list[str] | None = None  # input column names, when the inputs came from a table with a header
     best: dict[str, Any] | None = None  # the best-model tracker (run.best_metric): resumes with the run
+    weights: dict[str, Any] | None = None  # the row weights' record (class weights, Σ w of the training rows)
 
 
 def sha256(path: Path) -> str:
@@ -126,6 +127,7 @@ def save(state: TrainingState, root: Path, keep: int, best: bool = False) -> Pat
         "overrides": list(job.overrides),
         "feature_names": state.feature_names,
         "best": state.best,
+        "weights": state.weights,
         "layers": state.layers,
         "dtype": state.dtype,
         "files": {f: sha256(tmp / f) for f in ("params.npz", "optimizer.npz")},

@@ -119,6 +119,19 @@ def _columns(key: KeyLike, value: object) -> str | list[str]:
     return value if isinstance(value, str) else list(names)
 
 
+def _class_weights(key: KeyLike, value: object) -> str | list[float]:
+    """"" (none), "balanced", or a list of finite numbers ≥ 0 (one per class, counted against the model later)."""
+    if value in ("", "balanced"):
+        return value
+    numbers_ok = isinstance(value, list) and value and all(
+        isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(v) and v >= 0 for v in value)
+    if not numbers_ok:
+        raise JobError(f"`{key.path}` must be \"balanced\" or a list of numbers ≥ 0, one per class; got {value!r}")
+    if not any(value):
+        raise JobError(f"`{key.path}` must give some class a weight above 0; got {value!r}")
+    return [float(v) for v in value]
+
+
 @dataclass(frozen=True)
 class Kind:
     """One kind of key. ``check(key, value)`` returns the value in the spec's type or raises JobError;
@@ -144,6 +157,8 @@ KINDS: dict[str, Kind] = {
     "file": Kind(_file, str, lambda key: "a file path", text=True),
     "text": Kind(_text, str, lambda key: "text", text=True),
     "columns": Kind(_columns, Any, lambda key: "column names", text=True),
+    "class_weights": Kind(_class_weights, Any, lambda key: "balanced, or a list of numbers ≥ 0 (one per class)",
+                          text=True),
 }
 """Every kind of job key, by the name ``config.Key.kind`` gives."""
 

@@ -119,6 +119,13 @@ SCHEMA: tuple[Key, ...] = (
         low=0.0, high=0.9),
     Key("data.standardize", "flag", True, "scale each input column by the mean and standard deviation of the "
         "training rows (identical on every rank)"),
+    Key("data.weights", "file", "", "sample weights, one ≥ 0 per row: a column name of `data.inputs` (a table), "
+        "or a .npy, .npz, .csv or .parquet file (told apart by the suffix); the loss is then Σ w·ℓ / Σ w over the "
+        "global batch; empty: every row weighs 1", allowed="a column name, or a .npy, .npz, .csv or .parquet path",
+        digest_default=False),
+    Key("data.class_weights", "class_weights", "", "weight of each class (softmax_cross_entropy): balanced "
+        "(n / (classes · n_c) over the training rows, as scikit-learn's compute_class_weight) or one number ≥ 0 per "
+        "output; multiplies `data.weights`; empty: none", digest_default=False),
     Key("optimizer.method", "choice", "adam", "update rule", choices=METHODS),
     Key("optimizer.learning_rate", "number", 1e-3, "peak learning rate", low=0.0, low_open=True),
     Key("optimizer.weight_decay", "number", 0.0, "coupled L2 for sgd, momentum, nesterov and adam; for adamw the "
@@ -229,6 +236,8 @@ class DataSpec:
     header: str = default("data.header")
     validation_fraction: float = default("data.validation_fraction")
     standardize: bool = default("data.standardize")
+    weights: str = default("data.weights")
+    class_weights: str | list[float] = default("data.class_weights")
 
 
 @dataclass
@@ -448,6 +457,16 @@ def _check_data(data: DataSpec, model: ModelSpec) -> None:
     if data.features and len(data.features) != model.layers[0]:
         raise JobError(f"`data.features` names {len(data.features)} columns but `model.layers` starts with "
                        f"{model.layers[0]} inputs")
+    if data.weights and (data.weights in targets or data.weights in data.features):
+        raise JobError(f"`data.weights` names the column {data.weights!r}, which is also a "
+                       f"{'target' if data.weights in targets else 'feature'}; a weight column is neither")
+    if data.class_weights != "":
+        if not LOSS_TABLE[model.loss].class_labels:
+            raise JobError(f"`data.class_weights` needs class labels (`model.loss` = softmax_cross_entropy); got "
+                           f"`model.loss` = {model.loss!r}")
+        if isinstance(data.class_weights, list) and len(data.class_weights) != model.layers[-1]:
+            raise JobError(f"`data.class_weights` must hold one weight per class, {model.layers[-1]} (the outputs of "
+                           f"`model.layers`); got {len(data.class_weights)}")
 
 
 def _check_best(run: RunSpec, data: DataSpec, model: ModelSpec) -> None:

@@ -164,7 +164,7 @@ def test_loss_kernel_and_summary_agree_with_the_references(name: str, output: st
     O, dZ = np.empty_like(Z), np.empty_like(Z)
     if not entry.from_logits:  # the forward pass applies the output activation before the kernel
         activation_kernels.bias_forward(Z, np.zeros(k), O, code)
-    total = entry.kernel(Z, O, targets, 1.0, dZ, code)
+    total = entry.kernel(Z, O, targets, np.ones(Z.shape[0]), 1.0, dZ, code)
     o = OUTPUTS[output].forward(Z)
     # float64 rounding: the kernel's outputs and loss against the entry's numpy references
     np.testing.assert_allclose(O, o, rtol=1e-14)

@@ -162,7 +162,7 @@ def test_softmax_cross_entropy(dtype, n, k, seed, scale):
     Z = random(rng, (n, k), dtype, scale=3.0)
     labels = rng.integers(0, k, size=n).astype(np.int64)
     O, dZ = np.empty_like(Z), np.empty_like(Z)
-    total = losses.softmax_cross_entropy(Z, labels, scale, O, dZ)
+    total = losses.softmax_cross_entropy(Z, labels, np.ones(n), scale, O, dZ)
     z64 = Z.astype(np.float64)
     expected_loss = np.sum(scipy.special.logsumexp(z64, axis=1) - z64[np.arange(n), labels])  # scipy logsumexp
     p = scipy.special.softmax(z64, axis=1)  # scipy.special.softmax
@@ -181,7 +181,7 @@ def test_binary_cross_entropy(dtype, n, k, seed, scale):
     Z = random(rng, (n, k), dtype, scale=3.0)
     T = rng.integers(0, 2, size=(n, k)).astype(dtype)
     O, dZ = np.empty_like(Z), np.empty_like(Z)
-    total = losses.binary_cross_entropy(Z, T, scale, O, dZ)
+    total = losses.binary_cross_entropy(Z, T, np.ones(n), scale, O, dZ)
     z64, t64 = Z.astype(np.float64), T.astype(np.float64)
     s = scipy.special.expit(z64)
     direct = -np.sum(t64 * np.log(s) + (1 - t64) * np.log(1 - s))  # −[t log σ + (1−t) log(1−σ)], direct formula
@@ -197,7 +197,7 @@ def test_binary_cross_entropy_matches_sklearn_log_loss(dtype):
     Z = random(rng, (50, 1), dtype)
     T = rng.integers(0, 2, size=(50, 1)).astype(dtype)
     O, dZ = np.empty_like(Z), np.empty_like(Z)
-    total = losses.binary_cross_entropy(Z, T, 1.0, O, dZ)
+    total = losses.binary_cross_entropy(Z, T, np.ones(Z.shape[0]), 1.0, O, dZ)
     expected = log_loss(T[:, 0], scipy.special.expit(Z[:, 0].astype(np.float64)), normalize=False,
                         labels=[0, 1])  # sklearn.metrics.log_loss
     assert total == pytest.approx(expected, rel=1e-5 if dtype == np.float32 else 1e-10)
@@ -210,7 +210,7 @@ def test_squared_error(dtype, n, k, seed, scale):
     rng = np.random.default_rng(seed)
     O, T = random(rng, (n, k), dtype), random(rng, (n, k), dtype)
     dO = np.empty_like(O)
-    total = losses.squared_error(O, T, scale, dO)
+    total = losses.squared_error(O, T, np.ones(n), scale, dO)
     diff = O.astype(np.float64) - T.astype(np.float64)
     tol = 1e-5 if dtype == np.float32 else 1e-12
     assert total == pytest.approx(0.5 * np.sum(diff**2), rel=tol)  # ½ Σ (o − t)²
@@ -224,7 +224,7 @@ def test_losses_stay_finite_at_extreme_logits(dtype):
     Z = np.array([[1000.0, -1000.0], [-1000.0, 1000.0], [1000.0, 1000.0]], dtype=dtype)
     labels = np.array([1, 1, 0], dtype=np.int64)
     O, dZ = np.empty_like(Z), np.empty_like(Z)
-    total = losses.softmax_cross_entropy(Z, labels, 1.0, O, dZ)
+    total = losses.softmax_cross_entropy(Z, labels, np.ones(Z.shape[0]), 1.0, O, dZ)
     # scipy.special.logsumexp per row, minus the labelled logit: 2000, 0, log 2
     expected = np.sum(scipy.special.logsumexp(Z.astype(np.float64), axis=1) - Z[np.arange(3), labels])
     assert math.isfinite(total) and total == pytest.approx(expected, rel=1e-6)
@@ -233,7 +233,7 @@ def test_losses_stay_finite_at_extreme_logits(dtype):
                                atol=1e-6)
 
     T = np.array([[0.0, 1.0], [1.0, 0.0], [1.0, 1.0]], dtype=dtype)
-    total = losses.binary_cross_entropy(Z, T, 1.0, O, dZ)
+    total = losses.binary_cross_entropy(Z, T, np.ones(Z.shape[0]), 1.0, O, dZ)
     expected = np.sum(np.logaddexp(0.0, Z.astype(np.float64)) - T * Z)  # softplus(z) − t·z, numpy.logaddexp
     assert math.isfinite(total) and total == pytest.approx(expected, rel=1e-6)
     assert np.all(np.isfinite(dZ))

@@ -75,7 +75,7 @@ def test_kernel_agrees_with_its_entry(loss: str) -> None:
     O, dZ = np.empty_like(Z), np.empty_like(Z)
     if not entry.from_logits:
         O[...] = Z  # the identity output: the forward pass leaves Z in O
-    total = entry.kernel(Z, O, t, 1.0, dZ, 0)
+    total = entry.kernel(Z, O, t, np.ones(Z.shape[0]), 1.0, dZ, 0)
     # float64 rounding: the same formula summed in another order
     assert total == pytest.approx(entry.reference(O, t).sum(), rel=1e-13)
 

@@ -24,9 +24,9 @@ from shardmill.errors import JobError
 README = Path(__file__).resolve().parents[1] / "README.md"
 # The run keys that fix the trajectory, as the digest has always taken them (the rest of [run] may change on resume).
 DIGEST_RUN_KEYS = ("global_batch", "seed", "reduction", "exact_chunk")
-# [data] keys added in 0.2 (tables): they enter the digest only away from their defaults, as the checkpoints on disk
-# were written without them.
-ADDED_DATA_KEYS = {"target": "", "features": [], "header": "auto"}
+# [data] keys added in 0.2 (tables) and 0.3 (weights): they enter the digest only away from their defaults, as the
+# checkpoints on disk were written without them.
+ADDED_DATA_KEYS = {"target": "", "features": [], "header": "auto", "weights": "", "class_weights": ""}
 # [model] keys added in 0.3 (the robust losses' parameters): likewise, at their defaults they stay out of the digest.
 ADDED_MODEL_KEYS = {"huber_delta": 1.0}
 FULL = {

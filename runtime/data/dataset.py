@@ -2,14 +2,17 @@
 
 from __future__ import annotations
 
+import hashlib
+import math
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 from shardmill.config import Job
-from shardmill.data.files import open_job_data
+from shardmill.data.files import open_job_data, open_job_weights
 from shardmill.data.rows import Split, as_numbers, block_range, column_statistics, first_of_ranks, split_rows
 from shardmill.errors import JobError
-from shardmill.model.mlp import MLP
+from shardmill.model.mlp import MLP, check_weights
 from shardmill.parallel.comm import Comm, share_error
 
 
@@ -23,6 +26,17 @@ class Dataset:
     mean: np.ndarray
     inv_std: np.ndarray
     feature_names: list[str] | None = None  # the inputs' column names when they came from a table with names
+    weights: np.ndarray | None = None  # (n,) float64 per row: sample × class weight; None: every row weighs 1
+    class_weights: list[float] | None = None  # the class weights used (data.class_weights resolved), or None
+
+    def weight_record(self) -> dict[str, Any] | None:
+        """What a checkpoint keeps of the weights, to refuse a resume whose weights differ: the class weights, Σ w
+        over the training rows (correctly rounded; for the message) and the SHA-256 of every row's weight (float64),
+        or None for an unweighted run."""
+        if self.weights is None:
+            return None
+        return {"class_weights": self.class_weights, "training_sum": math.fsum(self.weights[self.split.train]),
+                "sha256": hashlib.sha256(np.ascontiguousarray(self.weights, dtype=np.float64).tobytes()).hexdigest()}
 
 
 def load_dataset(job: Job, model: MLP, comm: Comm) -> Dataset:
@@ -54,7 +68,39 @@ def load_dataset(job: Job, model: MLP, comm: Comm) -> Dataset:
         raise JobError(f"{where}`data.inputs` row {bad} holds a non-finite value (NaN or inf)")
     if not job.data.standardize:
         mean, inv_std = np.zeros(X.shape[1]), np.ones(X.shape[1])
-    return Dataset(X=X, targets=targets, split=split, mean=mean, inv_std=inv_std, feature_names=feature_names)
+    raw_weights = open_job_weights(job, comm)  # collective; the same array on every rank, so the checks agree
+    weights, class_weights = row_weights(job, targets, split, raw_weights, model.sizes[-1])
+    return Dataset(X=X, targets=targets, split=split, mean=mean, inv_std=inv_std, feature_names=feature_names,
+                   weights=weights, class_weights=class_weights)
+
+
+def row_weights(job: Job, targets: np.ndarray, split: Split, raw: np.ndarray | None,
+                classes: int) -> tuple[np.ndarray | None, list[float] | None]:
+    """Each row's weight, (n,) float64: ``data.weights`` × the weight of the row's class (``data.class_weights``),
+    and the class weights used; (None, None) when the job has neither.
+
+    "balanced" gives class c the weight n / (m · n_c) over the training rows, m the classes present there (as
+    scikit-learn's ``compute_class_weight``); a class absent from the training rows weighs 1. Raises JobError,
+    alike on every rank (every rank holds the same weights), for a negative or non-finite weight or weights that
+    sum to zero over the training rows.
+    """
+    given = job.data.class_weights
+    if raw is None and given == "":
+        return None, None
+    n = targets.shape[0]
+    weights = np.ones(n) if raw is None else check_weights(np.asarray(raw), n, "data.weights")
+    class_weights = None
+    if given != "":
+        if given == "balanced":
+            counts = np.bincount(targets[split.train], minlength=classes)
+            present = int(np.count_nonzero(counts))
+            class_weights = [split.train.size / (present * c) if c else 1.0 for c in counts.tolist()]
+        else:
+            class_weights = list(given)
+        weights = weights * np.asarray(class_weights)[targets]
+    if not weights[split.train].any():
+        raise JobError("the row weights (`data.weights` × `data.class_weights`) sum to zero over the training rows")
+    return weights, class_weights
 
 
 def _first_nonfinite(X: np.ndarray, rows: np.ndarray, comm: Comm) -> tuple[int, int]:

@@ -98,7 +98,8 @@ def open_job_data(job: Job, comm: Comm) -> tuple[np.ndarray, np.ndarray, list[st
         if inputs is not None:
             select(inputs, target, "data.target")
             select(inputs, list(data.features), "data.features")
-            features = list(data.features) or [c for c in inputs.columns if c not in target]
+            weight_column = [] if weights_are_a_file(data.weights) else _names(data.weights)
+            features = list(data.features) or [c for c in inputs.columns if c not in target + weight_column]
             if not features:
                 raise JobError(f"`data.inputs` {str(path)!r} has no column left for the inputs once the target "
                                f"column(s) {_listing(target)} are taken")
@@ -125,6 +126,40 @@ def open_job_data(job: Job, comm: Comm) -> tuple[np.ndarray, np.ndarray, list[st
         return X, squeeze_labels(np.asarray(y)), names
     arrays = cached_columns(targets, data.header, {"targets": list(targets.columns)}, folder, comm)
     return X, _labels(squeeze_labels(np.array(arrays["targets"])), job.model.loss), names
+
+
+FILE_SUFFIXES = (".npy", ".npz", ".csv", ".parquet")
+
+
+def weights_are_a_file(value: str) -> bool:
+    """``data.weights`` names a file when it ends in a data file's suffix, else a column of ``data.inputs``."""
+    return value.lower().endswith(FILE_SUFFIXES)
+
+
+def open_job_weights(job: Job, comm: Comm) -> np.ndarray | None:
+    """The raw sample weights of every row ((n,) or (n, 1), in memory), or None without ``data.weights``.
+
+    Collective, like :func:`open_job_data`: a file is read whole on every rank; a column of the inputs table comes
+    from the table's cache (converted once, like the inputs). Checks of the values are the caller's.
+    """
+    value = job.data.weights
+    if not value:
+        return None
+    if weights_are_a_file(value):
+        return np.asarray(_errors(comm, lambda: read_array(job.path(value), "data.weights", mmap=False)))
+    path = job.path(job.data.inputs)
+
+    def inspect():
+        if not is_table(path):
+            raise JobError(f"`data.weights` = {value!r} names a column, but `data.inputs` {str(path)!r} is an array "
+                           f"without column names; give a file ({', '.join(FILE_SUFFIXES)}) instead")
+        table = describe(path, "data.inputs", job.data.header)
+        select(table, [value], "data.weights")
+        return table
+
+    table = _errors(comm, inspect)
+    arrays = cached_columns(table, job.data.header, {"weights": [value]}, job.workdir / "tables", comm)
+    return np.array(arrays["weights"])
 
 
 def read_inputs(path: Path, field_name: str, features: list[str] | None = None, header: str = "auto",

@@ -34,8 +34,9 @@ class Loss:
     :data:`~shardmill.model.activations.OUTPUTS` name). from_logits: the loss kernel reads the logits and applies
     that output activation itself, so the job may not choose another; otherwise the forward pass applies
     ``model.output`` (the job's choice, ``output`` by default) and the kernel reads the outputs.
-    kernel(Z, O, targets, scale, dZ, output_code) → the loss SUM over the n rows (float64), leaving the outputs in
-    O and ∂(loss sum)/∂Z · scale in dZ; Z, O, dZ: (n, k) in the model's dtype. outputs(Z, O, zero_bias): the
+    kernel(Z, O, targets, weights, scale, dZ, output_code) → the weighted loss SUM Σ w_i·ℓ_i over the n rows
+    (float64), leaving the outputs in O and ∂(that sum)/∂Z · scale in dZ; Z, O, dZ: (n, k) in the model's dtype;
+    weights: (n,) float64, ones for an unweighted job. outputs(Z, O, zero_bias): the
     output activation of the logits Z into O, where the kernel does it (nothing otherwise: the forward did).
     class_labels: targets are integer class labels (n,) in [0, k); else real targets (n, k), within
     target_range when given. targets_text: the targets in words (docs).
@@ -94,10 +95,13 @@ class Loss:
         return ("validation.loss", f"validation.{self.metric}")
 
     def summary(self, sums: np.ndarray, k: int) -> dict[str, float]:
-        """{"loss": mean loss per row, metric: accuracy or RMSE} from (loss sum, quality sum, rows) over the
-        batches, k outputs (what metrics.jsonl logs; docs/metrics.md)."""
+        """{"loss": the weighted mean loss Σ w·ℓ / Σ w, metric: accuracy or RMSE over the rows} from (weighted loss
+        sum, quality sum, rows[, Σ w]) over the batches, k outputs (what metrics.jsonl logs; docs/metrics.md).
+        Without Σ w (or unweighted, Σ w = rows) the loss is the plain mean per row."""
         n = max(sums[2], 1.0)
-        return {"loss": float(sums[0] / n), self.metric: float(self.metric_of(sums[1], n, k))}
+        weight = sums[3] if len(sums) > 3 else sums[2]
+        return {"loss": float(sums[0] / (weight if weight > 0 else 1.0)),
+                self.metric: float(self.metric_of(sums[1], n, k))}
 
     def check_targets(self, y: np.ndarray, n: int, k: int, dtype: np.dtype, name: str = "y") -> np.ndarray:
         """Validate targets for n rows and k outputs; return them as the kernels take them: int64 labels (n,), or
@@ -147,34 +151,34 @@ def _class_labels(y: np.ndarray, n: int, k: int, name: str, loss: str) -> np.nda
 
 # The kernels, one call shape for every loss (see Loss.kernel and Loss.outputs).
 
-def _softmax_cross_entropy(Z, O, targets, scale, dZ, output_code):
-    return kernels.softmax_cross_entropy(Z, targets, scale, O, dZ)
+def _softmax_cross_entropy(Z, O, targets, weights, scale, dZ, output_code):
+    return kernels.softmax_cross_entropy(Z, targets, weights, scale, O, dZ)
 
 
-def _binary_cross_entropy(Z, O, targets, scale, dZ, output_code):
-    return kernels.binary_cross_entropy(Z, targets, scale, O, dZ)
+def _binary_cross_entropy(Z, O, targets, weights, scale, dZ, output_code):
+    return kernels.binary_cross_entropy(Z, targets, weights, scale, O, dZ)
 
 
-def _squared_error(Z, O, targets, scale, dZ, output_code):
-    total = kernels.squared_error(O, targets, scale, dZ)  # O: the forward pass applied the output activation
+def _squared_error(Z, O, targets, weights, scale, dZ, output_code):
+    total = kernels.squared_error(O, targets, weights, scale, dZ)  # O: the forward applied the output activation
     activation_kernels.backward(Z, O, dZ, output_code)  # chain dO through it: dZ = f'(Z) ⊙ dO
     return total
 
 
-def _huber(Z, O, targets, scale, dZ, output_code, delta):
-    total = kernels.huber(O, targets, delta, scale, dZ)
+def _huber(Z, O, targets, weights, scale, dZ, output_code, delta):
+    total = kernels.huber(O, targets, weights, delta, scale, dZ)
     activation_kernels.backward(Z, O, dZ, output_code)  # chain dO through the output activation, as squared_error
     return total
 
 
-def _absolute_error(Z, O, targets, scale, dZ, output_code):
-    total = kernels.absolute_error(O, targets, scale, dZ)
+def _absolute_error(Z, O, targets, weights, scale, dZ, output_code):
+    total = kernels.absolute_error(O, targets, weights, scale, dZ)
     activation_kernels.backward(Z, O, dZ, output_code)
     return total
 
 
-def _poisson(Z, O, targets, scale, dZ, output_code):
-    return kernels.poisson(Z, targets, scale, O, dZ)
+def _poisson(Z, O, targets, weights, scale, dZ, output_code):
+    return kernels.poisson(Z, targets, weights, scale, O, dZ)
 
 
 def _exp_outputs(Z, O, zero_bias):
@@ -257,7 +261,8 @@ def _bind_huber(entry: Loss, values: dict[str, float]) -> Loss:
     delta = float(values.get("huber_delta", HUBER_DELTA))
     return dataclasses.replace(
         entry, bind=None,
-        kernel=lambda Z, O, targets, scale, dZ, output_code: _huber(Z, O, targets, scale, dZ, output_code, delta),
+        kernel=lambda Z, O, targets, weights, scale, dZ, output_code: _huber(Z, O, targets, weights, scale, dZ,
+                                                                            output_code, delta),
         reference=lambda o, targets: _huber_of_rows(o, targets, delta))
 
 

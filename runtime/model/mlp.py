@@ -8,6 +8,7 @@ contiguous message. ``weights[l]`` (fan_in, fan_out) and ``biases[l]`` (fan_out,
 
 from __future__ import annotations
 
+import math
 from collections.abc import Iterator
 
 import numpy as np
@@ -139,19 +140,25 @@ class MLP:
         """Validate targets for this model's loss and return them in the dtype the kernels take."""
         return self.loss_entry.check_targets(y, n, self.sizes[-1], self.dtype, name)
 
-    def loss_and_grad(self, X: np.ndarray, y: np.ndarray) -> tuple[float, np.ndarray]:
-        """Mean loss over the n rows of X and its gradient, flat in the params layout (a new array)."""
+    def loss_and_grad(self, X: np.ndarray, y: np.ndarray,
+                      weights: np.ndarray | None = None) -> tuple[float, np.ndarray]:
+        """Mean loss over the n rows of X and its gradient, flat in the params layout (a new array).
+
+        ``weights``: one weight ≥ 0 per row, (n,); the loss is then Σ w·ℓ / Σ w (as a weighted job trains).
+        """
         X = np.asarray(X)
         self.check_inputs(X)
         targets = self.check_targets(np.asarray(y), X.shape[0])
         n = X.shape[0]
+        w = np.ones(n) if weights is None else check_weights(np.asarray(weights), n, "weights")
+        total_weight = float(n) if weights is None else math.fsum(w)
         ws = self.workspace(n)
         ws.inputs[:n] = X
         grads = np.empty_like(self._params)
-        total = ws.forward_loss(n, targets, 1.0 / n)
+        total = ws.forward_loss(n, targets, w, 1.0 / total_weight)
         for _ in ws.backward(n, grads):
             pass
-        return total / n, grads
+        return total / total_weight, grads
 
     def predict(self, X: np.ndarray, batch: int = 4096) -> np.ndarray:
         """Outputs after the output activation, (n, k) in the model's dtype (probabilities for cross-entropy)."""
@@ -207,12 +214,13 @@ class Workspace:
                 act.bias_forward(Z, m.biases[l], self.O[:n], m.output_code)
         return self.Z[-1][:n]
 
-    def forward_loss(self, n: int, targets: np.ndarray, scale: float) -> float:
-        """Forward pass and loss: returns the loss SUM over the n rows and leaves dZ_L·scale for backward."""
+    def forward_loss(self, n: int, targets: np.ndarray, weights: np.ndarray, scale: float) -> float:
+        """Forward pass and loss: returns the weighted loss SUM Σ w_i·ℓ_i over the n rows and leaves dZ_L·scale for
+        backward. ``weights``: (≥ n,) float64, the rows' weights (ones for an unweighted job)."""
         m = self.model
         Z = self.forward(n)
         dZ = self.delta(0, n, m.sizes[-1])
-        return m.loss_entry.kernel(Z, self.O[:n], targets[:n], scale, dZ, m.output_code)
+        return m.loss_entry.kernel(Z, self.O[:n], targets[:n], weights[:n], scale, dZ, m.output_code)
 
     def forward_outputs(self, n: int) -> np.ndarray:
         """Forward pass and output activation; returns O (n, k), a view into this workspace."""
@@ -250,3 +258,20 @@ def model_from_job(job: Job) -> MLP:
     m = job.model
     return MLP(m.layers, activation=m.activation, loss=m.loss, dtype=m.dtype, seed=job.run.seed, init=m.init,
                output=m.output, huber_delta=m.huber_delta)
+
+
+def check_weights(weights: np.ndarray, n: int, name: str) -> np.ndarray:
+    """Row weights as float64 (n,): finite, ≥ 0 and not all zero, or a JobError naming ``name`` and the row."""
+    w = weights.reshape(-1) if weights.ndim == 2 and weights.shape[1:] == (1,) else weights
+    if w.shape != (n,):
+        raise JobError(f"`{name}` must hold one weight per row, shape ({n},); got shape {weights.shape}")
+    if w.dtype.kind not in "fiub":
+        raise JobError(f"`{name}` must hold numbers; got dtype {w.dtype}")
+    w = np.asarray(w, dtype=np.float64)
+    bad = ~np.isfinite(w) | (w < 0)
+    if bad.any():
+        row = int(np.flatnonzero(bad)[0])
+        raise JobError(f"`{name}` must hold finite weights ≥ 0; got {float(w[row])!r} in row {row}")
+    if n and not w.any():
+        raise JobError(f"`{name}` sum to zero: at least one row must weigh more than 0")
+    return w

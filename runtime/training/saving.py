@@ -29,7 +29,8 @@ def training_state(trainer: Any, step: int) -> checkpoint.TrainingState:
         steps_per_epoch=trainer.sampler.steps_per_epoch, processes=trainer.comm.size, job=trainer.job,
         layers=model.sizes, dtype=model.dtype.name,
         feature_names=getattr(data, "feature_names", None),
-        best=trainer.best.state() if trainer.best is not None else None)
+        best=trainer.best.state() if trainer.best is not None else None,
+        weights=data.weight_record())
 
 
 def save(trainer: Any, step: int, best: bool = False) -> checkpoint.TrainingState:
@@ -77,6 +78,12 @@ def resume(trainer: Any) -> int:
         shapes = {name: view.shape for name, view in model.named(model.params).items()}
         optimizer_shapes = {name: (model.n_params,) for name in trainer.optimizer.state}
         checkpoint.check_compatible(job, shapes, optimizer_shapes, state, arrays["params"], arrays["optimizer"])
+        ours = trainer.data.weight_record()
+        if state.get("weights") != ours:
+            raise checkpoint.CheckpointError(
+                f"the checkpoint was trained with other row weights ({_weights_text(state.get('weights'))}) than "
+                f"this job's data gives ({_weights_text(ours)}); the data or `data.weights` changed (the "
+                f"weights' SHA-256 differs)")
         return state
 
     state = lead_then_share(comm, load, share=True)
@@ -99,3 +106,11 @@ def resume(trainer: Any) -> int:
               f"{'--set ' + ' --set '.join(given) if given else 'no --set'}; this resume has "
               f"{'--set ' + now if now else 'none'}", file=sys.stderr, flush=True)
     return trainer.step_count
+
+
+def _weights_text(record: dict[str, Any] | None) -> str:
+    if record is None:
+        return "none"
+    classes = record.get("class_weights")
+    return (f"Σ w = {record.get('training_sum')!r} over the training rows"
+            + (f", class weights {classes}" if classes else ""))

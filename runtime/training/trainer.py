@@ -67,6 +67,8 @@ class Trainer:
         self.grads = np.zeros_like(self.model.params)
         self.ws = self.model.workspace(Strategy.part_rows(run, self.comm.size))
         self.batch_targets = np.zeros((self.ws.rows,) + self.data.targets.shape[1:], dtype=self.data.targets.dtype)
+        self.batch_weights = np.ones(self.ws.rows)  # the part's row weights (ones stay ones for an unweighted job)
+        self.scale = 1.0 / run.global_batch  # 1 / Σ w of the current global batch (1/G unweighted)
         self.exchange = Strategy.from_run(self.comm, self.model, self.grads, run)
         # State for the parameters this rank updates: all of them, or its slice when the update is sharded.
         self.optimizer = Optimizer(job.optimizer, self.exchange.owned_size, self.model.dtype)
@@ -76,8 +78,9 @@ class Trainer:
         # The schedule spans all epochs; run.max_steps only stops early, so a stopped run resumes onto the same curve.
         self.schedule_steps = run.epochs * self.sampler.steps_per_epoch
         self.timer = PhaseTimer()
-        self.train_sums = self.exchange.metric_sums(3)  # loss sum, correct, rows since the last epoch record
-        self.part_sums = np.zeros(3)
+        # weighted loss sum, correct (or Σ (o − t)²), rows, Σ w: since the last epoch record
+        self.train_sums = self.exchange.metric_sums(4)
+        self.part_sums = np.zeros(4)
         self.problem: str | None = None  # why this step's loss cannot be trusted (a diverged run), or None
         self.last_part_rows = 0  # rows of the part whose activations the workspace holds (for health)
         self.flags = StepFlags()  # the run loop hands in its own: stop signals and the checkpoint clock
@@ -94,6 +97,21 @@ class Trainer:
         np.take(self.data.targets, rows, axis=0, out=self.batch_targets[:rows.size])
         return self.batch_targets
 
+    def take_weights(self, rows: np.ndarray) -> np.ndarray:
+        """The weights of ``rows`` in the batch weight buffer, (≥ rows.size,) float64 (ones when unweighted)."""
+        if self.data.weights is not None:
+            np.take(self.data.weights, rows, out=self.batch_weights[:rows.size])
+        return self.batch_weights
+
+    def batch_scale(self, rows: np.ndarray) -> float:
+        """1 / Σ w over the global batch ``rows`` (1/G unweighted): every rank computes it from all G rows, Σ
+        correctly rounded (math.fsum), so it has the same bits on every rank and for every P; 0 for a batch whose
+        rows all weigh 0 (its gradient is zero, not NaN)."""
+        if self.data.weights is None:
+            return 1.0 / rows.size
+        total = math.fsum(self.data.weights[rows])
+        return 1.0 / total if total > 0 else 0.0
+
     def step(self, epoch: int, step_in_epoch: int) -> None:
         """One global step of G samples, identical in effect on every rank."""
         self.timer.start()
@@ -109,6 +127,7 @@ class Trainer:
         call). Ends with the step's agreement (:meth:`agree`), so a diverged sum stops every rank here.
         """
         self.problem = None  # the exchange resets its own at the start of parts()
+        self.scale = self.batch_scale(rows)
         for part, part_grads in self.exchange.parts(rows):
             self.part_gradient(part, part_grads)
             self.exchange.add(part_grads)
@@ -150,18 +169,19 @@ class Trainer:
         self.step_count += 1
 
     def part_gradient(self, rows: np.ndarray, grads: np.ndarray) -> None:
-        """Gradient of one part's rows into ``grads`` (scaled by 1/G); the loss and counts join ``train_sums``.
+        """Gradient of one part's rows into ``grads`` (scaled by 1/Σw of the global batch: 1/G unweighted); the
+        loss and counts join ``train_sums``.
 
         Backward tells the exchange as each layer's gradient is complete, so it can start sending.
         """
-        n, G = rows.size, self.job.run.global_batch
+        n = rows.size
         take_rows(self.data.X, rows, self.data.mean, self.data.inv_std, self.ws.inputs)
-        targets = self.take_targets(rows)
+        targets, weights = self.take_targets(rows), self.take_weights(rows)
         self.timer.lap("data")
-        loss_sum = self.ws.forward_loss(n, targets, 1.0 / G)
+        loss_sum = self.ws.forward_loss(n, targets, weights, self.scale)
         if not math.isfinite(loss_sum) and self.problem is None:
             self.problem = f"the loss of {n} rows is {loss_sum!r}"
-        self.part_sums[:] = (loss_sum, self.quality_sum(n, targets), n)
+        self.part_sums[:] = (loss_sum, self.quality_sum(n, targets), n, self.weight_sum(n))
         self.train_sums.add(self.part_sums)
         self.last_part_rows = n
         self.timer.lap("forward")
@@ -173,8 +193,12 @@ class Trainer:
         says which (``model/losses.py``)."""
         return self.model.loss_entry.quality_sum(self.ws.O[:n], targets[:n])
 
+    def weight_sum(self, n: int) -> float:
+        """Σ w of the n rows in the batch weight buffer (n itself, exactly, when unweighted)."""
+        return float(n) if self.data.weights is None else math.fsum(self.batch_weights[:n])
+
     def take_train_sums(self) -> np.ndarray:
-        """The training (loss sum, correct, rows) since the last call, summed over ranks; resets them.
+        """The training (weighted loss sum, correct, rows, Σ w) since the last call, summed over ranks; resets them.
 
         Summed as the exchange strategy sums metrics: in exact mode exactly, per fixed chunk, so the logged
         losses do not depend on P.
@@ -189,21 +213,23 @@ class Trainer:
         """
         width = self.ws.rows
         part = self.exchange.evaluation_rows(rows)
-        sums = self.exchange.metric_sums(3)  # loss sum, correct or squared-error sum, rows
-        chunk_sums = np.zeros(3)
+        sums = self.exchange.metric_sums(4)  # weighted loss sum, correct or squared-error sum, rows, Σ w
+        chunk_sums = np.zeros(4)
         for start in range(0, part.size, width):
             chunk = part[start:start + width]
             n = chunk.size
             take_rows(self.data.X, chunk, self.data.mean, self.data.inv_std, self.ws.inputs)
-            targets = self.take_targets(chunk)
-            chunk_sums[0] = self.ws.forward_loss(n, targets, 0.0)
+            targets, weights = self.take_targets(chunk), self.take_weights(chunk)
+            chunk_sums[0] = self.ws.forward_loss(n, targets, weights, 0.0)
             chunk_sums[1] = self.quality_sum(n, targets)
             chunk_sums[2] = n
+            chunk_sums[3] = self.weight_sum(n)
             sums.add(chunk_sums)
         return self.summarise(sums.reduce())
 
     def summarise(self, sums: np.ndarray) -> dict[str, float]:
-        """(loss sum, quality sum, rows) as the logged metrics: loss and accuracy or RMSE, by the loss's entry."""
+        """(weighted loss sum, quality sum, rows, Σ w) as the logged metrics: the weighted mean loss and accuracy or
+        RMSE over the rows, by the loss's entry."""
         return self.model.loss_entry.summary(sums, self.model.sizes[-1])
 
     def reduce_phases(self) -> tuple[dict[str, float], dict[str, float]]:

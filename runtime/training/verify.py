@@ -61,6 +61,7 @@ def serial_gradient(trainer: Trainer, rows: np.ndarray) -> tuple[np.ndarray, np.
     A_full = [np.zeros((G, model.sizes[l]), dtype=model.dtype) for l in range(L)]
     dZ_full = [np.zeros((G, model.sizes[l + 1]), dtype=model.dtype) for l in range(L)]
     scratch = np.zeros_like(trainer.grads)
+    scale = trainer.batch_scale(rows)  # 1/G, or 1/Σw of the batch's weights
     # The parts the ranks computed (fast: one shard per rank; exact: the fixed chunks, whose shapes do not depend
     # on P), recomputed here with the same shapes.
     for lo, hi in trainer.exchange.part_bounds(G):
@@ -68,7 +69,7 @@ def serial_gradient(trainer: Trainer, rows: np.ndarray) -> tuple[np.ndarray, np.
         n = part.size
         ws = trainer.model.workspace(trainer.ws.rows)
         take_rows(trainer.data.X, part, trainer.data.mean, trainer.data.inv_std, ws.inputs)
-        ws.forward_loss(n, trainer.take_targets(part), 1.0 / G)
+        ws.forward_loss(n, trainer.take_targets(part), trainer.take_weights(part), scale)
         for l, dZ in ws.backward(n, scratch):
             A_full[l][lo:hi] = ws.A[l][:n]
             dZ_full[l][lo:hi] = dZ

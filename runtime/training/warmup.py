@@ -25,7 +25,7 @@ def warm_up_kernels(trainer: Trainer) -> float:
         grads = np.zeros_like(trainer.grads)
         take_rows(trainer.data.X, rows, trainer.data.mean, trainer.data.inv_std, trainer.ws.inputs)
         targets = trainer.take_targets(rows)
-        trainer.ws.forward_loss(rows.size, targets, 1.0)
+        trainer.ws.forward_loss(rows.size, targets, trainer.take_weights(rows), 1.0)
         trainer.quality_sum(rows.size, targets)
         for _ in trainer.ws.backward(rows.size, grads):
             pass

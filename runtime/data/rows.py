@@ -138,6 +138,8 @@ def shard(global_rows: np.ndarray, rank: int, size: int) -> np.ndarray:
 
 def take_rows(X: np.ndarray, rows: np.ndarray, mean: np.ndarray, inv_std: np.ndarray, out: np.ndarray) -> None:
     """Copy the standardised rows of X into the batch buffer ``out[:len(rows)]``; raise on a non-finite row."""
+    if rows.size > out.shape[0] or X.shape[1] != out.shape[1]:  # the kernel does not check bounds: never write past
+        raise ValueError(f"take_rows: {rows.size} rows of width {X.shape[1]} do not fit a buffer of shape {out.shape}")
     bad = data_kernels.take_rows(X, rows, mean, inv_std, out)
     if bad >= 0:
         raise LocalJobError(f"`data.inputs` row {int(rows[bad])} holds a non-finite value (NaN or inf)")

@@ -21,7 +21,8 @@ def warm_up_kernels(trainer: Trainer) -> float:
     begin = time.perf_counter()
 
     def run() -> None:
-        rows = trainer.data.split.train[: min(2, trainer.data.split.train.size)]
+        # two rows, or one where the workspace holds one (a global batch or exact chunk of one row)
+        rows = trainer.data.split.train[: min(2, trainer.data.split.train.size, trainer.ws.rows)]
         grads = np.zeros_like(trainer.grads)
         take_rows(trainer.data.X, rows, trainer.data.mean, trainer.data.inv_std, trainer.ws.inputs)
         targets = trainer.take_targets(rows)

@@ -32,10 +32,11 @@ except PackageNotFoundError:  # the sources imported without being installed
 __all__ = ["MLP", "Job", "JobError", "Predictor", "job_from_dict", "load_job", "load_model", "train", "__version__"]
 
 
-def train(job: Job, resume: bool = False, progress: bool = True, fresh: bool = False) -> dict[str, Any]:
+def train(job: Job, resume: bool | str = False, progress: bool = True, fresh: bool = False) -> dict[str, Any]:
     """Train a job on every rank of MPI.COMM_WORLD (one process without a launcher); see training.loop.train.
 
-    A workdir that holds an earlier run is refused unless ``resume`` (continue it) or ``fresh`` (clear it first).
+    A workdir that holds an earlier run is refused unless ``resume`` (continue it) or ``fresh`` (clear it first);
+    ``resume="auto"`` continues when the workdir holds a checkpoint and starts anew otherwise.
     The result's ``"predictor"`` is a :class:`Predictor` of the final model (raw inputs in, see above).
     """
     from shardmill.training.loop import train as _train

@@ -1,26 +1,51 @@
 #!/bin/bash
 # Slurm batch template for a shardmill job: one MPI rank per core, one BLAS thread per rank.
-# Submit with: sbatch scripts/slurm-train.sh path/to/job.toml
+#   Submit:    sbatch scripts/slurm-train.sh path/to/job.toml [--set section.key=value …] [other train flags]
+#   Resubmit:  the same line, unedited. `train --continue` resumes from the workdir's newest checkpoint when there is
+#              one and starts the run otherwise, so a first submission, a resubmission and a requeue all work.
+# Lines marked "site" are the only ones to adapt.
 #SBATCH --job-name=shardmill
-#SBATCH --nodes=2
-#SBATCH --ntasks-per-node=32
+#SBATCH --nodes=2                 # site: nodes
+#SBATCH --ntasks-per-node=32      # site: one rank per core
 #SBATCH --cpus-per-task=1
-#SBATCH --time=01:00:00
+#SBATCH --time=01:00:00           # site
 #SBATCH --output=shardmill-%j.out
-#SBATCH --signal=TERM@120        # SIGTERM 2 min before the limit: shardmill checkpoints and exits 143
+#SBATCH --signal=TERM@120         # SIGTERM 2 min before the limit: every rank checkpoints, then exits 143
+##SBATCH --requeue                # site, optional: with REQUEUE=yes below, a checkpointed stop goes back in the queue
 
-set -euo pipefail
-JOB=${1:?usage: sbatch slurm-train.sh job.toml}
+set -uo pipefail
+JOB=${1:?usage: sbatch slurm-train.sh job.toml [--set section.key=value ...]}
+shift
+REQUEUE=${REQUEUE:-no}            # site, optional: yes requeues this job after a checkpointed stop (exit 143)
 
-# Use the site's MPI: build mpi4py against it (see README, "Running on a cluster"), then
-# load the same module here. The MPICH wheel's mpiexec is for single machines.
-# module load mpi/openmpi   # site specific
+# site: with the site's MPI instead of the MPICH that pip installs, load it and build mpi4py against it
+# (README, "Running on a cluster"), and use the srun --mpi plugin that MPI needs.
+# module load mpi/openmpi
 # source /path/to/venv/bin/activate
 
 export OPENBLAS_NUM_THREADS=1 OMP_NUM_THREADS=1 MKL_NUM_THREADS=1
 # One compile of the job's kernels before the ranks start, so they all load them from the cache.
 export NUMBA_CACHE_DIR=${NUMBA_CACHE_DIR:-$HOME/.cache/shardmill-numba}
-python -m shardmill compile "$JOB"
+SETS=()
+ARGS=("$@")
+for ((i = 0; i < ${#ARGS[@]}; i++)); do  # compile takes only the --set assignments of the extra arguments
+  case "${ARGS[$i]}" in
+    --set) SETS+=(--set "${ARGS[$((i + 1))]}"); i=$((i + 1)) ;;
+    --set=*) SETS+=("${ARGS[$i]}") ;;
+  esac
+done
+shardmill compile "$JOB" "${SETS[@]}" || exit $?
 
-# A rerun of this script after a time limit continues from the last checkpoint (add --resume once one exists).
-srun --cpu-bind=cores python -m shardmill train "$JOB" --no-progress
+# --mpi=pmi2: the MPICH that pip installs joins one world through PMI-2. Under Slurm's default (MpiDefault=none)
+# every task would be a world of its own; shardmill refuses that in one line.
+# --cpu-bind=cores needs a task plugin that binds (TaskPlugin=task/affinity or task/cgroup); site: drop it otherwise.
+srun --mpi=pmi2 --cpu-bind=cores shardmill train "$JOB" --continue --no-progress "$@"
+status=$?
+if [ "$status" -eq 143 ]; then
+  # Slurm shows the job as FAILED with exit code 143 (128 + SIGTERM): that is a checkpointed stop, not a crash.
+  echo "shardmill: stopped by SIGTERM after a checkpoint (exit 143); submitting this script again continues the run"
+  if [ "$REQUEUE" = yes ] && [ -n "${SLURM_JOB_ID:-}" ]; then
+    scontrol requeue "$SLURM_JOB_ID" && echo "shardmill: job $SLURM_JOB_ID requeued"
+  fi
+fi
+exit "$status"

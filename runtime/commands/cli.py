@@ -92,6 +92,10 @@ def build_parser() -> argparse.ArgumentParser:
     again = p.add_mutually_exclusive_group()
     again.add_argument("--resume", action="store_true",
                        help="continue from the newest complete checkpoint in the workdir")
+    again.add_argument("--continue", action="store_true", dest="continue_run",
+                       help="resume when the workdir holds a checkpoint, else start anew (clearing an earlier "
+                            "attempt's leftovers): one command line for a batch job's first submission and its "
+                            "resubmissions or requeues")
     again.add_argument("--fresh", action="store_true",
                        help="start over in a workdir that holds a run: remove its checkpoints, metrics.jsonl, "
                             "final.npz and best.npz first")
@@ -292,7 +296,8 @@ def cmd_train(args: argparse.Namespace) -> int:
     job = read_job(args)
     comm = Comm()
     try:
-        result = train(job, comm, resume=args.resume, progress=not args.no_progress, echo=True, fresh=args.fresh)
+        resume = "auto" if args.continue_run else args.resume
+        result = train(job, comm, resume=resume, progress=not args.no_progress, echo=True, fresh=args.fresh)
     except TrainingStopped as stopped:
         if comm.rank == 0:
             print(f"shardmill: {stopped}", file=sys.stderr, flush=True)

@@ -200,6 +200,45 @@ def abort_world(code: int, comm: Any = None) -> None:
     (MPI.COMM_WORLD if comm is None else comm).Abort(code)
 
 
+LAUNCHER_SIZES = (
+    ("PMI_SIZE", "the PMI launcher (mpiexec, or srun --mpi=pmi2)"),
+    ("OMPI_COMM_WORLD_SIZE", "Open MPI's mpirun"),
+    ("MV2_COMM_WORLD_SIZE", "MVAPICH's launcher"),
+    ("SLURM_STEP_NUM_TASKS", "Slurm's srun"),
+)
+"""Environment variables in which a launcher announces how many processes it started, in the order they are
+believed: an MPI launcher's own count first; Slurm's count of the job step's tasks last, because under mpiexec
+inside an allocation the ranks inherit the count of the step that started mpiexec's proxies."""
+
+
+def announced_size(environ: dict[str, str] | None = None) -> tuple[int, str] | None:
+    """(process count, variable) that this process's launcher announced, or None when no launcher said one."""
+    environ = os.environ if environ is None else environ
+    for name, _ in LAUNCHER_SIZES:
+        text = environ.get(name, "").strip()
+        if text.isdigit() and int(text) > 0:
+            return int(text), name
+    return None
+
+
+def check_world(size: int, environ: dict[str, str] | None = None) -> None:
+    """Refuse, on every rank alike, a world whose size is not the process count its launcher announced.
+
+    Without this, ``srun -n 4 --mpi=none`` (or an mpi4py built against another MPI than the launcher's) starts four
+    worlds of one process each, and each trains alone. Every process reads its own environment and its own world
+    size, so each one stops by itself, before any collective.
+    """
+    announced = announced_size(environ)
+    if announced is None or announced[0] == size:
+        return
+    count, name = announced
+    who = dict(LAUNCHER_SIZES)[name]
+    raise JobError(f"{who} started {count} processes ({name}={count}), but this one's MPI world holds {size}: the "
+                   f"processes did not join one MPI job. Under Slurm start the ranks with `srun --mpi=pmi2` (the "
+                   f"MPICH that pip installs speaks PMI-2); with another launcher use the mpiexec of the MPI that "
+                   f"mpi4py was built against (`shardmill info` names it)")
+
+
 def run_guarded(main: Callable[[], int], user_errors: tuple[type[BaseException], ...] = ()) -> int:
     """Run ``main`` so that a failure on any rank ends the whole job with a non-zero exit.
 
@@ -210,6 +249,7 @@ def run_guarded(main: Callable[[], int], user_errors: tuple[type[BaseException],
     comm = MPI.COMM_WORLD
     rank, size = comm.Get_rank(), comm.Get_size()
     try:
+        check_world(size)
         return main()
     except user_errors as err:
         local = isinstance(err, LocalJobError)  # seen by this rank only: the others may be waiting for it

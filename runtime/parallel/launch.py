@@ -163,7 +163,8 @@ def relaunch(ranks: int, args: list[str], timeout: float | None = None) -> int:
 
     BLAS threads are left to the job (``run.threads``), and the run stays in the terminal's process group.
     """
-    return run_for_status(ranks, ["-m", "shardmill", *args], timeout=timeout, threads=None, own_group=False,
+    # -P: the current folder stays off sys.path, so a folder named shardmill there (a clone) cannot shadow the package
+    return run_for_status(ranks, ["-P", "-m", "shardmill", *args], timeout=timeout, threads=None, own_group=False,
                           forward_signals=True)
 
 

@@ -121,7 +121,7 @@ def worker_args(job: Path, global_batch: int, steps: int, threads: int, pin: boo
                 sets: list[str] | tuple[str, ...] = ()) -> list[str]:
     """Python arguments of one run: `-m shardmill.scaling.worker` with these settings (paths made absolute) and
     the job's --set assignments."""
-    args = ["-m", "shardmill.scaling.worker", "--job", str(job.resolve()), "--global-batch", str(global_batch),
+    args = ["-P", "-m", "shardmill.scaling.worker", "--job", str(job.resolve()), "--global-batch", str(global_batch),
             "--steps", str(steps), "--threads", str(threads), "--result", str(result.resolve())]
     for text in sets:
         args += ["--set", text]

@@ -23,13 +23,17 @@ from shardmill.training.records import append, early_stop_record, epoch_record, 
 from shardmill.training.signals import StopSignals, TrainingStopped
 from shardmill.training.trainer import StepFlags, Trainer
 from shardmill.training.warmup import warm_up_kernels
-from shardmill.training.workdir import WorkdirLock, check_resumable, claim_workdir
+from shardmill.training.workdir import WorkdirLock, check_resumable, claim_workdir, has_checkpoint
 from threadpoolctl import threadpool_limits
 
 
-def train(job: Job, comm: Comm | None = None, resume: bool = False, progress: bool = True,
+def train(job: Job, comm: Comm | None = None, resume: bool | str = False, progress: bool = True,
           echo: bool = False, fresh: bool = False) -> dict[str, Any]:
     """Train ``job`` on every rank of ``comm`` (MPI.COMM_WORLD by default).
+
+    ``resume``: True continues the workdir's run from its newest checkpoint (refused without one); "auto" does so
+    when the workdir holds a checkpoint and otherwise starts anew, clearing what an earlier attempt without any
+    checkpoint left (``train --continue``: a batch job submitted again, or requeued, needs no edit).
 
     Rank 0 writes ``workdir/metrics.jsonl`` (one JSON object per epoch), checkpoints and
     ``workdir/final.npz`` (arrays W0, b0, W1, b1, …). Returns a summary dict on every rank, including
@@ -38,6 +42,9 @@ def train(job: Job, comm: Comm | None = None, resume: bool = False, progress: bo
     """
     comm = comm or Comm()
     with WorkdirLock(job.workdir, comm):
+        if resume == "auto":
+            resume = has_checkpoint(job.workdir, comm)
+            fresh = fresh or not resume  # nothing to continue: an earlier attempt's leftovers go
         if resume:
             check_resumable(job.workdir, comm)  # before the data is read (a table may take a while to convert)
         else:
@@ -90,6 +97,10 @@ class RunLoop:
             kernels_ready(self.compile_s)
         self.step = saving.resume(trainer) if self.resume else 0
         self.check_start()
+        if self.resume and self.echo and self.lead:
+            epoch, in_epoch = divmod(self.step, self.steps_per_epoch)
+            print(f"continuing from the checkpoint of step {self.step} (epoch {epoch + 1}, step {in_epoch} of "
+                  f"{self.steps_per_epoch}) in {job.workdir / 'checkpoints'}", flush=True)
         if self.lead:
             job.workdir.mkdir(parents=True, exist_ok=True)
             append(self.metrics_path, start_record(trainer, self.step))

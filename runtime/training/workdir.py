@@ -81,6 +81,16 @@ def check_resumable(workdir: Path, comm: Comm) -> None:
     lead_then_share(comm, check)
 
 
+def has_checkpoint(workdir: Path, comm: Comm) -> bool:
+    """Whether the workdir holds a checkpoint to resume from (rank 0 looks; every rank learns the answer)."""
+
+    def look() -> bool:
+        root = workdir / "checkpoints"
+        return bool(root.is_dir() and checkpoint.latest_name(root))  # a damaged index raises CheckpointError
+
+    return bool(lead_then_share(comm, look, share=True))
+
+
 def claim_workdir(workdir: Path, fresh: bool, comm: Comm) -> None:
     """A new run needs a workdir without an earlier run's files: refuse one (every rank alike), or clear it."""
 

@@ -64,7 +64,7 @@ def test_ranks_option_leaves_blas_threads_to_the_job(tmp_path, monkeypatch) -> N
     monkeypatch.setenv("OPENBLAS_NUM_THREADS", "3")
     assert relaunch(2, ["train", "job.toml"]) == 0
     seen = json.loads(record.read_text())
-    assert seen["argv"] == ["-n", "2", sys.executable, "-m", "shardmill", "train", "job.toml"]
+    assert seen["argv"] == ["-n", "2", sys.executable, "-P", "-m", "shardmill", "train", "job.toml"]
     assert seen["env"]["OPENBLAS_NUM_THREADS"] == "3" and seen["env"][LAUNCHED] == "1"
 
 

@@ -9,8 +9,9 @@ One hidden layer h computes, in this order (docs/models.md gives the formulas an
     A_{h+1} = D + A_h                with residual     (He et al. 2016, identity skip)
 
 Every kernel works row by row: a row's result never depends on the other rows of the batch, so it is the same
-whichever rank or part holds the row. Row reductions run in float64 over a fixed order of eight partial sums (a
-sequential sum would be one long dependency chain; a fastmath reduction would depend on the vector width).
+whichever rank or part holds the row. Row sums run in float64 by pairwise folding, whose order is fixed by the
+width alone (a sequential sum is one long dependency chain the compiler will not vectorise without fastmath, and a
+fastmath reduction would depend on the vector width).
 The dropout decision is a pure function of (seed, step, global row, layer, unit): no generator state.
 Nothing here allocates; every output is a buffer the caller owns.
 """
@@ -28,88 +29,43 @@ WEYL32 = 0x9E3779B9  # ⌊2³²/φ⌋: the unit index's Weyl step (Steele, Lea &
 # --- layer normalisation ---------------------------------------------------------------------------------------
 
 @njit(cache=True, inline="always")
-def _row_sum(x, shift):
-    """Σ_j (x_j − shift) in float64, as eight interleaved partial sums added in a fixed order."""
-    m = x.shape[0]
-    s0 = s1 = s2 = s3 = s4 = s5 = s6 = s7 = 0.0
-    j = 0
-    while j + 8 <= m:
-        s0 += x[j] - shift
-        s1 += x[j + 1] - shift
-        s2 += x[j + 2] - shift
-        s3 += x[j + 3] - shift
-        s4 += x[j + 4] - shift
-        s5 += x[j + 5] - shift
-        s6 += x[j + 6] - shift
-        s7 += x[j + 7] - shift
-        j += 8
-    while j < m:
-        s0 += x[j] - shift
-        j += 1
-    return ((s0 + s1) + (s2 + s3)) + ((s4 + s5) + (s6 + s7))
+def _fold(t, w):
+    """Σ t[:w] by pairwise folding in place: the top half is added onto the bottom half until one value is left.
 
-
-@njit(cache=True, inline="always")
-def _row_squares(x, shift):
-    """Σ_j (x_j − shift)² in float64, eight partial sums in a fixed order."""
-    m = x.shape[0]
-    s0 = s1 = s2 = s3 = s4 = s5 = s6 = s7 = 0.0
-    j = 0
-    while j + 8 <= m:
-        d0, d1, d2, d3 = x[j] - shift, x[j + 1] - shift, x[j + 2] - shift, x[j + 3] - shift
-        d4, d5, d6, d7 = x[j + 4] - shift, x[j + 5] - shift, x[j + 6] - shift, x[j + 7] - shift
-        s0 += d0 * d0
-        s1 += d1 * d1
-        s2 += d2 * d2
-        s3 += d3 * d3
-        s4 += d4 * d4
-        s5 += d5 * d5
-        s6 += d6 * d6
-        s7 += d7 * d7
-        j += 8
-    while j < m:
-        d = x[j] - shift
-        s0 += d * d
-        j += 1
-    return ((s0 + s1) + (s2 + s3)) + ((s4 + s5) + (s6 + s7))
-
-
-@njit(cache=True, inline="always")
-def _row_dot(x, y):
-    """Σ_j x_j·y_j in float64, eight partial sums in a fixed order."""
-    m = x.shape[0]
-    s0 = s1 = s2 = s3 = s4 = s5 = s6 = s7 = 0.0
-    j = 0
-    while j + 8 <= m:
-        s0 += float(x[j]) * y[j]
-        s1 += float(x[j + 1]) * y[j + 1]
-        s2 += float(x[j + 2]) * y[j + 2]
-        s3 += float(x[j + 3]) * y[j + 3]
-        s4 += float(x[j + 4]) * y[j + 4]
-        s5 += float(x[j + 5]) * y[j + 5]
-        s6 += float(x[j + 6]) * y[j + 6]
-        s7 += float(x[j + 7]) * y[j + 7]
-        j += 8
-    while j < m:
-        s0 += float(x[j]) * y[j]
-        j += 1
-    return ((s0 + s1) + (s2 + s3)) + ((s4 + s5) + (s6 + s7))
+    Each fold is an elementwise loop (no reduction for the compiler to refuse to vectorise), the order is fixed by
+    w alone, and pairwise summation's error grows with log₂ w (Higham 2002, §4.2). t: float64 scratch, clobbered.
+    """
+    while w > 1:
+        half = w // 2
+        offset = w - half  # ≥ half: the two halves never overlap
+        low, high = t[:half], t[offset:offset + half]  # two views: one array under one name fails the overlap check
+        for j in range(half):
+            low[j] += high[j]
+        w = offset
+    return t[0]
 
 
 @njit(cache=True)
-def norm_forward(Z, b, gain, shift, N, stats):
+def norm_forward(Z, b, gain, shift, N, stats, scratch):
     """Z += b, then N = gain ⊙ (Z − μ)·r + shift per row, r = 1/√(σ² + ε) (Ba, Kiros & Hinton 2016, eq. 4).
 
     Z: (n, m) pre-activations, the bias added in place; b, gain, shift: (m,); N: (n, m) output; stats: (n, 2)
-    float64, (μ, r) of each row for the backward pass. μ and σ² = mean((z − μ)²) in float64 (two passes).
+    float64, (μ, r) of each row for the backward pass; scratch: (2, ≥ m) float64. μ and σ² = mean((z − μ)²) are
+    formed in float64 (two passes, pairwise sums), then (z − μ)·r·g + β in the array's dtype.
     """
     n, m = Z.shape
+    t = scratch[0]
     for i in range(n):
         z, out = Z[i], N[i]
         for j in range(m):
-            z[j] = z[j] + b[j]
-        mu = _row_sum(z, 0.0) / m
-        var = _row_squares(z, mu) / m
+            v = z[j] + b[j]
+            z[j] = v
+            t[j] = v
+        mu = _fold(t, m) / m
+        for j in range(m):
+            d = z[j] - mu
+            t[j] = d * d
+        var = _fold(t, m) / m
         r = 1.0 / (var + NORM_EPS) ** 0.5
         stats[i, 0], stats[i, 1] = mu, r
         mu_t, r_t = Z.dtype.type(mu), Z.dtype.type(r)
@@ -118,55 +74,34 @@ def norm_forward(Z, b, gain, shift, N, stats):
 
 
 @njit(cache=True)
-def norm_backward(Z, stats, gain, dN, dZ, dgain, dshift):
+def norm_backward(Z, stats, gain, dN, dZ, dgain, dshift, scratch):
     """Backward of :func:`norm_forward`: dZ from dN = ∂loss/∂N, and the parameter gradients.
 
     With x̂ = (z − μ)·r and dx̂ = g ⊙ dN (per row, m units):
     dZ = r·(dx̂ − mean(dx̂) − x̂·mean(dx̂ ⊙ x̂)); dgain = Σ_rows dN ⊙ x̂; dshift = Σ_rows dN (overwritten).
     Z: (n, m) the pre-activations after the bias; stats: (n, 2) float64 from the forward pass; dN, dZ: (n, m),
-    two buffers; dgain, dshift: (m,). x̂ is formed in the array's dtype exactly as the forward pass formed it, so
-    a row's products have the same bits whichever part holds it.
+    two buffers; dgain, dshift: (m,); scratch: (2, ≥ m) float64. x̂ is formed in the array's dtype exactly as the
+    forward pass formed it, so a row's products have the same bits whichever part holds it.
     """
     n, m = Z.shape
+    t, u = scratch[0], scratch[1]
     for j in range(m):
         dgain[j] = 0.0
         dshift[j] = 0.0
     for i in range(n):
         z, d, out = Z[i], dN[i], dZ[i]
         mu_t, r_t = Z.dtype.type(stats[i, 0]), Z.dtype.type(stats[i, 1])
-        # out holds x̂ first (it is overwritten below), so x̂ is formed once per element
-        for j in range(m):
+        for j in range(m):  # out holds x̂ until the last loop overwrites it
             xhat = (z[j] - mu_t) * r_t
             out[j] = xhat
             dgain[j] += d[j] * xhat
             dshift[j] += d[j]
-        mean_dx = _row_dot(d, gain) / m  # mean(dx̂)
-        mean_dxx = _row_dot3(d, gain, out) / m  # mean(dx̂ ⊙ x̂)
-        a_t, c_t = Z.dtype.type(mean_dx), Z.dtype.type(mean_dxx)
+            dx = float(gain[j]) * d[j]
+            t[j] = dx
+            u[j] = dx * xhat
+        a_t, c_t = Z.dtype.type(_fold(t, m) / m), Z.dtype.type(_fold(u, m) / m)  # mean(dx̂), mean(dx̂ ⊙ x̂)
         for j in range(m):
             out[j] = r_t * ((gain[j] * d[j] - a_t) - out[j] * c_t)
-
-
-@njit(cache=True, inline="always")
-def _row_dot3(x, y, w):
-    """Σ_j x_j·y_j·w_j in float64, eight partial sums in a fixed order."""
-    m = x.shape[0]
-    s0 = s1 = s2 = s3 = s4 = s5 = s6 = s7 = 0.0
-    j = 0
-    while j + 8 <= m:
-        s0 += float(x[j]) * y[j] * w[j]
-        s1 += float(x[j + 1]) * y[j + 1] * w[j + 1]
-        s2 += float(x[j + 2]) * y[j + 2] * w[j + 2]
-        s3 += float(x[j + 3]) * y[j + 3] * w[j + 3]
-        s4 += float(x[j + 4]) * y[j + 4] * w[j + 4]
-        s5 += float(x[j + 5]) * y[j + 5] * w[j + 5]
-        s6 += float(x[j + 6]) * y[j + 6] * w[j + 6]
-        s7 += float(x[j + 7]) * y[j + 7] * w[j + 7]
-        j += 8
-    while j < m:
-        s0 += float(x[j]) * y[j] * w[j]
-        j += 1
-    return ((s0 + s1) + (s2 + s3)) + ((s4 + s5) + (s6 + s7))
 
 
 # --- dropout: a counter-based keep decision --------------------------------------------------------------------

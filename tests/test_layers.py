@@ -160,12 +160,12 @@ def test_norm_kernels_against_numpy():
         b, g, s = (rng.normal(size=m).astype(dtype) for _ in range(3))
         z = Z.astype(np.float64) + b
         N, stats = np.empty_like(Z), np.empty((n, 2))
-        K.norm_forward(Z, b, g, s, N, stats)
+        K.norm_forward(Z, b, g, s, N, stats, np.zeros((2, m)))
         expected = g * (z - z.mean(1, keepdims=True)) / np.sqrt(z.var(1, keepdims=True) + EPS) + s  # Ba et al. eq. 4
         assert np.max(np.abs(N - expected)) < tol * 10
         dN = rng.normal(size=(n, m)).astype(dtype)
         dZ, dg, ds = np.empty_like(Z), np.empty(m, dtype), np.empty(m, dtype)
-        K.norm_backward(Z, stats, g, dN, dZ, dg, ds)
+        K.norm_backward(Z, stats, g, dN, dZ, dg, ds, np.zeros((2, m)))
         xhat = (z - z.mean(1, keepdims=True)) / np.sqrt(z.var(1, keepdims=True) + EPS)
         dx = dN * g
         ref = (dx - dx.mean(1, keepdims=True) - xhat * (dx * xhat).mean(1, keepdims=True)) / np.sqrt(
@@ -310,3 +310,84 @@ def test_a_sigterm_and_a_resume_at_another_process_count_give_the_same_bits(tmp_
     assert resumed.returncode == 0, resumed.stderr[-3000:]
     # exact mode with counter-based dropout: the resumed run at P = 4 ends on the P = 3 run's bits (README)
     assert final_digest(tmp_path / "stopped" / "run") == final_digest(tmp_path / "straight" / "run")
+
+
+# --- through everything: train, load_model, predict, export (onnxruntime), model card, verify --------------------
+@pytest.mark.parametrize("dtype", ["float32", "float64"])
+def test_trained_model_loads_predicts_and_exports_like_onnxruntime(tmp_path, dtype):
+    import argparse
+    import json
+
+    import onnxruntime
+    from shardmill.commands.export import cmd_export
+
+    make_classification(tmp_path, rows=160, features=6, classes=3, seed=1)
+    model = {**MODEL, "dtype": dtype}
+    job = write_job(tmp_path, model, {"epochs": 3, "global_batch": 16, "seed": 2, "workdir": "run"},
+                    {"method": "adam", "learning_rate": 0.02})
+    assert run_cli(["train", str(job), "--no-progress"], timeout=240).returncode == 0
+    predictor = sm.load_model(tmp_path / "run" / "final.npz")
+    m = predictor.model
+    assert (m.norm, m.residual, m.dropout) == ("layer", True, [0.1, 0.3, 0.2])
+    assert not np.all(m.gains[0] == 1)  # the gain trained: its gradient reached the update
+    X = np.load(tmp_path / "x.npy")
+    out = tmp_path / "model.onnx"
+    assert cmd_export(argparse.Namespace(model=tmp_path / "run" / "final.npz", out=out, card=None, opset=17)) == 0
+    session = onnxruntime.InferenceSession(str(out), providers=["CPUExecutionProvider"])
+    got = session.run(["outputs"], {"inputs": X.astype(dtype)})[0]
+    expected = predictor.outputs(X)
+    # reference: onnxruntime, a general-purpose ONNX runtime; tolerances as tests/test_export.py states them
+    np.testing.assert_allclose(got, expected, rtol={"float32": 1e-5, "float64": 1e-12}[dtype],
+                               atol={"float32": 1e-6, "float64": 1e-13}[dtype])
+    card = json.loads(out.with_suffix(".card.json").read_text())
+    hidden = card["layers"][:3]
+    assert [layer["residual"] for layer in hidden] == [False, True, True]
+    assert [layer["dropout"] for layer in hidden] == [0.1, 0.3, 0.2]
+    assert all(layer["norm"] == "layer" and layer["gain"] == f"G{h}" for h, layer in enumerate(hidden))
+
+
+def test_a_checkpoint_without_the_new_keys_still_loads(tmp_path):
+    # a final.npz of a model from before the keys existed: its model_json lacks norm, dropout and residual
+    make_classification(tmp_path, rows=80, features=4, classes=3, seed=1)
+    job = write_job(tmp_path, {"layers": [4, 8, 3]}, {"epochs": 1, "global_batch": 16, "workdir": "run"})
+    assert run_cli(["train", str(job), "--no-progress"], timeout=240).returncode == 0
+    import json
+
+    with np.load(tmp_path / "run" / "final.npz", allow_pickle=False) as archive:
+        arrays = {k: archive[k] for k in archive.files}
+    spec = json.loads(str(arrays["model_json"]))
+    for key in ("norm", "dropout", "residual"):
+        spec.pop(key, None)
+    arrays["model_json"] = np.array(json.dumps(spec))
+    np.savez(tmp_path / "old.npz", **arrays)
+    predictor = sm.load_model(tmp_path / "old.npz")
+    assert predictor.model.norm == "none" and not predictor.model.residual
+
+
+@pytest.mark.mpi
+@pytest.mark.parametrize("P, dtype, reduction", [(2, "float32", "fast"), (3, "float64", "exact")])
+def test_verify_agrees_with_norm_dropout_and_skips(tmp_path, P, dtype, reduction):
+    import json
+
+    make_classification(tmp_path, rows=200, features=6, classes=3, seed=5)
+    job = write_job(tmp_path, {**MODEL, "dtype": dtype},
+                    {"global_batch": 48, "exact_chunk": 12, "reduction": reduction, "seed": 1, "workdir": "run"})
+    report = tmp_path / "report.json"
+    proc = run_mpi(P, ["-m", "shardmill", "verify", str(job), "--out", str(report)], timeout=180)
+    assert proc.returncode == 0, proc.stderr[-3000:]
+    result = json.loads(report.read_text())
+    tensors = {t["tensor"] for b in result["batches"] for t in b["tensors"]}
+    assert {"G0", "B0", "G2", "B2"} <= tensors
+    # Higham 2002, §4.2: every tensor within 2·γ_{G−1}·Σ|x_i|
+    assert result["verdict"] == "agree" and result["max_bound_ratio"] <= 1.0
+
+
+def test_bench_takes_the_new_model_keys(tmp_path):
+    import json
+
+    proc = run_cli(["bench", "--layers", "12,16,16,3", "--global-batch", "32", "--steps", "2", "--untimed", "1",
+                    "--norm", "layer", "--dropout", "0.2", "--residual", "--json"], timeout=240, cwd=tmp_path)
+    assert proc.returncode == 0, proc.stderr[-3000:]
+    result = json.loads(proc.stdout.strip().splitlines()[-1])
+    assert (result["norm"], result["dropout"], result["residual"]) == ("layer", 0.2, True)
+    assert result["params"] == 12 * 16 + 16 + 2 * 16 + 16 * 16 + 16 + 2 * 16 + 16 * 3 + 3  # W, b, G, B per hidden

@@ -249,6 +249,7 @@ class Workspace:
         self._delta = (np.zeros(rows * width, dtype=dt), np.zeros(rows * width, dtype=dt))
         self._saved = np.zeros(rows * width, dtype=dt)  # the skip's share of ∂loss/∂A_{h+1}
         self._zero_bias = np.zeros(width, dtype=dt)
+        self._scratch = np.zeros((2, width))  # the norm kernels' row sums, float64
         self.norm_delta: list[np.ndarray | None] = [None] * (L - 1)  # dN of hidden layer h, valid at yield h + 1
 
     def delta(self, which: int, n: int, width: int) -> np.ndarray:
@@ -276,7 +277,8 @@ class Workspace:
         m = self.model
         Z, H, A = self.Z[h][:n], self.H[h][:n], self.A[h + 1][:n]
         if m.has_norm(h):
-            layers.norm_forward(Z, m.biases[h], m.gains[h], m.shifts[h], self.N[h][:n], self.stats[h][:n])
+            layers.norm_forward(Z, m.biases[h], m.gains[h], m.shifts[h], self.N[h][:n], self.stats[h][:n],
+                                self._scratch)
             act.bias_forward(self.N[h][:n], self._zero_bias[:Z.shape[1]], H, m.hidden_codes[h])
         else:
             act.bias_forward(Z, m.biases[h], H, m.hidden_codes[h])
@@ -355,7 +357,8 @@ class Workspace:
         if not m.has_norm(h):
             return D
         self.norm_delta[h] = D
-        layers.norm_backward(self.Z[h][:n], self.stats[h][:n], m.gains[h], D, self.dZ_norm[h][:n], dgain, dshift)
+        layers.norm_backward(self.Z[h][:n], self.stats[h][:n], m.gains[h], D, self.dZ_norm[h][:n], dgain, dshift,
+                             self._scratch)
         return self.dZ_norm[h][:n]
 
 

@@ -19,11 +19,13 @@ Nothing here allocates; every output is a buffer the caller owns.
 from __future__ import annotations
 
 from numba import njit, uint32, uint64
+from shardmill.kernels import activations as act
 
 NORM_EPS = 1e-5
 """ε under the square root of layer normalisation's variance (common practice; Ba et al. 2016 leave it out)."""
 
 WEYL32 = 0x9E3779B9  # ⌊2³²/φ⌋: the unit index's Weyl step (Steele, Lea & Flood 2014, SplitMix)
+LOW32 = uint64(0xFFFFFFFF)
 
 
 # --- layer normalisation ---------------------------------------------------------------------------------------
@@ -45,63 +47,110 @@ def _fold(t, w):
     return t[0]
 
 
-@njit(cache=True)
-def norm_forward(Z, b, gain, shift, N, stats, scratch):
-    """Z += b, then N = gain ⊙ (Z − μ)·r + shift per row, r = 1/√(σ² + ε) (Ba, Kiros & Hinton 2016, eq. 4).
-
-    Z: (n, m) pre-activations, the bias added in place; b, gain, shift: (m,); N: (n, m) output; stats: (n, 2)
-    float64, (μ, r) of each row for the backward pass; scratch: (2, ≥ m) float64. μ and σ² = mean((z − μ)²) are
-    formed in float64 (two passes, pairwise sums), then (z − μ)·r·g + β in the array's dtype.
-    """
+@njit(cache=True, inline="always")
+def _norm_forward_rows(Z, b, gain, shift, H, stats, scratch, code):
     n, m = Z.shape
     t = scratch[0]
+    half = m // 2
+    offset = m - half
     for i in range(n):
-        z, out = Z[i], N[i]
-        for j in range(m):
-            v = z[j] + b[j]
-            z[j] = v
-            t[j] = v
-        mu = _fold(t, m) / m
-        for j in range(m):
-            d = z[j] - mu
-            t[j] = d * d
-        var = _fold(t, m) / m
+        z, out = Z[i], H[i]
+        # z += b, with the first fold of Σ z on the way: t[j] = z_j + z_{offset+j} (what _fold's first level adds)
+        z_low, z_high, b_low, b_high, t_low = z[:half], z[offset:], b[:half], b[offset:], t[:half]
+        for j in range(half):
+            v, w = z_low[j] + b_low[j], z_high[j] + b_high[j]
+            z_low[j], z_high[j] = v, w
+            t_low[j] = float(v) + w
+        if offset > half:  # the middle element of an odd width stays in place
+            v = z[half] + b[half]
+            z[half] = v
+            t[half] = v
+        mu = _fold(t, offset) / m
+        for j in range(half):  # Σ (z − μ)², first fold level fused likewise
+            v, w = z_low[j] - mu, z_high[j] - mu
+            t_low[j] = v * v + w * w
+        if offset > half:
+            v = z[half] - mu
+            t[half] = v * v
+        var = _fold(t, offset) / m
         r = 1.0 / (var + NORM_EPS) ** 0.5
         stats[i, 0], stats[i, 1] = mu, r
         mu_t, r_t = Z.dtype.type(mu), Z.dtype.type(r)
         for j in range(m):
-            out[j] = gain[j] * ((z[j] - mu_t) * r_t) + shift[j]
+            out[j] = act.forward(code, gain[j] * ((z[j] - mu_t) * r_t) + shift[j])
 
 
 @njit(cache=True)
-def norm_backward(Z, stats, gain, dN, dZ, dgain, dshift, scratch):
-    """Backward of :func:`norm_forward`: dZ from dN = ∂loss/∂N, and the parameter gradients.
+def norm_forward(Z, b, gain, shift, H, stats, scratch, code):
+    """Z += b, then H = f(N), N = gain ⊙ (Z − μ)·r + shift per row, r = 1/√(σ² + ε) (Ba, Kiros & Hinton 2016,
+    eq. 4), f the activation ``code`` (kernels/activations.py): normalisation and activation in one pass.
 
-    With x̂ = (z − μ)·r and dx̂ = g ⊙ dN (per row, m units):
-    dZ = r·(dx̂ − mean(dx̂) − x̂·mean(dx̂ ⊙ x̂)); dgain = Σ_rows dN ⊙ x̂; dshift = Σ_rows dN (overwritten).
-    Z: (n, m) the pre-activations after the bias; stats: (n, 2) float64 from the forward pass; dN, dZ: (n, m),
-    two buffers; dgain, dshift: (m,); scratch: (2, ≥ m) float64. x̂ is formed in the array's dtype exactly as the
-    forward pass formed it, so a row's products have the same bits whichever part holds it.
+    Z: (n, m) pre-activations, the bias added in place; b, gain, shift: (m,); H: (n, m) output; stats: (n, 2)
+    float64, (μ, r) of each row for the backward pass; scratch: (2, ≥ m) float64. μ and σ² = mean((z − μ)²) are
+    formed in float64 (two passes, pairwise sums), then N = (z − μ)·r·g + β in the array's dtype. N is not kept:
+    the backward pass forms it again, with the same bits.
     """
+    if code == act.RELU:  # constant codes for the cheap activations, which the compiler then vectorises
+        _norm_forward_rows(Z, b, gain, shift, H, stats, scratch, act.RELU)
+    elif code == act.IDENTITY:
+        _norm_forward_rows(Z, b, gain, shift, H, stats, scratch, act.IDENTITY)
+    else:
+        _norm_forward_rows(Z, b, gain, shift, H, stats, scratch, code)
+
+
+@njit(cache=True, inline="always")
+def _delta(code, z, a, d, zero):
+    """f'(z)·d (the caller stores it in its dtype); relu as a select, so float32 rows are not widened."""
+    if code == act.RELU:
+        return d if z > 0 else zero
+    return act.derivative(code, z, a) * d
+
+
+@njit(cache=True, inline="always")
+def _norm_backward_rows(Z, stats, gain, shift, H, D, dgain, dshift, scratch, code):
     n, m = Z.shape
     t, u = scratch[0], scratch[1]
+    zero = Z.dtype.type(0)
     for j in range(m):
         dgain[j] = 0.0
         dshift[j] = 0.0
     for i in range(n):
-        z, d, out = Z[i], dN[i], dZ[i]
+        z, h, d = Z[i], H[i], D[i]
         mu_t, r_t = Z.dtype.type(stats[i, 0]), Z.dtype.type(stats[i, 1])
-        for j in range(m):  # out holds x̂ until the last loop overwrites it
+        for j in range(m):
             xhat = (z[j] - mu_t) * r_t
-            out[j] = xhat
-            dgain[j] += d[j] * xhat
-            dshift[j] += d[j]
-            dx = float(gain[j]) * d[j]
+            dn = Z.dtype.type(_delta(code, gain[j] * xhat + shift[j], h[j], d[j], zero))  # N as forward formed it
+            dgain[j] += dn * xhat
+            dshift[j] += dn
+            dx = float(gain[j]) * dn
             t[j] = dx
             u[j] = dx * xhat
         a_t, c_t = Z.dtype.type(_fold(t, m) / m), Z.dtype.type(_fold(u, m) / m)  # mean(dx̂), mean(dx̂ ⊙ x̂)
-        for j in range(m):
-            out[j] = r_t * ((gain[j] * d[j] - a_t) - out[j] * c_t)
+        for j in range(m):  # x̂ and dN again from the row in cache, then D is overwritten in place
+            xhat = (z[j] - mu_t) * r_t
+            dn = Z.dtype.type(_delta(code, gain[j] * xhat + shift[j], h[j], d[j], zero))
+            d[j] = r_t * ((gain[j] * dn - a_t) - xhat * c_t)
+
+
+@njit(cache=True)
+def norm_backward(Z, stats, gain, shift, H, D, dgain, dshift, scratch, code):
+    """Backward of :func:`norm_forward`, in place: D = ∂loss/∂H on entry, ∂loss/∂Z on exit; and the gradients of
+    the gain and shift.
+
+    dN = f'(N) ⊙ ∂loss/∂H in the array's dtype; with x̂ = (z − μ)·r and dx̂ = g ⊙ dN (per row, m units):
+    ∂loss/∂Z = r·(dx̂ − mean(dx̂) − x̂·mean(dx̂ ⊙ x̂)); dgain = Σ_rows dN ⊙ x̂; dshift = Σ_rows dN (both
+    overwritten). Z: (n, m) the pre-activations after the bias; stats: (n, 2) float64 from the forward pass; gain,
+    shift: (m,); H: (n, m) the forward pass's output; D: (n, m), one buffer in and out (see
+    ``activations.backward`` for why never two names for it); dgain, dshift: (m,); scratch: (2, ≥ m) float64;
+    code: the activation (identity: ∂loss/∂H is dN). x̂ and N are formed in the array's dtype exactly as the forward
+    pass formed them, so a row's products have the same bits whichever part holds it.
+    """
+    if code == act.RELU:
+        _norm_backward_rows(Z, stats, gain, shift, H, D, dgain, dshift, scratch, act.RELU)
+    elif code == act.IDENTITY:
+        _norm_backward_rows(Z, stats, gain, shift, H, D, dgain, dshift, scratch, act.IDENTITY)
+    else:
+        _norm_backward_rows(Z, stats, gain, shift, H, D, dgain, dshift, scratch, code)
 
 
 # --- dropout: a counter-based keep decision --------------------------------------------------------------------
@@ -130,13 +179,14 @@ def row_key(key, row):
 @njit(cache=True, inline="always")
 def unit_hash(low, high, j):
     """32 uniform bits for unit j of a row: MurmurHash3's fmix32 finaliser (Appleby 2011) of the row key's low
-    word plus j Weyl steps, xor its high word. 32-bit multiplies only, so the loop vectorises on AVX2."""
-    h = uint32(uint32(low + uint32(j) * uint32(WEYL32)) ^ high)
-    h = uint32(h ^ (h >> uint32(16)))
-    h = uint32(h * uint32(0x85EBCA6B))
-    h = uint32(h ^ (h >> uint32(13)))
-    h = uint32(h * uint32(0xC2B2AE35))
-    return uint32(h ^ (h >> uint32(16)))
+    word plus j Weyl steps (mod 2³²), xor its high word. Held in uint64 lanes whose values stay below 2³², so each
+    multiply is 32 × 32 → 64 bits (one vpmuludq on AVX2) and the loop vectorises. low, high: uint64 < 2³²."""
+    h = ((low + uint64(uint32(j)) * uint64(WEYL32)) & LOW32) ^ high
+    h = h ^ (h >> uint64(16))
+    h = (h * uint64(0x85EBCA6B)) & LOW32
+    h = h ^ (h >> uint64(13))
+    h = (h * uint64(0xC2B2AE35)) & LOW32
+    return h ^ (h >> uint64(16))
 
 
 @njit(cache=True)
@@ -146,23 +196,27 @@ def dropout_forward(H, skip, A, keep, rows, key, threshold, scale, has_skip):
 
     H, skip, A: (n, m) (skip read only when ``has_skip``; A may be H); keep: (n, m) uint8, the decision, written for
     the backward pass; rows: (n,) int64 global row indices; key: :func:`dropout_key`; threshold: uint32
-    ⌊p·2³²⌋, so P(keep) = 1 − threshold/2³²; scale: 1/(1 − p) in the array's dtype.
+    ⌊p·2³²⌋, so P(keep) = 1 − threshold/2³²; scale: 1/(1 − p) in the array's dtype. The hash and the stores share
+    one loop, so its arithmetic hides behind the memory traffic.
     """
     n, m = H.shape
     zero = H.dtype.type(0)
+    bound = uint64(threshold)
     for i in range(n):
         k = row_key(key, rows[i])
-        low, high = uint32(k & uint64(0xFFFFFFFF)), uint32(k >> uint64(32))
+        low, high = k & LOW32, k >> uint64(32)
         h_row, a_row, keep_row = H[i], A[i], keep[i]
-        for j in range(m):
-            keep_row[j] = unit_hash(low, high, j) >= threshold
         if has_skip:
             s_row = skip[i]
             for j in range(m):
-                a_row[j] = (h_row[j] * scale if keep_row[j] else zero) + s_row[j]
+                kept = unit_hash(low, high, j) >= bound
+                keep_row[j] = kept
+                a_row[j] = (h_row[j] * scale if kept else zero) + s_row[j]
         else:
             for j in range(m):
-                a_row[j] = h_row[j] * scale if keep_row[j] else zero
+                kept = unit_hash(low, high, j) >= bound
+                keep_row[j] = kept
+                a_row[j] = h_row[j] * scale if kept else zero
 
 
 @njit(cache=True)

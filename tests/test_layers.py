@@ -152,24 +152,30 @@ def test_no_dropout_without_a_step_and_evaluation_keeps_every_unit():
     assert np.array_equal(model.predict(X), plain.predict(X))  # Srivastava et al. 2014, §10 (scaled at training)
 
 
-def test_norm_kernels_against_numpy():
+@pytest.mark.parametrize("activation", ["identity", "tanh", "relu"])
+def test_norm_kernels_against_numpy(activation):
+    from shardmill.kernels.activations import CODES
+
+    f = {"identity": lambda v: v, "tanh": np.tanh, "relu": lambda v: np.maximum(v, 0)}[activation]
+    df = {"identity": lambda v: 1.0, "tanh": lambda v: 1 - np.tanh(v) ** 2, "relu": lambda v: (v > 0) * 1.0}[activation]
     rng = np.random.default_rng(0)
     for dtype, tol in ((np.float32, 1e-5), (np.float64, 1e-13)):
         n, m = 9, 37
         Z = rng.normal(3.0, 2.0, size=(n, m)).astype(dtype)
         b, g, s = (rng.normal(size=m).astype(dtype) for _ in range(3))
         z = Z.astype(np.float64) + b
-        N, stats = np.empty_like(Z), np.empty((n, 2))
-        K.norm_forward(Z, b, g, s, N, stats, np.zeros((2, m)))
-        expected = g * (z - z.mean(1, keepdims=True)) / np.sqrt(z.var(1, keepdims=True) + EPS) + s  # Ba et al. eq. 4
-        assert np.max(np.abs(N - expected)) < tol * 10
-        dN = rng.normal(size=(n, m)).astype(dtype)
-        dZ, dg, ds = np.empty_like(Z), np.empty(m, dtype), np.empty(m, dtype)
-        K.norm_backward(Z, stats, g, dN, dZ, dg, ds, np.zeros((2, m)))
-        xhat = (z - z.mean(1, keepdims=True)) / np.sqrt(z.var(1, keepdims=True) + EPS)
+        H, stats = np.empty_like(Z), np.empty((n, 2))
+        K.norm_forward(Z, b, g, s, H, stats, np.zeros((2, m)), CODES[activation])
+        sd = np.sqrt(z.var(1, keepdims=True) + EPS)
+        xhat = (z - z.mean(1, keepdims=True)) / sd
+        N = g * xhat + s  # Ba, Kiros & Hinton 2016, eq. 4
+        assert np.max(np.abs(H - f(N))) < tol * 10
+        dH = rng.normal(size=(n, m)).astype(dtype)
+        dZ, dg, ds = dH.copy(), np.empty(m, dtype), np.empty(m, dtype)
+        K.norm_backward(Z, stats, g, s, H, dZ, dg, ds, np.zeros((2, m)), CODES[activation])  # in place
+        dN = dH * df(N)
         dx = dN * g
-        ref = (dx - dx.mean(1, keepdims=True) - xhat * (dx * xhat).mean(1, keepdims=True)) / np.sqrt(
-            z.var(1, keepdims=True) + EPS)  # the layer-norm backward formula (Ba et al. 2016, derived by hand)
+        ref = (dx - dx.mean(1, keepdims=True) - xhat * (dx * xhat).mean(1, keepdims=True)) / sd  # derived by hand
         assert np.max(np.abs(dZ - ref)) < tol * 10
         assert np.max(np.abs(dg - (dN * xhat).sum(0))) < tol * 100
         assert np.max(np.abs(ds - dN.sum(0))) < tol * 100

@@ -220,8 +220,9 @@ class Workspace:
 
     ``inputs`` (rows, d0) is the batch buffer the data layer gathers into. Nothing here allocates per step:
     every GEMM writes with ``out=`` into these buffers or into the gradient views, every kernel into buffers made
-    here. Per hidden layer h: ``Z[h]`` the pre-activations after the bias, ``pre[h]`` the activation's input (Z, or
-    the normalised N), ``H[h]`` its output f(pre), ``A[h + 1]`` the layer's output (H, or after dropout and skip).
+    here. Per hidden layer h: ``Z[h]`` the pre-activations after the bias, ``H[h]`` the activation's output (of Z, or
+    of the normalised N, which :meth:`preactivations` forms again), ``A[h + 1]`` the layer's output (H, or after
+    dropout and skip).
     """
 
     def __init__(self, model: MLP, rows: int) -> None:
@@ -231,15 +232,14 @@ class Workspace:
         self.inputs = np.zeros((rows, sizes[0]), dtype=dt)
         self.Z = [np.zeros((rows, sizes[l + 1]), dtype=dt) for l in range(L)]
         self.A = [self.inputs]
-        self.pre, self.H, self.N, self.stats, self.dZ_norm, self.keep = [], [], [], [], [], []
+        self.pre, self.H, self.stats, self.keep = [], [], [], []
         for h in range(L - 1):
             norm = model.has_norm(h)
-            self.N.append(np.zeros_like(self.Z[h]) if norm else None)
             self.stats.append(np.zeros((rows, 2)) if norm else None)  # (μ, 1/σ) per row, float64
-            self.dZ_norm.append(np.zeros_like(self.Z[h]) if norm else None)
-            self.pre.append(self.N[h] if norm else self.Z[h])
-            # identity layers reuse their activation's input
-            self.H.append(self.pre[h] if model.hidden_codes[h] == act.IDENTITY else np.zeros_like(self.Z[h]))
+            self.pre.append(None if norm else self.Z[h])  # the norm's N is formed again where needed, not kept
+            # identity layers without norm reuse their pre-activations
+            reuse = not norm and model.hidden_codes[h] == act.IDENTITY
+            self.H.append(self.Z[h] if reuse else np.zeros_like(self.Z[h]))
             branch = model.dropout[h] > 0 or model.skips[h]
             self.A.append(np.zeros_like(self.Z[h]) if branch else self.H[h])
             self.keep.append(np.zeros(self.Z[h].shape, dtype=np.uint8) if model.dropout[h] > 0 else None)
@@ -250,7 +250,9 @@ class Workspace:
         self._saved = np.zeros(rows * width, dtype=dt)  # the skip's share of ∂loss/∂A_{h+1}
         self._zero_bias = np.zeros(width, dtype=dt)
         self._scratch = np.zeros((2, width))  # the norm kernels' row sums, float64
-        self.norm_delta: list[np.ndarray | None] = [None] * (L - 1)  # dN of hidden layer h, valid at yield h + 1
+        # verify's: when set, (rows, m) buffers per normed hidden layer that backward fills with ∂loss/∂H (after
+        # dropout) before the norm kernel overwrites it
+        self.norm_input: dict[int, np.ndarray] | None = None
 
     def delta(self, which: int, n: int, width: int) -> np.ndarray:
         """A contiguous (n, width) view of ping-pong delta buffer ``which``."""
@@ -276,10 +278,9 @@ class Workspace:
         """Hidden layer h after its GEMM: bias → [norm] → activation → [dropout] → [+ skip] into A[h + 1]."""
         m = self.model
         Z, H, A = self.Z[h][:n], self.H[h][:n], self.A[h + 1][:n]
-        if m.has_norm(h):
-            layers.norm_forward(Z, m.biases[h], m.gains[h], m.shifts[h], self.N[h][:n], self.stats[h][:n],
-                                self._scratch)
-            act.bias_forward(self.N[h][:n], self._zero_bias[:Z.shape[1]], H, m.hidden_codes[h])
+        if m.has_norm(h):  # norm and activation in one pass
+            layers.norm_forward(Z, m.biases[h], m.gains[h], m.shifts[h], H, self.stats[h][:n], self._scratch,
+                                m.hidden_codes[h])
         else:
             act.bias_forward(Z, m.biases[h], H, m.hidden_codes[h])
         rate = m.dropout[h]
@@ -334,8 +335,7 @@ class Workspace:
                 if l < m.n_layers - 1 and m.skips[l]:
                     layers.residual_backward(dA, self.saved(n, m.sizes[l]))
                 dZ = self.hidden_backward(l - 1, n, dA, dGs[l - 1], dBs[l - 1])
-                if dZ is dA:
-                    free = 1 - free
+                free = 1 - free
             yield l, done
 
     def saved(self, n: int, width: int) -> np.ndarray:
@@ -344,8 +344,8 @@ class Workspace:
 
     def hidden_backward(self, h: int, n: int, D: np.ndarray, dgain: np.ndarray | None,
                         dshift: np.ndarray | None) -> np.ndarray:
-        """∂loss/∂A_{h+1} in D (n, m) → dZ_h, returned (D itself, or the norm's own buffer); the norm's gain and
-        shift gradients into ``dgain``, ``dshift``. The skip's share of D is kept for :meth:`backward`."""
+        """∂loss/∂A_{h+1} in D (n, m) → dZ_h in D, returned; the norm's gain and shift gradients into ``dgain``,
+        ``dshift``. The skip's share of D is kept for :meth:`backward`."""
         m = self.model
         width = D.shape[1]
         if self.dropped[h]:
@@ -353,13 +353,23 @@ class Workspace:
                                     m.skips[h])
         elif m.skips[h]:
             layers.copy_rows(D, self.saved(n, width))
-        act.backward(self.pre[h][:n], self.H[h][:n], D, m.hidden_codes[h])
         if not m.has_norm(h):
+            act.backward(self.Z[h][:n], self.H[h][:n], D, m.hidden_codes[h])
             return D
-        self.norm_delta[h] = D
-        layers.norm_backward(self.Z[h][:n], self.stats[h][:n], m.gains[h], D, self.dZ_norm[h][:n], dgain, dshift,
-                             self._scratch)
-        return self.dZ_norm[h][:n]
+        if self.norm_input is not None:
+            self.norm_input[h][:n] = D
+        layers.norm_backward(self.Z[h][:n], self.stats[h][:n], m.gains[h], m.shifts[h], self.H[h][:n], D, dgain,
+                             dshift, self._scratch, m.hidden_codes[h])
+        return D
+
+    def preactivations(self, h: int, n: int) -> np.ndarray:
+        """The input of hidden layer h's activation for the last forward pass, (n, m): Z, or the norm's
+        N = g ⊙ (Z − μ)·r + β formed as the kernel forms it (a new array; for diagnostics, not the step)."""
+        if self.pre[h] is not None:
+            return self.pre[h][:n]
+        m, dt = self.model, self.model.dtype
+        mu, r = self.stats[h][:n, :1].astype(dt), self.stats[h][:n, 1:].astype(dt)
+        return m.gains[h] * ((self.Z[h][:n] - mu) * r) + m.shifts[h]
 
 
 def dropout_threshold(rate: float) -> np.uint32:

@@ -68,12 +68,13 @@ def serial_gradient(trainer: Trainer, rows: np.ndarray) -> tuple[np.ndarray, np.
     stats_full = {h: np.zeros((G, 2)) for h in normed}
     dN_full = {h: np.zeros_like(dZ_full[h]) for h in normed}
     scratch = np.zeros_like(trainer.grads)
+    ws = trainer.model.workspace(trainer.ws.rows)
+    ws.norm_input = {h: np.zeros_like(ws.Z[h]) for h in normed}  # ∂loss/∂H before the norm kernel overwrites it
     # The parts the ranks computed (fast: one shard per rank; exact: the fixed chunks, whose shapes do not depend
     # on P), recomputed here with the same shapes.
     for lo, hi in trainer.exchange.part_bounds(G):
         part = rows[lo:hi]
         n = part.size
-        ws = trainer.model.workspace(trainer.ws.rows)
         take_rows(trainer.data.X, part, trainer.data.mean, trainer.data.inv_std, ws.inputs)
         ws.forward_loss(n, trainer.take_targets(part), 1.0 / G, step=trainer.step_count, rows=part)
         for h in normed:
@@ -81,8 +82,11 @@ def serial_gradient(trainer: Trainer, rows: np.ndarray) -> tuple[np.ndarray, np.
         for l, dZ in ws.backward(n, scratch):
             A_full[l][lo:hi] = ws.A[l][:n]
             dZ_full[l][lo:hi] = dZ
-            if l - 1 in dN_full:  # hidden layer l − 1's dN is complete at layer l's yield
-                dN_full[l - 1][lo:hi] = ws.norm_delta[l - 1]
+        for h in normed:  # dN = f'(N) ⊙ ∂loss/∂H in the dtype, as the norm kernel forms it
+            dN = ws.norm_input[h][:n].copy()
+            act.backward(ws.preactivations(h, n), ws.H[h][:n], dN, model.hidden_codes[h])
+            dN_full[h][lo:hi] = dN
+    ws.norm_input = None
     grad = np.zeros_like(trainer.grads)
     bound = np.zeros(grad.size, dtype=np.float64)
     dWs, dbs = model.views(grad)
@@ -96,8 +100,9 @@ def serial_gradient(trainer: Trainer, rows: np.ndarray) -> tuple[np.ndarray, np.
     gains, shifts = model.norm_views(grad)
     abs_gains, abs_shifts = model.norm_views(bound)
     for h in normed:  # the norm's serial sums over G samples, by the training kernel itself over all G rows
-        layers.norm_backward(Z_full[h], stats_full[h], model.gains[h], dN_full[h], np.empty_like(Z_full[h]),
-                             gains[h], shifts[h], np.zeros((2, model.sizes[h + 1])))
+        # dN_full is already ∂loss/∂N: the identity code leaves it as it is (H is not read)
+        layers.norm_backward(Z_full[h], stats_full[h], model.gains[h], model.shifts[h], Z_full[h],
+                             dN_full[h].copy(), gains[h], shifts[h], np.zeros((2, model.sizes[h + 1])), act.IDENTITY)
         xhat = (Z_full[h].astype(np.float64) - stats_full[h][:, :1]) * stats_full[h][:, 1:]
         d64 = np.abs(dN_full[h].astype(np.float64))
         abs_gains[h][...] = (d64 * np.abs(xhat)).sum(axis=0)

@@ -84,6 +84,7 @@ def kernel_ratios(repeats: int) -> dict[str, Any]:
     dg, ds = np.zeros(m, f32), np.zeros(m, f32)
     g, s = np.ones(m, f32), np.zeros(m, f32)  # D of the in-place norm backward then stays the same size call after call
     stats, scratch, zero = np.zeros((n, 2)), np.zeros((2, m)), np.zeros(m, f32)
+    row_sums = np.zeros((2, m), f32)
     keep = np.zeros((n, m), np.uint8)
     rows = np.arange(n, dtype=np.int64)
     key = np.uint64(K.dropout_key(np.uint64(0), np.uint64(1), np.uint64(0)))
@@ -91,7 +92,7 @@ def kernel_ratios(repeats: int) -> dict[str, Any]:
     e = Z.nbytes
     kernels = {  # name: (call, bytes read + written)
         "norm_forward": (lambda: K.norm_forward(Z, zero, g, s, H, stats, scratch, RELU), 3 * e),
-        "norm_backward": (lambda: K.norm_backward(Z, stats, g, s, H, D, dg, ds, scratch, RELU), 3 * e),
+        "norm_backward": (lambda: K.norm_backward(Z, stats, g, s, H, D, dg, ds, row_sums, RELU), 3 * e),
         "dropout_forward": (lambda: K.dropout_forward(H, S, A, keep, rows, key, threshold, scale, True),
                             3 * e + e // 4),
         "dropout_backward": (lambda: K.dropout_backward(D, S, keep, scale, True), 3 * e + e // 4),

@@ -9,9 +9,10 @@ One hidden layer h computes, in this order (docs/models.md gives the formulas an
     A_{h+1} = D + A_h                with residual     (He et al. 2016, identity skip)
 
 Every kernel works row by row: a row's result never depends on the other rows of the batch, so it is the same
-whichever rank or part holds the row. Row sums run in float64 by pairwise folding, whose order is fixed by the
-width alone (a sequential sum is one long dependency chain the compiler will not vectorise without fastmath, and a
-fastmath reduction would depend on the vector width).
+whichever rank or part holds the row. Row sums run by pairwise folding (the forward statistics in float64, the
+backward sums in the array's dtype), whose order is fixed by the width alone (a sequential sum is one long
+dependency chain the compiler will not vectorise without fastmath, and a fastmath reduction would depend on the
+vector width).
 The dropout decision is a pure function of (seed, step, global row, layer, unit): no generator state.
 Nothing here allocates; every output is a buffer the caller owns.
 """
@@ -32,19 +33,41 @@ LOW32 = uint64(0xFFFFFFFF)
 
 @njit(cache=True, inline="always")
 def _fold(t, w):
-    """Σ t[:w] by pairwise folding in place: the top half is added onto the bottom half until one value is left.
+    """Σ t[:w] by pairwise folding in place: the top half is added onto the bottom half while more than eight
+    values are left, then those are added in order (in float64).
 
     Each fold is an elementwise loop (no reduction for the compiler to refuse to vectorise), the order is fixed by
-    w alone, and pairwise summation's error grows with log₂ w (Higham 2002, §4.2). t: float64 scratch, clobbered.
+    w alone, and pairwise summation's error grows with log₂ w (Higham 2002, §4.2). t: scratch row, clobbered.
     """
-    while w > 1:
+    while w > 8:
         half = w // 2
         offset = w - half  # ≥ half: the two halves never overlap
         low, high = t[:half], t[offset:offset + half]  # two views: one array under one name fails the overlap check
         for j in range(half):
             low[j] += high[j]
         w = offset
-    return t[0]
+    total = 0.0
+    for j in range(w):
+        total += t[j]
+    return total
+
+
+@njit(cache=True, inline="always")
+def _fold2(t, u, w):
+    """(Σ t[:w], Σ u[:w]), each exactly as :func:`_fold` forms it, in one set of loops."""
+    while w > 8:
+        half = w // 2
+        offset = w - half
+        t_low, t_high, u_low, u_high = t[:half], t[offset:offset + half], u[:half], u[offset:offset + half]
+        for j in range(half):
+            t_low[j] += t_high[j]
+            u_low[j] += u_high[j]
+        w = offset
+    t_total = u_total = 0.0
+    for j in range(w):
+        t_total += t[j]
+        u_total += u[j]
+    return t_total, u_total
 
 
 @njit(cache=True, inline="always")
@@ -122,10 +145,11 @@ def _norm_backward_rows(Z, stats, gain, shift, H, D, dgain, dshift, scratch, cod
             dn = Z.dtype.type(_delta(code, gain[j] * xhat + shift[j], h[j], d[j], zero))  # N as forward formed it
             dgain[j] += dn * xhat
             dshift[j] += dn
-            dx = float(gain[j]) * dn
+            dx = gain[j] * dn
             t[j] = dx
             u[j] = dx * xhat
-        a_t, c_t = Z.dtype.type(_fold(t, m) / m), Z.dtype.type(_fold(u, m) / m)  # mean(dx̂), mean(dx̂ ⊙ x̂)
+        t_sum, u_sum = _fold2(t, u, m)
+        a_t, c_t = Z.dtype.type(t_sum / m), Z.dtype.type(u_sum / m)  # mean(dx̂), mean(dx̂ ⊙ x̂)
         for j in range(m):  # x̂ and dN again from the row in cache, then D is overwritten in place
             xhat = (z[j] - mu_t) * r_t
             dn = Z.dtype.type(_delta(code, gain[j] * xhat + shift[j], h[j], d[j], zero))
@@ -141,9 +165,11 @@ def norm_backward(Z, stats, gain, shift, H, D, dgain, dshift, scratch, code):
     ∂loss/∂Z = r·(dx̂ − mean(dx̂) − x̂·mean(dx̂ ⊙ x̂)); dgain = Σ_rows dN ⊙ x̂; dshift = Σ_rows dN (both
     overwritten). Z: (n, m) the pre-activations after the bias; stats: (n, 2) float64 from the forward pass; gain,
     shift: (m,); H: (n, m) the forward pass's output; D: (n, m), one buffer in and out (see
-    ``activations.backward`` for why never two names for it); dgain, dshift: (m,); scratch: (2, ≥ m) float64;
-    code: the activation (identity: ∂loss/∂H is dN). x̂ and N are formed in the array's dtype exactly as the forward
-    pass formed them, so a row's products have the same bits whichever part holds it.
+    ``activations.backward`` for why never two names for it); dgain, dshift: (m,); scratch: (2, ≥ m) in the array's
+    dtype: the two row sums are pairwise sums in the dtype (float32 rows at twice the vector width of float64, the
+    error growing with log₂ m all the same); code: the activation (identity: ∂loss/∂H is dN). x̂ and N are formed in
+    the array's dtype exactly as the forward pass formed them, so a row's products have the same bits whichever part
+    holds it.
     """
     if code == act.RELU:
         _norm_backward_rows(Z, stats, gain, shift, H, D, dgain, dshift, scratch, act.RELU)

@@ -172,7 +172,7 @@ def test_norm_kernels_against_numpy(activation):
         assert np.max(np.abs(H - f(N))) < tol * 10
         dH = rng.normal(size=(n, m)).astype(dtype)
         dZ, dg, ds = dH.copy(), np.empty(m, dtype), np.empty(m, dtype)
-        K.norm_backward(Z, stats, g, s, H, dZ, dg, ds, np.zeros((2, m)), CODES[activation])  # in place
+        K.norm_backward(Z, stats, g, s, H, dZ, dg, ds, np.zeros((2, m), dtype), CODES[activation])  # in place
         dN = dH * df(N)
         dx = dN * g
         ref = (dx - dx.mean(1, keepdims=True) - xhat * (dx * xhat).mean(1, keepdims=True)) / sd  # derived by hand

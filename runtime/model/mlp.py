@@ -249,7 +249,8 @@ class Workspace:
         self._delta = (np.zeros(rows * width, dtype=dt), np.zeros(rows * width, dtype=dt))
         self._saved = np.zeros(rows * width, dtype=dt)  # the skip's share of ∂loss/∂A_{h+1}
         self._zero_bias = np.zeros(width, dtype=dt)
-        self._scratch = np.zeros((2, width))  # the norm kernels' row sums, float64
+        self._scratch = np.zeros((2, width))  # the norm's forward row sums, float64
+        self._row_sums = np.zeros((2, width), dtype=dt)  # its backward row sums, in the dtype
         # verify's: when set, (rows, m) buffers per normed hidden layer that backward fills with ∂loss/∂H (after
         # dropout) before the norm kernel overwrites it
         self.norm_input: dict[int, np.ndarray] | None = None
@@ -359,7 +360,7 @@ class Workspace:
         if self.norm_input is not None:
             self.norm_input[h][:n] = D
         layers.norm_backward(self.Z[h][:n], self.stats[h][:n], m.gains[h], m.shifts[h], self.H[h][:n], D, dgain,
-                             dshift, self._scratch, m.hidden_codes[h])
+                             dshift, self._row_sums, m.hidden_codes[h])
         return D
 
     def preactivations(self, h: int, n: int) -> np.ndarray:

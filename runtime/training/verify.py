@@ -102,7 +102,8 @@ def serial_gradient(trainer: Trainer, rows: np.ndarray) -> tuple[np.ndarray, np.
     for h in normed:  # the norm's serial sums over G samples, by the training kernel itself over all G rows
         # dN_full is already ∂loss/∂N: the identity code leaves it as it is (H is not read)
         layers.norm_backward(Z_full[h], stats_full[h], model.gains[h], model.shifts[h], Z_full[h],
-                             dN_full[h].copy(), gains[h], shifts[h], np.zeros((2, model.sizes[h + 1])), act.IDENTITY)
+                             dN_full[h].copy(), gains[h], shifts[h], np.zeros((2, model.sizes[h + 1]), model.dtype),
+                             act.IDENTITY)
         xhat = (Z_full[h].astype(np.float64) - stats_full[h][:, :1]) * stats_full[h][:, 1:]
         d64 = np.abs(dN_full[h].astype(np.float64))
         abs_gains[h][...] = (d64 * np.abs(xhat)).sum(axis=0)

@@ -397,3 +397,38 @@ def test_bench_takes_the_new_model_keys(tmp_path):
     result = json.loads(proc.stdout.strip().splitlines()[-1])
     assert (result["norm"], result["dropout"], result["residual"]) == ("layer", 0.2, True)
     assert result["params"] == 12 * 16 + 16 + 2 * 16 + 16 * 16 + 16 + 2 * 16 + 16 * 3 + 3  # W, b, G, B per hidden
+
+
+def test_the_step_allocates_no_arrays():
+    # DEVELOPERS.md: workspaces are allocated at build time; a step's forward and backward allocate no array
+    import tracemalloc
+
+    model = sm.MLP([64, 128, 128, 10], norm="layer", dropout=[0.2, 0.1], residual=True)
+    rng = np.random.default_rng(0)
+    ws = model.workspace(32)
+    ws.inputs[:] = rng.normal(size=(32, 64))
+    targets, rows, grads = rng.integers(0, 10, 32), np.arange(32, dtype=np.int64), np.zeros_like(model.params)
+    for _ in range(2):  # compiled and warm
+        ws.forward_loss(32, targets, 1 / 32, step=1, rows=rows)
+        for _ in ws.backward(32, grads):
+            pass
+    tracemalloc.start()
+    ws.forward_loss(32, targets, 1 / 32, step=2, rows=rows)
+    for _ in ws.backward(32, grads):
+        pass
+    peak = tracemalloc.get_traced_memory()[1]
+    tracemalloc.stop()
+    assert peak < 32 * 128 * 4  # less than one (32, 128) float32 buffer: views and scalars only
+
+
+def test_health_reads_the_normalised_preactivations(tmp_path):
+    import json
+
+    make_classification(tmp_path, rows=120, features=6, classes=3, seed=1)
+    job = write_job(tmp_path, {**MODEL, "activation": "relu"},
+                    {"epochs": 1, "global_batch": 24, "workdir": "run", "health_every": 2})
+    assert run_cli(["train", str(job), "--no-progress"], timeout=240).returncode == 0
+    records = [json.loads(line) for line in (tmp_path / "run" / "metrics.jsonl").read_text().splitlines()]
+    health = [r for r in records if r.get("kind") == "health"]
+    assert health and len(health[0]["layers"]) == 4
+    assert all(0.0 <= layer["dead_fraction"] <= 1.0 for layer in health[0]["layers"][:3])

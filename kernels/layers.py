@@ -73,29 +73,29 @@ def _fold2(t, u, w):
 @njit(cache=True, inline="always")
 def _norm_forward_rows(Z, b, gain, shift, H, stats, scratch, code):
     n, m = Z.shape
-    t = scratch[0]
+    t, u = scratch[0], scratch[1]
     half = m // 2
     offset = m - half
     for i in range(n):
         z, out = Z[i], H[i]
-        # z += b, with the first fold of Σ z on the way: t[j] = z_j + z_{offset+j} (what _fold's first level adds)
-        z_low, z_high, b_low, b_high, t_low = z[:half], z[offset:], b[:half], b[offset:], t[:half]
+        k = float(z[0] + b[0])  # the shift of the shifted-data sums: the row's first value
+        # z += b, with the first fold of Σ (z − k) and Σ (z − k)² on the way (what _fold2's first level adds)
+        z_low, z_high, b_low, b_high, t_low, u_low = z[:half], z[offset:], b[:half], b[offset:], t[:half], u[:half]
         for j in range(half):
             v, w = z_low[j] + b_low[j], z_high[j] + b_high[j]
             z_low[j], z_high[j] = v, w
-            t_low[j] = float(v) + w
+            dv, dw = v - k, w - k
+            t_low[j] = dv + dw
+            u_low[j] = dv * dv + dw * dw
         if offset > half:  # the middle element of an odd width stays in place
             v = z[half] + b[half]
             z[half] = v
-            t[half] = v
-        mu = _fold(t, offset) / m
-        for j in range(half):  # Σ (z − μ)², first fold level fused likewise
-            v, w = z_low[j] - mu, z_high[j] - mu
-            t_low[j] = v * v + w * w
-        if offset > half:
-            v = z[half] - mu
-            t[half] = v * v
-        var = _fold(t, offset) / m
+            t[half] = v - k
+            u[half] = (v - k) * (v - k)
+        t_sum, u_sum = _fold2(t, u, offset)
+        mean = t_sum / m
+        mu = k + mean
+        var = max(u_sum / m - mean * mean, 0.0)
         r = 1.0 / (var + NORM_EPS) ** 0.5
         stats[i, 0], stats[i, 1] = mu, r
         mu_t, r_t = Z.dtype.type(mu), Z.dtype.type(r)
@@ -109,9 +109,11 @@ def norm_forward(Z, b, gain, shift, H, stats, scratch, code):
     eq. 4), f the activation ``code`` (kernels/activations.py): normalisation and activation in one pass.
 
     Z: (n, m) pre-activations, the bias added in place; b, gain, shift: (m,); H: (n, m) output; stats: (n, 2)
-    float64, (μ, r) of each row for the backward pass; scratch: (2, ≥ m) float64. μ and σ² = mean((z − μ)²) are
-    formed in float64 (two passes, pairwise sums), then N = (z − μ)·r·g + β in the array's dtype. N is not kept:
-    the backward pass forms it again, with the same bits.
+    float64, (μ, r) of each row for the backward pass; scratch: (2, ≥ m) float64. μ and σ² are formed in float64
+    in one pass from pairwise sums of (z − k) and (z − k)², k the row's first value: σ² = mean((z − k)²) −
+    mean(z − k)², the shifted-data algorithm (Chan, Golub & LeVeque 1983), whose cancellation is small when k is a
+    value of the row; then N = (z − μ)·r·g + β in the array's dtype. N is not kept: the backward pass forms it
+    again, with the same bits.
     """
     if code == act.RELU:  # constant codes for the cheap activations, which the compiler then vectorises
         _norm_forward_rows(Z, b, gain, shift, H, stats, scratch, act.RELU)
@@ -134,21 +136,39 @@ def _norm_backward_rows(Z, stats, gain, shift, H, D, dgain, dshift, scratch, cod
     n, m = Z.shape
     t, u = scratch[0], scratch[1]
     zero = Z.dtype.type(0)
+    half = m // 2
+    offset = m - half
     for j in range(m):
         dgain[j] = 0.0
         dshift[j] = 0.0
+    # units j and offset + j side by side, so the first fold of the two row sums happens on the way
+    g_low, g_high, s_low, s_high = gain[:half], gain[offset:], shift[:half], shift[offset:]
+    dg_low, dg_high, ds_low, ds_high = dgain[:half], dgain[offset:], dshift[:half], dshift[offset:]
+    t_low, u_low = t[:half], u[:half]
     for i in range(n):
         z, h, d = Z[i], H[i], D[i]
+        z_low, z_high, h_low, h_high, d_low, d_high = z[:half], z[offset:], h[:half], h[offset:], d[:half], d[offset:]
         mu_t, r_t = Z.dtype.type(stats[i, 0]), Z.dtype.type(stats[i, 1])
-        for j in range(m):
-            xhat = (z[j] - mu_t) * r_t
-            dn = Z.dtype.type(_delta(code, gain[j] * xhat + shift[j], h[j], d[j], zero))  # N as forward formed it
-            dgain[j] += dn * xhat
-            dshift[j] += dn
-            dx = gain[j] * dn
-            t[j] = dx
-            u[j] = dx * xhat
-        t_sum, u_sum = _fold2(t, u, m)
+        for j in range(half):
+            x1, x2 = (z_low[j] - mu_t) * r_t, (z_high[j] - mu_t) * r_t
+            # dN from N as the forward pass formed it (the same bits)
+            n1 = Z.dtype.type(_delta(code, g_low[j] * x1 + s_low[j], h_low[j], d_low[j], zero))
+            n2 = Z.dtype.type(_delta(code, g_high[j] * x2 + s_high[j], h_high[j], d_high[j], zero))
+            dg_low[j] += n1 * x1
+            dg_high[j] += n2 * x2
+            ds_low[j] += n1
+            ds_high[j] += n2
+            a1, a2 = g_low[j] * n1, g_high[j] * n2  # dx̂
+            t_low[j] = a1 + a2
+            u_low[j] = a1 * x1 + a2 * x2
+        if offset > half:  # the middle unit of an odd width
+            x = (z[half] - mu_t) * r_t
+            dn = Z.dtype.type(_delta(code, gain[half] * x + shift[half], h[half], d[half], zero))
+            dgain[half] += dn * x
+            dshift[half] += dn
+            t[half] = gain[half] * dn
+            u[half] = gain[half] * dn * x
+        t_sum, u_sum = _fold2(t, u, offset)
         a_t, c_t = Z.dtype.type(t_sum / m), Z.dtype.type(u_sum / m)  # mean(dx̂), mean(dx̂ ⊙ x̂)
         for j in range(m):  # x̂ and dN again from the row in cache, then D is overwritten in place
             xhat = (z[j] - mu_t) * r_t

@@ -432,3 +432,29 @@ def test_health_reads_the_normalised_preactivations(tmp_path):
     health = [r for r in records if r.get("kind") == "health"]
     assert health and len(health[0]["layers"]) == 4
     assert all(0.0 <= layer["dead_fraction"] <= 1.0 for layer in health[0]["layers"][:3])
+
+
+@pytest.mark.parametrize("name", ["G1", "B1"])
+def test_verify_catches_a_perturbed_norm_parameter(tmp_path, name):
+    # the bound is per element and tight: a gradient element of the norm moved by 1e-4 of its size is caught in that
+    # tensor alone (Higham 2002, §4.2: the bound of the honest sum is ~γ_G·Σ|x_i|, far below this)
+    from shardmill.config import job_from_dict
+    from shardmill.parallel.comm import Comm
+    from shardmill.training.verify import verify
+
+    make_classification(tmp_path, rows=120, features=6, classes=3, seed=5)
+    job = job_from_dict({"model": {**MODEL, "dtype": "float64"},
+                         "data": {"inputs": str(tmp_path / "x.npy"), "targets": str(tmp_path / "y.npy")},
+                         "run": {"global_batch": 32, "workdir": str(tmp_path / "run")}})
+    model = sm.MLP(MODEL["layers"], norm="layer", residual=True, dropout=MODEL["dropout"])
+    base = model.params.__array_interface__["data"][0]
+    index = (model.named(model.params)[name].__array_interface__["data"][0] - base) // model.params.itemsize + 3
+
+    def tamper(gradient, comm):
+        gradient[index] += 1e-4 * abs(gradient[index]) + 1e-12
+
+    honest = verify(job, Comm.alone(), batches=1)
+    assert honest["verdict"] == "agree"
+    report = verify(job, Comm.alone(), batches=1, tamper=tamper)
+    bad = {t["tensor"] for b in report["batches"] for t in b["tensors"] if t["bound_ratio"] > 1}
+    assert report["verdict"] == "disagree" and bad == {name}

@@ -248,7 +248,7 @@ class Workspace:
         width = max(sizes[1:])
         self._delta = (np.zeros(rows * width, dtype=dt), np.zeros(rows * width, dtype=dt))
         self._saved = np.zeros(rows * width, dtype=dt)  # the skip's share of ∂loss/∂A_{h+1}
-        self._zero_bias = np.zeros(width, dtype=dt)
+        self._zero_bias = np.zeros(sizes[-1], dtype=dt)
         self._scratch = np.zeros((2, width))  # the norm's forward row sums, float64
         self._row_sums = np.zeros((2, width), dtype=dt)  # its backward row sums, in the dtype
         # verify's: when set, (rows, m) buffers per normed hidden layer that backward fills with ∂loss/∂H (after
@@ -292,7 +292,7 @@ class Workspace:
                                    m.dtype.type(1.0 / (1.0 - rate)), m.skips[h])
         elif m.skips[h]:
             layers.residual_forward(H, self.A[h][:n], A)
-        elif A is not H:  # dropout off (evaluation, prediction): the output is H itself
+        elif self.A[h + 1] is not self.H[h]:  # dropout off (evaluation, prediction): the output is H itself
             layers.copy_rows(H, A)
 
     def forward_loss(self, n: int, targets: np.ndarray, scale: float, step: int | None = None,
@@ -309,7 +309,7 @@ class Workspace:
         m = self.model
         Z = self.forward(n)
         O = self.O[:n]
-        m.loss_entry.outputs(Z, O, self._zero_bias[:m.sizes[-1]])
+        m.loss_entry.outputs(Z, O, self._zero_bias)
         return O
 
     def backward(self, n: int, grads: np.ndarray) -> Iterator[tuple[int, np.ndarray]]:

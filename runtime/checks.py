@@ -95,6 +95,17 @@ def _names(key: KeyLike, value: object) -> str | list[str]:
     return choice(key.path, value, key.choices)
 
 
+def _rates(key: KeyLike, value: object) -> float | list[float]:
+    """A rate in [low, high) or a list of them (``model.dropout``: one, or one per hidden layer)."""
+    def rate(v: object) -> float:
+        if isinstance(v, bool) or not isinstance(v, (int, float)) or not (key.low <= v < key.high):
+            raise JobError(f"`{key.path}` must be a rate in [{key.low:g}, {key.high:g}) or a list of them; got {v!r}")
+        return float(v)
+    if isinstance(value, (list, tuple)):
+        return [rate(v) for v in value]
+    return rate(value)
+
+
 def _file(key: KeyLike, value: object) -> str:
     if not isinstance(value, str):
         raise JobError(f"`{key.path}` must be a file path (.npy, .npz, .csv or .parquet); got {value!r}")
@@ -154,6 +165,7 @@ KINDS: dict[str, Kind] = {
     "number": Kind(_number, float, _number_allowed),
     "flag": Kind(_flag, bool, lambda key: "true, false"),
     "layers": Kind(_layers, list[int], lambda key: "a list of ≥ 2 positive integers"),
+    "rates": Kind(_rates, Any, lambda key: f"a number in [{key.low:g}, {key.high:g}); or a list of them"),
     "file": Kind(_file, str, lambda key: "a file path", text=True),
     "text": Kind(_text, str, lambda key: "text", text=True),
     "columns": Kind(_columns, Any, lambda key: "column names", text=True),

@@ -30,6 +30,7 @@ ACTIVATIONS = tuple(ACTIVATION_TABLE)  # the names of the tables' entries (model
 LOSSES = tuple(LOSS_TABLE)
 LOSS_PARAMETERS = {name for entry in LOSS_TABLE.values() for name in entry.parameters}
 DTYPES = ("float32", "float64")
+NORMS = ("none", "layer")
 INITS = ("he", "glorot")
 METHODS = ("sgd", "momentum", "nesterov", "adam", "adamw")
 SCHEDULES = ("constant", "step", "cosine")
@@ -103,6 +104,17 @@ SCHEMA: tuple[Key, ...] = (
     Key("model.huber_delta", "number", HUBER_DELTA, "δ of the huber loss, in the targets' units: residuals up to δ "
         "count quadratically, beyond it linearly (Huber 1964); only with `model.loss` = 'huber'", low=0.0,
         low_open=True, digest_default=False),
+    Key("model.norm", "choice", "none", "normalisation of every hidden layer: none, or layer (Ba, Kiros & Hinton "
+        "2016: each row's pre-activations scaled to mean 0 and variance 1, then a learned gain and shift, before the "
+        "activation); batch statistics are not offered, as they would make a row's result depend on the shard",
+        choices=NORMS, digest_default=False),
+    Key("model.dropout", "rates", 0.0, "inverted dropout rate p of the hidden layers' outputs in training (one, or "
+        "one per hidden layer; Srivastava et al. 2014); the decision is a pure function of (seed, step, row, layer, "
+        "unit), so a run has the same bits for every process count; none in evaluation and prediction", low=0.0,
+        high=1.0, digest_default=False),
+    Key("model.residual", "flag", False, "identity skip connections (He et al. 2016) around each hidden layer "
+        "whose input and output widths are equal (the first hidden layer, fed by the inputs, has none)",
+        digest_default=False),
     Key("data.inputs", "file", "", "inputs (n, d): .npy (memory-mapped), .npz, .csv or .parquet, relative to the "
         "job file; needed to train", allowed="a .npy, .npz, .csv or .parquet path"),
     Key("data.targets", "file", "", "targets, one row per input row (see `model.loss`); needed to train unless "
@@ -223,6 +235,9 @@ class ModelSpec:
     init: str = default("model.init")
     output: str = default("model.output")
     huber_delta: float = default("model.huber_delta")
+    norm: str = default("model.norm")
+    dropout: float | list[float] = default("model.dropout")
+    residual: bool = default("model.residual")
 
 
 @dataclass
@@ -408,6 +423,13 @@ def model_spec(table: dict[str, Any]) -> ModelSpec:
         raise JobError(f"`model.activation` must be one name or a list of {n_hidden} names (one per hidden "
                        f"layer); got a list of {len(act)}")
     m["activation"] = act if isinstance(act, list) else [act] * n_hidden
+    rates = m["dropout"]
+    if isinstance(rates, list) and len(rates) != n_hidden:
+        raise JobError(f"`model.dropout` must be one rate or a list of {n_hidden} rates (one per hidden layer); got "
+                       f"a list of {len(rates)}")
+    if m["residual"] and not residual_layers(m["layers"]):
+        raise JobError(f"`model.residual` = true needs two consecutive hidden layers of equal width (a skip connects "
+                       f"equal widths); got `model.layers` = {m['layers']}")
     loss, output = m["loss"], m["output"]
     if LOSS_TABLE[loss].output_choosable:  # else the loss implies its output activation
         choice("model.output", output, KEYS["model.output"].choices)
@@ -420,6 +442,11 @@ def model_spec(table: dict[str, Any]) -> ModelSpec:
             raise JobError(f"`{key.path}` applies to `model.loss` = {users} only; got {key.path} = {m[key.name]!r} "
                            f"with `model.loss` = {loss!r}")
     return ModelSpec(**m)
+
+
+def residual_layers(layers: list[int]) -> list[int]:
+    """The hidden layers h ≥ 1 (of ``layers``' L − 1 hidden ones) that carry a skip: input width = output width."""
+    return [h for h in range(1, len(layers) - 2) if layers[h] == layers[h + 1]]
 
 
 def job_from_dict(raw: dict[str, Any], base: str | Path = ".", overrides: list[str] | tuple[str, ...] = ()) -> Job:

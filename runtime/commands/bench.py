@@ -56,7 +56,8 @@ def run_bench(layers: list[int], batch: int, dtype: str = default("model.dtype")
               loss: str = default("model.loss"), method: str = "sgd", message_mib: float = default("run.message_mib"),
               exact_chunk: int = 64, update: str = default("run.update"),
               exact_format: str = default("run.exact_format"), comm_driver: str = default("run.comm_driver"),
-              comm: Comm | None = None) -> dict[str, Any]:
+              norm: str = default("model.norm"), dropout: float | list[float] = default("model.dropout"),
+              residual: bool = default("model.residual"), comm: Comm | None = None) -> dict[str, Any]:
     """Median time of full training steps (global batch ``batch`` over all ranks) and of the GEMM floor.
 
     Step and floor are measured in alternating blocks so that drifting machine load hits both alike. A block
@@ -68,7 +69,8 @@ def run_bench(layers: list[int], batch: int, dtype: str = default("model.dtype")
     """
     comm = comm or Comm()
     job = job_from_dict({
-        "model": {"layers": layers, "activation": activation, "loss": loss, "dtype": dtype},
+        "model": {"layers": layers, "activation": activation, "loss": loss, "dtype": dtype, "norm": norm,
+                  "dropout": dropout, "residual": residual},
         "optimizer": {"method": method, "learning_rate": 1e-4},
         "run": {"global_batch": batch, "threads": threads, "reduction": reduction, "overlap": overlap,
                 "message_mib": message_mib, "exact_chunk": exact_chunk, "update": update,
@@ -109,6 +111,9 @@ def run_bench(layers: list[int], batch: int, dtype: str = default("model.dtype")
         "global_batch": batch,
         "processes": comm.size,
         "dtype": dtype,
+        "norm": norm,
+        "dropout": dropout,
+        "residual": residual,
         "threads": threads,
         "reduction": reduction,
         "update": update,

@@ -140,6 +140,12 @@ def build_parser() -> argparse.ArgumentParser:
                    help="smallest gradient message, MiB (run.message_mib)")
     p.add_argument("--activation", default=default("model.activation"), metavar="NAME",
                    help=f"hidden activation, one of {', '.join(choices('model.activation'))}")
+    p.add_argument("--norm", choices=choices("model.norm"), default=default("model.norm"),
+                   help="normalisation of the hidden layers (model.norm)")
+    p.add_argument("--dropout", type=float, default=default("model.dropout"), metavar="P",
+                   help="dropout rate of every hidden layer in training, in [0, 1) (model.dropout)")
+    p.add_argument("--residual", action="store_true", help="skip connections around equal-width hidden layers "
+                   "(model.residual)")
     p.add_argument("--method", default="sgd", metavar="NAME",
                    help=f"update rule timed with the step (optimizer.method, whose default is "
                         f"{default('optimizer.method')}; sgd here times the step with the cheapest update), one of "
@@ -351,7 +357,7 @@ def cmd_bench(args: argparse.Namespace) -> int:
                        warmup=args.untimed, reduction=args.reduction, overlap=not args.no_overlap,
                        activation=args.activation, method=args.method, message_mib=args.message_mib,
                        exact_chunk=args.exact_chunk, update=args.update, exact_format=args.exact_format,
-                       comm_driver=args.comm_driver,
+                       comm_driver=args.comm_driver, norm=args.norm, dropout=args.dropout, residual=args.residual,
                        comm=comm)
     if comm.rank == 0:
         if args.json:

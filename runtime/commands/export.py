@@ -2,7 +2,8 @@
 
 The graph computes what :meth:`shardmill.model.predictor.Predictor.outputs` computes, from raw inputs:
 
-    inputs (N, d) ─ standardise ─ per layer l: MatMul W_l, Add b_l, activation ─ outputs (N, k)
+    inputs (N, d) ─ standardise ─ per layer l: MatMul W_l, Add b_l, [layer norm], activation, [Add the skip]
+    ─ outputs (N, k)
 
 The standardisation stays two nodes (Sub input_mean, Mul input_inv_std) in float64, as training applied it
 (``kernels/data.py``: (x − mean) · inv_std in float64, stored in the model's dtype); a float32 graph casts its
@@ -11,7 +12,10 @@ b0 − (mean · inv_std) W0 cancels when a column's mean is large against its sp
 lose digits training never lost. Every activation is written out in the same primitive operations as its kernel
 (its entry's ONNX form in ``model/activations.py``, after ``kernels/activations.py`` and ``kernels/losses.py``), so
 the graph means exactly our definition whatever the runtime: no fused GELU or Softplus op, whose definitions differ
-(erf or tanh form; log(1 + eˣ) without the stable split).
+(erf or tanh form; log(1 + eˣ) without the stable split). Layer normalisation is written out the same way (row mean
+and variance in float64 as ``kernels/layers.py`` forms them, then (z − μ)·r·g + β in the model's dtype), not as the
+LayerNormalization op (opset 17 only, and its ε and precision are the runtime's). Dropout is absent: inverted dropout
+scales at training time, so inference is the identity (Srivastava et al. 2014).
 """
 
 from __future__ import annotations
@@ -26,6 +30,7 @@ import onnx
 from onnx import TensorProto, helper, numpy_helper
 from shardmill.checkpoint import resolve
 from shardmill.errors import JobError
+from shardmill.kernels.layers import NORM_EPS
 from shardmill.model.activations import OUTPUTS
 from shardmill.model.predictor import Predictor, load_model
 
@@ -35,6 +40,7 @@ DEFAULT_OPSET = 17
 EXTERNAL_DATA_BYTES = 1 << 30
 """Parameters above this many bytes go to a ``.data`` file beside the .onnx (protobuf caps one file at 2 GiB)."""
 
+NORM_FORMULA = f"g ⊙ (z − μ) / √(σ² + {NORM_EPS:g}) + β, μ and σ² over the row's units (Ba, Kiros & Hinton 2016)"
 CARD_FORMAT = "shardmill-model-card"
 CARD_VERSION = 1
 
@@ -83,6 +89,20 @@ class _GraphBuilder:
             raise ValueError(f"no ONNX form for activation {name!r}")
         return OUTPUTS[name].onnx(self, z, scope)
 
+    def layer_norm(self, z: str, gain: str, shift: str, scope: str) -> str:
+        """g ⊙ (z − μ)·r + β per row, r = 1/√(σ² + ε), in the kernel's order: μ, σ², r in float64, then cast."""
+        elem = helper.np_dtype_to_tensor_dtype(self.dtype)
+        z64 = z if self.dtype == np.float64 else self.op("Cast", z, scope=scope, to=TensorProto.DOUBLE)
+        mu = self.reduce("ReduceMean", z64, scope)
+        centred = self.op("Sub", z64, mu, scope=scope)
+        var = self.reduce("ReduceMean", self.op("Mul", centred, centred, scope=scope), scope)
+        std = self.op("Sqrt", self.op("Add", var, self.scalar(NORM_EPS, np.float64), scope=scope), scope=scope)
+        r = self.op("Reciprocal", std, scope=scope)
+        if self.dtype != np.float64:
+            mu, r = self.op("Cast", mu, scope=scope, to=elem), self.op("Cast", r, scope=scope, to=elem)
+        xhat = self.op("Mul", self.op("Sub", z, mu, scope=scope), r, scope=scope)
+        return self.op("Add", self.op("Mul", gain, xhat, scope=scope), shift, scope=scope)
+
 
 def output_activation(predictor: Predictor) -> str:
     """The output layer's activation: the one the loss implies (softmax, sigmoid), or ``model.output`` where the
@@ -116,7 +136,10 @@ def build_onnx(predictor: Predictor, opset: int = DEFAULT_OPSET) -> onnx.ModelPr
         scope = f"layer{l}/"
         z = g.op("MatMul", x, g.tensor(f"W{l}", model.weights[l]), scope=scope)
         z = g.op("Add", z, g.tensor(f"b{l}", model.biases[l]), scope=scope)
-        x = g.activation(activations[l], z, scope)
+        if model.has_norm(l):
+            z = g.layer_norm(z, g.tensor(f"G{l}", model.gains[l]), g.tensor(f"B{l}", model.shifts[l]), scope)
+        h = g.activation(activations[l], z, scope)
+        x = g.op("Add", h, x, scope=scope) if l < model.n_layers - 1 and model.skips[l] else h
     if g.nodes[-1].output[0] != x:
         raise AssertionError("the graph's last node must produce its output")
     g.nodes[-1].output[0] = "outputs"
@@ -200,7 +223,8 @@ def model_card(predictor: Predictor, source: Path) -> dict[str, Any]:
     """The model card of ``predictor`` loaded from ``source`` (what :func:`load_model` took), as a JSON-ready dict.
 
     Fields: format, format_version, source, dtype, inputs (count, feature_names, mean, inv_std, std = 1/inv_std,
-    how they are applied), layers (fan_in, fan_out, tensor names, activation and its formula), output (activation,
+    how they are applied), layers (fan_in, fan_out, tensor names, norm and its tensors, activation and its formula,
+    dropout rate in training, residual skip), output (activation,
     formula, loss, loss formula, labels), training (job, digest, step) and metrics (the workdir's last epoch record
     of metrics.jsonl up to the model's step, or null).
     """
@@ -209,6 +233,12 @@ def model_card(predictor: Predictor, source: Path) -> dict[str, Any]:
     layers = [{"index": l, "weights": f"W{l}", "bias": f"b{l}", "fan_in": model.sizes[l],
                "fan_out": model.sizes[l + 1], "activation": activations[l],
                "formula": OUTPUTS[activations[l]].formula} for l in range(model.n_layers)]
+    for h in range(model.n_layers - 1):
+        layers[h]["norm"] = model.norm
+        if model.has_norm(h):
+            layers[h].update(gain=f"G{h}", shift=f"B{h}", norm_formula=NORM_FORMULA)
+        layers[h]["dropout"] = model.dropout[h]  # training only; the graph and predict apply none
+        layers[h]["residual"] = model.skips[h]
     mean, inv_std = predictor.input_mean, predictor.input_inv_std
     return {
         "format": CARD_FORMAT,

@@ -115,7 +115,9 @@ class Predictor:
 def _model_of(spec: dict[str, Any]) -> MLP:
     return MLP(spec["layers"], activation=spec["activation"], loss=spec["loss"], dtype=spec["dtype"],
                init=spec.get("init", "auto"), output=spec.get("output", "auto"),
-               huber_delta=spec.get("huber_delta", default("model.huber_delta")))
+               huber_delta=spec.get("huber_delta", default("model.huber_delta")),
+               norm=spec.get("norm", default("model.norm")), dropout=spec.get("dropout", default("model.dropout")),
+               residual=spec.get("residual", default("model.residual")))
 
 
 def load_model(path: Path | str) -> Predictor:

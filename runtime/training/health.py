@@ -38,7 +38,7 @@ def diagnose(model: MLP, ws: Workspace, n: int, grad_squares: np.ndarray, before
     alive = [np.zeros(model.sizes[l + 1], dtype=np.int64) for l in range(model.n_layers - 1)]
     for l in range(model.n_layers - 1):
         saturated = np.zeros(1, dtype=np.int64)
-        act.unit_activity(ws.Z[l][:n], SATURATION_Z, saturated, alive[l])
+        act.unit_activity(ws.preactivations(l, n), SATURATION_Z, saturated, alive[l])  # the activation's input
         counts[2 * l], counts[2 * l + 1] = saturated[0], n
     comm.allreduce_sum(counts)
     for a in alive:

@@ -178,7 +178,7 @@ class Trainer:
         take_rows(self.data.X, rows, self.data.mean, self.data.inv_std, self.ws.inputs)
         targets, weights = self.take_targets(rows), self.take_weights(rows)
         self.timer.lap("data")
-        loss_sum = self.ws.forward_loss(n, targets, weights, self.scale)
+        loss_sum = self.ws.forward_loss(n, targets, weights, self.scale, step=self.step_count, rows=rows)
         if not math.isfinite(loss_sum) and self.problem is None:
             self.problem = f"the loss of {n} rows is {loss_sum!r}"
         self.part_sums[:] = (loss_sum, self.quality_sum(n, targets), n, self.weight_sum(n))

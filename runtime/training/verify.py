@@ -10,7 +10,9 @@ recursive summation covers (Accuracy and Stability of Numerical Algorithms, 2nd 
     |ŝ − s| ≤ γ_{n−1} Σ|x_i|,   γ_k = k·u / (1 − k·u),   u = 2⁻²⁴ (float32) or 2⁻⁵³ (float64).
 
 Both the parallel and the serial sum obey it with n = G, so their difference is at most 2·γ_{G−1}·Σ|x_i|
-per element, with Σ|x_i| = (|A|ᵀ|dZ|) for weights and Σ|dZ| for biases. The report gives, per tensor, the
+per element, with Σ|x_i| = (|A|ᵀ|dZ|) for weights and Σ|dZ| for biases; a layer-normalised hidden layer's gain and
+shift are sums over samples too (Σ dN ⊙ x̂ and Σ dN), with Σ|x_i| = Σ|dN|·|x̂| and Σ|dN|. Dropout's decisions are
+the same in both (counters: the same global step and rows). The report gives, per tensor, the
 largest ratio |parallel − serial| / bound: ≤ 1 is agreement; > 1 is a bug.
 """
 
@@ -27,6 +29,7 @@ from shardmill.config import Job, load_job
 from shardmill.data.rows import take_rows
 from shardmill.errors import JobError
 from shardmill.kernels import activations as act
+from shardmill.kernels import layers
 from shardmill.parallel.comm import Comm
 from shardmill.training.trainer import Trainer
 from shardmill.training.warmup import warm_up_kernels
@@ -60,19 +63,32 @@ def serial_gradient(trainer: Trainer, rows: np.ndarray) -> tuple[np.ndarray, np.
     G, L = rows.size, model.n_layers
     A_full = [np.zeros((G, model.sizes[l]), dtype=model.dtype) for l in range(L)]
     dZ_full = [np.zeros((G, model.sizes[l + 1]), dtype=model.dtype) for l in range(L)]
+    normed = [h for h in range(L - 1) if model.has_norm(h)]  # per hidden layer: Z, (μ, 1/σ) and dN of every sample
+    Z_full = {h: np.zeros_like(dZ_full[h]) for h in normed}
+    stats_full = {h: np.zeros((G, 2)) for h in normed}
+    dN_full = {h: np.zeros_like(dZ_full[h]) for h in normed}
     scratch = np.zeros_like(trainer.grads)
     scale = trainer.batch_scale(rows)  # 1/G, or 1/Σw of the batch's weights
+    ws = trainer.model.workspace(trainer.ws.rows)
+    ws.norm_input = {h: np.zeros_like(ws.Z[h]) for h in normed}  # ∂loss/∂H before the norm kernel overwrites it
     # The parts the ranks computed (fast: one shard per rank; exact: the fixed chunks, whose shapes do not depend
     # on P), recomputed here with the same shapes.
     for lo, hi in trainer.exchange.part_bounds(G):
         part = rows[lo:hi]
         n = part.size
-        ws = trainer.model.workspace(trainer.ws.rows)
         take_rows(trainer.data.X, part, trainer.data.mean, trainer.data.inv_std, ws.inputs)
-        ws.forward_loss(n, trainer.take_targets(part), trainer.take_weights(part), scale)
+        ws.forward_loss(n, trainer.take_targets(part), trainer.take_weights(part), scale, step=trainer.step_count,
+                        rows=part)
+        for h in normed:
+            Z_full[h][lo:hi], stats_full[h][lo:hi] = ws.Z[h][:n], ws.stats[h][:n]
         for l, dZ in ws.backward(n, scratch):
             A_full[l][lo:hi] = ws.A[l][:n]
             dZ_full[l][lo:hi] = dZ
+        for h in normed:  # dN = f'(N) ⊙ ∂loss/∂H in the dtype, as the norm kernel forms it
+            dN = ws.norm_input[h][:n].copy()
+            act.backward(ws.preactivations(h, n), ws.H[h][:n], dN, model.hidden_codes[h])
+            dN_full[h][lo:hi] = dN
+    ws.norm_input = None
     grad = np.zeros_like(trainer.grads)
     bound = np.zeros(grad.size, dtype=np.float64)
     dWs, dbs = model.views(grad)
@@ -83,6 +99,17 @@ def serial_gradient(trainer: Trainer, rows: np.ndarray) -> tuple[np.ndarray, np.
         a64, d64 = np.abs(A_full[l].astype(np.float64)), np.abs(dZ_full[l].astype(np.float64))
         np.matmul(a64.T, d64, out=aWs[l])
         abs_[l][...] = d64.sum(axis=0)
+    gains, shifts = model.norm_views(grad)
+    abs_gains, abs_shifts = model.norm_views(bound)
+    for h in normed:  # the norm's serial sums over G samples, by the training kernel itself over all G rows
+        # dN_full is already ∂loss/∂N: the identity code leaves it as it is (H is not read)
+        layers.norm_backward(Z_full[h], stats_full[h], model.gains[h], model.shifts[h], Z_full[h],
+                             dN_full[h].copy(), gains[h], shifts[h], np.zeros((2, model.sizes[h + 1]), model.dtype),
+                             act.IDENTITY)
+        xhat = (Z_full[h].astype(np.float64) - stats_full[h][:, :1]) * stats_full[h][:, 1:]
+        d64 = np.abs(dN_full[h].astype(np.float64))
+        abs_gains[h][...] = (d64 * np.abs(xhat)).sum(axis=0)
+        abs_shifts[h][...] = d64.sum(axis=0)
     return grad, bound
 
 

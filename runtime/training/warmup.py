@@ -26,7 +26,8 @@ def warm_up_kernels(trainer: Trainer) -> float:
         grads = np.zeros_like(trainer.grads)
         take_rows(trainer.data.X, rows, trainer.data.mean, trainer.data.inv_std, trainer.ws.inputs)
         targets = trainer.take_targets(rows)
-        trainer.ws.forward_loss(rows.size, targets, trainer.take_weights(rows), 1.0)
+        # step and rows: the dropout kernels compile too (the mask is a pure function; the workspace is scratch)
+        trainer.ws.forward_loss(rows.size, targets, trainer.take_weights(rows), 1.0, step=0, rows=rows)
         trainer.quality_sum(rows.size, targets)
         for _ in trainer.ws.backward(rows.size, grads):
             pass

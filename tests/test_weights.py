@@ -226,3 +226,25 @@ def test_a_weight_column_needs_a_table(tmp_path: Path) -> None:
                data={"inputs": "x.npy", "targets": "y.npy", "target": "", "weights": "weight", "class_weights": ""})
     done = run_cli(["train", str(job), "--no-progress"])
     assert done.returncode == 2 and "`data.weights` = 'weight' names a column" in done.stderr, done.stderr
+
+
+@pytest.mark.mpi
+def test_weights_with_norm_dropout_and_skips_give_the_same_bits_for_p_1_to_4(tmp_path: Path) -> None:
+    # the exactness model with every row-wise concept on at once: weights scale by the global Σ w, the norm and the
+    # dropout mask act row by row (a hash of seed, step, global row, layer, unit), the skips add within a row
+    table = _table(tmp_path / "data")
+    digests = set()
+    for P in (1, 2, 3, 4):
+        folder = tmp_path / f"p{P}"
+        folder.mkdir()
+        job = _job(folder, table, run={"epochs": 2, "global_batch": 64})  # 4 chunks of 16: one per rank at P = 4
+        text = job.read_text().replace("layers = [4, 10, 3]", 'layers = [4, 10, 10, 3]\nnorm = "layer"\n'
+                                       "dropout = 0.2\nresidual = true")
+        job.write_text(text)
+        done = run_mpi(P, ["-m", "shardmill", "train", str(job), "--no-progress"], timeout=180)
+        assert done.returncode == 0, done.stderr
+        with np.load(folder / "run" / "final.npz", allow_pickle=False) as saved:
+            names = sorted(k for k in saved.files if k[0] in "WbGB" and k[1:].isdigit())
+            assert {"G0", "B1"} <= set(names)
+            digests.add(hashlib.sha256(b"".join(saved[k].tobytes() for k in names)).hexdigest())
+    assert len(digests) == 1

@@ -68,6 +68,13 @@ def targets(results: dict[str, Any]) -> list[dict[str, Any]]:
             ratio = row["thread_with_over_without"]
             out.append({"name": "step with / without overlap, thread, shaped link", "value": ratio,
                         "target": "<= 0.8", "met": ratio <= 0.8})
+    layered = results.get("layers_cost", {})
+    if "step_ratio" in layered:  # the targets for the hidden-layer concepts
+        out.append({"name": "step with norm + dropout + skips / plain step, 784-1024-1024-10", "value":
+                    layered["step_ratio"], "target": "<= 1.10", "met": layered["step_ratio"] <= 1.10})
+        for name, row in layered.get("kernels", {}).items():
+            out.append({"name": f"{name} / streaming copy of the same bytes", "value": row["ratio_to_copy"],
+                        "target": ">= 0.7", "met": row["ratio_to_copy"] >= 0.7})
     start = results.get("cold_start", {})
     if "cold_s" in start:
         for phase in ("cold", "warm"):
@@ -96,6 +103,7 @@ def main(argv: list[str] | None = None) -> int:
         "update_bandwidth": ([str(BENCHMARKS / "update_bandwidth.py"), *quick], 120 if args.quick else 300),
         "overlap_hidden": ([str(BENCHMARKS / "overlap_hidden.py"), *quick], 180 if args.quick else 600),
         "cold_start": ([str(BENCHMARKS / "cold_start.py"), *quick], 120 if args.quick else 300),
+        "layers_cost": ([str(BENCHMARKS / "layers_cost.py"), *quick], 240 if args.quick else 600),
     }
     meter = LoadMeter()
     combined: dict[str, Any] = {"benchmark": "run_all", "quick": args.quick, "ranks": args.sizes,

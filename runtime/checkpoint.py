@@ -20,12 +20,13 @@ import hashlib
 import json
 import os
 import shutil
+import zipfile
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
 import numpy as np
-from shardmill.config import Job
+from shardmill.config import KEYS, Job, job_from_dict
 from shardmill.errors import JobError
 
 FORMAT = "shardmill-checkpoint-1"
@@ -280,19 +281,89 @@ def load(directory: Path) -> tuple[dict[str, Any], dict[str, np.ndarray], dict[s
         raise CheckpointError(f"checkpoint {str(directory)!r} has a damaged state.json: {err}") from None
     if not isinstance(state, dict) or state.get("format") != FORMAT:
         raise CheckpointError(f"checkpoint {str(directory)!r} is not a {FORMAT} checkpoint")
+    files = state.get("files")
+    if not isinstance(files, dict):
+        raise CheckpointError(f"checkpoint {str(directory)!r}: state.json's `files` must map file names to SHA-256; "
+                              f"got {_short(files)}")
     loaded = []
     for name in ("params.npz", "optimizer.npz"):
         path = directory / name
         if not path.is_file():
             raise CheckpointError(f"checkpoint {str(directory)!r} is missing {name}")
-        expected = state.get("files", {}).get(name)
+        expected = files.get(name)
         actual = sha256(path)
         if actual != expected:
             raise CheckpointError(f"checkpoint file {str(path)!r} is corrupted or truncated: SHA-256 {actual[:16]}… "
                                   f"does not match the recorded {str(expected)[:16]}…")
-        with np.load(path, allow_pickle=False) as archive:
-            loaded.append({k: archive[k] for k in archive.files})
+        loaded.append(_read_arrays(path))
+    check_state(directory, state, loaded[0], loaded[1])
     return state, loaded[0], loaded[1]
+
+
+def _short(value: object, limit: int = 60) -> str:
+    """repr of a value, cut to ``limit`` characters (an edited file may hold anything, at any length)."""
+    text = repr(value)
+    return text if len(text) <= limit else text[:limit] + "…"
+
+
+def _read_arrays(path: Path) -> dict[str, np.ndarray]:
+    """Every array of an .npz, real numbers only; any damage is a CheckpointError naming the file (the checksum can
+    have been recomputed over a damaged file by whatever rewrote it)."""
+    try:
+        with np.load(path, allow_pickle=False) as archive:
+            arrays = {k: archive[k] for k in archive.files}
+    except (ValueError, OSError, EOFError, KeyError, zipfile.BadZipFile) as err:
+        raise CheckpointError(f"checkpoint file {str(path)!r} cannot be read: {err or type(err).__name__}") from None
+    for name, array in arrays.items():
+        if array.dtype.kind != "f":
+            raise CheckpointError(f"checkpoint file {str(path)!r}: array {name!r} holds {array.dtype}, not real "
+                                  f"floating-point numbers")
+    return arrays
+
+
+def check_state(directory: Path, state: dict[str, Any], params: dict[str, np.ndarray],
+                opt: dict[str, np.ndarray]) -> None:
+    """Refuse a checkpoint whose state.json does not hold together (an edit a recomputed checksum cannot reveal).
+
+    The counters are whole numbers ≥ 0 that agree with each other (epoch and step_in_epoch with the step, one optimizer
+    update per step); the recorded job digest is the digest of the recorded job (an edited layer count, activation or
+    loss changes it); the parameters have the recorded dtype and are finite; the input statistics are there.
+    """
+    where = f"checkpoint {str(directory)!r}"
+    for key in ("step", "epoch", "step_in_epoch", "optimizer_updates", "processes"):
+        value = state.get(key)
+        if not isinstance(value, int) or isinstance(value, bool) or value < 0:
+            raise CheckpointError(f"{where}: state.json's `{key}` must be a whole number ≥ 0; got {_short(value)}")
+    sampler = state.get("sampler")
+    spe = sampler.get("steps_per_epoch") if isinstance(sampler, dict) else None
+    if not isinstance(spe, int) or isinstance(spe, bool) or spe < 1:
+        raise CheckpointError(f"{where}: state.json's `sampler.steps_per_epoch` must be a whole number ≥ 1; got "
+                              f"{_short(spe)}")
+    if (state["epoch"], state["step_in_epoch"]) != divmod(state["step"], spe):
+        raise CheckpointError(f"{where}: state.json's step {state['step']} disagrees with its epoch "
+                              f"{state['epoch']} and step_in_epoch {state['step_in_epoch']} ({spe} steps per epoch)")
+    if state["optimizer_updates"] != state["step"]:
+        raise CheckpointError(f"{where}: state.json records {state['optimizer_updates']} optimizer updates for "
+                              f"{state['step']} steps; every step makes one")
+    job = state.get("job")
+    if not isinstance(job, dict) or not all(isinstance(table, dict) for table in job.values()):
+        raise CheckpointError(f"{where}: state.json's `job` must be the job's tables; got {_short(job)}")
+    known = {section: {k: v for k, v in table.items() if f"{section}.{k}" in KEYS} for section, table in job.items()}
+    try:  # keys an older version wrote and this one renamed never entered the digest: they are left out
+        digest = job_from_dict(known).digest()
+    except JobError as err:
+        raise CheckpointError(f"{where}: state.json's `job` is not a valid job: {err}") from None
+    if digest != state.get("job_digest"):
+        raise CheckpointError(f"{where}: state.json's job does not match its recorded digest: the job was edited")
+    dtype = state.get("dtype")
+    for name, array in params.items():
+        if name not in ("input_mean", "input_inv_std") and array.dtype.name != dtype:
+            raise CheckpointError(f"{where}: tensor {name} is {array.dtype}, the checkpoint's dtype is {_short(dtype)}")
+        if not np.all(np.isfinite(array)):
+            raise CheckpointError(f"{where}: tensor {name} holds a non-finite value")
+    for name in ("input_mean", "input_inv_std"):
+        if name not in params:
+            raise CheckpointError(f"{where}: params.npz lacks {name} (the input standardisation)")
 
 
 def load_newest_verified(workdir: Path) -> tuple[dict[str, Any], dict[str, np.ndarray], dict[str, np.ndarray],
@@ -311,6 +382,10 @@ def load_newest_verified(workdir: Path) -> tuple[dict[str, Any], dict[str, np.nd
     skipped: list[str] = []
     for entry in reversed(entries):
         try:
+            recorded = entry.get("state_sha256")
+            if recorded is not None and (root / entry["name"] / "state.json").is_file() \
+                    and sha256(root / entry["name"] / "state.json") != recorded:
+                raise CheckpointError("its state.json does not match the SHA-256 the index records")
             state, params, opt = load(root / entry["name"])
         except CheckpointError as err:
             skipped.append(f"{entry['name']}: {err}")

@@ -427,6 +427,10 @@ def model_spec(table: dict[str, Any]) -> ModelSpec:
     if isinstance(rates, list) and len(rates) != n_hidden:
         raise JobError(f"`model.dropout` must be one rate or a list of {n_hidden} rates (one per hidden layer); got "
                        f"a list of {len(rates)}")
+    if n_hidden == 0 and (m["norm"] != "none" or rates not in (0, 0.0)):  # nothing to normalise or drop
+        key = "model.norm" if m["norm"] != "none" else "model.dropout"
+        raise JobError(f"`{key}` acts on hidden layers, and `model.layers` = {m['layers']} has none; leave it out or "
+                       f"add a hidden layer")
     if m["residual"] and not residual_layers(m["layers"]):
         raise JobError(f"`model.residual` = true needs two consecutive hidden layers of equal width (a skip connects "
                        f"equal widths); got `model.layers` = {m['layers']}")

@@ -30,7 +30,7 @@ SETS=()
 ARGS=("$@")
 for ((i = 0; i < ${#ARGS[@]}; i++)); do  # compile takes only the --set assignments of the extra arguments
   case "${ARGS[$i]}" in
-    --set) SETS+=(--set "${ARGS[$((i + 1))]}"); i=$((i + 1)) ;;
+    --set) if ((i + 1 < ${#ARGS[@]})); then SETS+=(--set "${ARGS[$((i + 1))]}"); fi; i=$((i + 1)) ;;
     --set=*) SETS+=("${ARGS[$i]}") ;;
   esac
 done

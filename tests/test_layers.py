@@ -459,3 +459,11 @@ def test_verify_catches_a_perturbed_norm_parameter(tmp_path, name):
     report = verify(job, Comm.alone(), batches=1, tamper=tamper)
     bad = {t["tensor"] for b in report["batches"] for t in b["tensors"] if t["bound_ratio"] > 1}
     assert report["verdict"] == "disagree" and bad == {name}
+
+
+@pytest.mark.parametrize("key", ["norm", "dropout"])
+def test_norm_and_dropout_need_a_hidden_layer(key: str) -> None:
+    # a review finding: they were accepted, and did nothing, on a model without hidden layers
+    value = "layer" if key == "norm" else 0.5
+    with pytest.raises(JobError, match=rf"`model.{key}` acts on hidden layers, and `model.layers` = \[4, 3\] has none"):
+        sm.MLP([4, 3], **{key: value})

@@ -248,3 +248,52 @@ def test_weights_with_norm_dropout_and_skips_give_the_same_bits_for_p_1_to_4(tmp
             assert {"G0", "B1"} <= set(names)
             digests.add(hashlib.sha256(b"".join(saved[k].tobytes() for k in names)).hexdigest())
     assert len(digests) == 1
+
+
+def test_weights_that_leave_the_validation_rows_nothing_are_refused(tmp_path: Path) -> None:
+    # a validation loss over rows that all weigh 0 would read 0 and be marked the best (a review finding)
+    from shardmill.data.rows import split_rows
+
+    rng = np.random.default_rng(1)
+    np.save(tmp_path / "x.npy", rng.normal(size=(40, 4)))
+    np.save(tmp_path / "y.npy", rng.integers(0, 3, size=40))
+    w = np.ones(40)
+    w[split_rows(40, 0.25, 2).validation] = 0.0  # the job's own split (validation_fraction 0.25, seed 2)
+    np.save(tmp_path / "w.npy", w)
+    job = _job(tmp_path, tmp_path / "x.npy", run={"reduction": "fast"},
+               data={"inputs": "x.npy", "targets": "y.npy", "target": "", "weights": "w.npy", "class_weights": ""})
+    done = run_cli(["train", str(job), "--no-progress"])
+    assert done.returncode == 2 and "sum to zero over the validation rows" in done.stderr, done.stderr
+
+
+def test_weights_whose_sum_overflows_are_refused(tmp_path: Path) -> None:
+    rng = np.random.default_rng(1)
+    np.save(tmp_path / "x.npy", rng.normal(size=(40, 4)))
+    np.save(tmp_path / "y.npy", rng.integers(0, 3, size=40))
+    w = np.ones(40)
+    w[:3] = 1e308  # each finite, their sum not (IEEE 754 binary64's largest is about 1.8e308)
+    np.save(tmp_path / "w.npy", w)
+    job = _job(tmp_path, tmp_path / "x.npy", run={"reduction": "fast"},
+               data={"inputs": "x.npy", "targets": "y.npy", "target": "", "weights": "w.npy", "class_weights": ""})
+    done = run_cli(["train", str(job), "--no-progress"])
+    assert done.returncode == 2 and "sum beyond the largest float64" in done.stderr and "Traceback" not in done.stderr
+
+
+def test_a_misspelt_weight_column_is_named(tmp_path: Path) -> None:
+    table = _table(tmp_path / "data")
+    job = _job(tmp_path, table, run={"reduction": "fast"}, data={"weights": "weigth"})
+    done = run_cli(["train", str(job), "--no-progress"])
+    assert done.returncode == 2 and "`data.weights`" in done.stderr and "'weigth'" in done.stderr, done.stderr
+    assert "did you mean 'weight'" in done.stderr
+
+
+def test_predict_leaves_out_the_weight_column_of_a_headerless_table(tmp_path: Path) -> None:
+    table = _table(tmp_path / "data")
+    bare = tmp_path / "bare.csv"
+    bare.write_text("\n".join(table.read_text().splitlines()[1:]) + "\n")  # the same rows without the header row
+    job = _job(tmp_path, bare, run={"reduction": "fast", "epochs": 1},
+               data={"inputs": str(bare), "header": "no", "target": "5", "weights": "4", "class_weights": ""})
+    assert run_cli(["train", str(job), "--no-progress"]).returncode == 0
+    done = run_cli(["predict", str(tmp_path / "run" / "final.npz"), str(bare), "--out", str(tmp_path / "p.npy")])
+    assert done.returncode == 0, done.stderr
+    assert np.load(tmp_path / "p.npy", allow_pickle=False).shape == (240, 3)

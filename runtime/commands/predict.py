@@ -7,7 +7,7 @@ import json
 from pathlib import Path
 
 import numpy as np
-from shardmill.data.files import read_array, read_inputs
+from shardmill.data.files import read_array, read_inputs, weights_are_a_file
 from shardmill.data.rows import squeeze_labels
 from shardmill.errors import JobError
 from shardmill.model.losses import CLASSIFIER_LOSSES
@@ -51,8 +51,10 @@ def read_inputs_for(predictor: Predictor, path: Path) -> np.ndarray:
     header row is read as the training job said (``data.header``)."""
     data = (predictor.job or {}).get("data", {})
     target = data.get("target") or []
+    weights = data.get("weights") or ""
+    weight_column = [] if not weights or weights_are_a_file(weights) else [weights]
     return read_inputs(path, "inputs", features=predictor.feature_names, header=data.get("header", "auto"),
-                       drop=[target] if isinstance(target, str) else list(target))
+                       drop=([target] if isinstance(target, str) else list(target)) + weight_column)
 
 
 def cmd_predict(args) -> int:

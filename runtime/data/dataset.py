@@ -100,6 +100,10 @@ def row_weights(job: Job, targets: np.ndarray, split: Split, raw: np.ndarray | N
         weights = weights * np.asarray(class_weights)[targets]
     if not weights[split.train].any():
         raise JobError("the row weights (`data.weights` × `data.class_weights`) sum to zero over the training rows")
+    if split.validation.size and not weights[split.validation].any():
+        raise JobError("the row weights (`data.weights` × `data.class_weights`) sum to zero over the validation rows, "
+                       "so validation.loss would mean nothing; give some of them weight, or set "
+                       "`data.validation_fraction` = 0")
     return weights, class_weights
 
 

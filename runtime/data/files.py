@@ -99,6 +99,7 @@ def open_job_data(job: Job, comm: Comm) -> tuple[np.ndarray, np.ndarray, list[st
             select(inputs, target, "data.target")
             select(inputs, list(data.features), "data.features")
             weight_column = [] if weights_are_a_file(data.weights) else _names(data.weights)
+            select(inputs, weight_column, "data.weights")
             features = list(data.features) or [c for c in inputs.columns if c not in target + weight_column]
             if not features:
                 raise JobError(f"`data.inputs` {str(path)!r} has no column left for the inputs once the target "

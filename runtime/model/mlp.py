@@ -404,4 +404,8 @@ def check_weights(weights: np.ndarray, n: int, name: str) -> np.ndarray:
         raise JobError(f"`{name}` must hold finite weights ≥ 0; got {float(w[row])!r} in row {row}")
     if n and not w.any():
         raise JobError(f"`{name}` sum to zero: at least one row must weigh more than 0")
+    with np.errstate(over="ignore"):
+        total = float(np.sum(w))
+    if not math.isfinite(total):
+        raise JobError(f"`{name}` sum beyond the largest float64; scale them down (only their ratios matter)")
     return w

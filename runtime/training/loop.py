@@ -15,7 +15,7 @@ import numpy as np
 from shardmill import checkpoint
 from shardmill.config import Job
 from shardmill.errors import JobError
-from shardmill.parallel.comm import Comm
+from shardmill.parallel.comm import Comm, lead_then_share
 from shardmill.training import saving
 from shardmill.training.console import Console, compiling_notice, kernels_cached, kernels_ready, say
 from shardmill.training.health import HealthWatch
@@ -23,7 +23,13 @@ from shardmill.training.records import append, early_stop_record, epoch_record, 
 from shardmill.training.signals import StopSignals, TrainingStopped
 from shardmill.training.trainer import StepFlags, Trainer
 from shardmill.training.warmup import warm_up_kernels
-from shardmill.training.workdir import WorkdirLock, check_resumable, claim_workdir, has_checkpoint
+from shardmill.training.workdir import (
+    WorkdirLock,
+    check_resumable,
+    claim_workdir,
+    has_checkpoint,
+    holds_results,
+)
 from threadpoolctl import threadpool_limits
 
 
@@ -44,7 +50,8 @@ def train(job: Job, comm: Comm | None = None, resume: bool | str = False, progre
     with WorkdirLock(job.workdir, comm):
         if resume == "auto":
             resume = has_checkpoint(job.workdir, comm)
-            fresh = fresh or not resume  # nothing to continue: an earlier attempt's leftovers go
+            if not resume:  # an attempt that never checkpointed leaves only its records, which go; results stay
+                fresh = fresh or not lead_then_share(comm, lambda: holds_results(job.workdir), share=True)
         if resume:
             check_resumable(job.workdir, comm)  # before the data is read (a table may take a while to convert)
         else:
@@ -99,8 +106,11 @@ class RunLoop:
         self.check_start()
         if self.resume and self.echo and self.lead:
             epoch, in_epoch = divmod(self.step, self.steps_per_epoch)
-            print(f"continuing from the checkpoint of step {self.step} (epoch {epoch + 1}, step {in_epoch} of "
-                  f"{self.steps_per_epoch}) in {job.workdir / 'checkpoints'}", flush=True)
+            where = (f"the end of epoch {epoch}" if in_epoch == 0 else
+                     f"epoch {epoch + 1}, step {in_epoch} of {self.steps_per_epoch}")
+            done = "; the run is complete, final.npz is written again" if self.step >= trainer.total_steps else ""
+            print(f"continuing from the checkpoint of step {self.step} ({where}) in {job.workdir / 'checkpoints'}"
+                  f"{done}", flush=True)
         if self.lead:
             job.workdir.mkdir(parents=True, exist_ok=True)
             append(self.metrics_path, start_record(trainer, self.step))

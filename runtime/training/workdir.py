@@ -91,6 +91,11 @@ def has_checkpoint(workdir: Path, comm: Comm) -> bool:
     return bool(lead_then_share(comm, look, share=True))
 
 
+def holds_results(workdir: Path) -> bool:
+    """Whether the workdir holds a run's results (final.npz, best.npz): ``--continue`` never clears those."""
+    return (workdir / "final.npz").exists() or (workdir / "best.npz").exists()
+
+
 def claim_workdir(workdir: Path, fresh: bool, comm: Comm) -> None:
     """A new run needs a workdir without an earlier run's files: refuse one (every rank alike), or clear it."""
 

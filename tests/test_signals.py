@@ -61,6 +61,8 @@ def test_a_signal_checkpoints_and_the_resume_matches_an_uninterrupted_run(tmp_pa
             os.killpg(process.pid, signal.SIGKILL)
     assert process.returncode == 128 + signum, err[-3000:]
     assert f"stopped by {signal.Signals(signum).name} after step" in err and "--resume" in err
+    # the command that continues it names this job file and the --ranks it ran with, not a placeholder
+    assert f"`shardmill train {job} --resume --ranks 2`" in err, err[-1000:]
     assert "Traceback" not in err
     assert (tmp_path / "stopped-run" / "checkpoints" / "index.json").is_file()
     assert not (tmp_path / "stopped-run" / "final.npz").exists()  # it stopped before the end

@@ -306,7 +306,8 @@ def cmd_train(args: argparse.Namespace) -> int:
         result = train(job, comm, resume=resume, progress=not args.no_progress, echo=True, fresh=args.fresh)
     except TrainingStopped as stopped:
         if comm.rank == 0:
-            print(f"shardmill: {stopped}", file=sys.stderr, flush=True)
+            ranks = comm.size if os.environ.get(LAUNCHED) else None  # started by --ranks: say it again
+            print(f"shardmill: {stopped.message(str(args.job), ranks)}", file=sys.stderr, flush=True)
         return stopped.exit_code
     if comm.rank == 0:
         workdir = Path(result["workdir"])

@@ -42,11 +42,18 @@ class TrainingStopped(Exception):
     """
 
     def __init__(self, signum: int, step: int, workdir: Path, overrides: tuple[str, ...] = ()) -> None:
+        self.signum, self.step, self.workdir, self.overrides = signum, step, workdir, overrides
+        super().__init__(self.message())
+        self.exit_code = 128 + signum
+
+    def message(self, job: str = "JOB", ranks: int | None = None) -> str:
+        """The one line for the user: what stopped the run, where the checkpoint is, and the command that continues
+        it (the job file's path, the run's own ``--set`` assignments and, when shardmill started the ranks, its
+        ``--ranks``; any process count resumes)."""
         import shlex
 
-        name = signal.Signals(signum).name
-        sets = "".join(f" --set {shlex.quote(text)}" for text in overrides)
-        super().__init__(f"stopped by {name} after step {step}; checkpoint written under {workdir / 'checkpoints'}; "
-                         f"continue with `shardmill train JOB --resume{sets}`")
-        self.exit_code = 128 + signum
-        self.step = step
+        sets = "".join(f" --set {shlex.quote(text)}" for text in self.overrides)
+        launch = f" --ranks {ranks}" if ranks else ""
+        return (f"stopped by {signal.Signals(self.signum).name} after step {self.step}; checkpoint written under "
+                f"{self.workdir / 'checkpoints'}; continue with `shardmill train {shlex.quote(job)} --resume{sets}"
+                f"{launch}`")

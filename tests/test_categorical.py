@@ -266,3 +266,42 @@ def test_bad_categorical_settings_are_refused_in_one_line(tmp_path: Path, data: 
     done = run_cli(["train", str(job), "--no-progress"])
     assert done.returncode == 2 and words in done.stderr, done.stderr
     assert "Traceback" not in done.stderr and len(done.stderr.strip().splitlines()) == 1, done.stderr
+
+
+@pytest.mark.mpi
+def test_a_parquet_table_with_string_and_integer_categories_trains_and_predicts(tmp_path: Path) -> None:
+    pa = pytest.importorskip("pyarrow")
+    pq = pytest.importorskip("pyarrow.parquet")
+    rng = np.random.default_rng(2)
+    n = 120
+    city = [CITIES[i] for i in rng.integers(0, 4, n)]
+    kind = (rng.integers(0, 3, n) * 7).astype(np.int64)
+    x = rng.normal(size=n)
+    label = ((x > 0) ^ (kind == 7)).astype(np.int64)
+    table = pa.table({"x1": x, "city": city, "kind": kind, "x2": rng.normal(size=n), "w": np.ones(n),
+                      "label": label})
+    pq.write_table(table, tmp_path / "t.parquet", row_group_size=40)
+    job = _job(tmp_path, tmp_path / "t.parquet", run={"reduction": "exact", "epochs": 2, "global_batch": 32,
+                                                       "exact_chunk": 8})
+    done = run_mpi(2, ["-m", "shardmill", "train", str(job), "--no-progress"], timeout=180)
+    assert done.returncode == 0, done.stderr
+    predictor = sm.load_model(tmp_path / "run")
+    assert predictor.categories[0].vocabulary == sorted(set(city))  # every city occurs in the training rows
+    assert predictor.categories[1].vocabulary == ["0", "7", "14"]  # integer codes, sorted as integers
+    pq.write_table(table.slice(0, 5), tmp_path / "new.parquet")
+    out = tmp_path / "p.npy"
+    done = run_cli(["predict", str(tmp_path / "run"), str(tmp_path / "new.parquet"), "--out", str(out)])
+    assert done.returncode == 0, done.stderr
+    direct = predictor.outputs(np.stack([x[:5], table.column("x2").to_numpy()[:5]], axis=1),
+                               categories={"city": city[:5], "kind": kind[:5]})
+    np.testing.assert_array_equal(np.load(out, allow_pickle=False), direct)
+
+
+def test_a_resume_whose_data_gives_other_vocabularies_is_refused(tmp_path: Path) -> None:
+    table = _table(tmp_path / "data", rows=120)
+    job = _job(tmp_path, table, run={"reduction": "fast", "epochs": 3})
+    first = run_cli(["train", str(job), "--no-progress", "--set", "run.max_steps=2"])
+    assert first.returncode == 0, first.stderr
+    table.write_text(table.read_text().replace(",paris,", ",paname,"))
+    done = run_cli(["train", str(job), "--no-progress", "--resume"])
+    assert done.returncode == 2 and "other categorical vocabularies" in done.stderr, done.stderr

@@ -55,6 +55,8 @@ def load_dataset(job: Job, model: MLP, comm: Comm, categories: list[Category] | 
         model.check_inputs(X, "data.inputs")
         if y.shape[0] != X.shape[0]:
             raise JobError(f"`{where}` has {y.shape[0]} rows but `data.inputs` has {X.shape[0]}")
+        if codes is not None and codes.shape[0] != X.shape[0]:
+            raise JobError(f"`data.categorical` read {codes.shape[0]} rows but `data.inputs` has {X.shape[0]}")
         targets = model.check_targets(y, X.shape[0], where)
     except (JobError, OSError, MemoryError) as err:
         error = err if isinstance(err, JobError) else JobError(f"data cannot be loaded: {err}")

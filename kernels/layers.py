@@ -315,3 +315,46 @@ def copy_rows(src, dst):
         s_row, d_row = src[i], dst[i]
         for j in range(m):
             d_row[j] = s_row[j]
+
+
+# --- embeddings (the inputs' categorical columns) ----------------------------------------------------------------
+
+@njit(cache=True)
+def embedding_forward(numeric, codes, table, offsets, widths, out):
+    """out[i] = [numeric[i], E_0[codes[i, 0]], E_1[codes[i, 1]], …]: the first layer's input row.
+
+    numeric: (≥ n, d) the standardised numeric columns, model dtype; codes: (≥ n, c) int64, each in [0, rows of
+    E_j); table: the flat parameters (model dtype), E_j of shape (rows_j, widths[j]) starting at offsets[j]
+    (row-major); out: (≥ n, d + Σ widths). n = out rows to fill is numeric's first dimension passed by the caller
+    as a view.
+    """
+    n, d = numeric.shape
+    for i in range(n):
+        for k in range(d):
+            out[i, k] = numeric[i, k]
+        column = d
+        for j in range(codes.shape[1]):
+            w = widths[j]
+            base = offsets[j] + codes[i, j] * w
+            for k in range(w):
+                out[i, column + k] = table[base + k]
+            column += w
+
+
+@njit(cache=True)
+def embedding_backward(dA, codes, d, offsets, widths, grad):
+    """∂loss/∂E_j[r] = Σ over the rows i with codes[i, j] = r of dA[i, columns of E_j]: a scatter-add into ``grad``
+    (the flat gradient, E_j at offsets[j]), which the caller zeroed. Rows are added in order i = 0, 1, …, so the
+    sum's rounding is fixed by the part's rows alone (the same bits for every P when parts are fixed chunks).
+
+    dA: (n, d + Σ widths) the first layer's input gradient; codes: (≥ n, c) int64; d: numeric columns.
+    """
+    n = dA.shape[0]
+    column = d
+    for j in range(codes.shape[1]):
+        w = widths[j]
+        for i in range(n):
+            base = offsets[j] + codes[i, j] * w
+            for k in range(w):
+                grad[base + k] += dA[i, column + k]
+        column += w

@@ -59,6 +59,7 @@ class TrainingState:
     feature_names: list[str] | None = None  # input column names, when the inputs came from a table with a header
     best: dict[str, Any] | None = None  # the best-model tracker (run.best_metric): resumes with the run
     weights: dict[str, Any] | None = None  # the row weights' record (class weights, Σ w of the training rows)
+    categories: list[dict[str, Any]] | None = None  # categorical columns: {column, vocabulary, width} each
 
 
 def sha256(path: Path) -> str:
@@ -129,6 +130,7 @@ def save(state: TrainingState, root: Path, keep: int, best: bool = False) -> Pat
         "feature_names": state.feature_names,
         "best": state.best,
         "weights": state.weights,
+        **({"categories": state.categories} if state.categories else {}),
         "layers": state.layers,
         "dtype": state.dtype,
         "files": {f: sha256(tmp / f) for f in ("params.npz", "optimizer.npz")},
@@ -418,12 +420,15 @@ def check_compatible(job: Job, shapes: dict[str, tuple[int, ...]], optimizer_sha
 def write_final(path: Path, state: TrainingState) -> None:
     """``final.npz`` (or ``best.npz``): W0, b0, …, input_mean, input_inv_std, and as JSON strings (0-d unicode
     arrays): ``model_json`` (the [model] table), ``job_json`` (the whole resolved job), ``job_digest``,
-    ``feature_names_json`` (a list of input column names, or null) and ``step`` (an int64 scalar)."""
+    ``feature_names_json`` (a list of input column names, or null), ``categories_json`` (with categorical inputs:
+    [{column, vocabulary, width}, …]) and ``step`` (an int64 scalar)."""
     arrays = model_arrays(state)
     arrays["model_json"] = np.array(json.dumps(state.job.as_dict()["model"]))
     arrays["job_json"] = np.array(json.dumps(state.job.as_dict()))
     arrays["job_digest"] = np.array(state.job.digest())
     arrays["feature_names_json"] = np.array(json.dumps(state.feature_names))
+    if state.categories:
+        arrays["categories_json"] = np.array(json.dumps(state.categories))
     arrays["step"] = np.array(state.step, dtype=np.int64)
     tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
     _write_npz(tmp, arrays)

@@ -143,6 +143,21 @@ def _class_weights(key: KeyLike, value: object) -> str | list[float]:
     return [float(v) for v in value]
 
 
+def _widths(key: KeyLike, value: object) -> dict[str, int] | list[int]:
+    """Embedding widths: a table {column = width} or a list of widths, each an integer ≥ 1 (``[]``, ``{}``: none)."""
+    def width(v: object) -> int:
+        if isinstance(v, bool) or not isinstance(v, int) or v < 1:
+            raise JobError(f"`{key.path}` must hold integer widths ≥ 1; got {v!r}")
+        return v
+    if isinstance(value, dict):
+        if not all(isinstance(name, str) and name for name in value):
+            raise JobError(f"`{key.path}` must name columns; got {value!r}")
+        return {name: width(v) for name, v in value.items()}
+    if isinstance(value, list):
+        return [width(v) for v in value]
+    raise JobError(f"`{key.path}` must be {key.allowed}; got {value!r}")
+
+
 @dataclass(frozen=True)
 class Kind:
     """One kind of key. ``check(key, value)`` returns the value in the spec's type or raises JobError;
@@ -169,6 +184,7 @@ KINDS: dict[str, Kind] = {
     "file": Kind(_file, str, lambda key: "a file path", text=True),
     "text": Kind(_text, str, lambda key: "text", text=True),
     "columns": Kind(_columns, Any, lambda key: "column names", text=True),
+    "widths": Kind(_widths, Any, lambda key: "a table of column = width, or a list of widths"),
     "class_weights": Kind(_class_weights, Any, lambda key: "balanced, or a list of numbers ≥ 0 (one per class)",
                           text=True),
 }

@@ -138,6 +138,14 @@ SCHEMA: tuple[Key, ...] = (
     Key("data.class_weights", "class_weights", "", "weight of each class (softmax_cross_entropy): balanced "
         "(n / (classes · n_c) over the training rows, as scikit-learn's compute_class_weight) or one number ≥ 0 per "
         "output; multiplies `data.weights`; empty: none", digest_default=False),
+    Key("data.categorical", "columns", [], "column names of `data.inputs` holding categories (text or integer "
+        "codes), each fed to the first layer through a learned embedding (docs/models.md); counted once in "
+        "`model.layers[0]`; not a feature, target or weight column", allowed="a list of column names",
+        digest_default=False),
+    Key("data.embedding_widths", "widths", {}, "embedding width of categorical columns, overriding the rule "
+        "min(16, ⌈(v + 1)/2⌉) for v values seen in training: a table {column = width} or one width per "
+        "`data.categorical` column", allowed="a table of column = width, or a list of widths ≥ 1",
+        digest_default=False),
     Key("optimizer.method", "choice", "adam", "update rule", choices=METHODS),
     Key("optimizer.learning_rate", "number", 1e-3, "peak learning rate", low=0.0, low_open=True),
     Key("optimizer.weight_decay", "number", 0.0, "coupled L2 for sgd, momentum, nesterov and adam; for adamw the "
@@ -253,6 +261,8 @@ class DataSpec:
     standardize: bool = default("data.standardize")
     weights: str = default("data.weights")
     class_weights: str | list[float] = default("data.class_weights")
+    categorical: list[str] = field(default_factory=list)
+    embedding_widths: dict[str, int] | list[int] = field(default_factory=dict)
 
 
 @dataclass
@@ -485,8 +495,10 @@ def _check_data(data: DataSpec, model: ModelSpec) -> None:
     both = sorted(set(targets) & set(data.features))
     if both:
         raise JobError(f"`data.features` must not hold a target column; got {both[0]!r} in both")
-    if data.features and len(data.features) != model.layers[0]:
-        raise JobError(f"`data.features` names {len(data.features)} columns but `model.layers` starts with "
+    _check_categorical(data, targets)
+    if data.features and len(data.features) + len(data.categorical) != model.layers[0]:
+        more = f" and `data.categorical` {len(data.categorical)}" if data.categorical else ""
+        raise JobError(f"`data.features` names {len(data.features)} columns{more} but `model.layers` starts with "
                        f"{model.layers[0]} inputs")
     if data.weights and (data.weights in targets or data.weights in data.features):
         raise JobError(f"`data.weights` names the column {data.weights!r}, which is also a "
@@ -498,6 +510,25 @@ def _check_data(data: DataSpec, model: ModelSpec) -> None:
         if isinstance(data.class_weights, list) and len(data.class_weights) != model.layers[-1]:
             raise JobError(f"`data.class_weights` must hold one weight per class, {model.layers[-1]} (the outputs of "
                            f"`model.layers`); got {len(data.class_weights)}")
+
+
+def _check_categorical(data: DataSpec, targets: list[str]) -> None:
+    """A categorical column is no feature, target or weight column; widths name categorical columns only."""
+    for name in data.categorical:
+        role = ("target" if name in targets else "feature" if name in data.features
+                else "weight" if name == data.weights else None)
+        if role:
+            raise JobError(f"`data.categorical` names the column {name!r}, which is also a {role} column; a "
+                           f"categorical column is only categorical")
+    widths = data.embedding_widths
+    if isinstance(widths, list) and widths and len(widths) != len(data.categorical):
+        raise JobError(f"`data.embedding_widths` must give one width per `data.categorical` column, "
+                       f"{len(data.categorical)}; got {len(widths)}")
+    if isinstance(widths, dict):
+        for name in widths:
+            if name not in data.categorical:
+                raise JobError(f"`data.embedding_widths` names the column {name!r}, which is not in "
+                               f"`data.categorical` ({', '.join(data.categorical) or 'empty'})")
 
 
 def _check_best(run: RunSpec, data: DataSpec, model: ModelSpec) -> None:

@@ -26,7 +26,8 @@ README = Path(__file__).resolve().parents[1] / "README.md"
 DIGEST_RUN_KEYS = ("global_batch", "seed", "reduction", "exact_chunk")
 # [data] keys added in 0.2 (tables) and 0.3 (weights): they enter the digest only away from their defaults, as the
 # checkpoints on disk were written without them.
-ADDED_DATA_KEYS = {"target": "", "features": [], "header": "auto", "weights": "", "class_weights": ""}
+ADDED_DATA_KEYS = {"target": "", "features": [], "header": "auto", "weights": "", "class_weights": "",
+                   "categorical": [], "embedding_widths": {}}
 # [model] keys added in 0.3 (the robust losses' parameters; norm, dropout and residual): likewise, at their defaults
 # they stay out of the digest.
 ADDED_MODEL_KEYS = {"huber_delta": 1.0, "norm": "none", "dropout": 0.0, "residual": False}

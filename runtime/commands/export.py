@@ -16,6 +16,11 @@ the graph means exactly our definition whatever the runtime: no fused GELU or So
 and variance in float64 as ``kernels/layers.py`` forms them, then (z − μ)·r·g + β in the model's dtype), not as the
 LayerNormalization op (opset 17 only, and its ε and precision are the runtime's). Dropout is absent: inverted dropout
 scales at training time, so inference is the identity (Srivastava et al. 2014).
+
+A model with categorical columns takes a second input, "codes" (N, c) int64: column j holds each row's code of the
+j-th categorical column by the vocabulary in the model card (code i ≥ 1 is vocabulary[i − 1], 0 the unknown slot;
+a code outside [0, rows of E_j) is taken as 0 in the graph). Each column's embedding is a Gather of its table's
+rows, concatenated after the standardised numeric inputs, as ``kernels/layers.py`` ``embedding_forward`` does.
 """
 
 from __future__ import annotations
@@ -131,6 +136,8 @@ def build_onnx(predictor: Predictor, opset: int = DEFAULT_OPSET) -> onnx.ModelPr
     x = g.op("Mul", x, g.tensor("input_inv_std", predictor.input_inv_std.astype(np.float64)), scope=scope)
     if dtype != np.float64:
         x = g.op("Cast", x, scope=scope, to=elem)
+    if model.embeddings:
+        x = embed(g, model, x)
     activations = [*model.activations, output_activation(predictor)]
     for l in range(model.n_layers):
         scope = f"layer{l}/"
@@ -143,10 +150,13 @@ def build_onnx(predictor: Predictor, opset: int = DEFAULT_OPSET) -> onnx.ModelPr
     if g.nodes[-1].output[0] != x:
         raise AssertionError("the graph's last node must produce its output")
     g.nodes[-1].output[0] = "outputs"
-    d, k = model.sizes[0], model.sizes[-1]
+    d, k = model.n_numeric, model.sizes[-1]
+    inputs = [helper.make_tensor_value_info("inputs", elem, ["N", d])]
+    if model.embeddings:
+        inputs.append(helper.make_tensor_value_info("codes", TensorProto.INT64, ["N", len(model.embeddings)]))
     graph = helper.make_graph(
         g.nodes, "shardmill_mlp",
-        [helper.make_tensor_value_info("inputs", elem, ["N", d])],
+        inputs,
         [helper.make_tensor_value_info("outputs", elem, ["N", k])],
         initializer=g.initializers,
         doc_string=f"raw inputs (N, {d}) → {' → '.join(activations)} → outputs (N, {k}); loss {model.loss}")
@@ -161,8 +171,29 @@ def build_onnx(predictor: Predictor, opset: int = DEFAULT_OPSET) -> onnx.ModelPr
         "shardmill.job_digest": predictor.digest or "",
         "shardmill.step": "" if predictor.step is None else str(predictor.step),
         "shardmill.feature_names": json.dumps(predictor.feature_names),
+        **({"shardmill.categories": json.dumps([c.record() for c in predictor.categories])}
+           if predictor.categories else {}),
     })
     return onnx_model
+
+
+def embed(g: _GraphBuilder, model, x: str) -> str:
+    """[x, E_0[codes[:, 0]], E_1[codes[:, 1]], …] (N, d0): each column's code, out of range → 0 (the unknown slot),
+    gathers its table's row."""
+    scope = "embed/"
+    parts = [x]
+    tables = model.embedding_views(model.params)
+    for j, (column, rows, _) in enumerate(model.embeddings):
+        index = f"{scope}column_{j}"  # 0-d, so the Gather drops the axis: (N, c) → (N,)
+        g.initializers.append(numpy_helper.from_array(np.array(j, dtype=np.int64), index))
+        code = g.op("Gather", "codes", index, scope=scope, axis=1)
+        zero = g.tensor(f"{scope}zero_{j}", np.array(0, dtype=np.int64))
+        inside = g.op("And", g.op("GreaterOrEqual", code, zero, scope=scope),
+                      g.op("Less", code, g.tensor(f"{scope}rows_{j}", np.array(rows, dtype=np.int64)), scope=scope),
+                      scope=scope)
+        code = g.op("Where", inside, code, zero, scope=scope)
+        parts.append(g.op("Gather", g.tensor(f"E_{column}", tables[f"E_{column}"]), code, scope=scope, axis=0))
+    return g.op("Concat", *parts, scope=scope, axis=1)
 
 
 def export_onnx(predictor: Predictor, path: Path, opset: int = DEFAULT_OPSET) -> list[Path]:
@@ -240,13 +271,19 @@ def model_card(predictor: Predictor, source: Path) -> dict[str, Any]:
         layers[h]["dropout"] = model.dropout[h]  # training only; the graph and predict apply none
         layers[h]["residual"] = model.skips[h]
     mean, inv_std = predictor.input_mean, predictor.input_inv_std
-    return {
+    categorical = [{"column": c.column, "position": j, "embedding": f"E_{c.column}", "rows": c.rows,
+                    "width": c.width, "unknown_code": 0, "vocabulary": c.vocabulary}
+                   for j, c in enumerate(predictor.categories)]
+    if categorical:
+        layers[0]["fan_in_rule"] = (f"{model.n_numeric} numeric inputs + the embedding widths "
+                                    f"{[c.width for c in predictor.categories]}")
+    card = {
         "format": CARD_FORMAT,
         "format_version": CARD_VERSION,
         "source": str(source),
         "dtype": model.dtype.name,
         "inputs": {
-            "count": model.sizes[0],
+            "count": model.n_numeric,
             "feature_names": predictor.feature_names,
             "mean": mean.tolist(),
             "inv_std": inv_std.tolist(),
@@ -266,6 +303,12 @@ def model_card(predictor: Predictor, source: Path) -> dict[str, Any]:
         "training": {"job": predictor.job, "digest": predictor.digest, "step": predictor.step},
         "metrics": last_epoch_record(_workdir_of(source), predictor.step),
     }
+    if categorical:
+        card["inputs"]["categorical"] = categorical
+        card["inputs"]["codes"] = ("the graph's input \"codes\" (N, c) int64: column j holds the code of the "
+                                   "categorical column at position j, code i ≥ 1 = vocabulary[i − 1], 0 = a value "
+                                   "unseen in training (the unknown slot; out-of-range codes are taken as 0)")
+    return card
 
 
 def write_model_card(predictor: Predictor, source: Path, path: Path, onnx_path: Path | None = None,
@@ -275,6 +318,8 @@ def write_model_card(predictor: Predictor, source: Path, path: Path, onnx_path: 
     card = model_card(predictor, source)
     if onnx_path is not None:
         card["onnx"] = {"file": Path(onnx_path).name, "opset": opset, "input": "inputs", "output": "outputs"}
+        if predictor.categories:
+            card["onnx"]["codes_input"] = "codes"
     path = Path(path)
     tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
     tmp.write_text(json.dumps(card, indent=1, ensure_ascii=False) + "\n")
@@ -317,7 +362,8 @@ def cmd_export(args) -> int:
     except OSError as err:
         raise JobError(f"`--card` {str(card)!r} cannot be written: {err.strerror or err}") from None
     model = predictor.model
-    print(f"wrote {files[0]} (ONNX opset {opset}, {model.dtype.name}, {model.sizes[0]} inputs → "
+    codes = f" + {len(model.embeddings)} category codes" if model.embeddings else ""
+    print(f"wrote {files[0]} (ONNX opset {opset}, {model.dtype.name}, {model.n_numeric} inputs{codes} → "
           f"{model.sizes[-1]} outputs)")
     for extra in files[1:]:
         print(f"wrote {extra} (the graph's parameters)")

@@ -7,8 +7,10 @@ import json
 from pathlib import Path
 
 import numpy as np
+from shardmill.data.categories import read_columns
 from shardmill.data.files import read_array, read_inputs, weights_are_a_file
 from shardmill.data.rows import squeeze_labels
+from shardmill.data.tables import describe, is_table
 from shardmill.errors import JobError
 from shardmill.model.losses import CLASSIFIER_LOSSES
 from shardmill.model.predictor import Predictor, load_model, metrics
@@ -53,8 +55,22 @@ def read_inputs_for(predictor: Predictor, path: Path) -> np.ndarray:
     target = data.get("target") or []
     weights = data.get("weights") or ""
     weight_column = [] if not weights or weights_are_a_file(weights) else [weights]
+    drop = ([target] if isinstance(target, str) else list(target)) + weight_column + [
+        c.column for c in predictor.categories]
     return read_inputs(path, "inputs", features=predictor.feature_names, header=data.get("header", "auto"),
-                       drop=([target] if isinstance(target, str) else list(target)) + weight_column)
+                       drop=drop)
+
+
+def read_categories_for(predictor: Predictor, path: Path) -> dict[str, list[str]] | None:
+    """The model's categorical columns of the table ``path`` by name, {column: values as text}; None without."""
+    if not predictor.categories:
+        return None
+    if not is_table(path):
+        raise JobError(f"the model takes the categorical column(s) {[c.column for c in predictor.categories]}; "
+                       f"`inputs` {str(path)!r} must be a .csv or .parquet table that names them")
+    header = (predictor.job or {}).get("data", {}).get("header", "auto")
+    names = [c.column for c in predictor.categories]
+    return dict(zip(names, read_columns(describe(path, "inputs", header), names, "inputs"), strict=True))
 
 
 def cmd_predict(args) -> int:
@@ -70,11 +86,12 @@ def cmd_predict(args) -> int:
         raise JobError(f"`--labels` needs a classifier (`model.loss` {' or '.join(CLASSIFIER_LOSSES)}); this "
                        f"model's loss is {predictor.loss!r}: leave `--labels` out to write its outputs")
     X = read_inputs_for(predictor, Path(args.inputs))
+    categories = read_categories_for(predictor, Path(args.inputs))
     targets = None
     if args.targets is not None:  # checked before anything is written
         y = squeeze_labels(np.asarray(read_array(Path(args.targets), "targets", mmap=False)))
         targets = predictor.model.check_targets(y, X.shape[0], "targets")
-    outputs = predictor.outputs(X)
+    outputs = predictor.outputs(X, categories)
     written, what = (predictor.to_labels(outputs), "labels") if labels else (outputs, "outputs")
     write_outputs(Path(args.out), written)
     shape = f"{written.shape[0]}" if written.ndim == 1 else f"{written.shape[0]} × {written.shape[1]}"

@@ -4,11 +4,12 @@ from __future__ import annotations
 
 import hashlib
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
 from shardmill.config import Job
+from shardmill.data.categories import Category
 from shardmill.data.files import open_job_data, open_job_weights
 from shardmill.data.rows import Split, as_numbers, block_range, column_statistics, first_of_ranks, split_rows
 from shardmill.errors import JobError
@@ -28,6 +29,8 @@ class Dataset:
     feature_names: list[str] | None = None  # the inputs' column names when they came from a table with names
     weights: np.ndarray | None = None  # (n,) float64 per row: sample × class weight; None: every row weighs 1
     class_weights: list[float] | None = None  # the class weights used (data.class_weights resolved), or None
+    categories: list[Category] = field(default_factory=list)  # the categorical columns' vocabularies and widths
+    codes: np.ndarray | None = None  # (n, c) int64 category codes of every row (0: unknown); None without any
 
     def weight_record(self) -> dict[str, Any] | None:
         """What a checkpoint keeps of the weights, to refuse a resume whose weights differ: the class weights, Σ w
@@ -39,8 +42,10 @@ class Dataset:
                 "sha256": hashlib.sha256(np.ascontiguousarray(self.weights, dtype=np.float64).tobytes()).hexdigest()}
 
 
-def load_dataset(job: Job, model: MLP, comm: Comm) -> Dataset:
-    """Open and check the data on every rank; any rank's failure is raised identically on all ranks."""
+def load_dataset(job: Job, model: MLP, comm: Comm, categories: list[Category] | None = None,
+                 codes: np.ndarray | None = None) -> Dataset:
+    """Open and check the data on every rank; any rank's failure is raised identically on all ranks.
+    ``categories``, ``codes``: the categorical columns (``data/categories.py`` ``load_categories``), if any."""
     error: Exception | None = None
     targets = None
     X, y, feature_names = open_job_data(job, comm)  # collective; its own failures are raised alike on every rank
@@ -50,6 +55,8 @@ def load_dataset(job: Job, model: MLP, comm: Comm) -> Dataset:
         model.check_inputs(X, "data.inputs")
         if y.shape[0] != X.shape[0]:
             raise JobError(f"`{where}` has {y.shape[0]} rows but `data.inputs` has {X.shape[0]}")
+        if codes is not None and codes.shape[0] != X.shape[0]:
+            raise JobError(f"`data.categorical` read {codes.shape[0]} rows but `data.inputs` has {X.shape[0]}")
         targets = model.check_targets(y, X.shape[0], where)
     except (JobError, OSError, MemoryError) as err:
         error = err if isinstance(err, JobError) else JobError(f"data cannot be loaded: {err}")
@@ -71,7 +78,7 @@ def load_dataset(job: Job, model: MLP, comm: Comm) -> Dataset:
     raw_weights = open_job_weights(job, comm)  # collective; the same array on every rank, so the checks agree
     weights, class_weights = row_weights(job, targets, split, raw_weights, model.sizes[-1])
     return Dataset(X=X, targets=targets, split=split, mean=mean, inv_std=inv_std, feature_names=feature_names,
-                   weights=weights, class_weights=class_weights)
+                   weights=weights, class_weights=class_weights, categories=list(categories or []), codes=codes)
 
 
 def row_weights(job: Job, targets: np.ndarray, split: Split, raw: np.ndarray | None,

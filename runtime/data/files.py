@@ -98,9 +98,11 @@ def open_job_data(job: Job, comm: Comm) -> tuple[np.ndarray, np.ndarray, list[st
         if inputs is not None:
             select(inputs, target, "data.target")
             select(inputs, list(data.features), "data.features")
+            select(inputs, list(data.categorical), "data.categorical")
             weight_column = [] if weights_are_a_file(data.weights) else _names(data.weights)
             select(inputs, weight_column, "data.weights")
-            features = list(data.features) or [c for c in inputs.columns if c not in target + weight_column]
+            taken = target + weight_column + list(data.categorical)
+            features = list(data.features) or [c for c in inputs.columns if c not in taken]
             if not features:
                 raise JobError(f"`data.inputs` {str(path)!r} has no column left for the inputs once the target "
                                f"column(s) {_listing(target)} are taken")

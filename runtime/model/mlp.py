@@ -5,7 +5,13 @@ All parameters live in one flat array ``params``. Layers are laid out *last laye
 finished layer l, the gradient prefix ``grads[:end_of(l)]`` is complete and can go on the wire as one
 contiguous message. ``weights[l]`` (fan_in, fan_out) and ``biases[l]`` (fan_out,) are views into ``params``;
 with ``norm = "layer"`` a hidden layer's range ends with its normalisation's gain ``G_l`` and shift ``B_l``
-(fan_out,) each, so a layer's message still holds every parameter of the layer.
+(fan_out,) each, so a layer's message still holds every parameter of the layer. The embedding tables of the
+categorical inputs ``E_<column>`` (rows, width) end layer 0's range: they feed layer 0, and their gradient is
+complete with it (the "layer before layer 0" travels in layer 0's message).
+
+The first layer's input row is [standardised numeric columns, E_<c₁>[code₁], E_<c₂>[code₂], …]
+(``kernels/layers.py`` ``embedding_forward``); ``layers[0]`` counts each categorical column once, and the runtime
+widens the first layer by the embedding widths.
 
 A hidden layer h, in order (``kernels/layers.py``; docs/models.md has the formulas and sources):
 Z = A_h W_h + b_h → [layer norm N = g ⊙ (Z − μ)/σ + β] → H = f(·) → [dropout H ⊙ keep/(1 − p), training only]
@@ -48,6 +54,8 @@ class MLP:
     dropout: inverted dropout rate in [0, 1) of the hidden outputs, one or one per hidden layer; applied only when a
         step is given (training), its keep decision a pure function of (seed, step, global row, layer, unit).
     residual: identity skip connections around the hidden layers h ≥ 1 whose input and output widths are equal.
+    embeddings: (column, rows, width) of each categorical input's embedding table, in input order (rows: the
+        vocabulary and the unknown slot); ``layers[0]`` counts each such column once.
     """
 
     def __init__(self, layers: list[int], activation: str | list[str] = default("model.activation"),
@@ -55,12 +63,19 @@ class MLP:
                  init: str = default("model.init"), output: str = default("model.output"),
                  huber_delta: float = default("model.huber_delta"), norm: str = default("model.norm"),
                  dropout: float | list[float] = default("model.dropout"),
-                 residual: bool = default("model.residual")) -> None:
+                 residual: bool = default("model.residual"),
+                 embeddings: list[tuple[str, int, int]] | None = None) -> None:
         # The same checks and messages as the job file's [model] table (config.model_spec).
         spec = model_spec({"layers": list(layers), "activation": activation, "loss": loss, "dtype": dtype,
                            "init": init, "output": output, "huber_delta": huber_delta, "norm": norm,
                            "dropout": dropout, "residual": residual})
-        self.sizes = spec.layers
+        self.embeddings = [(str(c), int(r), int(w)) for c, r, w in embeddings or []]
+        self.n_numeric = spec.layers[0] - len(self.embeddings)  # the numeric input columns
+        if self.n_numeric < 0:
+            raise JobError(f"`model.layers` starts with {spec.layers[0]} inputs, fewer than the "
+                           f"{len(self.embeddings)} categorical columns")
+        self.input_columns = spec.layers[0]  # numeric + categorical, as the job counts them
+        self.sizes = [self.n_numeric + sum(w for _, _, w in self.embeddings)] + spec.layers[1:]
         self.activations = spec.activation
         self.loss = spec.loss
         self.dtype = np.dtype(spec.dtype)
@@ -90,6 +105,13 @@ class MLP:
             size = self.sizes[l] * self.sizes[l + 1] + self.sizes[l + 1] * (1 + 2 * self.has_norm(l))
             self.slices[l] = (offset, offset + size)
             offset += size
+        # the embedding tables end layer 0's range: E_j at offsets[j], row-major (rows, width)
+        self.embedding_offsets = np.zeros(len(self.embeddings), dtype=np.int64)
+        self.embedding_widths = np.array([w for _, _, w in self.embeddings], dtype=np.int64)
+        for j, (_, rows, width) in enumerate(self.embeddings):
+            self.embedding_offsets[j] = offset
+            offset += rows * width
+        self.slices[0] = (self.slices[0][0], offset)
         self._params = np.zeros(offset, dtype=self.dtype)
         self.weights, self.biases = self.views(self._params)
         self.gains, self.shifts = self.norm_views(self._params)
@@ -135,12 +157,24 @@ class MLP:
         shifts: list[np.ndarray | None] = [None] * self.n_layers
         for l in range(self.n_layers):
             if self.has_norm(l):
-                stop, width = self.slices[l][1], self.sizes[l + 1]
+                width = self.sizes[l + 1]
+                stop = self.slices[l][0] + self.sizes[l] * width + 3 * width
                 gains[l], shifts[l] = flat[stop - 2 * width:stop - width], flat[stop - width:stop]
         return gains, shifts
 
+    def embedding_views(self, flat: np.ndarray) -> dict[str, np.ndarray]:
+        """{"E_<column>": (rows, width) view} of each embedding table of a flat array with the params layout."""
+        return {f"E_{column}": flat[start:start + rows * width].reshape(rows, width)
+                for (column, rows, width), start in zip(self.embeddings, self.embedding_offsets.tolist(),
+                                                        strict=True)}
+
+    def embedding_range(self) -> tuple[int, int]:
+        """[start, stop) of every embedding table together in the flat layout (empty without categorical inputs)."""
+        start = int(self.embedding_offsets[0]) if self.embeddings else self.slices[0][1]
+        return start, self.slices[0][1]
+
     def names(self) -> list[str]:
-        """Tensor names in checkpoint order: W0, b0, (G0, B0: the norm's gain and shift), W1, b1, …"""
+        """Tensor names in checkpoint order: W0, b0, (G0, B0: the norm's gain and shift), W1, b1, …, E_<column>…"""
         return list(self.named(self._params))
 
     def named(self, flat: np.ndarray) -> dict[str, np.ndarray]:
@@ -152,6 +186,7 @@ class MLP:
             out[f"W{l}"], out[f"b{l}"] = ws[l], bs[l]
             if self.has_norm(l):
                 out[f"G{l}"], out[f"B{l}"] = gains[l], shifts[l]
+        out.update(self.embedding_views(flat))
         return out
 
     def _initialise(self, seed: int) -> None:
@@ -168,6 +203,8 @@ class MLP:
             if self.has_norm(l):  # Ba, Kiros & Hinton 2016: the gain starts at 1, the shift at 0
                 self.gains[l][...] = 1.0
                 self.shifts[l][...] = 0.0
+        for table in self.embedding_views(self._params).values():  # N(0, 1): the scale of a standardised column
+            table[...] = rng.normal(0.0, 1.0, size=table.shape)  # (common practice)
 
     def workspace(self, rows: int) -> Workspace:
         """Buffers for batches of up to ``rows`` rows, allocated once and reused."""
@@ -176,19 +213,39 @@ class MLP:
         return self._workspaces[rows]
 
     def check_inputs(self, X: np.ndarray, name: str = "X") -> None:
-        if X.ndim != 2 or X.shape[1] != self.sizes[0]:
-            raise JobError(f"`{name}` must have shape (n, {self.sizes[0]}); got {X.shape}")
+        """X must be (n, numeric input columns)."""
+        if X.ndim != 2 or X.shape[1] != self.n_numeric:
+            raise JobError(f"`{name}` must have shape (n, {self.n_numeric}); got {X.shape}")
+
+    def check_codes(self, codes: np.ndarray | None, n: int, name: str = "codes") -> np.ndarray:
+        """Category codes as int64 (n, c), each in [0, rows of its table): 0 is the unknown slot."""
+        c = len(self.embeddings)
+        if not c:
+            return np.zeros((n, 0), dtype=np.int64)
+        if codes is None:
+            raise JobError(f"the model takes {c} categorical columns; give `{name}` ({n}, {c})")
+        codes = np.asarray(codes)
+        if codes.shape != (n, c) or codes.dtype.kind not in "iu":
+            raise JobError(f"`{name}` must be integer codes of shape ({n}, {c}); got {codes.dtype} {codes.shape}")
+        rows = np.array([r for _, r, _ in self.embeddings])
+        bad = (codes < 0) | (codes >= rows)
+        if bad.any():
+            i, j = np.argwhere(bad)[0]
+            raise JobError(f"`{name}` row {i}: code {int(codes[i, j])} of column {self.embeddings[j][0]!r} is outside "
+                           f"[0, {rows[j]})")
+        return np.ascontiguousarray(codes, dtype=np.int64)
 
     def check_targets(self, y: np.ndarray, n: int, name: str = "y") -> np.ndarray:
         """Validate targets for this model's loss and return them in the dtype the kernels take."""
         return self.loss_entry.check_targets(y, n, self.sizes[-1], self.dtype, name)
 
     def loss_and_grad(self, X: np.ndarray, y: np.ndarray, weights: np.ndarray | None = None,
-                      step: int | None = None) -> tuple[float, np.ndarray]:
+                      step: int | None = None, codes: np.ndarray | None = None) -> tuple[float, np.ndarray]:
         """Mean loss over the n rows of X and its gradient, flat in the params layout (a new array).
 
         ``weights``: one weight ≥ 0 per row, (n,); the loss is then Σ w·ℓ / Σ w (as a weighted job trains).
         ``step``: apply dropout as training step ``step`` would, row i of X taken as global row i; None: no dropout.
+        ``codes``: (n, c) int64 category codes of the categorical columns (models with embeddings).
         """
         X = np.asarray(X)
         self.check_inputs(X)
@@ -196,8 +253,10 @@ class MLP:
         n = X.shape[0]
         w = np.ones(n) if weights is None else check_weights(np.asarray(weights), n, "weights")
         total_weight = float(n) if weights is None else math.fsum(w)
+        codes = self.check_codes(codes, n)
         ws = self.workspace(n)
-        ws.inputs[:n] = X
+        ws.numeric[:n] = X
+        ws.codes[:n] = codes
         grads = np.empty_like(self._params)
         rows = None if step is None else np.arange(n, dtype=np.int64)
         total = ws.forward_loss(n, targets, w, 1.0 / total_weight, step=step, rows=rows)
@@ -205,17 +264,20 @@ class MLP:
             pass
         return total / total_weight, grads
 
-    def predict(self, X: np.ndarray, batch: int = 4096) -> np.ndarray:
-        """Outputs after the output activation, (n, k) in the model's dtype (probabilities for cross-entropy)."""
+    def predict(self, X: np.ndarray, batch: int = 4096, codes: np.ndarray | None = None) -> np.ndarray:
+        """Outputs after the output activation, (n, k) in the model's dtype (probabilities for cross-entropy).
+        ``codes``: (n, c) int64 category codes (models with embeddings)."""
         X = np.asarray(X)
         self.check_inputs(X)
         n = X.shape[0]
+        codes = self.check_codes(codes, n)
         out = np.empty((n, self.sizes[-1]), dtype=self.dtype)
         rows = max(1, min(batch, n))
         ws = self.workspace(rows)
         for lo in range(0, n, rows):
             m = min(rows, n - lo)
-            ws.inputs[:m] = X[lo:lo + m]
+            ws.numeric[:m] = X[lo:lo + m]
+            ws.codes[:m] = codes[lo:lo + m]
             out[lo:lo + m] = ws.forward_outputs(m)
         return out
 
@@ -223,7 +285,9 @@ class MLP:
 class Workspace:
     """Activations, pre-activations and deltas for batches of up to ``rows`` rows, allocated once.
 
-    ``inputs`` (rows, d0) is the batch buffer the data layer gathers into. Nothing here allocates per step:
+    ``inputs`` (rows, d0) is the first layer's input. The data layer takes rows into ``numeric`` (rows, numeric
+    columns) and their category codes into ``codes`` (rows, c) int64; with embeddings, :meth:`forward` composes
+    ``inputs`` from them, else ``numeric`` is ``inputs`` itself. Nothing here allocates per step:
     every GEMM writes with ``out=`` into these buffers or into the gradient views, every kernel into buffers made
     here. Per hidden layer h: ``Z[h]`` the pre-activations after the bias, ``H[h]`` the activation's output (of Z, or
     of the normalised N, which :meth:`preactivations` forms again), ``A[h + 1]`` the layer's output (H, or after
@@ -235,6 +299,9 @@ class Workspace:
         self.rows = rows
         dt, sizes, L = model.dtype, model.sizes, model.n_layers
         self.inputs = np.zeros((rows, sizes[0]), dtype=dt)
+        embedded = bool(model.embeddings)
+        self.numeric = np.zeros((rows, model.n_numeric), dtype=dt) if embedded else self.inputs
+        self.codes = np.zeros((rows, len(model.embeddings)), dtype=np.int64)
         self.Z = [np.zeros((rows, sizes[l + 1]), dtype=dt) for l in range(L)]
         self.A = [self.inputs]
         self.pre, self.H, self.stats, self.keep = [], [], [], []
@@ -250,7 +317,7 @@ class Workspace:
             self.keep.append(np.zeros(self.Z[h].shape, dtype=np.uint8) if model.dropout[h] > 0 else None)
         self.dropped = [False] * (L - 1)  # whether the last forward pass applied dropout to hidden layer h
         self.O = np.zeros((rows, sizes[-1]), dtype=dt)
-        width = max(sizes[1:])
+        width = max(sizes) if embedded else max(sizes[1:])  # with embeddings, backward forms dA of layer 0's input
         self._delta = (np.zeros(rows * width, dtype=dt), np.zeros(rows * width, dtype=dt))
         self._saved = np.zeros(rows * width, dtype=dt)  # the skip's share of ∂loss/∂A_{h+1}
         self._zero_bias = np.zeros(sizes[-1], dtype=dt)
@@ -259,6 +326,7 @@ class Workspace:
         # verify's: when set, (rows, m) buffers per normed hidden layer that backward fills with ∂loss/∂H (after
         # dropout) before the norm kernel overwrites it
         self.norm_input: dict[int, np.ndarray] | None = None
+        self.input_gradient: np.ndarray | None = None  # verify's: (rows, d0) that backward fills with dA₀
 
     def delta(self, which: int, n: int, width: int) -> np.ndarray:
         """A contiguous (n, width) view of ping-pong delta buffer ``which``."""
@@ -269,6 +337,9 @@ class Workspace:
         returns the output logits Z_L (n, k). Dropout applies only with ``step`` (the global step) and ``rows``
         ((n,) int64, the global indices of the n rows)."""
         m = self.model
+        if m.embeddings:
+            layers.embedding_forward(self.numeric[:n], self.codes[:n], m.params, m.embedding_offsets,
+                                     m.embedding_widths, self.inputs[:n])
         for l in range(m.n_layers):
             Z = self.Z[l][:n]
             np.matmul(self.A[l][:n], m.weights[l], out=Z)
@@ -326,7 +397,8 @@ class Workspace:
         filled; dZ_l (n, fan_out) is valid until the next iteration. Per layer:
         dW_l = A_{l−1}ᵀ dZ_l (BLAS, straight into the grads view); db_l = Σ_rows dZ_l;
         dA_{l−1} = dZ_l W_lᵀ (BLAS) [+ ∂loss/∂A_l, the skip's share]; then hidden layer l−1 backward
-        (:meth:`hidden_backward`) to dZ_{l−1}.
+        (:meth:`hidden_backward`) to dZ_{l−1}. With embeddings, layer 0 also forms dA_0 = dZ_0 W_0ᵀ and scatter-adds
+        its embedding columns into the tables' gradient rows before layer 0 is yielded.
         """
         m = self.model
         dWs, dbs = m.views(grads)
@@ -343,6 +415,15 @@ class Workspace:
                     layers.residual_backward(dA, self.saved(n, m.sizes[l]))
                 dZ = self.hidden_backward(l - 1, n, dA, dGs[l - 1], dBs[l - 1])
                 free = 1 - free
+            elif m.embeddings:
+                dA = self.delta(free, n, m.sizes[0])
+                np.matmul(dZ, m.weights[0].T, out=dA)
+                if self.input_gradient is not None:
+                    self.input_gradient[:n] = dA
+                start, stop = m.embedding_range()
+                grads[start:stop] = 0.0
+                layers.embedding_backward(dA, self.codes[:n], m.n_numeric, m.embedding_offsets, m.embedding_widths,
+                                          grads)
             yield l, done
 
     def saved(self, n: int, width: int) -> np.ndarray:
@@ -384,10 +465,12 @@ def dropout_threshold(rate: float) -> np.uint32:
     return np.uint32(min(int(rate * 2.0**32), 2**32 - 1))
 
 
-def model_from_job(job: Job) -> MLP:
+def model_from_job(job: Job, embeddings: list[tuple[str, int, int]] | None = None) -> MLP:
+    """The job's model; ``embeddings``: (column, rows, width) of each categorical column's table (the data's)."""
     m = job.model
     return MLP(m.layers, activation=m.activation, loss=m.loss, dtype=m.dtype, seed=job.run.seed, init=m.init,
-               output=m.output, huber_delta=m.huber_delta, norm=m.norm, dropout=m.dropout, residual=m.residual)
+               output=m.output, huber_delta=m.huber_delta, norm=m.norm, dropout=m.dropout, residual=m.residual,
+               embeddings=embeddings)
 
 
 def check_weights(weights: np.ndarray, n: int, name: str) -> np.ndarray:

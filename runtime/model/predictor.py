@@ -13,6 +13,7 @@ from shardmill.config import default
 from shardmill.errors import JobError
 from shardmill.model.losses import CLASSIFIER_LOSSES
 from shardmill.model.mlp import MLP
+from shardmill.model.vocabulary import Category
 
 
 class Predictor:
@@ -29,12 +30,16 @@ class Predictor:
     feature_names: the d input column names when the training inputs came from a table with a header, else None.
     job: the resolved training job (``Job.as_dict()``), digest: its SHA-256 digest, step: the global step the
         parameters were saved at (None where unknown).
+    categories: the categorical columns (vocabulary and width each), in the model's order; the methods then take
+        ``categories={column: values}`` beside X (text or integers; a value unseen in training takes the unknown
+        slot).
     """
 
     def __init__(self, model: MLP, input_mean: np.ndarray, input_inv_std: np.ndarray,
                  feature_names: list[str] | None = None, job: dict[str, Any] | None = None,
-                 digest: str | None = None, step: int | None = None) -> None:
-        d = model.sizes[0]
+                 digest: str | None = None, step: int | None = None,
+                 categories: list[Category] | None = None) -> None:
+        d = model.n_numeric
         self.model = model
         self.input_mean = np.asarray(input_mean, dtype=np.float64)
         self.input_inv_std = np.asarray(input_inv_std, dtype=np.float64)
@@ -47,11 +52,15 @@ class Predictor:
         self.job = job
         self.digest = digest
         self.step = step
+        self.categories = list(categories or [])
+        if [c.column for c in self.categories] != [column for column, _, _ in model.embeddings]:
+            raise JobError(f"`categories` must describe the model's categorical columns "
+                           f"{[column for column, _, _ in model.embeddings]}")
 
     @property
     def n_inputs(self) -> int:
-        """Input width d (columns of X)."""
-        return self.model.sizes[0]
+        """Input width d (numeric columns of X)."""
+        return self.model.n_numeric
 
     @property
     def n_outputs(self) -> int:
@@ -83,28 +92,49 @@ class Predictor:
             raise JobError(f"`{name}` row {int(np.argmin(finite))} holds a non-finite value (NaN or inf)")
         return ((X - self.input_mean) * self.input_inv_std).astype(self.model.dtype, copy=False)
 
-    def outputs(self, X: np.ndarray) -> np.ndarray:
+    def codes(self, categories: dict[str, Any] | None, n: int) -> np.ndarray | None:
+        """(n, c) int64 codes of ``categories`` ({column: n values}) by the training vocabularies; None without."""
+        if not self.categories:
+            if categories:
+                raise JobError(f"this model has no categorical columns; got {sorted(categories)}")
+            return None
+        given = dict(categories or {})
+        missing = [c.column for c in self.categories if c.column not in given]
+        if missing:
+            raise JobError(f"the model takes the categorical column(s) {missing}; give categories={{column: values}}")
+        codes = np.empty((n, len(self.categories)), dtype=np.int64)
+        for j, c in enumerate(self.categories):
+            values = given[c.column]
+            values = values.tolist() if isinstance(values, np.ndarray) else list(values)
+            if len(values) != n:
+                raise JobError(f"categorical column {c.column!r} holds {len(values)} values for {n} rows")
+            codes[:, j] = c.encode(values)
+        return codes
+
+    def outputs(self, X: np.ndarray, categories: dict[str, Any] | None = None) -> np.ndarray:
         """The output layer after its output activation, (n, k) in the model's dtype: softmax probabilities
         (softmax_cross_entropy), sigmoid probabilities (binary_cross_entropy) or the regression outputs
-        (squared_error, after ``model.output``). What ``shardmill predict`` writes."""
-        return self.model.predict(self.standardise(X))
+        (squared_error, after ``model.output``). What ``shardmill predict`` writes. ``categories``: {column:
+        values} of a model with categorical columns."""
+        inputs = self.standardise(X)
+        return self.model.predict(inputs, codes=self.codes(categories, inputs.shape[0]))
 
-    def predict_proba(self, X: np.ndarray) -> np.ndarray:
+    def predict_proba(self, X: np.ndarray, categories: dict[str, Any] | None = None) -> np.ndarray:
         """Class probabilities of a classifier: (n, k) softmax rows summing to 1, or (n, k) independent
         probabilities of the positive class of each output (binary_cross_entropy). A regression model refuses."""
         if not self.is_classifier:
             raise JobError(f"predict_proba needs a classifier (`model.loss` {' or '.join(CLASSIFIER_LOSSES)}); "
                            f"this model's loss is {self.loss!r}: use predict() or outputs()")
-        return self.outputs(X)
+        return self.outputs(X, categories)
 
-    def predict(self, X: np.ndarray) -> np.ndarray:
+    def predict(self, X: np.ndarray, categories: dict[str, Any] | None = None) -> np.ndarray:
         """Labels of a classifier, the outputs of a regression model.
 
         softmax_cross_entropy: the class index of the largest probability, (n,) int64;
         binary_cross_entropy: 1 where the probability exceeds 0.5, else 0, (n, k) int64;
         squared_error: the outputs, (n, k) in the model's dtype.
         """
-        return self.to_labels(self.outputs(X))
+        return self.to_labels(self.outputs(X, categories))
 
     def to_labels(self, outputs: np.ndarray) -> np.ndarray:
         """What :meth:`predict` returns, from outputs (n, k) that :meth:`outputs` gave."""
@@ -112,12 +142,13 @@ class Predictor:
         return outputs if labels is None else labels(outputs)
 
 
-def _model_of(spec: dict[str, Any]) -> MLP:
+def _model_of(spec: dict[str, Any], categories: list[Category]) -> MLP:
     return MLP(spec["layers"], activation=spec["activation"], loss=spec["loss"], dtype=spec["dtype"],
                init=spec.get("init", "auto"), output=spec.get("output", "auto"),
                huber_delta=spec.get("huber_delta", default("model.huber_delta")),
                norm=spec.get("norm", default("model.norm")), dropout=spec.get("dropout", default("model.dropout")),
-               residual=spec.get("residual", default("model.residual")))
+               residual=spec.get("residual", default("model.residual")),
+               embeddings=[(c.column, c.rows, c.width) for c in categories])
 
 
 def load_model(path: Path | str) -> Predictor:
@@ -136,8 +167,9 @@ def load_model(path: Path | str) -> Predictor:
                 if "model_json" not in archive.files:
                     raise CheckpointError(f"{str(path)!r} is not a shardmill final.npz (no model_json)")
                 arrays = {k: archive[k] for k in archive.files}
-            spec, job, feature_names = (json.loads(str(arrays[k])) if k in arrays else None
-                                        for k in ("model_json", "job_json", "feature_names_json"))
+            spec, job, feature_names, categories = (json.loads(str(arrays[k])) if k in arrays else None
+                                                    for k in ("model_json", "job_json", "feature_names_json",
+                                                              "categories_json"))
         except (ValueError, OSError, EOFError, zipfile.BadZipFile) as err:  # json's errors are ValueErrors
             raise CheckpointError(f"{str(path)!r} cannot be read: {err or type(err).__name__}") from None
         digest = str(arrays["job_digest"]) if "job_digest" in arrays else None
@@ -145,17 +177,19 @@ def load_model(path: Path | str) -> Predictor:
     else:
         state, arrays, _ = load(resolve(path))
         job, digest, feature_names = state["job"], state.get("job_digest"), state.get("feature_names")
+        categories = state.get("categories")
         spec, step = job["model"], int(state["step"])
-    model = _model_of(spec)
+    categories = [Category.from_record(r) for r in categories or []]
+    model = _model_of(spec, categories)
     for name, view in model.named(model.params).items():
         if name not in arrays or arrays[name].shape != view.shape:
             raise CheckpointError(f"{str(path)!r}: tensor {name} is missing or has the wrong shape")
         view[...] = arrays[name]
     for name in ("input_mean", "input_inv_std"):
-        if name not in arrays or arrays[name].shape != (model.sizes[0],):
+        if name not in arrays or arrays[name].shape != (model.n_numeric,):
             raise CheckpointError(f"{str(path)!r}: {name} is missing or has the wrong shape")
     return Predictor(model, arrays["input_mean"], arrays["input_inv_std"], feature_names=feature_names, job=job,
-                     digest=digest, step=step)
+                     digest=digest, step=step, categories=categories)
 
 
 def metrics(model: MLP, outputs: np.ndarray, targets: np.ndarray) -> dict[str, float]:

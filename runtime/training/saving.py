@@ -30,7 +30,8 @@ def training_state(trainer: Any, step: int) -> checkpoint.TrainingState:
         layers=model.sizes, dtype=model.dtype.name,
         feature_names=getattr(data, "feature_names", None),
         best=trainer.best.state() if trainer.best is not None else None,
-        weights=data.weight_record())
+        weights=data.weight_record(),
+        categories=[c.record() for c in getattr(data, "categories", [])] or None)
 
 
 def save(trainer: Any, step: int, best: bool = False) -> checkpoint.TrainingState:
@@ -84,6 +85,11 @@ def resume(trainer: Any) -> int:
                 f"the checkpoint was trained with other row weights ({_weights_text(state.get('weights'))}) than "
                 f"this job's data gives ({_weights_text(ours)}); the data or `data.weights` changed (the "
                 f"weights' SHA-256 differs)")
+        ours = [c.record() for c in getattr(trainer.data, "categories", [])] or None
+        if state.get("categories") != ours:
+            raise checkpoint.CheckpointError(
+                "the checkpoint was trained with other categorical vocabularies than this job's data gives (the "
+                "values of the training rows of a `data.categorical` column changed)")
         return state
 
     state = lead_then_share(comm, load, share=True)

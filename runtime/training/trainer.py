@@ -15,6 +15,7 @@ from pathlib import Path
 import numpy as np
 from shardmill import checkpoint
 from shardmill.config import Job
+from shardmill.data.categories import embedding_shapes, load_categories
 from shardmill.data.dataset import Dataset, load_dataset
 from shardmill.data.rows import Sampler, take_rows
 from shardmill.errors import JobError
@@ -54,15 +55,18 @@ class Trainer:
         Strategy = exchange_strategy(run)
         Strategy.check(run, self.comm.size)  # before any collective, identically on every rank
         error: Exception | None = None
+        # the categorical columns' vocabularies size the embedding tables, so they are read before the model
+        categories, codes = ((dataset.categories, dataset.codes) if dataset is not None
+                             else load_categories(job, self.comm))
         try:
-            self.model = model_from_job(job)
+            self.model = model_from_job(job, embedding_shapes(categories))
         except MemoryError:
             layers = job.model.layers
             params = sum(a * b + b for a, b in zip(layers, layers[1:], strict=False))
             error = JobError(f"`model.layers` = {layers} ({params:,} parameters, {job.model.dtype}) does not fit in "
                              f"this process's memory")
         share_error(self.comm, error)
-        self.data = dataset if dataset is not None else load_dataset(job, self.model, self.comm)
+        self.data = dataset if dataset is not None else load_dataset(job, self.model, self.comm, categories, codes)
         self.sampler = Sampler(self.data.split.train, run.global_batch, run.seed)
         self.grads = np.zeros_like(self.model.params)
         self.ws = self.model.workspace(Strategy.part_rows(run, self.comm.size))
@@ -92,6 +96,13 @@ class Trainer:
     def planned_steps(self) -> int:
         total = self.job.run.epochs * self.sampler.steps_per_epoch
         return min(total, self.job.run.max_steps) if self.job.run.max_steps else total
+
+    def take_inputs(self, rows: np.ndarray, ws=None) -> None:
+        """The standardised numeric columns of ``rows`` and their category codes into the workspace (``self.ws``)."""
+        ws = ws or self.ws
+        take_rows(self.data.X, rows, self.data.mean, self.data.inv_std, ws.numeric)
+        if self.data.codes is not None:
+            np.take(self.data.codes, rows, axis=0, out=ws.codes[:rows.size])
 
     def take_targets(self, rows: np.ndarray) -> np.ndarray:
         np.take(self.data.targets, rows, axis=0, out=self.batch_targets[:rows.size])
@@ -175,7 +186,7 @@ class Trainer:
         Backward tells the exchange as each layer's gradient is complete, so it can start sending.
         """
         n = rows.size
-        take_rows(self.data.X, rows, self.data.mean, self.data.inv_std, self.ws.inputs)
+        self.take_inputs(rows)
         targets, weights = self.take_targets(rows), self.take_weights(rows)
         self.timer.lap("data")
         loss_sum = self.ws.forward_loss(n, targets, weights, self.scale, step=self.step_count, rows=rows)
@@ -218,7 +229,7 @@ class Trainer:
         for start in range(0, part.size, width):
             chunk = part[start:start + width]
             n = chunk.size
-            take_rows(self.data.X, chunk, self.data.mean, self.data.inv_std, self.ws.inputs)
+            self.take_inputs(chunk)
             targets, weights = self.take_targets(chunk), self.take_weights(chunk)
             chunk_sums[0] = self.ws.forward_loss(n, targets, weights, 0.0)
             chunk_sums[1] = self.quality_sum(n, targets)

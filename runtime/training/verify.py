@@ -11,7 +11,9 @@ recursive summation covers (Accuracy and Stability of Numerical Algorithms, 2nd 
 
 Both the parallel and the serial sum obey it with n = G, so their difference is at most 2·γ_{G−1}·Σ|x_i|
 per element, with Σ|x_i| = (|A|ᵀ|dZ|) for weights and Σ|dZ| for biases; a layer-normalised hidden layer's gain and
-shift are sums over samples too (Σ dN ⊙ x̂ and Σ dN), with Σ|x_i| = Σ|dN|·|x̂| and Σ|dN|. Dropout's decisions are
+shift are sums over samples too (Σ dN ⊙ x̂ and Σ dN), with Σ|x_i| = Σ|dN|·|x̂| and Σ|dN|; an embedding row's
+gradient is the sum of the first layer's input gradient dA₀ over the samples holding its code, with
+Σ|x_i| = Σ|dA₀| over those samples (at most G of them, so γ_{G−1} still bounds it). Dropout's decisions are
 the same in both (counters: the same global step and rows). The report gives, per tensor, the
 largest ratio |parallel − serial| / bound: ≤ 1 is agreement; > 1 is a bug.
 """
@@ -26,7 +28,6 @@ from typing import Any
 
 import numpy as np
 from shardmill.config import Job, load_job
-from shardmill.data.rows import take_rows
 from shardmill.errors import JobError
 from shardmill.kernels import activations as act
 from shardmill.kernels import layers
@@ -71,12 +72,16 @@ def serial_gradient(trainer: Trainer, rows: np.ndarray) -> tuple[np.ndarray, np.
     scale = trainer.batch_scale(rows)  # 1/G, or 1/Σw of the batch's weights
     ws = trainer.model.workspace(trainer.ws.rows)
     ws.norm_input = {h: np.zeros_like(ws.Z[h]) for h in normed}  # ∂loss/∂H before the norm kernel overwrites it
+    embedded = bool(model.embeddings)
+    if embedded:  # dA₀ of every sample, as the part's backward formed it
+        ws.input_gradient = np.zeros_like(ws.inputs)
+        dA0_full = np.zeros((G, model.sizes[0]), dtype=model.dtype)
     # The parts the ranks computed (fast: one shard per rank; exact: the fixed chunks, whose shapes do not depend
     # on P), recomputed here with the same shapes.
     for lo, hi in trainer.exchange.part_bounds(G):
         part = rows[lo:hi]
         n = part.size
-        take_rows(trainer.data.X, part, trainer.data.mean, trainer.data.inv_std, ws.inputs)
+        trainer.take_inputs(part, ws)
         ws.forward_loss(n, trainer.take_targets(part), trainer.take_weights(part), scale, step=trainer.step_count,
                         rows=part)
         for h in normed:
@@ -84,11 +89,14 @@ def serial_gradient(trainer: Trainer, rows: np.ndarray) -> tuple[np.ndarray, np.
         for l, dZ in ws.backward(n, scratch):
             A_full[l][lo:hi] = ws.A[l][:n]
             dZ_full[l][lo:hi] = dZ
+        if embedded:
+            dA0_full[lo:hi] = ws.input_gradient[:n]
         for h in normed:  # dN = f'(N) ⊙ ∂loss/∂H in the dtype, as the norm kernel forms it
             dN = ws.norm_input[h][:n].copy()
             act.backward(ws.preactivations(h, n), ws.H[h][:n], dN, model.hidden_codes[h])
             dN_full[h][lo:hi] = dN
     ws.norm_input = None
+    ws.input_gradient = None
     grad = np.zeros_like(trainer.grads)
     bound = np.zeros(grad.size, dtype=np.float64)
     dWs, dbs = model.views(grad)
@@ -110,6 +118,12 @@ def serial_gradient(trainer: Trainer, rows: np.ndarray) -> tuple[np.ndarray, np.
         d64 = np.abs(dN_full[h].astype(np.float64))
         abs_gains[h][...] = (d64 * np.abs(xhat)).sum(axis=0)
         abs_shifts[h][...] = d64.sum(axis=0)
+    if embedded:  # the tables' rows: one serial scatter-add over all G samples, by the training kernel
+        codes = np.ascontiguousarray(trainer.data.codes[rows])
+        layers.embedding_backward(dA0_full, codes, model.n_numeric, model.embedding_offsets, model.embedding_widths,
+                                  grad)
+        layers.embedding_backward(np.abs(dA0_full.astype(np.float64)), codes, model.n_numeric,
+                                  model.embedding_offsets, model.embedding_widths, bound)
     return grad, bound
 
 

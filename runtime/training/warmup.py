@@ -5,7 +5,6 @@ from __future__ import annotations
 import time
 
 import numpy as np
-from shardmill.data.rows import take_rows
 from shardmill.kernels import optim as kernels_optim
 from shardmill.training.optim import Optimizer
 from shardmill.training.trainer import Trainer
@@ -24,7 +23,7 @@ def warm_up_kernels(trainer: Trainer) -> float:
         # two rows, or one where the workspace holds one (a global batch or exact chunk of one row)
         rows = trainer.data.split.train[: min(2, trainer.data.split.train.size, trainer.ws.rows)]
         grads = np.zeros_like(trainer.grads)
-        take_rows(trainer.data.X, rows, trainer.data.mean, trainer.data.inv_std, trainer.ws.inputs)
+        trainer.take_inputs(rows)
         targets = trainer.take_targets(rows)
         # step and rows: the dropout kernels compile too (the mask is a pure function; the workspace is scratch)
         trainer.ws.forward_loss(rows.size, targets, trainer.take_weights(rows), 1.0, step=0, rows=rows)

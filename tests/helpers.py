@@ -100,3 +100,26 @@ def is_nearest_float32(result: np.float32, exact: Fraction) -> bool:
         if neighbour_error == error and np.array([result]).view(np.uint32)[0] & 1:
             return False
     return True
+
+
+def stop_a_run(job: Path, ranks: int, metrics: Path, records: int = 3, signum: int | None = None,
+               timeout: float = 120) -> tuple[int, str]:
+    """Train ``job`` on ``ranks`` processes (``--ranks``), send the launcher SIGTERM (or ``signum``) once ``metrics``
+    holds ``records`` lines, and return (exit status, stderr). The whole process group is killed if it lingers."""
+    import os
+    import signal
+    import time
+
+    command = [sys.executable, "-m", "shardmill", "train", str(job), "--ranks", str(ranks), "--no-progress"]
+    process = subprocess.Popen(command, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+                               env=rank_environment(threads=1, launched=False), start_new_session=True)
+    try:
+        deadline = time.monotonic() + timeout
+        while not (metrics.exists() and metrics.read_text().count("\n") >= records) and time.monotonic() < deadline:
+            time.sleep(0.05)
+        os.kill(process.pid, signal.SIGTERM if signum is None else signum)
+        _, err = process.communicate(timeout=60)
+    finally:
+        if process.poll() is None:
+            os.killpg(process.pid, signal.SIGKILL)
+    return process.returncode, err

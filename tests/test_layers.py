@@ -10,11 +10,7 @@ SIGTERM-and-resume at another P; the bad-input lines.
 from __future__ import annotations
 
 import hashlib
-import os
 import signal
-import subprocess
-import sys
-import time
 from pathlib import Path
 
 import autograd.numpy as anp
@@ -23,10 +19,9 @@ import pytest
 import shardmill as sm
 from autograd import grad as autograd_grad
 from autograd.scipy.special import logsumexp as anp_logsumexp
-from helpers import make_classification, run_cli, run_mpi, write_job
+from helpers import make_classification, run_cli, run_mpi, stop_a_run, write_job
 from shardmill.errors import JobError
 from shardmill.kernels import layers as K
-from shardmill.parallel.launch import rank_environment
 
 EPS = 1e-5  # layer normalisation's ε, as docs/models.md states it
 MASK64 = (1 << 64) - 1
@@ -297,20 +292,8 @@ def test_a_sigterm_and_a_resume_at_another_process_count_give_the_same_bits(tmp_
     straight = exact_job(tmp_path / "straight", tmp_path, epochs=40)
     assert run_cli(["train", str(straight), "--ranks", "3", "--no-progress"], timeout=300).returncode == 0
     job = exact_job(tmp_path / "stopped", tmp_path, epochs=40)
-    command = [sys.executable, "-m", "shardmill", "train", str(job), "--ranks", "2", "--no-progress"]
-    process = subprocess.Popen(command, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
-                               env=rank_environment(threads=1, launched=False), start_new_session=True)
-    try:
-        metrics = tmp_path / "stopped" / "run" / "metrics.jsonl"
-        deadline = time.monotonic() + 120
-        while not (metrics.exists() and metrics.read_text().count("\n") >= 3) and time.monotonic() < deadline:
-            time.sleep(0.05)
-        os.kill(process.pid, signal.SIGTERM)
-        _, err = process.communicate(timeout=60)
-    finally:
-        if process.poll() is None:
-            os.killpg(process.pid, signal.SIGKILL)
-    assert process.returncode == 128 + signal.SIGTERM, err[-3000:]
+    status, err = stop_a_run(job, 2, tmp_path / "stopped" / "run" / "metrics.jsonl")
+    assert status == 128 + signal.SIGTERM, err[-3000:]
     assert not (tmp_path / "stopped" / "run" / "final.npz").exists()
     resumed = run_cli(["train", str(job), "--ranks", "4", "--resume", "--no-progress"], timeout=300)
     assert resumed.returncode == 0, resumed.stderr[-3000:]

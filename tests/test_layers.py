@@ -2,9 +2,9 @@
 
 Gradients of ``MLP.loss_and_grad`` against the independent reverse-mode autodiff library ``autograd`` on a model
 written here in ``autograd.numpy`` (float64); the kernels against NumPy written here; the dropout decision against a
-pure-Python transcription of the documented hash (SplitMix64, Steele, Lea & Flood 2014; MurmurHash3's fmix32,
-Appleby 2011); the decision's independence of how rows are cut; exact mode's bits for P = 1…4 and across a
-SIGTERM-and-resume at another P; the bad-input lines.
+pure-Python rewrite of the hash docs/models.md spells out (SplitMix64, Steele et al. 2014; MurmurHash3's
+fmix32 finaliser, Appleby 2011); the decision's independence of how rows are cut; exact mode's bits for P = 1…4 and
+across a SIGTERM-and-resume at another P; the bad-input lines.
 """
 
 from __future__ import annotations

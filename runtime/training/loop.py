@@ -15,7 +15,7 @@ import numpy as np
 from shardmill import checkpoint
 from shardmill.config import Job
 from shardmill.errors import JobError
-from shardmill.parallel.comm import Comm, lead_then_share
+from shardmill.parallel.comm import Comm
 from shardmill.training import saving
 from shardmill.training.console import Console, compiling_notice, kernels_cached, kernels_ready, say
 from shardmill.training.health import HealthWatch
@@ -27,8 +27,7 @@ from shardmill.training.workdir import (
     WorkdirLock,
     check_resumable,
     claim_workdir,
-    has_checkpoint,
-    holds_results,
+    continue_or_start,
 )
 from threadpoolctl import threadpool_limits
 
@@ -49,9 +48,8 @@ def train(job: Job, comm: Comm | None = None, resume: bool | str = False, progre
     comm = comm or Comm()
     with WorkdirLock(job.workdir, comm):
         if resume == "auto":
-            resume = has_checkpoint(job.workdir, comm)
-            if not resume:  # an attempt that never checkpointed leaves only its records, which go; results stay
-                fresh = fresh or not lead_then_share(comm, lambda: holds_results(job.workdir), share=True)
+            resume, clear = continue_or_start(job.workdir, comm)
+            fresh = fresh or clear
         if resume:
             check_resumable(job.workdir, comm)  # before the data is read (a table may take a while to convert)
         else:

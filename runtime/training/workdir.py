@@ -81,19 +81,22 @@ def check_resumable(workdir: Path, comm: Comm) -> None:
     lead_then_share(comm, check)
 
 
-def has_checkpoint(workdir: Path, comm: Comm) -> bool:
-    """Whether the workdir holds a checkpoint to resume from (rank 0 looks; every rank learns the answer)."""
+def continue_or_start(workdir: Path, comm: Comm) -> tuple[bool, bool]:
+    """``train --continue``: (resume, fresh) for this workdir, decided by rank 0 and shared in one message.
 
-    def look() -> bool:
+    Resume when it holds a checkpoint. Otherwise start; an earlier attempt that never checkpointed left only records,
+    which go (fresh), but a run's results (final.npz, best.npz) are never cleared: then the usual refusal follows.
+    """
+
+    def look() -> tuple[bool, bool]:
         root = workdir / "checkpoints"
-        return bool(root.is_dir() and checkpoint.latest_name(root))  # a damaged index raises CheckpointError
+        if root.is_dir() and checkpoint.latest_name(root):  # a damaged index raises CheckpointError
+            return True, False
+        results = (workdir / "final.npz").exists() or (workdir / "best.npz").exists()
+        return False, not results
 
-    return bool(lead_then_share(comm, look, share=True))
-
-
-def holds_results(workdir: Path) -> bool:
-    """Whether the workdir holds a run's results (final.npz, best.npz): ``--continue`` never clears those."""
-    return (workdir / "final.npz").exists() or (workdir / "best.npz").exists()
+    resume, fresh = lead_then_share(comm, look, share=True)
+    return bool(resume), bool(fresh)
 
 
 def claim_workdir(workdir: Path, fresh: bool, comm: Comm) -> None:

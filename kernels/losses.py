@@ -224,3 +224,17 @@ def squared_error_sum(O, T):
             d = O[i, j] - T[i, j]
             total += d * d
     return total
+
+
+@njit(cache=True)
+def squared_error_sum_scaled(O, T, S):
+    """Σ ((o − t)·s_j)² over all elements, float64: the squared error in the targets' own units of outputs and
+    targets standardised per output j by the standard deviations S (k,) float64 (``data.standardize_targets``;
+    the means cancel). O, T: (n, k)."""
+    n, k = O.shape
+    total = 0.0
+    for i in range(n):
+        for j in range(k):
+            d = (O[i, j] - T[i, j]) * S[j]
+            total += d * d
+    return total

@@ -2,7 +2,8 @@
 
 Layout under ``workdir/checkpoints/``::
 
-    step-00000500/params.npz      W0, b0, W1, b1, … and the input standardisation (input_mean, input_inv_std)
+    step-00000500/params.npz      W0, b0, W1, b1, … and the input standardisation (input_mean, input_inv_std;
+                                  target_mean, target_std when the targets were standardised)
     step-00000500/optimizer.npz   the optimizer's flat state arrays (velocity, or m and v), params layout
     step-00000500/state.json      step, epoch, sampler position, optimizer updates, job, job digest, checksums
     index.json                    the complete checkpoints, oldest first (name, step, epoch, time written,
@@ -60,6 +61,13 @@ class TrainingState:
     best: dict[str, Any] | None = None  # the best-model tracker (run.best_metric): resumes with the run
     weights: dict[str, Any] | None = None  # the row weights' record (class weights, Σ w of the training rows)
     categories: list[dict[str, Any]] | None = None  # categorical columns: {column, vocabulary, width} each
+    target_mean: np.ndarray | None = None  # (k,) float64: the target scaling (data.standardize_targets), or None
+    target_std: np.ndarray | None = None  # (k,) float64
+
+
+STATISTICS = ("input_mean", "input_inv_std", "target_mean", "target_std")
+"""The float64 arrays beside the parameters in params.npz and final.npz: the input standardisation and, when
+``data.standardize_targets`` scaled the targets, their means and standard deviations (each (k,))."""
 
 
 def sha256(path: Path) -> str:
@@ -96,6 +104,9 @@ def model_arrays(state: TrainingState) -> dict[str, np.ndarray]:
     arrays = {name: np.ascontiguousarray(view) for name, view in state.params.items()}
     arrays["input_mean"] = state.input_mean
     arrays["input_inv_std"] = state.input_inv_std
+    if state.target_mean is not None and state.target_std is not None:
+        arrays["target_mean"] = state.target_mean
+        arrays["target_std"] = state.target_std
     return arrays
 
 
@@ -359,7 +370,7 @@ def check_state(directory: Path, state: dict[str, Any], params: dict[str, np.nda
         raise CheckpointError(f"{where}: state.json's job does not match its recorded digest: the job was edited")
     dtype = state.get("dtype")
     for name, array in params.items():
-        if name not in ("input_mean", "input_inv_std") and array.dtype.name != dtype:
+        if name not in STATISTICS and array.dtype.name != dtype:
             raise CheckpointError(f"{where}: tensor {name} is {array.dtype}, the checkpoint's dtype is {_short(dtype)}")
         if not np.all(np.isfinite(array)):
             raise CheckpointError(f"{where}: tensor {name} holds a non-finite value")
@@ -418,7 +429,8 @@ def check_compatible(job: Job, shapes: dict[str, tuple[int, ...]], optimizer_sha
 
 
 def write_final(path: Path, state: TrainingState) -> None:
-    """``final.npz`` (or ``best.npz``): W0, b0, …, input_mean, input_inv_std, and as JSON strings (0-d unicode
+    """``final.npz`` (or ``best.npz``): W0, b0, …, input_mean, input_inv_std (and target_mean, target_std when the
+    targets were standardised), and as JSON strings (0-d unicode
     arrays): ``model_json`` (the [model] table), ``job_json`` (the whole resolved job), ``job_digest``,
     ``feature_names_json`` (a list of input column names, or null), ``categories_json`` (with categorical inputs:
     [{column, vocabulary, width}, …]) and ``step`` (an int64 scalar)."""

@@ -101,8 +101,9 @@ SCHEMA: tuple[Key, ...] = (
         "here", choices=ACTIVATIONS + ("auto",),
         allowed="auto; with " + ", ".join(name for name, entry in LOSS_TABLE.items() if entry.output_choosable)
         + " also " + ", ".join(sorted(ACTIVATIONS))),
-    Key("model.huber_delta", "number", HUBER_DELTA, "δ of the huber loss, in the targets' units: residuals up to δ "
-        "count quadratically, beyond it linearly (Huber 1964); only with `model.loss` = 'huber'", low=0.0,
+    Key("model.huber_delta", "number", HUBER_DELTA, "δ of the huber loss, in the units the loss sees (standard "
+        "deviations of the target when `data.standardize_targets` scales it, else the targets' own): residuals up "
+        "to δ count quadratically, beyond it linearly (Huber 1964); only with `model.loss` = 'huber'", low=0.0,
         low_open=True, digest_default=False),
     Key("model.norm", "choice", "none", "normalisation of every hidden layer: none, or layer (Ba, Kiros & Hinton "
         "2016: each row's pre-activations scaled to mean 0 and variance 1, then a learned gain and shift, before the "
@@ -131,6 +132,10 @@ SCHEMA: tuple[Key, ...] = (
         low=0.0, high=0.9),
     Key("data.standardize", "flag", True, "scale each input column by the mean and standard deviation of the "
         "training rows (identical on every rank)"),
+    Key("data.standardize_targets", "flag", True, "train a regression model (squared_error, huber or "
+        "absolute_error with an identity output) on targets scaled to mean 0 and standard deviation 1 per output "
+        "over the training rows; metrics, predictions and the exported model stay in the targets' own units "
+        "(docs/models.md)", digest_default=False),
     Key("data.weights", "file", "", "sample weights, one ≥ 0 per row: a column name of `data.inputs` (a table), "
         "or a .npy, .npz, .csv or .parquet file (told apart by the suffix); the loss is then Σ w·ℓ / Σ w over the "
         "global batch; empty: every row weighs 1", allowed="a column name, or a .npy, .npz, .csv or .parquet path",
@@ -259,6 +264,7 @@ class DataSpec:
     header: str = default("data.header")
     validation_fraction: float = default("data.validation_fraction")
     standardize: bool = default("data.standardize")
+    standardize_targets: bool = default("data.standardize_targets")
     weights: str = default("data.weights")
     class_weights: str | list[float] = default("data.class_weights")
     categorical: list[str] = field(default_factory=list)

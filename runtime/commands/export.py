@@ -3,7 +3,7 @@
 The graph computes what :meth:`shardmill.model.predictor.Predictor.outputs` computes, from raw inputs:
 
     inputs (N, d) ─ standardise ─ per layer l: MatMul W_l, Add b_l, [layer norm], activation, [Add the skip]
-    ─ outputs (N, k)
+    ─ [unscale] ─ outputs (N, k)
 
 The standardisation stays two nodes (Sub input_mean, Mul input_inv_std) in float64, as training applied it
 (``kernels/data.py``: (x − mean) · inv_std in float64, stored in the model's dtype); a float32 graph casts its
@@ -15,7 +15,9 @@ the graph means exactly our definition whatever the runtime: no fused GELU or So
 (erf or tanh form; log(1 + eˣ) without the stable split). Layer normalisation is written out the same way (row mean
 and variance in float64 as ``kernels/layers.py`` forms them, then (z − μ)·r·g + β in the model's dtype), not as the
 LayerNormalization op (opset 17 only, and its ε and precision are the runtime's). Dropout is absent: inverted dropout
-scales at training time, so inference is the identity (Srivastava et al. 2014).
+scales at training time, so inference is the identity (Srivastava et al. 2014). A model trained on standardised
+targets ends in two nodes more, Mul target_std and Add target_mean in float64 (as ``Predictor.unscale``), so the
+graph answers in the targets' own units.
 
 A model with categorical columns takes a second input, "codes" (N, c) int64: column j holds each row's code of the
 j-th categorical column by the vocabulary in the model card (code i ≥ 1 is vocabulary[i − 1], 0 the unknown slot;
@@ -147,6 +149,8 @@ def build_onnx(predictor: Predictor, opset: int = DEFAULT_OPSET) -> onnx.ModelPr
             z = g.layer_norm(z, g.tensor(f"G{l}", model.gains[l]), g.tensor(f"B{l}", model.shifts[l]), scope)
         h = g.activation(activations[l], z, scope)
         x = g.op("Add", h, x, scope=scope) if l < model.n_layers - 1 and model.skips[l] else h
+    if predictor.target_std is not None:
+        x = unscale(g, predictor, x)
     if g.nodes[-1].output[0] != x:
         raise AssertionError("the graph's last node must produce its output")
     g.nodes[-1].output[0] = "outputs"
@@ -175,6 +179,19 @@ def build_onnx(predictor: Predictor, opset: int = DEFAULT_OPSET) -> onnx.ModelPr
            if predictor.categories else {}),
     })
     return onnx_model
+
+
+def unscale(g: _GraphBuilder, predictor: Predictor, x: str) -> str:
+    """o · target_std + target_mean (N, k) in float64, cast back to the model's dtype: the targets' own units."""
+    scope = "unscale/"
+    dtype = predictor.model.dtype
+    if dtype != np.float64:
+        x = g.op("Cast", x, scope=scope, to=TensorProto.DOUBLE)
+    x = g.op("Mul", x, g.tensor("target_std", predictor.target_std.astype(np.float64)), scope=scope)
+    x = g.op("Add", x, g.tensor("target_mean", predictor.target_mean.astype(np.float64)), scope=scope)
+    if dtype != np.float64:
+        x = g.op("Cast", x, scope=scope, to=helper.np_dtype_to_tensor_dtype(dtype))
+    return x
 
 
 def embed(g: _GraphBuilder, model, x: str) -> str:
@@ -255,9 +272,9 @@ def model_card(predictor: Predictor, source: Path) -> dict[str, Any]:
 
     Fields: format, format_version, source, dtype, inputs (count, feature_names, mean, inv_std, std = 1/inv_std,
     how they are applied), layers (fan_in, fan_out, tensor names, norm and its tensors, activation and its formula,
-    dropout rate in training, residual skip), output (activation,
-    formula, loss, loss formula, labels), training (job, digest, step) and metrics (the workdir's last epoch record
-    of metrics.jsonl up to the model's step, or null).
+    dropout rate in training, residual skip), output (activation, formula, loss, loss formula, labels,
+    target_scaling: mean, std and rule, or null), training (job, digest, step) and metrics (the workdir's last
+    epoch record of metrics.jsonl up to the model's step, or null).
     """
     model = predictor.model
     activations = [*model.activations, output_activation(predictor)]
@@ -299,6 +316,10 @@ def model_card(predictor: Predictor, source: Path) -> dict[str, Any]:
             "loss": model.loss,
             "loss_formula": model.loss_entry.formula,
             "labels": model.loss_entry.label_rule,
+            "target_scaling": None if predictor.target_std is None else {
+                "mean": predictor.target_mean.tolist(), "std": predictor.target_std.tolist(),
+                "rule": "the network was trained on (t − mean) / std per output (data.standardize_targets); the "
+                        "graph's last nodes give o · std + mean in float64, cast to dtype: the targets' own units"},
         },
         "training": {"job": predictor.job, "digest": predictor.digest, "step": predictor.step},
         "metrics": last_epoch_record(_workdir_of(source), predictor.step),

@@ -97,5 +97,5 @@ def cmd_predict(args) -> int:
     shape = f"{written.shape[0]}" if written.ndim == 1 else f"{written.shape[0]} × {written.shape[1]}"
     print(f"wrote {shape} {what} to {args.out}")
     if targets is not None:
-        print(json.dumps(metrics(predictor.model, outputs, targets)))
+        print(json.dumps(metrics(predictor, outputs, targets)))
     return 0

@@ -13,6 +13,7 @@ from shardmill.data.categories import Category
 from shardmill.data.files import open_job_data, open_job_weights
 from shardmill.data.rows import Split, as_numbers, block_range, column_statistics, first_of_ranks, split_rows
 from shardmill.errors import JobError
+from shardmill.model.activations import OUTPUTS
 from shardmill.model.mlp import MLP, check_weights
 from shardmill.parallel.comm import Comm, share_error
 
@@ -31,6 +32,14 @@ class Dataset:
     class_weights: list[float] | None = None  # the class weights used (data.class_weights resolved), or None
     categories: list[Category] = field(default_factory=list)  # the categorical columns' vocabularies and widths
     codes: np.ndarray | None = None  # (n, c) int64 category codes of every row (0: unknown); None without any
+    target_mean: np.ndarray | None = None  # (k,) float64: the targets' scaling (data.standardize_targets), or None
+    target_std: np.ndarray | None = None  # (k,) float64, > 0: ``targets`` holds (t − target_mean) / target_std
+
+    def target_record(self) -> dict[str, list[float]] | None:
+        """What a checkpoint keeps of the target scaling, to refuse a resume whose targets scale otherwise."""
+        if self.target_mean is None or self.target_std is None:
+            return None
+        return {"mean": self.target_mean.tolist(), "std": self.target_std.tolist()}
 
     def weight_record(self) -> dict[str, Any] | None:
         """What a checkpoint keeps of the weights, to refuse a resume whose weights differ: the class weights, Σ w
@@ -75,10 +84,38 @@ def load_dataset(job: Job, model: MLP, comm: Comm, categories: list[Category] | 
         raise JobError(f"{where}`data.inputs` row {bad} holds a non-finite value (NaN or inf)")
     if not job.data.standardize:
         mean, inv_std = np.zeros(X.shape[1]), np.ones(X.shape[1])
+    target_mean, target_std = target_statistics(job, model, targets, y, split)
+    if target_mean is not None:
+        targets = ((np.asarray(y, dtype=np.float64).reshape(targets.shape) - target_mean) / target_std
+                   ).astype(targets.dtype)
     raw_weights = open_job_weights(job, comm)  # collective; the same array on every rank, so the checks agree
     weights, class_weights = row_weights(job, targets, split, raw_weights, model.sizes[-1])
     return Dataset(X=X, targets=targets, split=split, mean=mean, inv_std=inv_std, feature_names=feature_names,
-                   weights=weights, class_weights=class_weights, categories=list(categories or []), codes=codes)
+                   weights=weights, class_weights=class_weights, categories=list(categories or []), codes=codes,
+                   target_mean=target_mean, target_std=target_std)
+
+
+def scales_targets(job: Job, model: MLP) -> bool:
+    """Whether the job trains on standardised targets: ``data.standardize_targets`` with a loss of real targets
+    of any scale (squared_error, huber, absolute_error) and an identity output. A bounded output (sigmoid, tanh…)
+    was chosen for the targets' own range, and poisson's counts and the classifiers' labels are not scaled."""
+    return bool(job.data.standardize_targets and model.loss_entry.scaled_targets
+                and OUTPUTS[model.output].unbounded)
+
+
+def target_statistics(job: Job, model: MLP, targets: np.ndarray, raw: np.ndarray,
+                      split: Split) -> tuple[np.ndarray | None, np.ndarray | None]:
+    """The mean and standard deviation of each output's targets over the training rows, (k,) float64 each (a
+    constant target's deviation counts as 1), from the ``raw`` targets in float64; (None, None) when the job does
+    not scale them (:func:`scales_targets`). Every rank holds every target, so every rank and every P computes the
+    same bits."""
+    if not scales_targets(job, model):
+        return None, None
+    values = np.asarray(raw, dtype=np.float64).reshape(targets.shape)[split.train]
+    mean = values.mean(axis=0)
+    std = values.std(axis=0)
+    std[~(std > 0)] = 1.0
+    return mean, std
 
 
 def row_weights(job: Job, targets: np.ndarray, split: Split, raw: np.ndarray | None,

@@ -33,7 +33,8 @@ class Activation:
     implies (softmax, per row, and exp: their kernels are in ``kernels/losses.py``, applied by the loss).
     relu_family: He initialisation suits it (``model.init = "auto"``). watch_saturation: the health diagnostics
     report the fraction of units with |z| > 4, where f' nearly vanishes; watch_dead: they report the fraction of
-    units zero on every row.
+    units zero on every row. unbounded: f's range is all of ℝ, so an output layer with it can reach targets
+    that ``data.standardize_targets`` scaled (a bounded output was chosen for the targets' own range).
     forward: f(z) in numpy, float64 in and out, (n, m) → (n, m), in the kernel's own form (the reference
     tests compare with outside formulas). onnx: emits f(z) into a graph builder (``onnx(g, z, scope)`` → the
     output's name), in the kernel's operations and order. formula: f(z) as text (docs/models.md, the model card).
@@ -49,6 +50,7 @@ class Activation:
     relu_family: bool = False
     watch_saturation: bool = False
     watch_dead: bool = False
+    unbounded: bool = False
 
 
 def _log1p(g: Builder, u: str, scope: str) -> str:
@@ -129,7 +131,7 @@ def _softmax(z: np.ndarray) -> np.ndarray:
 
 
 _TABLE = (
-    Activation("identity", kernels.IDENTITY, lambda z: z, _identity_onnx, "f(z) = z", "none"),
+    Activation("identity", kernels.IDENTITY, lambda z: z, _identity_onnx, "f(z) = z", "none", unbounded=True),
     Activation("sigmoid", kernels.SIGMOID, _sigmoid, _sigmoid_onnx,
                "f(z) = 1 / (1 + exp(−z)) for z ≥ 0, exp(z) / (1 + exp(z)) for z < 0",
                "`Abs`, `Neg`, `Exp` (e = exp(−|z|)), `GreaterOrEqual`, `Where` (1 or e), `Add`, `Div`",

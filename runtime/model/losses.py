@@ -48,7 +48,9 @@ class Loss:
     reference(o, targets) → the loss of each row (n,) in numpy float64, from the outputs o after the output
     activation (probabilities rounded to 0 or 1 are clipped to the smallest positive double). formula: the loss
     as the kernel computes it (docs, model card). synthetic_targets(rng, rows, k, dtype): random targets of the
-    right kind (benchmarks). parameters: the ``[model]`` keys the loss reads (huber: huber_delta); bind(entry,
+    right kind (benchmarks). parameters: the ``[model]`` keys the loss reads (huber: huber_delta).
+    scaled_targets: real targets of any sign and scale, which ``data.standardize_targets`` may scale to mean 0 and
+    standard deviation 1 (with an identity output; see :func:`shardmill.data.dataset.target_statistics`). bind(entry,
     values) → the entry with them fixed (see :meth:`bound`).
     """
 
@@ -72,6 +74,7 @@ class Loss:
     formula: str
     synthetic_targets: Callable[[np.random.Generator, int, int, Any], np.ndarray]
     parameters: tuple[str, ...] = ()
+    scaled_targets: bool = False
     bind: Callable[[Loss, dict[str, float]], Loss] | None = None
 
     def bound(self, **values: float) -> Loss:
@@ -267,7 +270,8 @@ def _bind_huber(entry: Loss, values: dict[str, float]) -> Loss:
 
 
 HUBER_DELTA = 1.0
-"""``model.huber_delta``'s default: residuals beyond one target unit count linearly."""
+"""``model.huber_delta``'s default: residuals beyond one unit the loss sees (one standard deviation of a
+standardised target) count linearly."""
 
 
 def _normal(rng, rows, k, dtype):
@@ -307,7 +311,7 @@ _TABLE = (
          label_rule="none: the outputs are the prediction",
          reference=_half_squared_error,
          formula="per row: ½ Σ_j (o_j − t_j)², o the outputs after the output activation",
-         synthetic_targets=_normal),
+         synthetic_targets=_normal, scaled_targets=True),
     Loss("huber", kernels.HUBER, "identity", False,
          lambda *args: _huber(*args, HUBER_DELTA), _outputs_already_there, class_labels=False, target_range=None,
          targets_text="real targets (n, k)",
@@ -319,7 +323,7 @@ _TABLE = (
          reference=lambda o, targets: _huber_of_rows(o, targets, HUBER_DELTA),
          formula="per row: Σ_j h(o_j − t_j), h(r) = ½r² for |r| ≤ δ, δ·(|r| − ½δ) beyond, δ = `model.huber_delta` "
                  "(Huber 1964)",
-         synthetic_targets=_normal, parameters=("huber_delta",), bind=_bind_huber),
+         synthetic_targets=_normal, parameters=("huber_delta",), scaled_targets=True, bind=_bind_huber),
     Loss("absolute_error", kernels.ABSOLUTE_ERROR, "identity", False,
          _absolute_error, _outputs_already_there, class_labels=False, target_range=None,
          targets_text="real targets (n, k)",
@@ -330,7 +334,7 @@ _TABLE = (
          label_rule="none: the outputs are the prediction",
          reference=_absolute_error_of_rows,
          formula="per row: Σ_j |o_j − t_j|; its gradient is sign(o − t), 0 where o = t",
-         synthetic_targets=_normal),
+         synthetic_targets=_normal, scaled_targets=True),
     Loss("poisson", kernels.POISSON, "exp", True,
          _poisson, _exp_outputs, class_labels=False, target_range=(0.0, math.inf),
          targets_text="counts (n, k), any value ≥ 0",

@@ -1,4 +1,4 @@
-"""A trained model with its input standardisation: ``Predictor`` and ``load_model``."""
+"""A trained model with its input standardisation (and target scaling): ``Predictor`` and ``load_model``."""
 
 from __future__ import annotations
 
@@ -17,11 +17,12 @@ from shardmill.model.vocabulary import Category
 
 
 class Predictor:
-    """A trained MLP together with the input standardisation it was trained with.
+    """A trained MLP together with the input standardisation (and target scaling) it was trained with.
 
     Every method takes raw inputs X (n, d), as the training data held them (any real dtype), standardises them
     with ``(X − input_mean) · input_inv_std`` in float64 (as training did), casts to the model's dtype and runs
-    the forward pass.
+    the forward pass. A model trained on standardised targets (``data.standardize_targets``) answers in the
+    targets' own units: ``o · target_std + target_mean`` in float64, cast to the model's dtype.
 
     Parameters
     ----------
@@ -33,12 +34,15 @@ class Predictor:
     categories: the categorical columns (vocabulary and width each), in the model's order; the methods then take
         ``categories={column: values}`` beside X (text or integers; a value unseen in training takes the unknown
         slot).
+    target_mean, target_std: (k,) float64, the training rows' target means and standard deviations when the model
+        was trained on standardised targets, else None.
     """
 
     def __init__(self, model: MLP, input_mean: np.ndarray, input_inv_std: np.ndarray,
                  feature_names: list[str] | None = None, job: dict[str, Any] | None = None,
                  digest: str | None = None, step: int | None = None,
-                 categories: list[Category] | None = None) -> None:
+                 categories: list[Category] | None = None, target_mean: np.ndarray | None = None,
+                 target_std: np.ndarray | None = None) -> None:
         d = model.n_numeric
         self.model = model
         self.input_mean = np.asarray(input_mean, dtype=np.float64)
@@ -53,6 +57,13 @@ class Predictor:
         self.digest = digest
         self.step = step
         self.categories = list(categories or [])
+        self.target_mean = None if target_mean is None else np.asarray(target_mean, dtype=np.float64)
+        self.target_std = None if target_std is None else np.asarray(target_std, dtype=np.float64)
+        k = model.sizes[-1]
+        if (self.target_mean is None) != (self.target_std is None) or (
+                self.target_mean is not None and (self.target_mean.shape != (k,) or self.target_std.shape != (k,))):
+            raise JobError(f"target_mean and target_std must both be given, shape ({k},) for a model with {k} "
+                           f"outputs, or both be None")
         if [c.column for c in self.categories] != [column for column, _, _ in model.embeddings]:
             raise JobError(f"`categories` must describe the model's categorical columns "
                            f"{[column for column, _, _ in model.embeddings]}")
@@ -69,12 +80,12 @@ class Predictor:
 
     @property
     def loss(self) -> str:
-        """The training loss: softmax_cross_entropy, binary_cross_entropy or squared_error."""
+        """The training loss's name (``model/losses.py``: softmax_cross_entropy, squared_error, huber…)."""
         return self.model.loss
 
     @property
     def is_classifier(self) -> bool:
-        """True for the cross-entropy losses (labels and probabilities), False for squared_error."""
+        """True for the cross-entropy losses (labels and probabilities), False for the regression losses."""
         return self.model.loss_entry.classifier
 
     def standardise(self, X: np.ndarray, name: str = "inputs") -> np.ndarray:
@@ -113,11 +124,18 @@ class Predictor:
 
     def outputs(self, X: np.ndarray, categories: dict[str, Any] | None = None) -> np.ndarray:
         """The output layer after its output activation, (n, k) in the model's dtype: softmax probabilities
-        (softmax_cross_entropy), sigmoid probabilities (binary_cross_entropy) or the regression outputs
-        (squared_error, after ``model.output``). What ``shardmill predict`` writes. ``categories``: {column:
-        values} of a model with categorical columns."""
+        (softmax_cross_entropy), sigmoid probabilities (binary_cross_entropy) or the regression outputs (after
+        ``model.output``; in the targets' own units when they were standardised). What ``shardmill predict``
+        writes. ``categories``: {column: values} of a model with categorical columns."""
         inputs = self.standardise(X)
-        return self.model.predict(inputs, codes=self.codes(categories, inputs.shape[0]))
+        return self.unscale(self.model.predict(inputs, codes=self.codes(categories, inputs.shape[0])))
+
+    def unscale(self, outputs: np.ndarray) -> np.ndarray:
+        """Outputs (n, k) of the network in the targets' own units: ``o · target_std + target_mean`` in float64,
+        cast back to the model's dtype (as the exported graph's last nodes); unchanged without target scaling."""
+        if self.target_std is None:
+            return outputs
+        return (outputs.astype(np.float64) * self.target_std + self.target_mean).astype(outputs.dtype)
 
     def predict_proba(self, X: np.ndarray, categories: dict[str, Any] | None = None) -> np.ndarray:
         """Class probabilities of a classifier: (n, k) softmax rows summing to 1, or (n, k) independent
@@ -132,7 +150,7 @@ class Predictor:
 
         softmax_cross_entropy: the class index of the largest probability, (n,) int64;
         binary_cross_entropy: 1 where the probability exceeds 0.5, else 0, (n, k) int64;
-        squared_error: the outputs, (n, k) in the model's dtype.
+        the regression losses: the outputs, (n, k) in the model's dtype (the targets' own units).
         """
         return self.to_labels(self.outputs(X, categories))
 
@@ -188,15 +206,25 @@ def load_model(path: Path | str) -> Predictor:
     for name in ("input_mean", "input_inv_std"):
         if name not in arrays or arrays[name].shape != (model.n_numeric,):
             raise CheckpointError(f"{str(path)!r}: {name} is missing or has the wrong shape")
+    scaling = [arrays.get(name) for name in ("target_mean", "target_std")]
+    for array in scaling:
+        if array is not None and array.shape != (model.sizes[-1],):
+            raise CheckpointError(f"{str(path)!r}: the target scaling has shape {array.shape}; the model has "
+                                  f"{model.sizes[-1]} outputs")
     return Predictor(model, arrays["input_mean"], arrays["input_inv_std"], feature_names=feature_names, job=job,
-                     digest=digest, step=step, categories=categories)
+                     digest=digest, step=step, categories=categories, target_mean=scaling[0], target_std=scaling[1])
 
 
-def metrics(model: MLP, outputs: np.ndarray, targets: np.ndarray) -> dict[str, float]:
+def metrics(predictor: Predictor, outputs: np.ndarray, targets: np.ndarray) -> dict[str, float]:
     """The loss (mean per row, as training logs it; see docs/metrics.md) and accuracy for a classifier, or RMSE for
     a regression model, of outputs (n, k) against targets, from the numpy references of the loss's entry
     (:mod:`shardmill.model.losses`). Losses are computed from the outputs in float64, so an output probability
-    rounded to 0 or 1 is clipped to the smallest positive double."""
-    entry = model.loss_entry
+    rounded to 0 or 1 is clipped to the smallest positive double. With standardised targets the outputs and targets
+    are in their own units; RMSE stays in them, and the loss is taken of both scaled as training scaled them."""
+    entry = predictor.model.loss_entry
     o = outputs.astype(np.float64)
-    return {entry.metric: entry.metric_reference(o, targets), "loss": float(entry.reference(o, targets).mean())}
+    metric = entry.metric_reference(o, targets)
+    if predictor.target_std is not None:
+        t = np.asarray(targets, dtype=np.float64).reshape(o.shape)
+        o, targets = ((a - predictor.target_mean) / predictor.target_std for a in (o, t))
+    return {entry.metric: metric, "loss": float(entry.reference(o, targets).mean())}

@@ -232,7 +232,8 @@ class RunLoop:
         model, data = trainer.model, trainer.data
         predictor = Predictor(model, data.mean, data.inv_std, feature_names=getattr(data, "feature_names", None),
                               job=job.as_dict(), digest=job.digest(), step=self.step,
-                              categories=getattr(data, "categories", None))
+                              categories=getattr(data, "categories", None), target_mean=data.target_mean,
+                              target_std=data.target_std)
         return {"model": model, "predictor": predictor, "input_mean": data.mean, "input_inv_std": data.inv_std,
                 "history": self.history, "steps": self.step, "workdir": str(job.workdir),
                 "processes": trainer.comm.size, "compile_s": self.compile_s,

@@ -31,7 +31,8 @@ def training_state(trainer: Any, step: int) -> checkpoint.TrainingState:
         feature_names=getattr(data, "feature_names", None),
         best=trainer.best.state() if trainer.best is not None else None,
         weights=data.weight_record(),
-        categories=[c.record() for c in getattr(data, "categories", [])] or None)
+        categories=[c.record() for c in getattr(data, "categories", [])] or None,
+        target_mean=data.target_mean, target_std=data.target_std)
 
 
 def save(trainer: Any, step: int, best: bool = False) -> checkpoint.TrainingState:
@@ -90,6 +91,14 @@ def resume(trainer: Any) -> int:
             raise checkpoint.CheckpointError(
                 "the checkpoint was trained with other categorical vocabularies than this job's data gives (the "
                 "values of the training rows of a `data.categorical` column changed)")
+        params = arrays["params"]
+        saved = ({"mean": params["target_mean"].tolist(), "std": params["target_std"].tolist()}
+                 if "target_mean" in params and "target_std" in params else None)
+        ours = trainer.data.target_record()
+        if saved != ours:
+            raise checkpoint.CheckpointError(
+                f"the checkpoint was trained on targets scaled otherwise ({_scaling_text(saved)}) than "
+                f"this job's data gives ({_scaling_text(ours)}); the targets or `data.standardize_targets` changed")
         return state
 
     state = lead_then_share(comm, load, share=True)
@@ -120,3 +129,9 @@ def _weights_text(record: dict[str, Any] | None) -> str:
     classes = record.get("class_weights")
     return (f"Σ w = {record.get('training_sum')!r} over the training rows"
             + (f", class weights {classes}" if classes else ""))
+
+
+def _scaling_text(record: dict[str, Any] | None) -> str:
+    if record is None:
+        return "raw targets"
+    return f"mean {record['mean']}, standard deviation {record['std']}"

@@ -19,6 +19,7 @@ from shardmill.data.categories import embedding_shapes, load_categories
 from shardmill.data.dataset import Dataset, load_dataset
 from shardmill.data.rows import Sampler, take_rows
 from shardmill.errors import JobError
+from shardmill.kernels import losses as loss_kernels
 from shardmill.model.mlp import model_from_job
 from shardmill.parallel.comm import Comm, share_error
 from shardmill.parallel.exchange import resolve_update
@@ -201,7 +202,10 @@ class Trainer:
 
     def quality_sum(self, n: int, targets: np.ndarray) -> float:
         """The second metric sum of the batch in the workspace (correct predictions, or Σ (o − t)²): the loss's entry
-        says which (``model/losses.py``)."""
+        says which (``model/losses.py``). Standardised targets (``data.standardize_targets``): Σ (o − t)² in the
+        targets' own units, so RMSE is logged in them."""
+        if self.data.target_std is not None:
+            return loss_kernels.squared_error_sum_scaled(self.ws.O[:n], targets[:n], self.data.target_std)
         return self.model.loss_entry.quality_sum(self.ws.O[:n], targets[:n])
 
     def weight_sum(self, n: int) -> float:

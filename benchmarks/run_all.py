@@ -75,6 +75,10 @@ def targets(results: dict[str, Any]) -> list[dict[str, Any]]:
         for name, row in layered.get("kernels", {}).items():
             out.append({"name": f"{name} / streaming copy of the same bytes", "value": row["ratio_to_copy"],
                         "target": ">= 0.7", "met": row["ratio_to_copy"] >= 0.7})
+    quality = results.get("categorical_quality", {})
+    if "embeddings_over_onehot" in quality:  # not speed: the error of embeddings against a one-hot MLP
+        out.append({"name": "test RMSE, embeddings / scikit-learn one-hot MLP, diamonds",
+                    "value": quality["embeddings_over_onehot"], "target": "<= 1.05", "met": quality["met"]})
     start = results.get("cold_start", {})
     if "cold_s" in start:
         for phase in ("cold", "warm"):
@@ -104,6 +108,8 @@ def main(argv: list[str] | None = None) -> int:
         "overlap_hidden": ([str(BENCHMARKS / "overlap_hidden.py"), *quick], 180 if args.quick else 600),
         "cold_start": ([str(BENCHMARKS / "cold_start.py"), *quick], 120 if args.quick else 300),
         "layers_cost": ([str(BENCHMARKS / "layers_cost.py"), *quick], 240 if args.quick else 600),
+        "categorical_quality": ([str(BENCHMARKS / "categorical_quality.py"), *(["--epochs", "20"] if args.quick
+                                                                               else [])], 300),
     }
     meter = LoadMeter()
     combined: dict[str, Any] = {"benchmark": "run_all", "quick": args.quick, "ranks": args.sizes,

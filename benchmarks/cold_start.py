@@ -16,9 +16,8 @@ import tempfile
 import time
 from pathlib import Path
 
-import numpy as np
 from benchsupport import LoadMeter, emit, log, machine_record
-from shardmill.commands.demo import JOB, pump_windows
+from shardmill.commands.demo import write_demo_files
 from shardmill.parallel.launch import rank_environment, run_command
 from shardmill.timing import median
 
@@ -47,11 +46,8 @@ def main(argv: list[str] | None = None) -> int:
     meter = LoadMeter()
     with tempfile.TemporaryDirectory(prefix="shardmill-cold-") as folder:
         root = Path(folder)
-        X, y = pump_windows(12000, seed=0)  # the demo's data set
-        np.save(root / "windows.npy", X)  # the file names the demo's job reads
-        np.save(root / "faults.npy", y)
+        write_demo_files(root, 12000, epochs=1, extra_run="max_steps = 1\n")  # the demo's data set and job
         job = root / "job.toml"
-        job.write_text(JOB.format(epochs=1) + "max_steps = 1\n")
         cold, warm = [], []
         for r in range(rounds):
             cache = root / f"cache-{r}"

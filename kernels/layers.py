@@ -104,6 +104,20 @@ def _norm_forward_rows(Z, b, gain, shift, H, stats, scratch, code):
 
 
 @njit(cache=True)
+def _norm_forward_relu(Z, b, gain, shift, H, stats, scratch):
+    _norm_forward_rows(Z, b, gain, shift, H, stats, scratch, act.RELU)
+
+
+@njit(cache=True)
+def _norm_forward_identity(Z, b, gain, shift, H, stats, scratch):
+    _norm_forward_rows(Z, b, gain, shift, H, stats, scratch, act.IDENTITY)
+
+
+@njit(cache=True)
+def _norm_forward_any(Z, b, gain, shift, H, stats, scratch, code):
+    _norm_forward_rows(Z, b, gain, shift, H, stats, scratch, code)
+
+
 def norm_forward(Z, b, gain, shift, H, stats, scratch, code):
     """Z += b, then H = f(N), N = gain ⊙ (Z − μ)·r + shift per row, r = 1/√(σ² + ε) (Ba, Kiros & Hinton 2016,
     eq. 4), f the activation ``code`` (kernels/activations.py): normalisation and activation in one pass.
@@ -116,11 +130,11 @@ def norm_forward(Z, b, gain, shift, H, stats, scratch, code):
     again, with the same bits.
     """
     if code == act.RELU:  # constant codes for the cheap activations, which the compiler then vectorises
-        _norm_forward_rows(Z, b, gain, shift, H, stats, scratch, act.RELU)
+        _norm_forward_relu(Z, b, gain, shift, H, stats, scratch)
     elif code == act.IDENTITY:
-        _norm_forward_rows(Z, b, gain, shift, H, stats, scratch, act.IDENTITY)
+        _norm_forward_identity(Z, b, gain, shift, H, stats, scratch)
     else:
-        _norm_forward_rows(Z, b, gain, shift, H, stats, scratch, code)
+        _norm_forward_any(Z, b, gain, shift, H, stats, scratch, code)
 
 
 @njit(cache=True, inline="always")
@@ -177,6 +191,20 @@ def _norm_backward_rows(Z, stats, gain, shift, H, D, dgain, dshift, scratch, cod
 
 
 @njit(cache=True)
+def _norm_backward_relu(Z, stats, gain, shift, H, D, dgain, dshift, scratch):
+    _norm_backward_rows(Z, stats, gain, shift, H, D, dgain, dshift, scratch, act.RELU)
+
+
+@njit(cache=True)
+def _norm_backward_identity(Z, stats, gain, shift, H, D, dgain, dshift, scratch):
+    _norm_backward_rows(Z, stats, gain, shift, H, D, dgain, dshift, scratch, act.IDENTITY)
+
+
+@njit(cache=True)
+def _norm_backward_any(Z, stats, gain, shift, H, D, dgain, dshift, scratch, code):
+    _norm_backward_rows(Z, stats, gain, shift, H, D, dgain, dshift, scratch, code)
+
+
 def norm_backward(Z, stats, gain, shift, H, D, dgain, dshift, scratch, code):
     """Backward of :func:`norm_forward`, in place: D = ∂loss/∂H on entry, ∂loss/∂Z on exit; and the gradients of
     the gain and shift.
@@ -191,12 +219,12 @@ def norm_backward(Z, stats, gain, shift, H, D, dgain, dshift, scratch, code):
     the array's dtype exactly as the forward pass formed them, so a row's products have the same bits whichever part
     holds it.
     """
-    if code == act.RELU:
-        _norm_backward_rows(Z, stats, gain, shift, H, D, dgain, dshift, scratch, act.RELU)
+    if code == act.RELU:  # three kernels, not three branches of one: a job compiles only the one it uses
+        _norm_backward_relu(Z, stats, gain, shift, H, D, dgain, dshift, scratch)
     elif code == act.IDENTITY:
-        _norm_backward_rows(Z, stats, gain, shift, H, D, dgain, dshift, scratch, act.IDENTITY)
+        _norm_backward_identity(Z, stats, gain, shift, H, D, dgain, dshift, scratch)
     else:
-        _norm_backward_rows(Z, stats, gain, shift, H, D, dgain, dshift, scratch, code)
+        _norm_backward_any(Z, stats, gain, shift, H, D, dgain, dshift, scratch, code)
 
 
 # --- dropout: a counter-based keep decision --------------------------------------------------------------------

@@ -3,6 +3,9 @@
 Scenario (invented for the demo): a fleet of centrifugal pumps reports 16 sensor features per
 one-minute window; each window is healthy or shows one of four faults. Faults leave nonlinear
 signatures that depend on the operating point (speed and load), so no single sensor separates them.
+Each pump is of one of four types and stands at one of three sites; both shift the sensors' baselines
+(a multistage pump's discharge pressure, a desert site's temperatures), so the same reading means a
+fault at one pump and nothing at another: the two categorical columns carry part of the answer.
 """
 
 from __future__ import annotations
@@ -23,10 +26,17 @@ FEATURES = ("speed_rpm", "load", "flow", "suction_kpa", "discharge_kpa", "motor_
             "flow_per_amp", "head_ratio")
 
 
-def pump_windows(rows: int, seed: int = 0) -> tuple[np.ndarray, np.ndarray]:
-    """(X, y): ``rows`` windows of the 16 FEATURES (float32) and their fault class in 0..4 (int64)."""
+PUMP_TYPES = ("end_suction", "split_case", "vertical_inline", "multistage")
+SITES = ("north_yard", "river_intake", "desert_depot")
+
+
+def pump_windows(rows: int, seed: int = 0) -> tuple[np.ndarray, np.ndarray, dict[str, np.ndarray]]:
+    """(X, y, kinds): ``rows`` windows of the 16 FEATURES (float32), their fault class in 0..4 (int64) and
+    {"pump_type": (rows,) text of PUMP_TYPES, "site": (rows,) text of SITES}."""
     rng = np.random.default_rng(seed)
     y = rng.integers(0, len(CLASSES), size=rows)
+    pump_type = rng.integers(0, len(PUMP_TYPES), size=rows)
+    site = rng.integers(0, len(SITES), size=rows)
     speed = rng.uniform(1200.0, 3600.0, rows)
     load = rng.uniform(0.3, 1.0, rows)
     s = speed / 3000.0
@@ -45,6 +55,17 @@ def pump_windows(rows: int, seed: int = 0) -> tuple[np.ndarray, np.ndarray]:
     casing = 35.0 + 10.0 * load
     acoustic = 55.0 + 10.0 * s
     ripple = 2.0 + 1.5 * load
+    # the type and the site move the baselines the faults are read against
+    multistage, inline, split_case = pump_type == 3, pump_type == 2, pump_type == 1
+    discharge *= np.where(multistage, 1.5, 1.0)
+    current += 6.0 * multistage
+    vib1 += 0.5 * inline
+    flow *= np.where(split_case, 1.3, 1.0)
+    desert, river = site == 2, site == 1
+    bearing += 10.0 * desert
+    casing += 10.0 * desert
+    acoustic += 6.0 * river
+    vibhf += 0.3 * river
     cav, bear, imb, leak = (y == 1) * severity, (y == 2) * severity, (y == 3) * severity, (y == 4) * severity
     suction -= 35.0 * cav * load
     acoustic += 9.0 * cav * (suction < 150.0)
@@ -71,19 +92,24 @@ def pump_windows(rows: int, seed: int = 0) -> tuple[np.ndarray, np.ndarray]:
     f["flow_per_amp"] = f["flow"] / f["motor_current"]
     f["head_ratio"] = f["discharge_kpa"] / np.maximum(f["suction_kpa"], 1.0)
     X = np.stack([f[name] for name in FEATURES], axis=1).astype(np.float32)
-    return X, y.astype(np.int64)
+    kinds = {"pump_type": np.asarray(PUMP_TYPES)[pump_type], "site": np.asarray(SITES)[site]}
+    return X, y.astype(np.int64), kinds
 
 
-JOB = """# shardmill demo: pump fault classification from 16 sensor features
+JOB = """# shardmill demo: pump fault classification from 16 sensor features, the pump's type and its site
 [model]
-layers = [16, 128, 128, 5]
+layers = [18, 128, 128, 5]   # 16 sensor columns + 2 categorical ones (each counted once)
 activation = "relu"
 loss = "softmax_cross_entropy"
 dtype = "float32"
+norm = "layer"               # layer normalisation in every hidden layer
+dropout = 0.1                # inverted dropout, the same mask for every process count
+residual = true              # a skip around the 128 → 128 layer
 
 [data]
-inputs = "windows.npy"
-targets = "faults.npy"
+inputs = "pumps.csv"
+target = "fault"
+categorical = ["pump_type", "site"]   # learned embeddings; the other columns are the sensor features
 validation_fraction = 0.2
 standardize = true
 
@@ -101,6 +127,22 @@ workdir = "run"
 """
 
 
+def write_demo_files(out: Path, rows: int, epochs: int, extra_run: str = "") -> tuple[np.ndarray, np.ndarray]:
+    """The demo's files in ``out``: ``pumps.csv`` (a header row; the 16 sensor features, pump_type, site and the
+    fault label), the numeric part alone as ``windows.npy`` (rows, 16) float32 and ``faults.npy`` (rows,) int64,
+    and ``job.toml`` (``extra_run``: lines appended to its [run] table). Returns (X, y)."""
+    X, y, kinds = pump_windows(rows, seed=0)
+    np.save(out / "windows.npy", X)
+    np.save(out / "faults.npy", y)
+    with open(out / "pumps.csv", "w") as f:
+        f.write(",".join((*FEATURES, "pump_type", "site", "fault")) + "\n")
+        for i in range(rows):
+            f.write(",".join([*(f"{v:.9g}" for v in X[i].tolist()), str(kinds["pump_type"][i]), str(kinds["site"][i]),
+                              str(int(y[i]))]) + "\n")
+    (out / "job.toml").write_text(JOB.format(epochs=epochs) + extra_run)
+    return X, y
+
+
 def cmd_demo(args) -> int:
     if args.rows < 400:  # the demo job: G = 256 from the 80 % of rows that are not held out
         raise JobError(f"`--rows` must be ≥ 400 (the demo trains with 256 rows per step on 80 % of them); got "
@@ -108,15 +150,10 @@ def cmd_demo(args) -> int:
     out = Path(args.out_dir)
     out.mkdir(parents=True, exist_ok=True)
     ranks = args.ranks or max(1, min(4, os.cpu_count() or 1))
-    X, y = pump_windows(args.rows, seed=0)
-    np.save(out / "windows.npy", X)
-    np.save(out / "faults.npy", y)
-    # the same windows as one table with a header row and the label column, for the README's table examples
-    np.savetxt(out / "pumps.csv", np.column_stack([X, y]), delimiter=",", fmt=["%.9g"] * X.shape[1] + ["%d"],
-               header=",".join((*FEATURES, "fault")), comments="")
-    (out / "job.toml").write_text(JOB.format(epochs=args.epochs))
+    X, y = write_demo_files(out, args.rows, args.epochs)
     counts = np.bincount(y, minlength=len(CLASSES))
-    print(f"demo: {args.rows} pump windows × {X.shape[1]} sensor features, classes "
+    print(f"demo: {args.rows} pump windows × {X.shape[1]} sensor features, {len(PUMP_TYPES)} pump types at "
+          f"{len(SITES)} sites, classes "
           + ", ".join(f"{c} {n}" for c, n in zip(CLASSES, counts, strict=True)) + f" → {out}")
     print(f"demo: training on {ranks} process(es): shardmill train {out / 'job.toml'} --ranks {ranks}")
     sys.stdout.flush()

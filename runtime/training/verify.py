@@ -208,12 +208,14 @@ def _trajectory(job: Job, comm: Comm, steps: int) -> list[dict[str, float]] | No
 
 def format_report(report: dict[str, Any]) -> str:
     """A readable table: one line per tensor of each batch, then the verdict."""
+    width = max([6, *(len(t["tensor"]) for b in report["batches"] for t in b["tensors"])])  # E_<column> names
     lines = [f"verify: {report['processes']} process(es), G = {report['global_batch']}, "
              f"{report['reduction']} reduction, {report['dtype']}; bound {report['bound']}",
-             f"{'batch':>5}  {'tensor':<6} {'max |Δ|':>11} {'max rel Δ':>11} {'Δ / bound':>10}"]
+             f"{'batch':>5}  {'tensor':<{width}} {'max |Δ|':>11} {'max rel Δ':>11} {'Δ / bound':>10}"]
     for b in report["batches"]:
         for t in b["tensors"]:
-            lines.append(f"{b['batch']:>5}  {t['tensor']:<6} {t['max_abs_diff']:>11.3e} {t['max_rel_diff']:>11.3e} "
+            lines.append(f"{b['batch']:>5}  {t['tensor']:<{width}} {t['max_abs_diff']:>11.3e} "
+                         f"{t['max_rel_diff']:>11.3e} "
                          f"{t['bound_ratio']:>10.3g}")
     for t in report.get("trajectory") or []:
         lines.append(f"trajectory step {t['step']:>4}: max |Δθ| {t['max_abs_diff']:.3e} "

@@ -67,7 +67,7 @@ def _job(folder: Path, table: Path, run: dict | None = None, data: dict | None =
 
 def _digest(workdir: Path) -> str:
     with np.load(workdir / "final.npz", allow_pickle=False) as saved:
-        names = sorted(k for k in saved.files if k[0] in "Wb" and k[1:].isdigit() or k.startswith("E_"))
+        names = sorted(k for k in saved.files if k[0] in "WbGB" and k[1:].isdigit() or k.startswith("E_"))
         assert {"E_city", "E_kind"} <= set(names)
         return hashlib.sha256(b"".join(saved[k].tobytes() for k in names)).hexdigest()
 
@@ -142,14 +142,20 @@ def test_embedding_gradient_matches_autograd() -> None:
 
 # --- through the CLI: exact bits, resume, predict, verify, bad input ----------------------------------------------
 
+EVERYTHING = 'layers = [4, 10, 10, 3]\nnorm = "layer"\ndropout = [0.2, 0.1]\nresidual = true'
+"""A model with every new concept on at once: layer norm, dropout, a residual skip (10 → 10), beside the
+embeddings and row weights every job of this file has."""
+
+
 @pytest.mark.mpi
-def test_exact_mode_with_embeddings_and_weights_gives_the_same_bits_for_p_1_to_4(tmp_path: Path) -> None:
+def test_exact_mode_with_everything_on_gives_the_same_bits_for_p_1_to_4(tmp_path: Path) -> None:
     table = _table(tmp_path / "data")
     digests = set()
     for P in (1, 2, 3, 4):
         folder = tmp_path / f"p{P}"
         folder.mkdir()
-        done = run_mpi(P, ["-m", "shardmill", "train", str(_job(folder, table)), "--no-progress"], timeout=180)
+        done = run_mpi(P, ["-m", "shardmill", "train", str(_job(folder, table, model=EVERYTHING)), "--no-progress"],
+                       timeout=180)
         assert done.returncode == 0, done.stderr
         digests.add(_digest(folder / "run"))
     assert len(digests) == 1  # the exactness model: the same bits for every P
@@ -158,9 +164,10 @@ def test_exact_mode_with_embeddings_and_weights_gives_the_same_bits_for_p_1_to_4
 @pytest.mark.mpi
 def test_a_sigterm_and_a_resume_at_another_process_count_give_the_same_bits(tmp_path: Path) -> None:
     table = _table(tmp_path / "data", rows=200)
-    straight = _job(tmp_path / "straight", table, run={"epochs": 40, "global_batch": 32, "exact_chunk": 8})
+    run = {"epochs": 40, "global_batch": 32, "exact_chunk": 8}
+    straight = _job(tmp_path / "straight", table, run=run, model=EVERYTHING)
     assert run_cli(["train", str(straight), "--ranks", "3", "--no-progress"], timeout=300).returncode == 0
-    job = _job(tmp_path / "stopped", table, run={"epochs": 40, "global_batch": 32, "exact_chunk": 8})
+    job = _job(tmp_path / "stopped", table, run=run, model=EVERYTHING)
     status, err = stop_a_run(job, 2, tmp_path / "stopped" / "run" / "metrics.jsonl")
     assert status == 128 + signal.SIGTERM, err[-3000:]
     assert not (tmp_path / "stopped" / "run" / "final.npz").exists()

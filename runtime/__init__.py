@@ -6,6 +6,7 @@ Public contract::
     m = sm.MLP([64, 128, 10], activation="tanh", loss="softmax_cross_entropy", dtype="float64", seed=0)
     loss, grad = m.loss_and_grad(X, y)
     job = sm.load_job("job.toml"); result = sm.train(job)
+    result = sm.train(sm.job_from_dict({"model": {"layers": [64, 128, 10]}}), inputs=X, targets=y, echo=True)
     predictor = result["predictor"]            # the trained model with its input standardisation
     labels = predictor.predict(X_raw)          # raw rows (n, d), as the training data held them
     predictor = sm.load_model("run/final.npz") # or best.npz, a checkpoint directory, a workdir
@@ -32,13 +33,25 @@ except PackageNotFoundError:  # the sources imported without being installed
 __all__ = ["MLP", "Job", "JobError", "Predictor", "job_from_dict", "load_job", "load_model", "train", "__version__"]
 
 
-def train(job: Job, resume: bool | str = False, progress: bool = True, fresh: bool = False) -> dict[str, Any]:
+def train(job: Job, resume: bool | str = False, progress: bool = True, fresh: bool = False, echo: bool = False,
+          inputs: Any = None, targets: Any = None, weights: Any = None) -> dict[str, Any]:
     """Train a job on every rank of MPI.COMM_WORLD (one process without a launcher); see training.loop.train.
 
     A workdir that holds an earlier run is refused unless ``resume`` (continue it) or ``fresh`` (clear it first);
     ``resume="auto"`` continues when the workdir holds a checkpoint and starts anew otherwise.
+    ``echo``: print each epoch's line as the command line does (also into a pipe or a notebook; ``progress`` only
+    draws a bar on a terminal). ``inputs`` (n, d), ``targets`` ((n,) labels or (n, k) values) and ``weights``
+    ((n,) ≥ 0): the data as arrays in memory, instead of the job's `data.inputs`/`data.targets` files (which the job
+    must then leave empty); every rank passes the same arrays.
     The result's ``"predictor"`` is a :class:`Predictor` of the final model (raw inputs in, see above).
     """
+    from shardmill.data.dataset import Arrays
     from shardmill.training.loop import train as _train
 
-    return _train(job, resume=resume, progress=progress, fresh=fresh)
+    if (inputs is None) != (targets is None):
+        raise JobError("give both `inputs` and `targets` as arrays, or neither (the job's data files)")
+    arrays = None if inputs is None else Arrays(inputs, targets, weights)
+    if arrays is None and weights is not None:
+        raise JobError("`weights` as an array needs `inputs` and `targets` as arrays; with data files, name the "
+                       "weights in `data.weights`")
+    return _train(job, resume=resume, progress=progress, fresh=fresh, echo=echo, arrays=arrays)

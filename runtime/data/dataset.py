@@ -51,13 +51,47 @@ class Dataset:
                 "sha256": hashlib.sha256(np.ascontiguousarray(self.weights, dtype=np.float64).tobytes()).hexdigest()}
 
 
+@dataclass(frozen=True)
+class Arrays:
+    """A job's data given in memory instead of files (``shardmill.train(job, inputs=…, targets=…)``): inputs
+    (n, d) real, targets as the loss takes them ((n,) labels or (n, k) values), weights (n,) ≥ 0 or None. Every rank
+    must hold the same arrays (checked)."""
+
+    inputs: np.ndarray
+    targets: np.ndarray
+    weights: np.ndarray | None = None
+
+
+def check_arrays(job: Job, arrays: Arrays, comm: Comm) -> None:
+    """Refuse, alike on every rank, arrays given beside data files or categorical columns, and arrays that differ
+    between ranks (every rank must train on the same rows)."""
+    error: Exception | None = None
+    given = [f"`data.{key}` = {value!r}" for key, value in (("inputs", job.data.inputs), ("targets", job.data.targets),
+                                                          ("target", job.data.target), ("weights", job.data.weights))
+             if value]
+    if given:
+        error = JobError(f"the data is given as arrays, so the job must not name data files or columns too; it has "
+                         f"{', '.join(given)}")
+    elif job.data.categorical:
+        error = JobError("`data.categorical` needs a table (`data.inputs` = a .csv or .parquet file); arrays in memory "
+                         "carry numbers only")
+    share_error(comm, error)
+    for name, array in (("inputs", arrays.inputs), ("targets", arrays.targets), ("weights", arrays.weights)):
+        if array is not None and comm.size > 1 and not comm.all_equal(np.asarray(array)):
+            raise JobError(f"the `{name}` array differs between ranks; every rank must pass the same data")
+
+
 def load_dataset(job: Job, model: MLP, comm: Comm, categories: list[Category] | None = None,
-                 codes: np.ndarray | None = None) -> Dataset:
+                 codes: np.ndarray | None = None, arrays: Arrays | None = None) -> Dataset:
     """Open and check the data on every rank; any rank's failure is raised identically on all ranks.
-    ``categories``, ``codes``: the categorical columns (``data/categories.py`` ``load_categories``), if any."""
+    ``categories``, ``codes``: the categorical columns (``data/categories.py`` ``load_categories``), if any;
+    ``arrays``: the data in memory instead of the job's files."""
     error: Exception | None = None
     targets = None
-    X, y, feature_names = open_job_data(job, comm)  # collective; its own failures are raised alike on every rank
+    if arrays is None:
+        X, y, feature_names = open_job_data(job, comm)  # collective; its own failures are raised alike on every rank
+    else:  # checked by check_arrays first (the Trainer does, before the categorical columns would be read)
+        X, y, feature_names = np.asarray(arrays.inputs), np.asarray(arrays.targets), None
     where = "data.target" if job.data.target else "data.targets"
     try:
         X = as_numbers(np.asarray(X), "data.inputs")
@@ -88,7 +122,8 @@ def load_dataset(job: Job, model: MLP, comm: Comm, categories: list[Category] | 
     if target_mean is not None:
         targets = ((np.asarray(y, dtype=np.float64).reshape(targets.shape) - target_mean) / target_std
                    ).astype(targets.dtype)
-    raw_weights = open_job_weights(job, comm)  # collective; the same array on every rank, so the checks agree
+    # collective; the same array on every rank, so the checks agree
+    raw_weights = open_job_weights(job, comm) if arrays is None else arrays.weights
     weights, class_weights = row_weights(job, targets, split, raw_weights, model.sizes[-1])
     return Dataset(X=X, targets=targets, split=split, mean=mean, inv_std=inv_std, feature_names=feature_names,
                    weights=weights, class_weights=class_weights, categories=list(categories or []), codes=codes,

@@ -12,16 +12,25 @@ HEARTBEAT_S = 30.0
 
 def epoch_line(record: dict[str, Any]) -> str:
     """One console line for an epoch record of metrics.jsonl: its own field paths (``train.loss``,
-    ``validation.accuracy``…), fewer digits, and a ``*`` after the watched metric when it is the best so far."""
+    ``validation.accuracy``…), :func:`figure`'s digits, and a ``*`` after the watched metric when it is the best so
+    far."""
     best = record.get("best") or {}
     parts = [f"epoch={record['epoch']}", f"step={record['step']}"]
     for section in ("train", "validation"):
         for key in ("loss", "accuracy", "rmse"):
             if key in (record.get(section) or {}):
                 mark = "*" if best.get("improved") and best.get("metric") == f"{section}.{key}" else ""
-                parts.append(f"{section}.{key}={record[section][key]:.4f}{mark}")
+                parts.append(f"{section}.{key}={figure(record[section][key])}{mark}")
     parts.append(f"samples_per_s={record['samples_per_s']:.0f}")
     return " ".join(parts)
+
+
+def figure(value: float) -> str:
+    """A metric for a person: four decimals from 0.1 up (0.2309, 1364.6261), four significant digits below
+    (0.0001234 → 1.234e-04), so a small regression loss never reads 0.0000."""
+    if value == 0 or not abs(value) < 0.1:  # NaN and inf take the first branch too
+        return f"{value:.4f}"
+    return f"{value:.4g}" if abs(value) >= 1e-4 else f"{value:.3e}"
 
 
 def kernels_cached() -> bool:

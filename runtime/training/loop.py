@@ -14,6 +14,7 @@ from typing import Any
 import numpy as np
 from shardmill import checkpoint
 from shardmill.config import Job
+from shardmill.data.dataset import Arrays
 from shardmill.errors import JobError
 from shardmill.parallel.comm import Comm
 from shardmill.training import saving
@@ -33,7 +34,7 @@ from threadpoolctl import threadpool_limits
 
 
 def train(job: Job, comm: Comm | None = None, resume: bool | str = False, progress: bool = True,
-          echo: bool = False, fresh: bool = False) -> dict[str, Any]:
+          echo: bool = False, fresh: bool = False, arrays: Arrays | None = None) -> dict[str, Any]:
     """Train ``job`` on every rank of ``comm`` (MPI.COMM_WORLD by default).
 
     ``resume``: True continues the workdir's run from its newest checkpoint (refused without one); "auto" does so
@@ -44,6 +45,7 @@ def train(job: Job, comm: Comm | None = None, resume: bool | str = False, progre
     ``workdir/final.npz`` (arrays W0, b0, W1, b1, …). Returns a summary dict on every rank, including
     the final model under ``"model"``. ``echo``: rank 0 prints each epoch's line as the epoch ends (flushed, so a
     batch log shows it at once) and, without a progress bar, a heartbeat line every ``console.HEARTBEAT_S`` seconds.
+    ``arrays``: the data in memory (``data/dataset.py`` :class:`Arrays`) instead of the job's data files.
     """
     comm = comm or Comm()
     with WorkdirLock(job.workdir, comm):
@@ -55,7 +57,7 @@ def train(job: Job, comm: Comm | None = None, resume: bool | str = False, progre
         else:
             claim_workdir(job.workdir, fresh, comm)
         with threadpool_limits(limits=job.run.threads, user_api="blas"), StopSignals() as stop:
-            trainer = Trainer(job, comm)
+            trainer = Trainer(job, comm, arrays=arrays)
             trainer.flags = LoopFlags(stop, job.run.save_minutes, comm.rank == 0)
             return RunLoop(trainer, resume, progress, echo).run()
 

@@ -16,7 +16,7 @@ import numpy as np
 from shardmill import checkpoint
 from shardmill.config import Job
 from shardmill.data.categories import embedding_shapes, load_categories
-from shardmill.data.dataset import Dataset, load_dataset
+from shardmill.data.dataset import Arrays, Dataset, check_arrays, load_dataset
 from shardmill.data.rows import Sampler, take_rows
 from shardmill.errors import JobError
 from shardmill.kernels import losses as loss_kernels
@@ -49,13 +49,16 @@ class StepFlags:
 class Trainer:
     """Owns the model, data, optimizer, exchange strategy and workspaces of one job on one rank."""
 
-    def __init__(self, job: Job, comm: Comm | None = None, dataset: Dataset | None = None) -> None:
+    def __init__(self, job: Job, comm: Comm | None = None, dataset: Dataset | None = None,
+                 arrays: Arrays | None = None) -> None:
         self.job = job
         self.comm = comm or Comm()
         run = resolve_update(job, self.comm.size)  # run.update = "auto" decided for this many ranks
         Strategy = exchange_strategy(run)
         Strategy.check(run, self.comm.size)  # before any collective, identically on every rank
         error: Exception | None = None
+        if arrays is not None:
+            check_arrays(job, arrays, self.comm)
         # the categorical columns' vocabularies size the embedding tables, so they are read before the model
         categories, codes = ((dataset.categories, dataset.codes) if dataset is not None
                              else load_categories(job, self.comm))
@@ -67,7 +70,8 @@ class Trainer:
             error = JobError(f"`model.layers` = {layers} ({params:,} parameters, {job.model.dtype}) does not fit in "
                              f"this process's memory")
         share_error(self.comm, error)
-        self.data = dataset if dataset is not None else load_dataset(job, self.model, self.comm, categories, codes)
+        self.data = (dataset if dataset is not None
+                     else load_dataset(job, self.model, self.comm, categories, codes, arrays=arrays))
         self.sampler = Sampler(self.data.split.train, run.global_batch, run.seed)
         self.grads = np.zeros_like(self.model.params)
         self.ws = self.model.workspace(Strategy.part_rows(run, self.comm.size))

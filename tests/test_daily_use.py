@@ -1,0 +1,101 @@
+"""A practitioner's day: the Python API on arrays in memory, epoch lines on request, readable figures.
+
+References: scikit-learn's bundled iris and diabetes data sets; training from arrays against the same job trained from
+.npy files (the same rows must give the same bits: common practice for an alternative front door).
+"""
+
+from __future__ import annotations
+
+import hashlib
+import textwrap
+from pathlib import Path
+
+import numpy as np
+import pytest
+import shardmill as sm
+from helpers import run_mpi
+from shardmill.errors import JobError
+from shardmill.training.console import epoch_line, figure
+from sklearn.datasets import load_diabetes, load_iris
+
+
+def _job(workdir: Path, **data) -> sm.Job:
+    return sm.job_from_dict({"model": {"layers": [4, 8, 3], "activation": "tanh"},
+                             "data": {"validation_fraction": 0.2, **data},
+                             "run": {"epochs": 2, "global_batch": 16, "seed": 5, "workdir": str(workdir)}})
+
+
+def _params(workdir: Path) -> str:
+    with np.load(workdir / "final.npz", allow_pickle=False) as saved:
+        return hashlib.sha256(b"".join(saved[k].tobytes() for k in ("W0", "b0", "W1", "b1"))).hexdigest()
+
+
+def test_arrays_in_memory_train_the_bits_the_same_files_train(tmp_path: Path) -> None:
+    X, y = load_iris(return_X_y=True)
+    np.save(tmp_path / "x.npy", X)
+    np.save(tmp_path / "y.npy", y)
+    sm.train(_job(tmp_path / "files", inputs=str(tmp_path / "x.npy"), targets=str(tmp_path / "y.npy")),
+             progress=False)
+    result = sm.train(_job(tmp_path / "arrays"), inputs=X, targets=y, progress=False)
+    assert _params(tmp_path / "arrays") == _params(tmp_path / "files")
+    assert result["predictor"].predict(X[:5]).shape == (5,)
+
+
+def test_array_weights_and_regression_targets(tmp_path: Path) -> None:
+    X, y = load_diabetes(return_X_y=True)
+    w = np.ones(len(y))
+    w[::2] = 2.0
+    job = sm.job_from_dict({"model": {"layers": [10, 8, 1], "loss": "squared_error"},
+                            "run": {"epochs": 1, "global_batch": 32, "workdir": str(tmp_path / "run")}})
+    result = sm.train(job, inputs=X, targets=y, weights=w, progress=False)
+    assert result["predictor"].target_std is not None  # the regression targets were standardised, as from files
+
+
+@pytest.mark.parametrize("data, arrays, words", [
+    ({"inputs": "x.npy"}, True, "must not name data files or columns too; it has `data.inputs` = 'x.npy'"),
+    ({"categorical": ["city"]}, True, "`data.categorical` needs a table"),
+    ({}, "inputs only", "give both `inputs` and `targets` as arrays, or neither"),
+    ({}, "weights only", "`weights` as an array needs `inputs` and `targets` as arrays"),
+])
+def test_array_misuse_is_one_line(tmp_path: Path, data: dict, arrays, words: str) -> None:
+    X, y = load_iris(return_X_y=True)
+    given = {True: {"inputs": X, "targets": y}, "inputs only": {"inputs": X},
+             "weights only": {"weights": np.ones(len(y))}}[arrays]
+    with pytest.raises(JobError) as err:
+        sm.train(_job(tmp_path / "run", **data), progress=False, **given)
+    assert words in str(err.value) and "\n" not in str(err.value)
+
+
+@pytest.mark.mpi
+def test_arrays_that_differ_between_ranks_are_refused_on_every_rank(tmp_path: Path) -> None:
+    script = tmp_path / "differ.py"
+    script.write_text(textwrap.dedent(f"""
+        import numpy as np, shardmill as sm
+        from shardmill.parallel.comm import Comm
+        X = np.random.default_rng(Comm().rank).normal(size=(40, 4))   # another draw on each rank
+        y = np.zeros(40, dtype=np.int64)
+        job = sm.job_from_dict({{"model": {{"layers": [4, 3]}}, "run": {{"workdir": {str(tmp_path / 'run')!r}}}}})
+        try:
+            sm.train(job, inputs=X, targets=y, progress=False)
+        except sm.JobError as err:
+            print("refused:", err)
+    """))
+    done = run_mpi(2, [str(script)], timeout=120)
+    assert done.returncode == 0, done.stderr
+    assert done.stdout.count("refused: the `inputs` array differs between ranks") == 2  # every rank, alike
+
+
+def test_echo_prints_epoch_lines_into_a_pipe(tmp_path: Path, capsys) -> None:
+    X, y = load_iris(return_X_y=True)
+    sm.train(_job(tmp_path / "run"), inputs=X, targets=y, progress=False, echo=True)
+    lines = [line for line in capsys.readouterr().out.splitlines() if line.startswith("epoch=")]
+    assert len(lines) == 2 and "validation.accuracy=" in lines[0]
+
+
+def test_a_small_loss_never_prints_as_zero() -> None:
+    record = {"epoch": 3, "step": 30, "train": {"loss": 1.234e-05, "rmse": 0.00497},
+              "validation": {"loss": 0.2309, "rmse": 1364.6261}, "samples_per_s": 1000.0}
+    line = epoch_line(record)
+    assert "train.loss=1.234e-05" in line and "train.rmse=0.00497" in line
+    assert "validation.loss=0.2309" in line and "validation.rmse=1364.6261" in line  # four decimals from 0.1 up
+    assert figure(0.0) == "0.0000" and figure(float("nan")) == "nan"

@@ -7,13 +7,15 @@ References: scikit-learn's bundled iris and diabetes data sets; training from ar
 from __future__ import annotations
 
 import hashlib
+import json
 import textwrap
+import tomllib
 from pathlib import Path
 
 import numpy as np
 import pytest
 import shardmill as sm
-from helpers import run_mpi
+from helpers import run_cli, run_mpi
 from shardmill.errors import JobError
 from shardmill.training.console import epoch_line, figure
 from sklearn.datasets import load_diabetes, load_iris
@@ -99,3 +101,35 @@ def test_a_small_loss_never_prints_as_zero() -> None:
     assert "train.loss=1.234e-05" in line and "train.rmse=0.00497" in line
     assert "validation.loss=0.2309" in line and "validation.rmse=1364.6261" in line  # four decimals from 0.1 up
     assert figure(0.0) == "0.0000" and figure(float("nan")) == "nan"
+
+
+# --- shardmill expand: the job and a first look at its data -----------------------------------------------------
+
+def _table_job(folder: Path, csv_text: str, **data) -> Path:
+    (folder / "t.csv").write_text(csv_text)
+    keys = {"inputs": "t.csv", "target": "y", **data}
+    lines = ["[model]", "layers = [2, 4, 2]", "[data]", *(f"{k} = {json.dumps(v)}" for k, v in keys.items())]
+    (folder / "job.toml").write_text("\n".join(lines) + "\n")
+    return folder / "job.toml"
+
+
+@pytest.mark.parametrize("csv_text, data, words", [
+    ("a,b,y\n1,2,0\n3,x7,1\n", {}, "line 3, column 'b': 'x7' is not a number; list the column in "
+                                   "`data.categorical`"),
+    ("a,b,y\n1,2,0\n", {"features": ["a", "c"]}, "`data.features` column 'c' is not in"),
+    ("a,b,y\n1,2,0\n", {"categorical": ["kind"]}, "`data.categorical` column 'kind' is not in"),
+    ("a,b,y\n1,2,0\n", {"target": "z"}, "`data.target` column 'z' is not in"),
+])
+def test_expand_refuses_data_training_would_refuse(tmp_path: Path, csv_text: str, data: dict, words: str) -> None:
+    done = run_cli(["expand", str(_table_job(tmp_path, csv_text, **data))])
+    assert done.returncode == 2 and words in done.stderr and done.stderr.count("\n") == 1, done.stderr
+
+
+def test_expand_says_what_it_looked_at_in_comments_that_read_back(tmp_path: Path) -> None:
+    done = run_cli(["expand", str(_table_job(tmp_path, "a,kind,y\n1,p,0\n2,q,1\n", categorical=["kind"],
+                                               features=["a"]))])
+    assert done.returncode == 0, done.stderr
+    assert done.stdout.startswith("# data: ") and "the first 2 rows of 2 numeric columns hold numbers" in done.stdout
+    assert tomllib.loads(done.stdout)["data"]["categorical"] == ["kind"]  # still TOML (Python's tomllib)
+    old = run_cli(["resolve", str(tmp_path / "job.toml")])
+    assert old.returncode == 2  # the earlier name is gone (a name of our own)

@@ -75,7 +75,7 @@ def test_every_command_that_reads_a_job_takes_set():
         flags = {f for a in command._actions for f in a.option_strings}
         if "JOB" in positionals:
             assert "--set" in flags, name
-    assert {"train", "verify", "scale", "compile", "resolve"} <= {
+    assert {"train", "verify", "scale", "compile", "expand"} <= {
         name for name, c in COMMANDS.items() if any(not a.option_strings and a.metavar == "JOB" for a in c._actions)}
 
 

@@ -96,18 +96,18 @@ def wine_job(tmp_path_factory):
                      {"method": "sgd", "learning_rate": 0.05})
 
 
-def test_resolve_prints_the_job_with_its_overrides_and_json(wine_job):
-    done = run_cli(["resolve", str(wine_job), "--set", "run.epochs=9", "--set", "optimizer.method=adam"])
+def test_expand_prints_the_job_with_its_overrides_and_json(wine_job):
+    done = run_cli(["expand", str(wine_job), "--set", "run.epochs=9", "--set", "optimizer.method=adam"])
     assert done.returncode == 0, done.stderr
     printed = tomllib.loads(done.stdout)
     assert printed["run"]["epochs"] == 9 and printed["optimizer"]["method"] == "adam"
     assert printed["optimizer"]["beta2"] == 0.999  # a default filled in
     job = load_job(wine_job, overrides=["run.epochs=9", "optimizer.method=adam"])
-    as_json = json.loads(run_cli(["resolve", str(wine_job), "--set", "run.epochs=9", "--set",
+    as_json = json.loads(run_cli(["expand", str(wine_job), "--set", "run.epochs=9", "--set",
                                   "optimizer.method=adam", "--json"]).stdout)
     assert as_json["job"] == job.as_dict() and as_json["job_digest"] == job.digest()
     assert as_json["overrides"] == ["run.epochs=9", "optimizer.method=adam"]
-    bad = run_cli(["resolve", str(wine_job), "--set", "run.epochs=zero"])
+    bad = run_cli(["expand", str(wine_job), "--set", "run.epochs=zero"])
     assert bad.returncode == 2 and bad.stderr == "shardmill: error: `run.epochs` must be an integer; got 'zero'\n"
 
 

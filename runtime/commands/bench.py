@@ -63,7 +63,9 @@ def run_bench(layers: list[int], batch: int, dtype: str = default("model.dtype")
     Step and floor are measured in alternating blocks so that drifting machine load hits both alike. A block
     of steps starts after a barrier; each step counts as the slowest rank's seconds
     (``shardmill.timing.slowest_call``); the floors are each rank's own GEMMs, the slowest rank's per repetition.
-    Returns global ``samples_per_s`` (G / median step), ``step_ms``, ``floor_samples_per_s`` and
+    Returns global ``samples_per_s`` (G / median step), ``step_ms`` (the median), ``step_ms_mean`` (the mean, which
+    ``phase_ms`` — each phase's total over the timed steps / steps, slowest rank per phase — adds up to; a few slow
+    steps on a busy machine lift the mean above the median), ``floor_samples_per_s`` and
     ``ratio_to_floor`` (floor: three GEMMs per layer), and ``ratio_to_needed_floor`` (floor: only the GEMMs
     training needs, i.e. without the first layer's input gradient; ≤ 1, and 1 means no time outside BLAS).
     """
@@ -132,6 +134,7 @@ def run_bench(layers: list[int], batch: int, dtype: str = default("model.dtype")
         "needed_floor_ms": needed_s * 1e3,
         "ratio_to_needed_floor": needed_s / step_s,
         "step_ms_min": min(step_times) * 1e3,
+        "step_ms_mean": float(np.mean(step_times)) * 1e3,  # what phase_ms adds up to (phases are totals / steps)
         "floor_ms_min": min(floor_times) * 1e3,
         "compile_s": compile_s,
         "phase_ms": {phase: seconds * 1e3 / steps for phase, seconds in phase_max.items()},

@@ -1,4 +1,4 @@
-"""The ``shardmill`` command: train, verify, bench, scale, predict, export, curves, resolve, saves, info, compile,
+"""The ``shardmill`` command: train, verify, bench, scale, predict, export, curves, expand, saves, info, compile,
 demo.
 
 User errors (a bad job, a missing file, a refused checkpoint) print one line and exit 2, with no
@@ -147,9 +147,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--residual", action="store_true", help="skip connections around equal-width hidden layers "
                    "(model.residual)")
     p.add_argument("--method", default="sgd", metavar="NAME",
-                   help=f"update rule timed with the step (optimizer.method, whose default is "
-                        f"{default('optimizer.method')}; sgd here times the step with the cheapest update), one of "
-                        f"{', '.join(choices('optimizer.method'))}")
+                   help=f"the update rule timed with each step, one of {', '.join(choices('optimizer.method'))}; "
+                        f"default sgd, the cheapest, so the step is mostly the network (a job's own default, "
+                        f"{default('optimizer.method')}, adds its update's memory passes)")
     json_switch(p, "the result")
     ranks(p)
 
@@ -193,7 +193,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out-dir", type=Path, default=None, metavar="DIR",
                    help="folder for the PNGs (default: RUN/curves)")
 
-    p = command("resolve", "check a job and print it with every default filled in (TOML)")
+    p = command("expand", "check a job (its keys and a first look at its data) and print it with every default "
+                          "filled in (TOML)")
     job_file(p)
     json_switch(p, "the job")
 
@@ -262,8 +263,8 @@ def dispatch(args: argparse.Namespace) -> int:
         from shardmill.commands.curves import cmd_curves
 
         return cmd_curves(args)
-    if args.command == "resolve":
-        return cmd_resolve(args)
+    if args.command == "expand":
+        return cmd_expand(args)
     if args.command == "saves":
         from shardmill.commands.saves import cmd_saves
 
@@ -281,16 +282,19 @@ def dispatch(args: argparse.Namespace) -> int:
     raise AssertionError(args.command)
 
 
-def cmd_resolve(args: argparse.Namespace) -> int:
-    """``shardmill resolve JOB``: the job checked, printed with every key (TOML, or JSON with --json)."""
+def cmd_expand(args: argparse.Namespace) -> int:
+    """``shardmill expand JOB``: the job checked (keys and a first look at the data, ``commands/expand.py``), printed
+    with every key (TOML whose comments say what of the data was checked, or JSON with --json)."""
+    from shardmill.commands.expand import check_data
     from shardmill.config import job_toml
 
     job = read_job(args)
+    checked = check_data(job)
     if args.json:
         print(json.dumps({"job": job.as_dict(), "job_digest": job.digest(), "overrides": list(job.overrides),
-                          "workdir": str(job.workdir)}, indent=1))
+                          "workdir": str(job.workdir), "data_checked": checked}, indent=1))
     else:
-        print(job_toml(job), end="")
+        print("".join(f"# data: {line}\n" for line in checked) + job_toml(job), end="")
     return 0
 
 
@@ -365,7 +369,8 @@ def cmd_bench(args: argparse.Namespace) -> int:
             print(json.dumps(result))
         else:
             phases = ", ".join(f"{name} {ms:.3f}" for name, ms in result["phase_ms"].items())
-            print(f"{result['samples_per_s']:,.0f} samples/s, {result['step_ms']:.3f} ms/step, "
+            print(f"{result['samples_per_s']:,.0f} samples/s, {result['step_ms']:.3f} ms/step (median), "
                   f"{result['ratio_to_floor']:.3f} of the BLAS floor ({result['floor_ms']:.3f} ms) on "
-                  f"{result['processes']} process(es); phases (ms): {phases}")
+                  f"{result['processes']} process(es); mean step {result['step_ms_mean']:.3f} ms = phases (ms): "
+                  f"{phases}")
     return 0

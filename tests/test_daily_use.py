@@ -133,3 +133,24 @@ def test_expand_says_what_it_looked_at_in_comments_that_read_back(tmp_path: Path
     assert tomllib.loads(done.stdout)["data"]["categorical"] == ["kind"]  # still TOML (Python's tomllib)
     old = run_cli(["resolve", str(tmp_path / "job.toml")])
     assert old.returncode == 2  # the earlier name is gone (a name of our own)
+
+
+# --- shardmill scale: a model too small to gain is told so in words --------------------------------------------
+
+def _point(p: int, step_ms: float, serial_ms: float) -> dict:
+    speedup = serial_ms / step_ms
+    return {"p": p, "step_s": step_ms / 1e3, "speedup": speedup, "efficiency": speedup / p,
+            "phase_max_s": {"forward": 0.2 * step_ms / 1e3, "backward": 0.3 * step_ms / 1e3}}
+
+
+@pytest.mark.parametrize("step_ms_at_2, words", [(0.8, "gains little"), (0.99, "gains nothing"), (0.55, None)])
+def test_scale_says_in_words_when_more_processes_do_not_pay(step_ms_at_2: float, words: str | None) -> None:
+    from shardmill.scaling.report import gain_verdict
+
+    study = {"mode": "strong", "points": [_point(1, 1.0, 1.0), _point(2, step_ms_at_2, 1.0)]}
+    verdict = gain_verdict(study)
+    if words is None:  # efficiency 1/(2·0.55) = 0.91: scales (strong-scaling efficiency T1 / (P·TP), common practice)
+        assert verdict is None
+    else:
+        assert verdict.startswith(f"verdict: this model {words} from more processes") and "P = 2" in verdict
+    assert gain_verdict({**study, "mode": "weak"}) is None

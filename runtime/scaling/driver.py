@@ -101,6 +101,7 @@ def cmd_scale(args: argparse.Namespace, job: Job | None = None) -> int:
                         args.network, network)
     from shardmill.scaling import report
 
+    study["verdict"] = report.gain_verdict(study)  # in words, when the model gains little from more processes
     figures_and_report = report.render(study, out)  # first: it may add a note that the JSON should carry
     written = write_study(study, out) + figures_and_report
     print(report.text_table(study))

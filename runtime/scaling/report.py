@@ -104,7 +104,35 @@ def text_table(study: dict[str, Any]) -> str:
         tail += [model["warning"]] if model.get("warning") else []
     else:
         tail = [f"no communication model: {model['reason']}"]
-    return "\n".join([title, *text, *tail])
+    verdict = gain_verdict(study)
+    return "\n".join([title, *text, *tail, *([verdict] if verdict else [])])
+
+
+LITTLE_GAIN_EFFICIENCY = 0.75
+"""Below this strong-scaling efficiency at every measured P > 1, :func:`gain_verdict` says the model gains little."""
+
+
+def gain_verdict(study: dict[str, Any]) -> str | None:
+    """A sentence, in words, when a strong-scaling study shows the model gains little or nothing from more processes
+    (every measured P > 1 below :data:`LITTLE_GAIN_EFFICIENCY`), with the measured reason and what to do instead;
+    None otherwise (or for a weak-scaling study, or with no P > 1)."""
+    if study.get("mode") != "strong":
+        return None
+    more = [point for point in study["points"] if point["p"] > 1]
+    if not more or any(point["efficiency"] >= LITTLE_GAIN_EFFICIENCY for point in more):
+        return None
+    best = max(more, key=lambda point: point["speedup"])
+    serial = next((point for point in study["points"] if point["p"] == 1), None)
+    amount = "nothing" if best["speedup"] < 1.05 else "little"
+    compute = best["phase_max_s"]["forward"] + best["phase_max_s"]["backward"]
+    rest = best["step_s"] - compute
+    why = (f"at P = {best['p']} each rank computes for {seconds(compute)} of a {seconds(best['step_s'])} step, and "
+           f"the exchange and fixed costs take the other {seconds(max(rest, 0.0))}")
+    if serial is not None:
+        why += f" (one process: {seconds(serial['step_s'])} a step)"
+    return (f"verdict: this model gains {amount} from more processes (best speedup {best['speedup']:.2f}, efficiency "
+            f"{best['efficiency']:.2f}): {why}; run it on fewer processes, with a larger `run.global_batch`, or "
+            f"spend the processes on several variants of the job at once")
 
 
 def _bandwidth(bytes_per_s: float | None) -> str:

@@ -186,7 +186,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out", type=Path, required=True, metavar="FILE", help="the .onnx file to write")
     p.add_argument("--card", type=Path, default=None, metavar="FILE",
                    help="the model card to write (default: FILE with .card.json in place of .onnx)")
-    p.add_argument("--opset", type=int, default=17, metavar="N", help="ONNX operator set version")
+    p.add_argument("--opset", default="17", metavar="N",
+                   help="ONNX operator set version (checked with the other values: one line when it is not one)")
 
     p = command("curves", "draw a run's metrics.jsonl as PNG figures")
     p.add_argument("source", type=Path, metavar="RUN", help="a workdir or its metrics.jsonl")

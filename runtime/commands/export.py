@@ -117,7 +117,10 @@ def output_activation(predictor: Predictor) -> str:
     return predictor.model.output
 
 
-def check_opset(opset: int) -> int:
+def check_opset(opset: int | str) -> int:
+    """The opset as an int, or a JobError naming ``--opset``, the value and the range (a command line's text too)."""
+    if isinstance(opset, str) and opset.strip().isdigit():
+        opset = int(opset)
     if isinstance(opset, bool) or not isinstance(opset, int) or not MIN_OPSET <= opset <= MAX_OPSET:
         raise JobError(f"`--opset` must be an integer from {MIN_OPSET} to {MAX_OPSET}; got {opset!r}")
     return opset

@@ -73,29 +73,45 @@ def column_statistics(X: np.ndarray, rows: np.ndarray, comm) -> tuple[np.ndarray
     blocks in float64, every rank receives all block sums (allgather), and all ranks add them in the same
     fixed order. This pass is also the finite check of the data: returns the first non-finite row (index
     into X) and the rank that read it, or (−1, −1). Columns with (near) zero variance get inv_std = 1.
+
+    The sums are of x − k and (x − k)², k the first row of ``rows`` (every rank reads it): σ² = mean((x − k)²) −
+    mean(x − k)², the shifted-data algorithm (Chan, Golub & LeVeque 1983), so a column whose mean is large against
+    its spread (timestamps, absolute positions) keeps its digits, where mean(x²) − mean(x)² would cancel them.
+    A column whose squares overflow float64 (|x| near 10¹⁵⁴ and beyond) is refused (JobError naming it).
     """
     d = X.shape[1]
     block = max(_STATS_BLOCK, -(-rows.size // 1024))
     n_blocks = -(-rows.size // block)
     lo, hi = block_range(n_blocks, comm.rank, comm.size)
     sums = np.zeros((hi - lo, 2 * d), dtype=np.float64)
+    first = np.asarray(X[rows[:1]], dtype=np.float64).reshape(-1)[:d] if rows.size else np.zeros(d)
+    shift = np.where(np.isfinite(first), first, 0.0) if first.size == d else np.zeros(d)
     bad: int | None = None
-    for k, b in enumerate(range(lo, hi)):
-        chunk = np.asarray(X[rows[b * block:(b + 1) * block]], dtype=np.float64)
-        finite = np.isfinite(chunk).all(axis=1)
-        if not finite.all():
-            row = int(rows[b * block + int(np.argmin(finite))])
-            bad = row if bad is None else min(bad, row)
-            continue
-        np.sum(chunk, axis=0, out=sums[k, :d])
-        np.sum(chunk * chunk, axis=0, out=sums[k, d:])
+    with np.errstate(over="ignore", invalid="ignore"):  # an overflow is found below and refused in words
+        for k, b in enumerate(range(lo, hi)):
+            chunk = np.asarray(X[rows[b * block:(b + 1) * block]], dtype=np.float64)
+            finite = np.isfinite(chunk).all(axis=1)
+            if not finite.all():
+                row = int(rows[b * block + int(np.argmin(finite))])
+                bad = row if bad is None else min(bad, row)
+                continue
+            centred = chunk - shift
+            np.sum(centred, axis=0, out=sums[k, :d])
+            np.sum(centred * centred, axis=0, out=sums[k, d:])
     first_bad = first_of_ranks(bad, comm)
     counts = [block_range(n_blocks, r, comm.size)[1] - block_range(n_blocks, r, comm.size)[0]
               for r in range(comm.size)]
-    total = comm.allgather_rows(sums, counts).sum(axis=0)
+    with np.errstate(over="ignore", invalid="ignore"):
+        total = comm.allgather_rows(sums, counts).sum(axis=0)
     n = max(rows.size, 1)
-    mean = total[:d] / n
-    var = np.maximum(total[d:] / n - mean * mean, 0.0)
+    centre = total[:d] / n
+    with np.errstate(over="ignore", invalid="ignore"):
+        var = np.maximum(total[d:] / n - centre * centre, 0.0)
+    if first_bad[0] < 0 and not (np.isfinite(centre).all() and np.isfinite(var).all()):
+        column = int(np.argmin(np.isfinite(centre) & np.isfinite(var)))
+        raise JobError(f"`data.inputs` column {column} (counting from 0) holds values too large to standardise: their "
+                       f"squares overflow float64 (|x| up to about 1.3e154 can be standardised); rescale the column")
+    mean = shift + centre
     std = np.sqrt(var)
     inv_std = np.where(std > 1e-12 * np.maximum(1.0, np.abs(mean)), 1.0 / np.where(std > 0, std, 1.0), 1.0)
     return mean, inv_std, first_bad

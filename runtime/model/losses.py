@@ -143,6 +143,11 @@ def _class_labels(y: np.ndarray, n: int, k: int, name: str, loss: str) -> np.nda
         if np.any(wrong):
             row = int(np.flatnonzero(wrong)[0])
             raise JobError(f"`{name}` must hold whole-number class labels; got {float(y[row])!r} in row {row}")
+        outside = (y < 0) | (y >= k)  # checked before the cast: 1e300 has no int64
+        if np.any(outside):
+            row = int(np.flatnonzero(outside)[0])
+            raise JobError(f"`{name}` labels must lie in [0, {k - 1}] for {k} outputs; got {float(y[row]):g} in row "
+                           f"{row}")
     elif y.dtype.kind not in "iu":
         raise JobError(f"`{name}` must hold integer class labels; got dtype {y.dtype}")
     labels = np.asarray(y, dtype=np.int64)

@@ -56,7 +56,10 @@ def train(job: Job, comm: Comm | None = None, resume: bool | str = False, progre
             check_resumable(job.workdir, comm)  # before the data is read (a table may take a while to convert)
         else:
             claim_workdir(job.workdir, fresh, comm)
-        with threadpool_limits(limits=job.run.threads, user_api="blas"), StopSignals() as stop:
+        # a diverging run overflows on its way to the non-finite loss that stops it in words (Diverged): numpy's
+        # warnings would only print ahead of that line
+        with threadpool_limits(limits=job.run.threads, user_api="blas"), StopSignals() as stop, \
+                np.errstate(over="ignore", invalid="ignore", divide="ignore"):
             trainer = Trainer(job, comm, arrays=arrays)
             trainer.flags = LoopFlags(stop, job.run.save_minutes, comm.rank == 0)
             return RunLoop(trainer, resume, progress, echo).run()

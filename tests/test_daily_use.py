@@ -154,3 +154,37 @@ def test_scale_says_in_words_when_more_processes_do_not_pay(step_ms_at_2: float,
     else:
         assert verdict.startswith(f"verdict: this model {words} from more processes") and "P = 2" in verdict
     assert gain_verdict({**study, "mode": "weak"}) is None
+
+
+# --- a progress bar under --ranks P on a terminal ----------------------------------------------------------------
+
+def test_rank_zero_draws_a_bar_when_launched_from_a_terminal(monkeypatch) -> None:
+    from shardmill.parallel.launch import TERMINAL
+    from shardmill.training.console import progress_bar
+
+    monkeypatch.delenv(TERMINAL, raising=False)
+    assert progress_bar(10, 0, True).disable  # stderr is a pipe under pytest: tqdm draws nothing
+    monkeypatch.setenv(TERMINAL, "1")
+    bar = progress_bar(10, 0, True)
+    assert not bar.disable
+    bar.close()
+
+
+@pytest.mark.mpi
+def test_ranks_two_on_a_terminal_shows_the_bar(tmp_path: Path) -> None:
+    import shutil
+    import subprocess
+    import sys
+
+    if shutil.which("script") is None:
+        pytest.skip("util-linux `script` (a pseudo-terminal) is not installed")
+    X, y = load_iris(return_X_y=True)
+    np.save(tmp_path / "x.npy", X)
+    np.save(tmp_path / "y.npy", y)
+    (tmp_path / "job.toml").write_text('[model]\nlayers = [4, 8, 3]\n[data]\ninputs = "x.npy"\ntargets = "y.npy"\n'
+                                       '[run]\nepochs = 2\nglobal_batch = 16\nworkdir = "run"\n')
+    command = f"{sys.executable} -m shardmill train job.toml --ranks 2"
+    done = subprocess.run(["script", "-qec", command, str(tmp_path / "typescript")], cwd=tmp_path,
+                          capture_output=True, text=True, timeout=180, stdin=subprocess.DEVNULL)
+    assert done.returncode == 0, done.stdout[-2000:]
+    assert "step/s" in done.stdout and "/16 [" in done.stdout  # the bar: rate, and 2 epochs of 8 steps (135 rows / 16)

@@ -51,6 +51,11 @@ def find_mpiexec() -> list[str]:
     return [found]
 
 
+TERMINAL = "SHARDMILL_ON_TERMINAL"
+"""Set (to 1) in the ranks ``--ranks P`` starts when its own stderr is a terminal: the ranks' is a pipe, so rank 0
+would otherwise draw no progress bar."""
+
+
 def rank_environment(threads: int | None = 1, launched: bool = True,
                      base: Mapping[str, str] | None = None) -> dict[str, str]:
     """Environment of a started process: ``base`` (default: this one's) plus what every process we start needs.
@@ -164,8 +169,10 @@ def relaunch(ranks: int, args: list[str], timeout: float | None = None) -> int:
     BLAS threads are left to the job (``run.threads``), and the run stays in the terminal's process group.
     """
     # -P: the current folder stays off sys.path, so a folder named shardmill there (a clone) cannot shadow the package
+    # The ranks' output reaches the terminal through mpiexec's pipes; TERMINAL tells rank 0 a person watches it.
+    env = {TERMINAL: "1"} if sys.stderr.isatty() else {}
     return run_for_status(ranks, ["-P", "-m", "shardmill", *args], timeout=timeout, threads=None, own_group=False,
-                          forward_signals=True)
+                          forward_signals=True, env=env)
 
 
 def strip_ranks(argv: list[str]) -> list[str]:

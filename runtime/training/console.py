@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import os
 import time
 from pathlib import Path
 from typing import Any
@@ -59,12 +60,16 @@ def say(line: str, bar: Any) -> None:
 
 
 def progress_bar(total: int, done: int, show: bool):
-    """A tqdm bar of ``total`` steps with ``done`` already, or None when not ``show``."""
+    """A tqdm bar of ``total`` steps with ``done`` already, or None when not ``show``. Drawn when stderr is a
+    terminal, or when ``--ranks P`` started this rank from one (``launch.TERMINAL``: the ranks' stderr is a pipe)."""
     if not show:
         return None
+    from shardmill.parallel.launch import TERMINAL
     from tqdm import tqdm
 
-    return tqdm(total=total, initial=done, unit="step", dynamic_ncols=True, disable=None)
+    watched = os.environ.get(TERMINAL) == "1"
+    return tqdm(total=total, initial=done, unit="step", dynamic_ncols=not watched, ncols=100 if watched else None,
+                disable=False if watched else None)
 
 
 class Heartbeat:

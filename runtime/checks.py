@@ -49,10 +49,19 @@ def choice(path: str, value: object, allowed: tuple[str, ...]) -> str:
     return value
 
 
+def finite(value: object) -> bool:
+    """A real number that is finite as a float: an int beyond float's range (10**400) is not (math.isfinite would
+    raise OverflowError on it)."""
+    try:
+        return isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(float(value))
+    except OverflowError:
+        return False
+
+
 def _number(key: KeyLike, value: object) -> Any:
     integer = key.kind == "integer"
     ok_type = isinstance(value, int) if integer else isinstance(value, (int, float))
-    if isinstance(value, bool) or not ok_type or (not integer and not math.isfinite(value)):
+    if isinstance(value, bool) or not ok_type or (not integer and not finite(value)):
         raise JobError(f"`{key.path}` must be {'an integer' if integer else 'a number'}; got {value!r}")
     low, high = key.low, key.high
     if low is not None and (value <= low if key.low_open else value < low):
@@ -135,7 +144,7 @@ def _class_weights(key: KeyLike, value: object) -> str | list[float]:
     if value in ("", "balanced"):
         return value
     numbers_ok = isinstance(value, list) and value and all(
-        isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(v) and v >= 0 for v in value)
+        finite(v) and v >= 0 for v in value)
     if not numbers_ok:
         raise JobError(f"`{key.path}` must be \"balanced\" or a list of numbers ≥ 0, one per class; got {value!r}")
     if not any(value):

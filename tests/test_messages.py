@@ -72,3 +72,10 @@ def test_job_error_cuts_long_words_only() -> None:
     path = "/a/" + "b" * 150  # a long path stays whole
     assert path in str(JobError(f"file {path!r} does not exist"))
     assert "… (1,000 characters)" in str(JobError("got " + "x" * 1000))
+
+
+def test_a_number_beyond_floats_range_is_refused_in_words() -> None:
+    import shardmill as sm
+
+    with pytest.raises(JobError, match="`optimizer.eps` must be a number; got 1000000"):
+        sm.job_from_dict({"model": {"layers": [2, 2]}, "optimizer": {"eps": 10**400}})  # was an OverflowError

@@ -153,7 +153,8 @@ def test_a_regression_draws_rmse_and_marks_the_early_stop(iris_run, tmp_path):
 def test_a_resumed_run_draws_each_epoch_once_from_its_latest_record(tmp_path, monkeypatch):
     from shardmill.training import loop as trainer_module
 
-    job = _diabetes_job(tmp_path, save_every=4, health_every=1)  # 353 training rows, G = 64: 5 steps an epoch
+    # 442 − ⌊0.2·442⌋ = 354 training rows, G = 64: 5 steps an epoch
+    job = _diabetes_job(tmp_path, save_every=4, health_every=1)
     real_step = trainer_module.Trainer.step
 
     def step(self, epoch, in_epoch):  # the run dies in step 8, after the records of epoch 1; checkpoint: step 4

@@ -173,7 +173,7 @@ def test_check_grad_from_scipy(loss):
     f, g = model_functions(model, X, y)
     theta = model.params.copy()
     error = scipy.optimize.check_grad(f, g, theta, epsilon=1e-7)
-    assert error < 1e-5 * np.linalg.norm(g(theta))
+    assert error < 1e-5 * np.linalg.norm(g(theta))  # scipy.optimize.check_grad
 
 
 @pytest.mark.parametrize("layers", NETS, ids=["one_hidden", "two_hidden"])
@@ -198,7 +198,7 @@ def test_per_layer_activations_match_autograd(hidden, loss):
     theta = model.params.copy()
     f = ag_loss(model, hidden, loss, "identity", X, y)
     value, gradient = model.loss_and_grad(X, y)
-    assert value == pytest.approx(f(theta), rel=1e-12)
+    assert value == pytest.approx(f(theta), rel=1e-12)  # autograd.numpy forward pass
     assert relative_error(gradient, autograd_grad(f)(theta)) < 1e-10  # autograd reverse mode
 
 
@@ -208,7 +208,7 @@ def test_squared_error_with_output_activation_matches_autograd(output):
     f = ag_loss(model, ["tanh"], "squared_error", output, X, y)
     theta = model.params.copy()
     value, gradient = model.loss_and_grad(X, y)
-    assert value == pytest.approx(f(theta), rel=1e-12)
+    assert value == pytest.approx(f(theta), rel=1e-12)  # autograd.numpy forward pass
     assert relative_error(gradient, autograd_grad(f)(theta)) < 1e-10  # autograd reverse mode
     np.testing.assert_allclose(model.predict(X), ag_activation(output, X_forward(model, X)), rtol=1e-12)
 
@@ -265,7 +265,8 @@ def test_loss_and_grad_is_the_mean_over_rows(loss):
     model, X, y = problem([4, 5, 3], "tanh", loss, seed=10, n=7)
     whole_loss, whole_grad = model.loss_and_grad(X, y)
     per_row = [model.loss_and_grad(X[i:i + 1], y[i:i + 1]) for i in range(7)]
-    assert whole_loss == pytest.approx(np.mean([lv for lv, _ in per_row]), rel=1e-12)  # mean of the row losses
+    # the mean of the row losses: common practice
+    assert whole_loss == pytest.approx(np.mean([lv for lv, _ in per_row]), rel=1e-12)
     np.testing.assert_allclose(whole_grad, np.mean([g for _, g in per_row], axis=0), rtol=1e-10, atol=1e-14)
     doubled_loss, doubled_grad = model.loss_and_grad(np.vstack([X, X]), np.concatenate([y, y]))
     assert doubled_loss == pytest.approx(whole_loss, rel=1e-12)  # a mean, not a sum

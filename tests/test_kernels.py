@@ -126,7 +126,7 @@ def test_gelu_tanh_form_is_close_to_exact_gelu():
     A = np.zeros_like(z).reshape(1, -1)
     Z = z.copy().reshape(1, -1)
     act.bias_forward(Z, np.zeros(z.size), A, act.GELU)
-    assert np.max(np.abs(A[0] - z * scipy.special.ndtr(z))) < 1e-3
+    assert np.max(np.abs(A[0] - z * scipy.special.ndtr(z))) < 1e-3  # scipy.special.ndtr: Φ, the normal CDF
 
 
 @pytest.mark.parametrize("dtype", DTYPES)
@@ -148,6 +148,7 @@ def test_column_sums(dtype, n, m, seed):
     dZ = random(rng, (n, m), dtype)
     db = np.full(m, np.nan, dtype=dtype)
     act.column_sums(dZ, db)
+    # numpy's float64 sum over the rows
     np.testing.assert_allclose(db, dZ.astype(np.float64).sum(axis=0), rtol=1e-5 if dtype == np.float32 else 1e-12,
                                atol=1e-5 if dtype == np.float32 else 1e-13)
 
@@ -168,8 +169,8 @@ def test_softmax_cross_entropy(dtype, n, k, seed, scale):
     p = scipy.special.softmax(z64, axis=1)  # scipy.special.softmax
     onehot = np.eye(k)[labels]
     tol = 1e-5 if dtype == np.float32 else 1e-12
-    assert total == pytest.approx(expected_loss, rel=tol, abs=tol)
-    np.testing.assert_allclose(O, p, rtol=tol, atol=tol)
+    assert total == pytest.approx(expected_loss, rel=tol, abs=tol)  # scipy.special.logsumexp (above)
+    np.testing.assert_allclose(O, p, rtol=tol, atol=tol)  # scipy.special.softmax (above)
     np.testing.assert_allclose(dZ, (p - onehot) * scale, rtol=tol, atol=tol * scale)  # ∂/∂z of −log softmax_y
 
 
@@ -186,8 +187,8 @@ def test_binary_cross_entropy(dtype, n, k, seed, scale):
     s = scipy.special.expit(z64)
     direct = -np.sum(t64 * np.log(s) + (1 - t64) * np.log(1 - s))  # −[t log σ + (1−t) log(1−σ)], direct formula
     tol = 1e-5 if dtype == np.float32 else 1e-10
-    assert total == pytest.approx(direct, rel=tol, abs=tol)
-    np.testing.assert_allclose(O, s, rtol=tol, atol=tol)
+    assert total == pytest.approx(direct, rel=tol, abs=tol)  # the direct formula (above)
+    np.testing.assert_allclose(O, s, rtol=tol, atol=tol)  # scipy.special.expit
     np.testing.assert_allclose(dZ, (s - t64) * scale, rtol=tol, atol=tol * scale)  # ∂/∂z = σ(z) − t
 
 
@@ -200,7 +201,7 @@ def test_binary_cross_entropy_matches_sklearn_log_loss(dtype):
     total = losses.binary_cross_entropy(Z, T, np.ones(Z.shape[0]), 1.0, O, dZ)
     expected = log_loss(T[:, 0], scipy.special.expit(Z[:, 0].astype(np.float64)), normalize=False,
                         labels=[0, 1])  # sklearn.metrics.log_loss
-    assert total == pytest.approx(expected, rel=1e-5 if dtype == np.float32 else 1e-10)
+    assert total == pytest.approx(expected, rel=1e-5 if dtype == np.float32 else 1e-10)  # sklearn log_loss
 
 
 @pytest.mark.parametrize("dtype", DTYPES)

@@ -81,7 +81,7 @@ def test_without_a_bar_a_heartbeat_says_where_the_run_is(tmp_path, capsys, monke
     loop.train(_job(tmp_path, epochs=1), progress=False, echo=True)
     beats = [line for line in capsys.readouterr().out.splitlines() if line.startswith("step")]
     assert beats and all("samples/s" in line and "s left" in line for line in beats)
-    assert beats[0].split()[1] == "1/3"  # 353 training rows in batches of 128: 3 steps. common practice
+    assert beats[0].split()[1] == "1/3"  # 442 − ⌊0.1·442⌋ = 398 training rows in batches of 128: 3 steps
 
 
 def test_a_used_workdir_is_refused_unless_resumed_or_started_fresh(tmp_path):

@@ -21,7 +21,6 @@ import sys
 import numpy as np
 from mpi4py import MPI
 from shardmill.config import job_from_dict
-from shardmill.data.rows import block_range
 from shardmill.parallel.comm import Comm
 from shardmill.training.trainer import Trainer
 from shardmill.training.verify import verify
@@ -36,11 +35,15 @@ def rank_share(ref: Trainer, rows: np.ndarray, rank: int, size: int) -> np.ndarr
     what it checks (fast: a contiguous shard per rank; exact: a contiguous run of whole chunks per rank).
     """
     G = rows.size
+
+    def share(n: int) -> tuple[int, int]:  # rank's contiguous share of n items: ⌊r·n/P⌋ to ⌊(r+1)·n/P⌋
+        return (rank * n) // size, ((rank + 1) * n) // size
+
     if ref.job.run.reduction == "exact":  # exact mode: whole chunks per rank
         c = ref.job.run.exact_chunk
-        lo, hi = (c * k for k in block_range(G // c, rank, size))
+        lo, hi = (c * k for k in share(G // c))
     else:
-        lo, hi = block_range(G, rank, size)
+        lo, hi = share(G)
     mine = rows[lo:hi]
     X = (np.asarray(ref.data.X[mine], dtype=np.float64) - ref.data.mean) * ref.data.inv_std
     _, mean_grad = ref.model.loss_and_grad(X.astype(ref.model.dtype), ref.data.targets[mine])

@@ -18,7 +18,16 @@ the training rows' column means and inverse standard deviations (also under ``"i
 
 from __future__ import annotations
 
-from importlib.metadata import PackageNotFoundError, version
+import os as _os
+import sys as _sys
+
+if _os.environ.get("SHARDMILL_LAUNCHED") and _sys.argv[1:2] == ["train"]:  # a rank of `shardmill train --ranks P`
+    # before the imports below (a second or more): a stop signal from here on is noted, not fatal
+    from shardmill.training.signals import note_early_signals as _note_early_signals
+
+    _note_early_signals()
+
+from importlib.metadata import PackageNotFoundError, version  # noqa: E402
 from typing import Any
 
 from shardmill.config import Job, job_from_dict, load_job

@@ -97,3 +97,27 @@ def test_the_demo_succeeds_end_to_end(tmp_path: Path) -> None:
     assert done.returncode == 0, done.stderr[-2000:]
     assert "verdict: AGREE" in done.stdout and "held-out accuracy" in done.stdout
     assert (tmp_path / "run" / "final.npz").is_file() and (tmp_path / "verify.json").is_file()
+
+
+@pytest.mark.mpi
+@pytest.mark.parametrize("delay", [0.5, 1.2, 2.0])
+def test_a_sigterm_while_the_ranks_start_ends_cleanly(wine: Path, delay: float) -> None:
+    import signal
+    import subprocess
+    import sys
+    import time
+
+    from shardmill.parallel.launch import rank_environment
+
+    job = write_job(wine, {"layers": [13, 8, 3]}, {"global_batch": 16, "epochs": 500, "workdir": "run"},
+                    data={"inputs": "x.npy", "targets": "y.npy"})
+    process = subprocess.Popen([sys.executable, "-m", "shardmill", "train", str(job), "--ranks", "2",
+                                "--no-progress"], env=rank_environment(threads=1, launched=False),
+                               stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True, start_new_session=True)
+    time.sleep(delay)  # imports, data, kernels: before the training loop's own handlers, at some of these
+    process.send_signal(signal.SIGTERM)
+    out, _ = process.communicate(timeout=120)
+    # 143 from the ranks' clean stop, or the launcher itself ended by the signal before it started any rank (a
+    # shell reports both as 143)
+    assert process.returncode in (128 + signal.SIGTERM, -signal.SIGTERM), out[-2000:]
+    assert "BAD TERMINATION" not in out and "Traceback" not in out, out[-2000:]

@@ -223,6 +223,10 @@ def main(argv: list[str] | None = None) -> int:
     args = build_parser().parse_args(argv)
     if args.command in ("train", "verify", "bench") and args.ranks and not os.environ.get(LAUNCHED):
         return relaunch(args.ranks, strip_ranks(argv))
+    if args.command == "train":  # a stop signal while the rank starts up stops it after its first step
+        from shardmill.training.signals import note_early_signals
+
+        note_early_signals()
     from shardmill.parallel.comm import run_guarded
 
     return run_guarded(lambda: dispatch(args), user_errors=(JobError,))

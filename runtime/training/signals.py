@@ -7,6 +7,22 @@ import threading
 from pathlib import Path
 from typing import Any
 
+_EARLY: list[int] = []  # a SIGTERM/SIGINT that arrived before StopSignals took over (note_early_signals)
+
+
+def note_early_signals() -> None:
+    """From a training process's first moment: remember a SIGTERM or SIGINT instead of dying of it.
+
+    Between a rank's start and the training loop's own handlers lie the imports, the data and the kernels (seconds);
+    a signal there used to end the rank at once (exit 15, and the MPI launcher's "bad termination" block). Noted
+    here, it is handed to :class:`StopSignals`, so every rank stops together after the first step, with a
+    checkpoint and the usual one line.
+    """
+    if threading.current_thread() is not threading.main_thread():
+        return
+    for signum in StopSignals.SIGNALS:
+        signal.signal(signum, lambda received, frame: _EARLY.append(received))
+
 
 class StopSignals:
     """Remember SIGTERM (what a batch system sends before its time limit) and SIGINT (Ctrl-C) during training.
@@ -22,6 +38,7 @@ class StopSignals:
         self._previous: dict[int, Any] = {}
 
     def __enter__(self) -> StopSignals:
+        self.received = _EARLY[0] if _EARLY else 0  # one that came while the process was starting
         if threading.current_thread() is threading.main_thread():  # handlers can only be set there
             for signum in self.SIGNALS:
                 self._previous[signum] = signal.signal(signum, self._note)

@@ -79,3 +79,23 @@ def test_a_number_beyond_floats_range_is_refused_in_words() -> None:
 
     with pytest.raises(JobError, match="`optimizer.eps` must be a number; got 1000000"):
         sm.job_from_dict({"model": {"layers": [2, 2]}, "optimizer": {"eps": 10**400}})  # was an OverflowError
+
+
+def test_inputs_cut_short_under_a_running_job_end_it_in_words(tmp_path: Path) -> None:
+    import shardmill as sm
+    from shardmill.errors import LocalJobError
+    from shardmill.training.trainer import Trainer
+
+    rng = np.random.default_rng(0)
+    np.save(tmp_path / "x.npy", rng.normal(size=(400, 3)))
+    np.save(tmp_path / "y.npy", rng.integers(0, 2, 400))
+    job = sm.job_from_dict({"model": {"layers": [3, 4, 2]}, "data": {"inputs": str(tmp_path / "x.npy"),
+                                                                     "targets": str(tmp_path / "y.npy")},
+                            "run": {"global_batch": 8, "workdir": str(tmp_path / "run")}})
+    trainer = Trainer(job, Comm.alone())
+    trainer.step(0, 0)
+    size = (tmp_path / "x.npy").stat().st_size
+    with open(tmp_path / "x.npy", "r+b") as f:
+        f.truncate(size // 2)  # reading the lost half through the mapping would be SIGBUS ("Bus error")
+    with pytest.raises(LocalJobError, match=r"was cut to [\d,]+ bytes while the job reads it"):
+        trainer.step(0, 1)

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import hashlib
 import math
+import os
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -12,7 +13,7 @@ from shardmill.config import Job
 from shardmill.data.categories import Category
 from shardmill.data.files import open_job_data, open_job_weights
 from shardmill.data.rows import Split, as_numbers, block_range, column_statistics, first_of_ranks, split_rows
-from shardmill.errors import JobError
+from shardmill.errors import JobError, LocalJobError
 from shardmill.model.activations import OUTPUTS
 from shardmill.model.mlp import MLP, check_weights
 from shardmill.parallel.comm import Comm, share_error
@@ -34,6 +35,21 @@ class Dataset:
     codes: np.ndarray | None = None  # (n, c) int64 category codes of every row (0: unknown); None without any
     target_mean: np.ndarray | None = None  # (k,) float64: the targets' scaling (data.standardize_targets), or None
     target_std: np.ndarray | None = None  # (k,) float64, > 0: ``targets`` holds (t − target_mean) / target_std
+    inputs_file: tuple[str, int] | None = None  # memory-mapped inputs: (file, the bytes the array needs)
+
+    def check_inputs_file(self) -> None:
+        """Refuse (LocalJobError) to read memory-mapped inputs whose file has become shorter than the array: a read
+        past its end would end the process with SIGBUS ("Bus error"), not a message. One ``os.stat`` per call."""
+        if self.inputs_file is None:
+            return
+        name, needed = self.inputs_file
+        try:
+            size = os.stat(name).st_size
+        except OSError as err:
+            raise LocalJobError(f"`data.inputs` {name!r} cannot be read any more: {err.strerror or err}") from None
+        if size < needed:
+            raise LocalJobError(f"`data.inputs` {name!r} was cut to {size:,} bytes while the job reads it "
+                                f"({needed:,} expected); something rewrote the file under the running job")
 
     def target_record(self) -> dict[str, list[float]] | None:
         """What a checkpoint keeps of the target scaling, to refuse a resume whose targets scale otherwise."""
@@ -92,6 +108,8 @@ def load_dataset(job: Job, model: MLP, comm: Comm, categories: list[Category] | 
         X, y, feature_names = open_job_data(job, comm)  # collective; its own failures are raised alike on every rank
     else:  # checked by check_arrays first (the Trainer does, before the categorical columns would be read)
         X, y, feature_names = np.asarray(arrays.inputs), np.asarray(arrays.targets), None
+    mapped = X if isinstance(X, np.memmap) and X.filename is not None else None
+    inputs_file = None if mapped is None else (str(mapped.filename), int(mapped.offset + mapped.nbytes))
     where = "data.target" if job.data.target else "data.targets"
     try:
         X = as_numbers(np.asarray(X), "data.inputs")
@@ -127,7 +145,7 @@ def load_dataset(job: Job, model: MLP, comm: Comm, categories: list[Category] | 
     weights, class_weights = row_weights(job, targets, split, raw_weights, model.sizes[-1])
     return Dataset(X=X, targets=targets, split=split, mean=mean, inv_std=inv_std, feature_names=feature_names,
                    weights=weights, class_weights=class_weights, categories=list(categories or []), codes=codes,
-                   target_mean=target_mean, target_std=target_std)
+                   target_mean=target_mean, target_std=target_std, inputs_file=inputs_file)
 
 
 def scales_targets(job: Job, model: MLP) -> bool:

@@ -105,6 +105,7 @@ class Trainer:
     def take_inputs(self, rows: np.ndarray, ws=None) -> None:
         """The standardised numeric columns of ``rows`` and their category codes into the workspace (``self.ws``)."""
         ws = ws or self.ws
+        self.data.check_inputs_file()  # a memory-mapped file cut short would end the process with SIGBUS
         take_rows(self.data.X, rows, self.data.mean, self.data.inv_std, ws.numeric)
         if self.data.codes is not None:
             np.take(self.data.codes, rows, axis=0, out=ws.codes[:rows.size])

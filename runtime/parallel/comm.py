@@ -78,7 +78,7 @@ class Comm:
         self._idle_until(self.comm.isend(obj, dest=dest, tag=tag), poll_s)
 
     def poll_object(self, tag: int = 0) -> tuple[Any, int] | None:
-        """A control object that some rank sent with ``tag``, and its sender, when one has arrived; else None at once."""
+        """A control object some rank sent with ``tag``, and its sender, when one has arrived; else None at once."""
         status = MPI.Status()
         if not self.comm.iprobe(source=MPI.ANY_SOURCE, tag=tag, status=status):
             return None

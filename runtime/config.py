@@ -151,6 +151,14 @@ SCHEMA: tuple[Key, ...] = (
         "min(16, ⌈(v + 1)/2⌉) for v values seen in training: a table {column = width} or one width per "
         "`data.categorical` column", allowed="a table of column = width, or a list of widths ≥ 1",
         digest_default=False),
+    Key("data.folds", "integer", 0, "k of k-fold cross-validation: the rows are cut into k folds (contiguous blocks "
+        "in row order, or whole groups of `data.fold_groups`); fold `data.fold` validates, the others train, in "
+        "place of `data.validation_fraction`; 0 = off", low=0, digest_default=False),
+    Key("data.fold", "integer", 0, "the fold that validates when `data.folds` is on, counted from 0", low=0,
+        digest_default=False),
+    Key("data.fold_groups", "file", "", "group labels kept whole in one fold (so windows of one machine never sit "
+        "on both sides): a column of `data.inputs` or a file of one number per row; empty: contiguous blocks",
+        allowed="a column name, or a .npy, .npz, .csv or .parquet path", digest_default=False),
     Key("optimizer.method", "choice", "adam", "update rule", choices=METHODS),
     Key("optimizer.learning_rate", "number", 1e-3, "peak learning rate", low=0.0, low_open=True),
     Key("optimizer.weight_decay", "number", 0.0, "coupled L2 for sgd, momentum, nesterov and adam; for adamw the "
@@ -269,6 +277,9 @@ class DataSpec:
     class_weights: str | list[float] = default("data.class_weights")
     categorical: list[str] = field(default_factory=list)
     embedding_widths: dict[str, int] | list[int] = field(default_factory=dict)
+    folds: int = default("data.folds")
+    fold: int = default("data.fold")
+    fold_groups: str = default("data.fold_groups")
 
 
 @dataclass
@@ -502,6 +513,12 @@ def _check_data(data: DataSpec, model: ModelSpec) -> None:
     if both:
         raise JobError(f"`data.features` must not hold a target column; got {both[0]!r} in both")
     _check_categorical(data, targets)
+    if data.folds == 1 or data.fold >= max(data.folds, 1) or (data.fold_groups and not data.folds):
+        key = "data.folds" if data.folds == 1 else "data.fold" if data.fold else "data.fold_groups"
+        raise JobError(f"`{key}` needs `data.folds` = 0 (off) or ≥ 2, and 0 ≤ `data.fold` < `data.folds`; got "
+                       f"data.folds = {data.folds}, data.fold = {data.fold}, data.fold_groups = {data.fold_groups!r}")
+    if data.fold_groups and data.categorical:  # the vocabularies are fixed from the training rows before groups
+        raise JobError("`data.fold_groups` cannot be combined with `data.categorical` yet; use contiguous folds")
     if data.features and len(data.features) + len(data.categorical) != model.layers[0]:
         more = f" and `data.categorical` {len(data.categorical)}" if data.categorical else ""
         raise JobError(f"`data.features` names {len(data.features)} columns{more} but `model.layers` starts with "

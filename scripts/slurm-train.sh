@@ -4,6 +4,9 @@
 #   Resubmit:  the same line, unedited. `train --continue` resumes from the workdir's newest checkpoint when there is
 #              one and starts the run otherwise, so a first submission, a resubmission and a requeue all work.
 # Lines marked "site" are the only ones to adapt.
+# Many variants of a job in the same allocation (README, "Many variants in one allocation"): replace the srun line's
+#   `shardmill train "$JOB" --continue --no-progress "$@"` by `shardmill variants "$JOB" plan.toml --group-ranks 2`;
+#   resubmitting the same line skips the finished variants and continues the others from their checkpoints.
 #SBATCH --job-name=shardmill
 #SBATCH --nodes=2                 # site: nodes
 #SBATCH --ntasks-per-node=32      # site: one rank per core

@@ -24,10 +24,11 @@ from shardmill.errors import JobError
 README = Path(__file__).resolve().parents[1] / "README.md"
 # The run keys that fix the trajectory, as the digest has always taken them (the rest of [run] may change on resume).
 DIGEST_RUN_KEYS = ("global_batch", "seed", "reduction", "exact_chunk")
-# [data] keys added in 0.2 (tables) and 0.3 (weights, categories, target scaling): they enter the digest only away
-# from their defaults, as the checkpoints on disk were written without them.
+# [data] keys added in 0.2 (tables), 0.3 (weights, categories, target scaling) and later (k-fold folds): they enter
+# the digest only away from their defaults, as the checkpoints on disk were written without them.
 ADDED_DATA_KEYS = {"target": "", "features": [], "header": "auto", "weights": "", "class_weights": "",
-                   "categorical": [], "embedding_widths": {}, "standardize_targets": True}
+                   "categorical": [], "embedding_widths": {}, "standardize_targets": True, "folds": 0, "fold": 0,
+                   "fold_groups": ""}
 # [model] keys added in 0.3 (the robust losses' parameters; norm, dropout and residual): likewise, at their defaults
 # they stay out of the digest.
 ADDED_MODEL_KEYS = {"huber_delta": 1.0, "norm": "none", "dropout": 0.0, "residual": False}

@@ -1,5 +1,5 @@
-"""The ``shardmill`` command: train, verify, bench, scale, predict, export, curves, expand, saves, info, compile,
-demo.
+"""The ``shardmill`` command: train, verify, bench, scale, variants, predict, export, curves, expand, saves, info,
+compile, demo.
 
 User errors (a bad job, a missing file, a refused checkpoint) print one line and exit 2, with no
 traceback; our own bugs print the rank and a full traceback and end every rank.
@@ -170,6 +170,16 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--timeout", type=float, default=900.0, metavar="SECONDS", help="time allowed per process count")
     p.add_argument("--no-progress", action="store_true", help="no progress bar")
 
+    p = command("variants", "train many variants of a job in one launch, g ranks each, and rank them in one table")
+    job_file(p)
+    p.add_argument("plan", type=Path, metavar="PLAN", help="the plan of variants (TOML: [study], [grid], [[variant]])")
+    p.add_argument("--group-ranks", type=_count, default=0, metavar="G",
+                   help="ranks that train one variant together (default: the plan's study.ranks_per_variant, else "
+                        "chosen: the most groups the variants can fill)")
+    p.add_argument("--out-dir", type=Path, default=None, metavar="DIR",
+                   help="the study folder (default: the plan's study.folder, beside the plan)")
+    ranks(p)
+
     p = command("predict", "outputs (or labels) of a trained model on new inputs")
     p.add_argument("model", type=Path, metavar="MODEL",
                    help="final.npz, best.npz, a checkpoint directory or a workdir (its newest checkpoint)")
@@ -221,7 +231,7 @@ def build_parser() -> argparse.ArgumentParser:
 def main(argv: list[str] | None = None) -> int:
     argv = list(sys.argv[1:] if argv is None else argv)
     args = build_parser().parse_args(argv)
-    if args.command in ("train", "verify", "bench") and args.ranks and not os.environ.get(LAUNCHED):
+    if args.command in ("train", "verify", "bench", "variants") and args.ranks and not os.environ.get(LAUNCHED):
         return relaunch(args.ranks, strip_ranks(argv))
     if args.command == "train":  # a stop signal while the rank starts up stops it after its first step
         from shardmill.training.signals import note_early_signals
@@ -252,6 +262,10 @@ def dispatch(args: argparse.Namespace) -> int:
         from shardmill.scaling.driver import cmd_scale
 
         return cmd_scale(args, read_job(args))
+    if args.command == "variants":
+        from shardmill.study.run import cmd_variants
+
+        return cmd_variants(args)
     if args.command == "predict":
         from shardmill.commands.predict import cmd_predict
 

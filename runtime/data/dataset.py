@@ -11,7 +11,7 @@ from typing import Any
 import numpy as np
 from shardmill.config import Job
 from shardmill.data.categories import Category
-from shardmill.data.files import open_job_data, open_job_weights
+from shardmill.data.files import open_job_column, open_job_data, open_job_weights
 from shardmill.data.rows import Split, as_numbers, block_range, column_statistics, first_of_ranks, split_rows
 from shardmill.errors import JobError, LocalJobError
 from shardmill.model.activations import OUTPUTS
@@ -122,7 +122,7 @@ def load_dataset(job: Job, model: MLP, comm: Comm, categories: list[Category] | 
     except (JobError, OSError, MemoryError) as err:
         error = err if isinstance(err, JobError) else JobError(f"data cannot be loaded: {err}")
     share_error(comm, error)
-    split = split_rows(X.shape[0], job.data.validation_fraction, job.run.seed)
+    split = job_split(job, X.shape[0], comm)
     if split.train.size == 0:
         raise JobError("`data.validation_fraction` leaves no training rows")
     mean, inv_std, (bad, rank) = column_statistics(X, split.train if job.data.standardize else split.train[:0],
@@ -146,6 +146,14 @@ def load_dataset(job: Job, model: MLP, comm: Comm, categories: list[Category] | 
     return Dataset(X=X, targets=targets, split=split, mean=mean, inv_std=inv_std, feature_names=feature_names,
                    weights=weights, class_weights=class_weights, categories=list(categories or []), codes=codes,
                    target_mean=target_mean, target_std=target_std, inputs_file=inputs_file)
+
+
+def job_split(job: Job, n_rows: int, comm: Comm) -> Split:
+    """The job's training and validation rows (:func:`rows.split_rows`), with the fold keys' groups read
+    (collective: a group column or file is read alike on every rank)."""
+    data = job.data
+    groups = open_job_column(job, comm, "data.fold_groups") if data.fold_groups else None
+    return split_rows(n_rows, data.validation_fraction, job.run.seed, data.folds, data.fold, groups)
 
 
 def scales_targets(job: Job, model: MLP) -> bool:

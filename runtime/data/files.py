@@ -101,7 +101,9 @@ def open_job_data(job: Job, comm: Comm) -> tuple[np.ndarray, np.ndarray, list[st
             select(inputs, list(data.categorical), "data.categorical")
             weight_column = [] if weights_are_a_file(data.weights) else _names(data.weights)
             select(inputs, weight_column, "data.weights")
-            taken = target + weight_column + list(data.categorical)
+            group_column = [] if weights_are_a_file(data.fold_groups) else _names(data.fold_groups)
+            select(inputs, group_column, "data.fold_groups")
+            taken = target + weight_column + group_column + list(data.categorical)
             features = list(data.features) or [c for c in inputs.columns if c not in taken]
             if not features:
                 raise JobError(f"`data.inputs` {str(path)!r} has no column left for the inputs once the target "
@@ -145,24 +147,32 @@ def open_job_weights(job: Job, comm: Comm) -> np.ndarray | None:
     Collective, like :func:`open_job_data`: a file is read whole on every rank; a column of the inputs table comes
     from the table's cache (converted once, like the inputs). Checks of the values are the caller's.
     """
-    value = job.data.weights
+    return open_job_column(job, comm, "data.weights")
+
+
+def open_job_column(job: Job, comm: Comm, key: str) -> np.ndarray | None:
+    """One value per row named by the data key ``key`` (``data.weights``, ``data.fold_groups``): a file, read
+    whole on every rank, or a column of the inputs table from its cache; (n,) or (n, 1), or None when the key is
+    empty. Collective; failures are raised alike on every rank."""
+    value = getattr(job.data, key.split(".")[1])
     if not value:
         return None
     if weights_are_a_file(value):
-        return np.asarray(_errors(comm, lambda: read_array(job.path(value), "data.weights", mmap=False)))
+        return np.asarray(_errors(comm, lambda: read_array(job.path(value), key, mmap=False)))
     path = job.path(job.data.inputs)
 
     def inspect():
         if not is_table(path):
-            raise JobError(f"`data.weights` = {value!r} names a column, but `data.inputs` {str(path)!r} is an array "
+            raise JobError(f"`{key}` = {value!r} names a column, but `data.inputs` {str(path)!r} is an array "
                            f"without column names; give a file ({', '.join(FILE_SUFFIXES)}) instead")
         table = describe(path, "data.inputs", job.data.header)
-        select(table, [value], "data.weights")
+        select(table, [value], key)
         return table
 
     table = _errors(comm, inspect)
-    arrays = cached_columns(table, job.data.header, {"weights": [value]}, job.workdir / "tables", comm)
-    return np.array(arrays["weights"])
+    part = key.split(".")[1]
+    arrays = cached_columns(table, job.data.header, {part: [value]}, job.workdir / "tables", comm)
+    return np.array(arrays[part])
 
 
 def read_inputs(path: Path, field_name: str, features: list[str] | None = None, header: str = "auto",

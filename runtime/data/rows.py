@@ -43,12 +43,53 @@ class Split:
     validation: np.ndarray
 
 
-def split_rows(n_rows: int, validation_fraction: float, seed: int) -> Split:
+def split_rows(n_rows: int, validation_fraction: float, seed: int, folds: int = 0, fold: int = 0,
+               groups: np.ndarray | None = None) -> Split:
     """A seeded split, the same on every rank and for every P: validation takes the first ⌊f·n⌋ rows of a
-    permutation, training the rest in ascending order."""
+    permutation, training the rest in ascending order.
+
+    With ``folds`` ≥ 2 (k-fold cross-validation, ``data.folds``) the split is instead fold ``fold`` of
+    :func:`fold_of_rows` for validation and every other row for training, both ascending; no seed is involved.
+    """
+    if folds:
+        where = fold_of_rows(n_rows, folds, groups) == fold
+        return Split(train=np.flatnonzero(~where).astype(np.int64), validation=np.flatnonzero(where).astype(np.int64))
     perm = np.random.default_rng([seed, 7919]).permutation(n_rows)
     n_val = int(validation_fraction * n_rows)
     return Split(train=np.sort(perm[n_val:]).astype(np.int64), validation=np.sort(perm[:n_val]).astype(np.int64))
+
+
+def fold_of_rows(n_rows: int, folds: int, groups: np.ndarray | None = None) -> np.ndarray:
+    """The fold (0 … k−1) of every row, (n_rows,) int64, for k-fold cross-validation.
+
+    Without ``groups``: contiguous blocks in row order, the first n mod k folds one row longer (so rows near in
+    time stay together). With ``groups`` ((n_rows,) labels): every group goes whole into one fold; groups are
+    taken largest first (ties: first seen first) and each joins the fold holding the fewest rows so far (ties: the
+    lowest fold), which keeps the folds' sizes close. Raises JobError for more folds than rows or groups.
+    """
+    if folds > n_rows:
+        raise JobError(f"`data.folds` = {folds} asks for more folds than the {n_rows} rows")
+    if groups is None:
+        sizes = np.full(folds, n_rows // folds, dtype=np.int64)
+        sizes[:n_rows % folds] += 1
+        return np.repeat(np.arange(folds, dtype=np.int64), sizes)
+    labels = np.asarray(groups).reshape(-1)
+    if labels.dtype.kind == "f" and not np.isfinite(labels).all():
+        raise JobError(f"`data.fold_groups` row {int(np.argmin(np.isfinite(labels)))} holds no group (NaN or inf)")
+    if labels.size != n_rows:
+        raise JobError(f"`data.fold_groups` holds {labels.size} labels for {n_rows} rows; give one per row")
+    _, first, inverse, counts = np.unique(labels, return_index=True, return_inverse=True, return_counts=True)
+    if counts.size < folds:
+        raise JobError(f"`data.folds` = {folds} asks for more folds than the {counts.size} groups of "
+                       f"`data.fold_groups`")
+    order = np.lexsort((first, -counts))  # largest first, then first seen
+    load = np.zeros(folds, dtype=np.int64)
+    fold_of_group = np.empty(counts.size, dtype=np.int64)
+    for g in order.tolist():  # one pass over the groups (not the rows)
+        target = int(np.argmin(load))
+        fold_of_group[g] = target
+        load[target] += counts[g]
+    return fold_of_group[inverse.reshape(-1)]
 
 
 def block_range(n_blocks: int, rank: int, size: int) -> tuple[int, int]:

@@ -67,6 +67,47 @@ class Comm:
         """
         return Comm(self.comm.Dup())
 
+    def split(self, color: int | None, key: int = 0) -> Comm | None:
+        """Cut this communicator into disjoint ones (MPI_Comm_split; collective over this one): ranks giving the same
+        ``color`` form one, ordered by ``key``; a rank giving None joins none and gets None."""
+        part = self.comm.Split(MPI.UNDEFINED if color is None else color, key)
+        return None if part == MPI.COMM_NULL else Comm(part)
+
+    def send_object(self, obj: Any, dest: int, tag: int = 0, poll_s: float = 0.002) -> None:
+        """Send a small control object to rank ``dest`` (never in the step), sleeping while it leaves."""
+        self._idle_until(self.comm.isend(obj, dest=dest, tag=tag), poll_s)
+
+    def poll_object(self, tag: int = 0) -> tuple[Any, int] | None:
+        """A control object some rank sent with ``tag``, and its sender, when one has arrived; else None at once."""
+        status = MPI.Status()
+        if not self.comm.iprobe(source=MPI.ANY_SOURCE, tag=tag, status=status):
+            return None
+        source = status.Get_source()
+        return self.comm.recv(source=source, tag=tag), source
+
+    def receive_object(self, source: int, tag: int = 0, poll_s: float = 0.002) -> Any:
+        """The next control object from rank ``source`` with ``tag``; waits sleeping, so a waiting rank leaves its
+        core to the ranks still computing (a blocking MPI wait spins)."""
+        while not self.comm.iprobe(source=source, tag=tag):
+            time.sleep(poll_s)
+        return self.comm.recv(source=source, tag=tag)
+
+    def broadcast_idle(self, array: np.ndarray, root: int = 0, poll_s: float = 0.002) -> np.ndarray:
+        """:meth:`broadcast` (MPI_Ibcast) whose waiting ranks sleep between looks instead of spinning."""
+        if self.size > 1:
+            self._idle_until(self.comm.Ibcast(self._buffer(array), root=root), poll_s)
+        return array
+
+    def barrier_idle(self, poll_s: float = 0.01) -> None:
+        """:meth:`barrier` (MPI_Ibarrier) whose early ranks sleep between looks instead of spinning."""
+        if self.size > 1:
+            self._idle_until(self.comm.Ibarrier(), poll_s)
+
+    @staticmethod
+    def _idle_until(request: Any, poll_s: float) -> None:
+        while not request.Test():
+            time.sleep(poll_s)
+
     @staticmethod
     def _buffer(array: np.ndarray) -> list:
         if not array.flags.c_contiguous:

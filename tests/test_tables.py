@@ -380,3 +380,15 @@ def test_a_nul_byte_in_a_header_name_is_refused(wine, tmp_path):
                                        r"character U\+0000"):
         tables.describe(tmp_path / "nul.csv", "data.inputs")
 
+
+def test_a_wrong_first_layer_is_blamed_before_anything_is_converted(wine, tmp_path):
+    for inputs, data in (("wine.csv", {"target": "class"}), ("x.npy", {"targets": "y.npy"})):
+        np.save(tmp_path / "x.npy", WINE.data)
+        np.save(tmp_path / "y.npy", WINE.target)
+        (tmp_path / "wine.csv").write_bytes((wine / "wine.csv").read_bytes())
+        with pytest.raises(JobError) as caught:
+            files.open_job_data(job(tmp_path, {"inputs": inputs, **data}, [12, 8, 3]), Comm())
+        message = str(caught.value)
+        assert message.startswith("`model.layers[0]` = 12 does not match the data") and "gives 13 numeric" in message
+        assert "set `model.layers[0]` to 13" in message
+        assert not (tmp_path / "run" / "tables").exists()  # the refused job converted nothing

@@ -235,3 +235,52 @@ def test_the_curves_command_refuses_a_missing_source_in_one_line(tmp_path):
     proc = run_cli(["curves", str(tmp_path / "nowhere")])
     assert proc.returncode == 2 and "Traceback" not in proc.stderr  # a user error: one line, exit 2
     assert "does not exist" in proc.stderr and len(proc.stderr.strip().splitlines()) == 1
+
+
+def test_lines_beyond_any_axis_or_parser_are_skipped_with_a_note_each(iris_run, tmp_path):
+    from helpers import run_cli
+
+    text = (iris_run / "metrics.jsonl").read_text()
+    whole = read_metrics(iris_run)
+    epoch = next(json.loads(line) for line in text.splitlines() if json.loads(line)["kind"] == "epoch")
+    hostile = [
+        json.dumps(epoch | {"epoch": 10**400}),  # Python's json reads any integer exactly; float() of it overflows
+        "[" * 100_000 + "]" * 100_000,  # nested deeper than Python's recursion limit (1000 by default)
+        json.dumps({"kind": "health", "step": -(10**30), "layers": [{"layer": 0, "grad_norm": 1.0}]}),
+        json.dumps(epoch | {"epoch": 9, "samples_per_s": 10**400}),  # a value beyond float64: drawn as a gap
+    ]
+    source = tmp_path / "metrics.jsonl"
+    source.write_text(text + "\n".join(hostile) + "\n")
+    first = len(text.splitlines()) + 1
+    metrics = read_metrics(source)
+    assert metrics["notes"] == [f"line {first} (epoch record) was skipped: its epoch 100000000000… (401 digits) is "
+                                f"beyond ±2**53",
+                                f"line {first + 1} is not a JSON object and was skipped",
+                                f"line {first + 2} (health record) was skipped: its step -100000000000… (31 digits) "
+                                f"is beyond ±2**53"]
+    assert metrics["epochs"] == [*whole["epochs"], epoch | {"epoch": 9, "samples_per_s": 10**400}]
+    assert metrics["health"] == whole["health"]
+    proc = run_cli(["curves", str(source), "--out-dir", str(tmp_path / "curves")])
+    assert proc.returncode == 0 and "Traceback" not in proc.stderr, proc.stderr[-2000:]
+    assert len(proc.stderr.strip().splitlines()) == 3 and all(len(line) < 200 for line in proc.stderr.splitlines())
+    drawn = json.loads((tmp_path / "curves" / "curves.json").read_text())["figures"]
+    (throughput,) = drawn["throughput.png"]["panels"]["samples_per_s"]["series"].values()  # one process count
+    assert throughput["x"][-1] == 9 and throughput["y"][-1] is None
+
+
+@pytest.mark.parametrize("losses, log", [
+    ([10.0, 1.0, 0.05], True),  # a span of 200: more than two decades
+    ([10.0, 1.0, 0.2], False),  # a span of 50
+    ([10.0, 1.0, 0.0], False),  # a zero has no place on a log axis
+])
+def test_losses_and_rmse_use_a_log_axis_when_they_span_more_than_two_decades(tmp_path, losses, log):
+    records = [{"kind": "epoch", "epoch": e, "step": 3 * e, "train": {"loss": v, "rmse": 2 * v},
+                "validation": {"loss": 1.5 * v, "rmse": 3 * v}} for e, v in enumerate(losses, start=1)]
+    (tmp_path / "metrics.jsonl").write_text("".join(json.dumps(r) + "\n" for r in records))
+    draw_curves(tmp_path, tmp_path / "curves")
+    drawn = json.loads((tmp_path / "curves" / "curves.json").read_text())["figures"]
+    # the rule, computed here from the records: every value > 0 and max/min > 100 (common practice)
+    for key in ("loss", "rmse"):
+        values = np.array([r[part][key] for r in records for part in ("train", "validation")])
+        assert bool(values.min() > 0 and values.max() / values.min() > 100) is log
+        assert drawn[f"{key}.png"]["panels"][key]["log"] is log

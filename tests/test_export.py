@@ -279,7 +279,8 @@ def test_classifier_follows_scikit_learn_conventions(models, case: str, dtype: s
     assert np.array_equal(_shardmill_predict(model, "labels", labels=True), labels)
     out = model["root"] / f"{model['name']}-labels.csv"
     cmd_predict(argparse.Namespace(model=model["workdir"], inputs=model["x"], out=out, targets=None, labels=True))
-    assert np.array_equal(np.loadtxt(out, delimiter=",", dtype=np.int64).reshape(labels.shape), labels)  # numpy
+    assert np.array_equal(np.loadtxt(out, delimiter=",", dtype=np.int64, skiprows=1).reshape(labels.shape),
+                          labels)  # numpy; the first line is the header row
 
 
 def test_regression_predicts_outputs_and_refuses_probabilities(models, capsys) -> None:

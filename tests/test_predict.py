@@ -110,9 +110,91 @@ def test_predict_writes_csv_by_extension_and_refuses_other_outputs(trained: dict
         assert f"to {out}" in proc.stdout and out.exists()
     assert not (trained["path"] / "by-ext.csv.npy").exists()  # the name said, the file written
     # numpy's text reader gives back the very same float64 values (17 significant digits round-trip, IEEE 754)
-    np.testing.assert_array_equal(np.loadtxt(csv, delimiter=","), np.load(npy, allow_pickle=False))
+    np.testing.assert_array_equal(np.loadtxt(csv, delimiter=",", skiprows=1), np.load(npy, allow_pickle=False))
+    # a header row: the targets came from a file without names, so the outputs are numbered
+    assert csv.read_text().splitlines()[0] == "output_0,output_1,output_2"
     for out, fragment in ((trained["path"] / "preds.txt", "`--out` must end in .npy or .csv"),
                           (trained["path"] / "missing" / "p.npy", "`--out` folder")):
         proc = run_cli(["predict", final, str(trained["x"]), "--out", str(out)], timeout=120)
         assert proc.returncode == 2 and fragment in proc.stderr and "Traceback" not in proc.stderr
         assert not out.exists()
+
+
+# --- a header row, and columns of the inputs kept ------------------------------------------------------------------
+
+@pytest.fixture(scope="module")
+def table_model(tmp_path_factory) -> dict:
+    """A classifier trained from a CSV table whose rows carry an id and a free-text name beside the features."""
+    path = tmp_path_factory.mktemp("predict-table")
+    x, y = make_classification(path, rows=120, features=4, classes=3, seed=5)
+    X, labels = np.load(x), np.load(y)
+    lines = ["id,name,f0,f1,f2,f3,class"]
+    lines += [f'r{i:03d},"pump {i}, east",' + ",".join(f"{v:.17g}" for v in X[i]) + f",{labels[i]}"
+              for i in range(X.shape[0])]
+    (path / "rows.csv").write_text("\n".join(lines) + "\n")
+    job = job_from_dict({"model": {"layers": [4, 8, 3], "activation": "tanh", "dtype": "float64"},
+                         "data": {"inputs": str(path / "rows.csv"), "target": "class",
+                                  "features": ["f0", "f1", "f2", "f3"], "validation_fraction": 0.2},
+                         "optimizer": {"method": "adam", "learning_rate": 0.01},
+                         "run": {"epochs": 1, "global_batch": 32, "seed": 2, "workdir": str(path / "run")}})
+    train(job, progress=False)
+    return {"path": path, "X": X, "table": path / "rows.csv", "final": path / "run" / "final.npz"}
+
+
+def _read_csv(path: Path) -> list[list[str]]:
+    import csv
+
+    with open(path, newline="") as f:
+        return list(csv.reader(f))  # Python's csv module (RFC 4180 quoting)
+
+
+def test_predict_csv_has_a_header_and_keeps_named_columns_first(table_model: dict) -> None:
+    from shardmill import load_model
+
+    predictor = load_model(table_model["final"])
+    out = table_model["path"] / "labels.csv"
+    proc = run_cli(["predict", str(table_model["final"]), str(table_model["table"]), "--out", str(out), "--labels",
+                    "--keep", "name,id"])
+    assert proc.returncode == 0, proc.stderr[-3000:]
+    rows = _read_csv(out)
+    assert rows[0] == ["name", "id", "class"]  # the kept columns in the order given, then the target's name
+    assert [r[1] for r in rows[1:]] == [f"r{i:03d}" for i in range(120)]
+    assert [r[0] for r in rows[1:]] == [f"pump {i}, east" for i in range(120)]  # text with a comma, quoted
+    assert [int(r[2]) for r in rows[1:]] == predictor.predict(table_model["X"]).tolist()
+    out = table_model["path"] / "outputs.csv"
+    proc = run_cli(["predict", str(table_model["final"]), str(table_model["table"]), "--out", str(out)])
+    assert proc.returncode == 0, proc.stderr[-3000:]
+    rows = _read_csv(out)
+    assert rows[0] == ["output_0", "output_1", "output_2"]  # three probabilities of one target column: numbered
+    values = np.array([[float(v) for v in r] for r in rows[1:]])  # float() of 17 digits: the same float64
+    np.testing.assert_array_equal(values, predictor.outputs(table_model["X"]))
+
+
+def test_output_names_are_the_target_columns_when_they_name_each_output(table_model: dict) -> None:
+    from shardmill import load_model
+    from shardmill.commands.predict import output_names
+
+    predictor = load_model(table_model["final"])
+    outputs = np.zeros((2, 3))
+    assert output_names(predictor, outputs) == ["output_0", "output_1", "output_2"]
+    assert output_names(predictor, np.zeros(2, dtype=np.int64)) == ["class"]
+    predictor.job = {"data": {"target": ["a", "b", "c"]}}
+    assert output_names(predictor, outputs) == ["a", "b", "c"]
+    predictor.job = {"data": {"target": []}}
+    assert output_names(predictor, np.zeros(2, dtype=np.int64)) == ["label"]
+
+
+@pytest.mark.parametrize("keep, out, fragment", [
+    ("id,nme", "p.csv", "`--keep` column 'nme' is not in `inputs` file"),
+    ("id,id", "p.csv", "`--keep` names column 'id' twice"),
+    ("id", "p.npy", "`--keep` passes columns into a .csv output"),
+    ("class", "p.csv", "`--keep` column 'class' has the name of an output column"),
+])
+def test_predict_refuses_a_bad_keep_in_one_line(table_model: dict, keep: str, out: str, fragment: str) -> None:
+    target = table_model["path"] / "refused" / out
+    target.parent.mkdir(exist_ok=True)
+    proc = run_cli(["predict", str(table_model["final"]), str(table_model["table"]), "--out", str(target),
+                    "--labels", "--keep", keep])
+    assert proc.returncode == 2 and "Traceback" not in proc.stderr, proc.stderr[-3000:]
+    assert fragment in proc.stderr and len(proc.stderr.strip().splitlines()) == 1
+    assert not target.exists()

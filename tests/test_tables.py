@@ -331,3 +331,64 @@ def test_two_ranks_train_from_parquet_as_one_does_and_agree_on_a_bad_column(tmp_
     assert proc.returncode == 2, proc.stderr[-3000:]
     assert "`data.target` column 'targte'" in proc.stderr and "did you mean 'target'?" in proc.stderr
     assert "Traceback" not in proc.stderr
+
+
+# --- hostile text: over-long fields, byte-order marks, control characters ----------------------------------------
+
+FIELD_LIMIT = 131072  # Python's csv module: field_size_limit() defaults to 128 * 1024 characters (its documentation)
+
+
+def test_an_over_long_header_name_is_one_line_naming_file_line_and_column(tmp_path):
+    path = tmp_path / "long.csv"
+    path.write_text("a," + "n" * (FIELD_LIMIT + 1) + "\n1,2\n")
+    with pytest.raises(JobError) as caught:
+        tables.describe(path, "data.inputs")
+    message = str(caught.value)
+    assert str(path) in message and "line 1, column 2" in message and f"{FIELD_LIMIT + 1:,} characters" in message
+    assert "\n" not in message and len(message) < 400  # the value is not echoed in full
+
+
+def test_an_over_long_quoted_field_names_its_column_when_converted_or_read_as_text(wine, tmp_path):
+    lines = (wine / "wine.csv").read_text().splitlines()
+    lines.insert(5, '"1' + "0" * (FIELD_LIMIT + 5) + '",' + ",".join(["1"] * 13))  # data row 4 is line 6
+    path = tmp_path / "quoted.csv"
+    path.write_text("\n".join(lines) + "\n")
+    table = tables.describe(path, "data.inputs")
+    with pytest.raises(JobError, match=r"line 6, column 'alcohol': a field of 131,078 characters; at most 131,072"):
+        tables.read_table(table, [0, 1])
+    with pytest.raises(JobError, match=r"line 6, column 'alcohol': a field of 131,078 characters"):
+        tables.read_text(table, ["hue"], "data.categorical")
+
+
+def test_one_byte_order_mark_is_the_encodings_and_a_second_is_refused(wine, tmp_path):
+    text = (wine / "wine.csv").read_text()
+    once, twice = tmp_path / "bom.csv", tmp_path / "bom2.csv"
+    # U+FEFF at the start of a UTF-8 file is a byte-order mark, not text (The Unicode Standard, §23.8; Python's
+    # "utf-8-sig" codec); a file that starts with two holds one mark and one U+FEFF character.
+    once.write_bytes(b"\xef\xbb\xbf" + text.encode())
+    twice.write_bytes(b"\xef\xbb\xbf\xef\xbb\xbf" + text.encode())
+    assert tables.describe(once, "data.inputs").columns == WINE_NAMES + ["class"]
+    with pytest.raises(JobError, match=r"line 1: the header name of column 1 \('\\ufeffalcohol'\) holds a second "
+                                       r"byte-order mark"):
+        tables.describe(twice, "data.inputs")
+
+
+def test_a_nul_byte_in_a_header_name_is_refused(wine, tmp_path):
+    text = (wine / "wine.csv").read_text().replace("ash,", "a\x00sh,", 1)
+    (tmp_path / "nul.csv").write_text(text)
+    with pytest.raises(JobError, match=r"line 1: the header name of column 3 \('a\\x00sh'\) holds the control "
+                                       r"character U\+0000"):
+        tables.describe(tmp_path / "nul.csv", "data.inputs")
+
+
+def test_a_wrong_first_layer_is_blamed_before_anything_is_converted(wine, tmp_path):
+    for inputs, data in (("wine.csv", {"target": "class"}), ("x.npy", {"targets": "y.npy"})):
+        np.save(tmp_path / "x.npy", WINE.data)
+        np.save(tmp_path / "y.npy", WINE.target)
+        (tmp_path / "wine.csv").write_bytes((wine / "wine.csv").read_bytes())
+        with pytest.raises(JobError) as caught:
+            files.open_job_data(job(tmp_path, {"inputs": inputs, **data}, [12, 8, 3]), Comm())
+        message = str(caught.value)
+        assert message.startswith("`model.layers[0]` = 12 does not match the data") and "gives 13 numeric" in message
+        assert "set `model.layers[0]` to 13" in message
+        assert not (tmp_path / "run" / "tables").exists()  # the refused job converted nothing

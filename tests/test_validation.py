@@ -110,7 +110,8 @@ CASES = [
     Case("unknown_table", {}, ["`optimiser`", "not a known table", "model, data, optimizer, run",
                                "did you mean 'optimizer'"], extra_toml='[optimiser]\nmethod = "adam"\n', cli=True),
     # data: shapes, values, files, batch size
-    Case("inputs_wrong_width", {}, ["`data.inputs`", f"(n, {FEATURES})", f"({ROWS}, {FEATURES - 1})"], stage="data",
+    Case("inputs_wrong_width", {}, [f"`model.layers[0]` = {FEATURES} does not match", "`data.inputs`",
+                                    f"gives {FEATURES - 1} numeric input column(s)"], stage="data",
          damage=_with_x(lambda x: x[:, :-1]), cli=True),
     Case("inputs_one_dimensional", {}, ["`data.inputs`", f"(n, {FEATURES})", f"({ROWS * FEATURES},)"],
          stage="data", damage=_with_x(lambda x: x.ravel())),

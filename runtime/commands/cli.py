@@ -189,6 +189,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--labels", action="store_true",
                    help="write labels (class index, or 0/1 per output) instead of the output layer's values")
     p.add_argument("--targets", type=Path, default=None, metavar="FILE", help="labelled set: also print metrics")
+    p.add_argument("--keep", action="append", default=None, metavar="COLUMN[,COLUMN…]",
+                   help="columns of the INPUTS table (an id, text allowed) written first into a .csv --out, in the "
+                        "order given; repeatable")
 
     p = command("export", "write a trained model as ONNX, with a model card (JSON)")
     p.add_argument("model", type=Path, metavar="MODEL",

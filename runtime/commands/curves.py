@@ -22,6 +22,11 @@ from shardmill.errors import JobError
 from shardmill.timing import PHASES
 
 METRICS_FILE = "metrics.jsonl"
+LARGEST_COUNT = 2**53
+"""An epoch or step beyond ±2⁵³ (float64's exact integers) is no count a run writes: its record is skipped."""
+WIDE_SPAN = 100.0
+"""Losses and RMSE are drawn on a log axis when every drawn value is positive and the largest is more than this
+many times the smallest (a span of more than two decades): a linear axis then flattens the later epochs to 0."""
 CURVES_FILE = "curves.json"
 FORMAT = "shardmill-curves-1"
 
@@ -123,6 +128,10 @@ def read_metrics(path: Path) -> dict[str, Any]:
                 continue
         kind = record.get("kind")
         kind = kind if isinstance(kind, str) else "?"
+        beyond = _out_of_range(record, {"epoch": "epoch", "health": "step"}.get(kind, "step"))
+        if beyond is not None:
+            notes.append(f"line {number} ({kind} record) was skipped: {beyond}")
+            continue
         kinds[kind] = kinds.get(kind, 0) + 1
         if kind == "epoch" and _is_int(record.get("epoch")):
             epochs[record["epoch"]] = record
@@ -157,7 +166,7 @@ def read_metrics(path: Path) -> dict[str, Any]:
 def _parse(line: str) -> dict[str, Any] | None:
     try:
         record = json.loads(line)
-    except ValueError:
+    except (ValueError, RecursionError):  # RecursionError: brackets nested deeper than the parser goes
         return None
     return record if isinstance(record, dict) else None
 
@@ -184,14 +193,28 @@ def _after(record: dict[str, Any], step: Any) -> bool:
 
 
 def _is_int(value: Any) -> bool:
-    return isinstance(value, int) and not isinstance(value, bool)
+    """An integer count (epoch, step, processes) that a float64 axis holds exactly: |value| ≤ 2⁵³."""
+    return isinstance(value, int) and not isinstance(value, bool) and abs(value) <= LARGEST_COUNT
+
+
+def _out_of_range(record: dict[str, Any], key: str) -> str | None:
+    """A note's words when ``record[key]`` is an integer too large for an axis, else None."""
+    value = record.get(key)
+    if not isinstance(value, int) or isinstance(value, bool) or abs(value) <= LARGEST_COUNT:
+        return None
+    digits = str(abs(value))
+    shown = digits if len(digits) <= 20 else f"{digits[:12]}… ({len(digits)} digits)"
+    return f"its {key} {'-' if value < 0 else ''}{shown} is beyond ±2**53"
 
 
 def _number(value: Any) -> float | None:
     """A finite float, or None (missing, not a number, NaN or ±inf): what a curve leaves as a gap."""
     if isinstance(value, bool) or not isinstance(value, int | float):
         return None
-    value = float(value)
+    try:
+        value = float(value)
+    except OverflowError:  # an integer beyond the largest float64
+        return None
     return value if math.isfinite(value) else None
 
 
@@ -238,8 +261,9 @@ def _markers(metrics: dict[str, Any], panel_metric: str) -> list[dict[str, Any]]
         markers.append({"kind": "best", "metric": best["metric"], "x": best["epoch"], "y": _number(best.get("value"))})
     stop = metrics["early_stop"]
     if stop is not None and _is_int(stop.get("epoch")):
-        markers.append({"kind": "early_stop", "x": stop["epoch"], "metric": stop.get("metric"),
-                        "patience": stop.get("patience")})
+        metric, patience = stop.get("metric"), stop.get("patience")
+        markers.append({"kind": "early_stop", "x": stop["epoch"], "metric": metric if isinstance(metric, str) else None,
+                        "patience": patience if _is_int(patience) else None})
     return markers
 
 
@@ -252,16 +276,19 @@ def figures(metrics: dict[str, Any]) -> dict[str, dict[str, Any]]:
     """
     epochs = metrics["epochs"]
     out: dict[str, dict[str, Any]] = {}
-    out["loss.png"] = {"title": "loss per epoch", "panels": {"loss": _panel("loss (mean per row)", {
-        "train": _series(epochs, "epoch", "train", "loss"),
-        "validation": _series(epochs, "epoch", "validation", "loss")}, markers=_markers(metrics, "loss"))}}
+    loss = {"train": _series(epochs, "epoch", "train", "loss"),
+            "validation": _series(epochs, "epoch", "validation", "loss")}
+    out["loss.png"] = {"title": "loss per epoch", "panels": {"loss": _panel(
+        "loss (mean per row)", loss, markers=_markers(metrics, "loss"), log=_wide(loss))}}
     for quality in QUALITY:
         series = {"train": _series(epochs, "epoch", "train", quality),
                   "validation": _series(epochs, "epoch", "validation", quality)}
         if any(s["x"] for s in series.values()):
             label = "accuracy (fraction correct)" if quality == "accuracy" else "RMSE (target units)"
+            log = quality == "rmse" and _wide(series)  # an error, like the loss; accuracy is a share in [0, 1]
             out[f"{quality}.png"] = {"title": f"{'accuracy' if quality == 'accuracy' else 'RMSE'} per epoch",
-                                     "panels": {quality: _panel(label, series, markers=_markers(metrics, quality))}}
+                                     "panels": {quality: _panel(label, series, markers=_markers(metrics, quality),
+                                                                log=log)}}
     processes = sorted({r.get("processes") for r in epochs if _is_int(r.get("processes"))})
     throughput = {f"P = {p}": _series([r for r in epochs if r.get("processes") == p], "epoch", "samples_per_s")
                   for p in processes} or {"samples/s": _series(epochs, "epoch", "samples_per_s")}
@@ -296,6 +323,12 @@ def _health_panels(records: list[dict[str, Any]]) -> dict[str, dict[str, Any]]:
         log = key in ("grad_norm", "update_ratio") and _positive(series)
         panels[key] = _panel(label, series, x_label="step", log=log, fraction=key.endswith("_fraction"))
     return panels
+
+
+def _wide(series: dict[str, dict[str, list]]) -> bool:
+    """True when every drawn value is > 0 and they span more than two decades (max > :data:`WIDE_SPAN` × min)."""
+    values = [v for s in series.values() for v in s["y"] if v is not None]
+    return bool(values) and min(values) > 0 and max(values) > WIDE_SPAN * min(values)
 
 
 def _positive(series: dict[str, dict[str, list]]) -> bool:
@@ -381,7 +414,7 @@ def _draw_panel(ax, panel: dict[str, Any]) -> None:
                     markeredgecolor=MARK, markeredgewidth=1.1, label=f"best ({marker['metric']})", zorder=4)
         elif marker["kind"] == "early_stop":
             ax.axvline(marker["x"], color=MARK, linestyle=":", linewidth=1.0, label="early stop", zorder=1)
-    if panel["log"]:  # spans of several decades (phases at P = 1, gradient norms): ticks in plain numbers
+    if panel["log"]:  # spans of several decades (losses, phases at P = 1, gradient norms): ticks in plain numbers
         ax.set_yscale("log")
         ax.yaxis.set_major_formatter(FuncFormatter(lambda value, _: f"{value:.3g}"))
         ax.yaxis.set_minor_formatter(FuncFormatter(_minor_label))

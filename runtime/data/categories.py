@@ -8,14 +8,12 @@ the width rule and the limits.
 
 from __future__ import annotations
 
-import csv
-from itertools import islice
 from typing import TYPE_CHECKING
 
 import numpy as np
 from shardmill.config import Job
 from shardmill.data.rows import split_rows
-from shardmill.data.tables import Table, _data_line, _errors, _open_text, _parquet_file, describe, select
+from shardmill.data.tables import Table, _errors, describe, read_text
 from shardmill.errors import JobError
 from shardmill.model.vocabulary import Category, canonical, check_limits, default_width, vocabulary_of
 
@@ -24,19 +22,7 @@ if TYPE_CHECKING:
 
 def read_columns(table: Table, names: list[str], key: str) -> list[list[str]]:
     """Every row's canonical text of each of ``names`` (in memory: one Python string per value), column by column."""
-    positions = select(table, names, key)
-    if table.kind == "parquet":
-        pf = _parquet_file(table.path, table.field_name)
-        data = pf.read(columns=names)
-        return [[canonical(v) for v in data.column(k).to_pylist()] for k in range(len(names))]
-    out: list[list[str]] = [[] for _ in names]
-    header_lines = table.first_line if table.named else table.first_line - 1
-    with _open_text(table.path, table.field_name) as f:
-        lines = (line for line in islice(f, header_lines, None) if _data_line(line))
-        for fields in csv.reader(lines):
-            for k, j in enumerate(positions):
-                out[k].append(canonical(fields[j]) if j < len(fields) else "")
-    return out
+    return [[canonical(value) for value in column] for column in read_text(table, names, key)]
 
 
 def widths_of(job: Job, vocabularies: list[list[str]]) -> list[int]:

@@ -108,6 +108,7 @@ def open_job_data(job: Job, comm: Comm) -> tuple[np.ndarray, np.ndarray, list[st
             if not features:
                 raise JobError(f"`data.inputs` {str(path)!r} has no column left for the inputs once the target "
                                f"column(s) {_listing(target)} are taken")
+            _check_width(job, len(features), f"`data.inputs` {str(path)!r}")  # before any column is converted
         targets = None
         if not target and is_table(job.path(data.targets)):
             targets = describe(job.path(data.targets), "data.targets", data.header)
@@ -116,7 +117,13 @@ def open_job_data(job: Job, comm: Comm) -> tuple[np.ndarray, np.ndarray, list[st
     inputs, features, targets = _errors(comm, inspect)
 
     if inputs is None:
-        X = _errors(comm, lambda: read_array(job.path(data.inputs), "data.inputs"))
+        def read_plain():
+            X = read_array(job.path(data.inputs), "data.inputs")
+            if X.ndim == 2:
+                _check_width(job, X.shape[1], f"`data.inputs` {str(job.path(data.inputs))!r}")
+            return X
+
+        X = _errors(comm, read_plain)
         names = None
     else:
         parts = {"inputs": features, **({"targets": target} if target else {})}
@@ -131,6 +138,18 @@ def open_job_data(job: Job, comm: Comm) -> tuple[np.ndarray, np.ndarray, list[st
         return X, squeeze_labels(np.asarray(y)), names
     arrays = cached_columns(targets, data.header, {"targets": list(targets.columns)}, folder, comm)
     return X, _labels(squeeze_labels(np.array(arrays["targets"])), job.model.loss), names
+
+
+def _check_width(job: Job, columns: int, source: str) -> None:
+    """``model.layers[0]`` must count the numeric input columns plus one per categorical column (each becomes one
+    embedding); a JobError naming the layer, its value and the columns ``source`` gives when it does not."""
+    layers = job.model.layers
+    categorical = len(job.data.categorical)
+    if not layers or layers[0] == columns + categorical:
+        return
+    also = f" and {categorical} categorical column(s)" if categorical else ""
+    raise JobError(f"`model.layers[0]` = {layers[0]} does not match the data: {source} gives {columns} numeric "
+                   f"input column(s){also}; set `model.layers[0]` to {columns + categorical}")
 
 
 FILE_SUFFIXES = (".npy", ".npz", ".csv", ".parquet")

@@ -19,6 +19,8 @@ import hashlib
 import json
 import os
 import struct
+import sys
+import unicodedata
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
 from itertools import islice
@@ -38,6 +40,8 @@ PARQUET_INSTALL = 'pip install "shardmill[parquet]"'
 _NPY_HEADER_BYTES = 128  # fixed .npy header (format 1.0) so the row count can be written after the rows
 _LISTED_COLUMNS = 20  # at most this many column names in an error message
 _CACHE_VERSION = 1  # part of the cache key: a change of the conversion invalidates old caches
+FIELD_LIMIT = csv.field_size_limit()  # characters in one CSV field: the csv module's limit (131,072), kept
+SHOWN_CHARACTERS = 60  # at most this many characters of a value in an error message
 
 
 @dataclass
@@ -81,9 +85,49 @@ def _is_number(text: str) -> bool:
     return True
 
 
-def _split_line(line: str) -> list[str]:
-    """The fields of one CSV line (commas, double quotes as the csv module reads them), stripped of blanks."""
-    return [text.strip() for text in next(csv.reader([line]), [])]
+def cut(text: str, limit: int = SHOWN_CHARACTERS) -> str:
+    """``text`` as an error message shows it: repr'd, cut to about ``limit`` characters with its length said."""
+    if len(text) <= limit:
+        return repr(text)
+    return f"{text[:limit]!r}… ({len(text):,} characters)"
+
+
+def csv_fields(line: str, where: str, line_no: int, columns: list[str] | None = None) -> list[str]:
+    """The raw fields of one CSV line (commas, double quotes as the csv module reads them).
+
+    A field longer than :data:`FIELD_LIMIT` characters (the csv module's own limit) is a JobError naming ``where``
+    (the file), the line, and the column (by name from ``columns``, else by position from 1).
+    """
+    try:
+        return next(csv.reader([line]), [])
+    except csv.Error as err:
+        if "field limit" not in str(err):
+            raise JobError(f"{where} line {line_no} cannot be read as CSV: {err}") from None
+    previous = csv.field_size_limit(sys.maxsize)  # read the line once more, only to say which field is too long
+    try:
+        fields = next(csv.reader([line]), [])
+    finally:
+        csv.field_size_limit(previous)
+    j = next(j for j, text in enumerate(fields) if len(text) > FIELD_LIMIT)
+    column = cut(columns[j]) if columns is not None and j < len(columns) else f"{j + 1} (from 1)"
+    raise JobError(f"{where} line {line_no}, column {column}: a field of {len(fields[j]):,} characters; at most "
+                   f"{FIELD_LIMIT:,} are read")
+
+
+def _split_line(line: str, where: str, line_no: int, columns: list[str] | None = None) -> list[str]:
+    """The fields of one CSV line (as :func:`csv_fields`), stripped of blanks."""
+    return [text.strip() for text in csv_fields(line, where, line_no, columns)]
+
+
+def _check_names(names: list[str], where: str, line_no: int) -> None:
+    """Refuse a header name holding a byte-order mark (a file that begins with two: one is read as the encoding's
+    mark, the other would become part of the first name) or a control character (a NUL byte, …; a tab is allowed)."""
+    for j, name in enumerate(names):
+        bad = next((ch for ch in name if ch == "\ufeff" or (unicodedata.category(ch) == "Cc" and ch != "\t")), None)
+        if bad is not None:
+            what = "a second byte-order mark (U+FEFF)" if bad == "\ufeff" else f"the control character U+{ord(bad):04X}"
+            raise JobError(f"{where} line {line_no}: the header name of column {j + 1} ({cut(name)}) holds {what}; "
+                           f"save the file as plain UTF-8 text")
 
 
 def _data_line(line: str) -> bool:
@@ -110,8 +154,11 @@ def _describe_csv(path: Path, field_name: str, header: str) -> Table:
     if first is None:
         raise JobError(f"`{field_name}` file {str(path)!r} holds no rows")
     line_no, line = first
-    fields = _split_line(line)
+    where = f"`{field_name}` file {str(path)!r}"
+    fields = _split_line(line, where, line_no)
     has_header = header == "yes" or (header == "auto" and any(text and not _is_number(text) for text in fields))
+    if has_header:
+        _check_names(fields, where, line_no)
     columns = fields if has_header else [str(i) for i in range(len(fields))]
     return Table(path=path, field_name=field_name, kind="csv", columns=columns, named=has_header,
                  first_line=line_no)
@@ -193,7 +240,7 @@ def select(table: Table, names: list[str], key: str) -> list[int]:
 def _csv_problem(table: Table, lines: list[str], numbers: list[int], columns: list[int]) -> JobError | None:
     """The first ragged row, empty field or non-number among ``lines`` (on the error path only)."""
     for line, line_no in zip(lines, numbers, strict=True):
-        fields = _split_line(line)
+        fields = _split_line(line, table.where(), line_no, table.columns)
         for j in columns:
             text = fields[j]
             if not text:
@@ -209,7 +256,8 @@ def _csv_block(table: Table, lines: list[str], numbers: list[int], columns: list
     """Parse one chunk of data lines into (len(lines), len(columns)) float64."""
     width = len(table.columns)
     if any('"' in line for line in lines):  # a quoted field may hold a comma: count fields as csv does
-        counts = [len(next(csv.reader([line]), [])) for line in lines]
+        counts = [len(csv_fields(line, table.where(), line_no, table.columns))
+                  for line, line_no in zip(lines, numbers, strict=True)]
     else:
         counts = [line.count(",") + 1 for line in lines]
     for count, line_no in zip(counts, numbers, strict=True):
@@ -252,6 +300,30 @@ def _csv_blocks(table: Table, columns: list[int]) -> Iterator[np.ndarray]:
                     yield _csv_block(table, lines, numbers, columns)
         except UnicodeDecodeError as err:
             raise JobError(f"{table.where()} is not UTF-8 text after line {line_no}: {err.reason}") from None
+
+
+def read_text(table: Table, names: list[str], key: str) -> list[list[Any]]:
+    """Every row's value of each of ``names`` as the file holds it, column by column, in memory: a CSV field's text
+    (unstripped; "" where a short row lacks it), a Parquet value as Python gives it (None for a null).
+    ``key`` names what asked for the columns (a missing one is refused by :func:`select`)."""
+    positions = select(table, names, key)
+    if table.kind == "parquet":
+        pf = _parquet_file(table.path, table.field_name)
+        data = pf.read(columns=names)
+        return [data.column(k).to_pylist() for k in range(len(names))]
+    out: list[list[Any]] = [[] for _ in names]
+    header_lines = table.first_line if table.named else table.first_line - 1
+    with _open_text(table.path, table.field_name) as f:
+        try:
+            for line_no, line in enumerate(islice(f, header_lines, None), start=header_lines + 1):
+                if not _data_line(line):
+                    continue
+                fields = csv_fields(line, table.where(), line_no, table.columns)
+                for k, j in enumerate(positions):
+                    out[k].append(fields[j] if j < len(fields) else "")
+        except UnicodeDecodeError as err:
+            raise JobError(f"{table.where()} is not UTF-8 text: {err.reason}") from None
+    return out
 
 
 # --- Parquet -----------------------------------------------------------------------------------------------------

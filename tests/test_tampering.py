@@ -69,6 +69,22 @@ def _flip_a_byte(path: Path) -> bool:
     return False
 
 
+def _add_member(path: Path, name: str, data: bytes) -> bool:
+    with zipfile.ZipFile(path, "a") as archive:
+        archive.writestr(name, data)
+    return False
+
+
+def _truncate(path: Path) -> bool:
+    path.write_bytes(path.read_bytes()[: path.stat().st_size // 2])
+    return False
+
+
+def _move_step(state: dict) -> None:
+    """Step 8 made step 4 in every counter that agrees with it (epoch, step in epoch, optimizer updates)."""
+    state.update(step=4, epoch=1, step_in_epoch=0, optimizer_updates=4)
+
+
 CASES = {
     "flipped byte": (lambda d: _rewrite_npz(d, "params.npz", lambda a: _flip_a_byte(d / "params.npz")),
                      "cannot be read"),
@@ -94,6 +110,24 @@ CASES = {
                           "does not match its recorded digest"),
     "layers edited": (lambda d: _edit_state(d, lambda s: s["job"]["model"].__setitem__("layers", [6, 8, 4])),
                       "does not match its recorded digest"),
+    "loss edited": (lambda d: _edit_state(d, lambda s: s["job"]["model"].__setitem__("loss", "huber")),
+                    "does not match its recorded digest"),
+    "step moved with its counters": (lambda d: _edit_state(d, _move_step), "disagrees with its folder's name"),
+    "updates plus five": (lambda d: _edit_state(d, lambda s: s.__setitem__("optimizer_updates", 13)),
+                          "13 optimizer updates for 8 steps"),
+    "text member": (lambda d: _rewrite_npz(d, "params.npz", lambda a: _add_member(d / "params.npz", "notes.txt",
+                                                                                    b"hello")),
+                    "is not a numpy array of its own"),
+    "truncated zip": (lambda d: _rewrite_npz(d, "params.npz", lambda a: _truncate(d / "params.npz")),
+                      "cannot be read"),
+    "array no model has": (lambda d: _rewrite_npz(d, "params.npz", lambda a: a.__setitem__("X9", np.zeros(2))),
+                           "'X9' no model has"),
+    "bias reshaped": (lambda d: _rewrite_npz(d, "params.npz", lambda a: a.__setitem__("b0", np.zeros(7))),
+                      "tensor b0 has shape (7,)"),
+    "optimizer in float32": (lambda d: _rewrite_npz(d, "optimizer.npz",
+                                                    lambda a: a.__setitem__("m", a["m"].astype(np.float32))),
+                             "optimizer state 'm' is float32"),
+    "layers text": (lambda d: _edit_state(d, lambda s: s.__setitem__("layers", "abc")), "`layers` must list"),
 }
 
 
@@ -134,3 +168,49 @@ def test_a_resume_skips_a_state_that_the_index_does_not_know(saved: Path, tmp_pa
                    cwd=work)
     assert done.returncode == 0, done.stderr
     assert "skipping a damaged checkpoint" in done.stderr and "SHA-256 the index records" in done.stderr
+
+
+def _copy_root(saved: Path, tmp_path: Path) -> Path:
+    """A copy of the whole checkpoints folder (index and step folders), to damage."""
+    root = saved / "run" / "checkpoints"
+    target = tmp_path / "checkpoints"
+    for path in root.rglob("*"):
+        if path.is_file():
+            (target / path.relative_to(root)).parent.mkdir(parents=True, exist_ok=True)
+            (target / path.relative_to(root)).write_bytes(path.read_bytes())
+    return target
+
+
+def test_params_copied_from_another_step_are_refused_by_the_index(saved: Path, tmp_path: Path) -> None:
+    root = _copy_root(saved, tmp_path)
+    names = [entry["name"] for entry in checkpoint.read_index(root)]
+    assert len(names) >= 2
+    older, newest = root / names[-2], root / names[-1]
+    # a valid archive of another step, its checksum recomputed in state.json: only the index's SHA-256 tells
+    _rewrite_npz(newest, "params.npz", lambda a: (newest / "params.npz").write_bytes(
+        (older / "params.npz").read_bytes()) and False)
+    with pytest.raises(CheckpointError, match="does not match the SHA-256 the index records"):
+        checkpoint.load(newest)
+    done = run_cli(["predict", str(newest), str(saved / "x.npy"), "--out", str(tmp_path / "p.npy")])
+    assert done.returncode == 2 and "SHA-256 the index records" in done.stderr, done.stderr
+
+
+@pytest.mark.parametrize("step, words", [("abc", "entry 2's `step` must be the whole number"),
+                                         (None, "entry 2's `step` must be the whole number"),
+                                         (4, "entry 2's `step` must be the whole number of its folder")])
+def test_an_index_entry_with_a_wrong_step_is_refused(saved: Path, tmp_path: Path, step, words: str) -> None:
+    root = _copy_root(saved, tmp_path)
+    entries = checkpoint.read_index(root)
+    entries[1]["step"] = step
+    checkpoint.write_index(root, entries)  # the index's own checksum recomputed
+    with pytest.raises(CheckpointError, match=words) as caught:
+        checkpoint.read_index(root)
+    assert "\n" not in str(caught.value)
+
+
+def test_an_index_that_is_a_folder_is_refused(saved: Path, tmp_path: Path) -> None:
+    root = _copy_root(saved, tmp_path)
+    (root / checkpoint.INDEX).unlink()
+    (root / checkpoint.INDEX).mkdir()
+    with pytest.raises(CheckpointError, match="is not a file"):
+        checkpoint.read_index(root)

@@ -84,8 +84,8 @@ def build_parser() -> argparse.ArgumentParser:
                        help="start N processes with the bundled mpiexec (default: run as launched, e.g. under your "
                             "own mpiexec or srun)")
 
-    def json_switch(p: argparse.ArgumentParser, what: str) -> None:
-        p.add_argument("--json", action="store_true", help=f"print {what} as one JSON object on stdout, no text")
+    def json_switch(p: argparse.ArgumentParser, what: str, form: str = "one JSON object") -> None:
+        p.add_argument("--json", action="store_true", help=f"print {what} as {form} on stdout, no text")
 
     p = command("train", "train a job")
     job_file(p)
@@ -214,7 +214,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = command("saves", "list a workdir's checkpoints: step, epoch, time, losses, size, checksum verified")
     p.add_argument("workdir", type=Path, metavar="WORKDIR", help="the run's workdir (or its checkpoints folder)")
-    json_switch(p, "the list")
+    json_switch(p, "the list", "a JSON array (one object per checkpoint or model file)")
 
     p = command("info", "versions, BLAS, MPI, cores and the Numba cache")
     json_switch(p, "the facts")

@@ -1,8 +1,10 @@
 """``shardmill saves WORKDIR``: the checkpoints a run holds, each verified against its recorded checksums.
 
 One row per checkpoint the index lists (oldest first): step, epoch, when it was written, the training and validation
-loss of the epoch record at that step in metrics.jsonl (when the checkpoint fell on an epoch end), its size on disk,
-and whether every file still matches the SHA-256 recorded when it was written. ``final.npz`` and ``best.npz`` follow.
+loss of the epoch record at that step in metrics.jsonl (when the checkpoint fell on an epoch end) and the metric the
+run watched (``run.best_metric``) when it was another, its size on disk, and whether every file still matches the
+SHA-256 recorded when it was written (and its HMAC tag, with a checkpoint key configured). ``final.npz`` and
+``best.npz`` follow. Numbers are printed with five significant digits.
 """
 
 from __future__ import annotations
@@ -25,78 +27,109 @@ def _size(path: Path) -> int:
     return sum(p.stat().st_size for p in path.rglob("*") if p.is_file())
 
 
-def _epoch_losses(workdir: Path) -> dict[int, dict[str, float | None]]:
-    """step -> {"train_loss", "validation_loss"} of the epoch records in metrics.jsonl (the last record per step)."""
-    found: dict[int, dict[str, float | None]] = {}
+def _field(record: object, path: str) -> object:
+    """The value at a dotted ``path`` ("validation.loss") of a metrics record, or None."""
+    for key in path.split("."):
+        record = record.get(key) if isinstance(record, dict) else None
+    return record
+
+
+def _epoch_losses(workdir: Path) -> tuple[dict[int, dict[str, Any]], str | None]:
+    """(step -> {"train_loss", "validation_loss"[, the watched metric's key]} of the epoch records in metrics.jsonl
+    (the last record per step), the run's ``run.best_metric`` when it watched another metric than validation.loss)."""
+    found: dict[int, dict[str, Any]] = {}
     path = workdir / "metrics.jsonl"
     if not path.is_file():
-        return found
+        return found, None
+    records = []
     for line in path.read_text(errors="replace").splitlines():
         try:
-            record = json.loads(line)
-        except json.JSONDecodeError:
+            records.append(json.loads(line))
+        except (json.JSONDecodeError, RecursionError):
             continue  # a torn last line of an interrupted run
-        if isinstance(record, dict) and record.get("kind") == "epoch" and "step" in record:
-            found[int(record["step"])] = {"train_loss": (record.get("train") or {}).get("loss"),
-                                          "validation_loss": (record.get("validation") or {}).get("loss")}
-    return found
+    watched = None
+    for record in records:
+        if _field(record, "kind") == "start":
+            metric = _field(record, "job.run.best_metric")
+            watched = metric if isinstance(metric, str) and metric not in ("off", "validation.loss") else None
+    for record in records:
+        step = _field(record, "step")
+        if _field(record, "kind") == "epoch" and isinstance(step, int) and not isinstance(step, bool):
+            found[step] = {"train_loss": _field(record, "train.loss"),
+                           "validation_loss": _field(record, "validation.loss")}
+            if watched:
+                found[step][_key(watched)] = _field(record, watched)
+    return found, watched
+
+
+def _key(metric: str) -> str:
+    """A row's key for a metric path: validation.accuracy -> validation_accuracy."""
+    return metric.replace(".", "_")
 
 
 def list_saves(workdir: Path) -> list[dict[str, Any]]:
     """Every checkpoint of ``workdir`` (or of a ``checkpoints`` folder given directly), verified, then the model files.
 
     Each row: name, step, epoch, written (UTC, ISO 8601), train_loss, validation_loss (None when the step was not an
-    epoch end), bytes, verified (True, or the reason it failed), best and newest flags.
+    epoch end), the watched metric (``validation_accuracy``, ``validation_rmse``) when ``run.best_metric`` named it,
+    bytes, verified (True, or the reason it failed), best and newest flags.
     """
     workdir = Path(workdir)
     root = workdir if workdir.name == "checkpoints" else workdir / "checkpoints"
     run = root.parent
     if not root.is_dir() and not (run / "final.npz").is_file():
         raise JobError(f"`WORKDIR` {str(workdir)!r} holds no checkpoints (no {str(root)!r}) and no final.npz")
-    entries = checkpoint.read_index(root) if root.is_dir() else []
-    losses = _epoch_losses(run)
+    entries = checkpoint.read_index(root) if root.is_dir() else []  # a damaged index: one line, exit 2
+    losses, watched = _epoch_losses(run)
+    empty = {"train_loss": None, "validation_loss": None, **({_key(watched): None} if watched else {})}
     rows: list[dict[str, Any]] = []
     for i, entry in enumerate(entries):
         folder = root / entry["name"]
         try:
-            state, _, _ = checkpoint.load(folder)  # recomputes the SHA-256 of every file
+            checkpoint.load(folder)  # every file's SHA-256, the index's of state.json, the HMAC tag with a key
             verified: bool | str = True
-            if entry.get("state_sha256") and checkpoint.sha256(folder / "state.json") != entry["state_sha256"]:
-                verified = "state.json differs from the index's checksum"
         except checkpoint.CheckpointError as err:
-            state, verified = {}, str(err)
-        step = int(entry.get("step", state.get("step", -1)))
-        rows.append({"name": entry["name"], "step": step, "epoch": entry.get("epoch", state.get("epoch")),
-                     "written": entry.get("written"), **losses.get(step, {"train_loss": None,
-                                                                           "validation_loss": None}),
+            verified = str(err)
+        step = entry["step"]  # read_index checked it against the folder's name
+        rows.append({"name": entry["name"], "step": step, "epoch": entry.get("epoch"),
+                     "written": entry.get("written"), **losses.get(step, empty),
                      "bytes": _size(folder) if folder.exists() else 0, "verified": verified,
                      "best": bool(entry.get("best")), "newest": i == len(entries) - 1})
     for name in ("final.npz", "best.npz"):
         path = run / name
-        if path.is_file():
-            rows.append(_model_file(path, losses))
+        if path.exists():
+            rows.append(_model_file(path, losses, empty))
     return rows
 
 
-def _model_file(path: Path, losses: dict[int, dict[str, float | None]]) -> dict[str, Any]:
-    """A row for final.npz or best.npz: its step, and whether numpy can read every array in it."""
+def _model_file(path: Path, losses: dict[int, dict[str, Any]], empty: dict[str, None]) -> dict[str, Any]:
+    """A row for final.npz or best.npz: its step, and whether numpy can read every array in it (and, with a
+    checkpoint key configured, whether its HMAC tag matches)."""
     step: int | None = None
-    try:
-        with np.load(path, allow_pickle=False) as archive:
-            for key in archive.files:
-                archive[key]  # zip's CRC-32 is checked as each member is read
-            step = int(archive["step"]) if "step" in archive.files else None
-        verified: bool | str = True
-    except (OSError, ValueError, zipfile.BadZipFile, EOFError) as err:
-        verified = f"cannot be read: {err}"
+    verified: bool | str = True
+    if not path.is_file():
+        verified = "is not a file"
+    else:
+        try:
+            with np.load(path, allow_pickle=False) as archive:
+                arrays = {key: archive[key] for key in archive.files}  # zip's CRC-32 is checked as each is read
+            checkpoint.check_model_tag(path, arrays)
+            step = int(arrays["step"]) if "step" in arrays else None
+        except checkpoint.CheckpointError as err:
+            verified = str(err)
+        except (OSError, ValueError, TypeError, zipfile.BadZipFile, EOFError) as err:
+            verified = f"cannot be read: {str(err)[:120] or type(err).__name__}"
     written = datetime.fromtimestamp(path.stat().st_mtime, UTC).isoformat(timespec="seconds")
     return {"name": path.name, "step": step, "epoch": None, "written": written,
-            **losses.get(step if step is not None else -1, {"train_loss": None, "validation_loss": None}),
-            "bytes": path.stat().st_size, "verified": verified, "best": path.name == "best.npz", "newest": False}
+            **losses.get(step if step is not None else -1, empty),
+            "bytes": _size(path), "verified": verified, "best": path.name == "best.npz", "newest": False}
 
 
-def _number(value: float | None) -> str:
-    return "-" if value is None else f"{value:.4f}"
+def _number(value: object) -> str:
+    """Five significant digits (a regression loss of 3e-05 stays visible), "-" for a missing value."""
+    if isinstance(value, bool) or not isinstance(value, int | float):
+        return "-"
+    return f"{value:.5g}"
 
 
 def _bytes(n: int) -> str:
@@ -108,13 +141,18 @@ def _bytes(n: int) -> str:
 
 def format_saves(rows: list[dict[str, Any]]) -> str:
     """The rows as an aligned text table."""
-    head = ("name", "step", "epoch", "written (UTC)", "train.loss", "validation.loss", "size", "checksums")
+    known = {"name", "step", "epoch", "written", "train_loss", "validation_loss", "bytes", "verified", "best",
+             "newest"}
+    extra = sorted({key for row in rows for key in row} - known)  # the watched metric (run.best_metric), if another
+    head = ("name", "step", "epoch", "written (UTC)", "train.loss", "validation.loss",
+            *(key.replace("_", ".", 1) for key in extra), "size", "checksums")
     table = [head]
     for row in rows:
         marks = ", ".join(m for m, on in (("best", row["best"]), ("newest", row["newest"])) if on)
         table.append((row["name"] + (f" ({marks})" if marks else ""), "-" if row["step"] is None else str(row["step"]),
                       "-" if row["epoch"] is None else str(row["epoch"]), str(row["written"] or "-"),
-                      _number(row["train_loss"]), _number(row["validation_loss"]), _bytes(row["bytes"]),
+                      _number(row["train_loss"]), _number(row["validation_loss"]),
+                      *(_number(row.get(key)) for key in extra), _bytes(row["bytes"]),
                       "verified" if row["verified"] is True else f"FAILED: {row['verified']}"))
     widths = [max(len(r[c]) for r in table) for c in range(len(head) - 1)]
     return "\n".join("  ".join(cell.ljust(w) for cell, w in zip(r[:-1], widths, strict=True)) + "  " + r[-1]

@@ -8,7 +8,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-from shardmill.checkpoint import CheckpointError, load, resolve
+from shardmill.checkpoint import CheckpointError, check_model_tag, load, resolve
 from shardmill.config import default
 from shardmill.errors import JobError
 from shardmill.model.losses import CLASSIFIER_LOSSES
@@ -190,6 +190,7 @@ def load_model(path: Path | str) -> Predictor:
                                                               "categories_json"))
         except (ValueError, OSError, EOFError, zipfile.BadZipFile) as err:  # json's errors are ValueErrors
             raise CheckpointError(f"{str(path)!r} cannot be read: {err or type(err).__name__}") from None
+        check_model_tag(path, arrays)  # with a checkpoint key configured
         digest = str(arrays["job_digest"]) if "job_digest" in arrays else None
         step = int(arrays["step"]) if "step" in arrays else None
     else:

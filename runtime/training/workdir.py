@@ -6,10 +6,12 @@ Rank 0 looks at the files; every rank learns the outcome alike (``parallel.comm.
 from __future__ import annotations
 
 import os
+import sys
 from pathlib import Path
 from typing import Any
 
 from shardmill import checkpoint
+from shardmill.checkpointkey import configured_key
 from shardmill.errors import JobError
 from shardmill.parallel.comm import Comm, lead_then_share
 
@@ -35,6 +37,7 @@ class WorkdirLock:
         import fcntl
 
         path = self.workdir / ".shardmill.lock"
+        configured_key()  # a checkpoint key that cannot be used is refused before anything runs
         try:
             self._created = not self.workdir.exists()
             self.workdir.mkdir(parents=True, exist_ok=True)
@@ -45,6 +48,8 @@ class WorkdirLock:
             self._file.write(f"{os.getpid()}\n")
             self._file.flush()
             checkpoint.remove_stale(self.workdir / "checkpoints")  # an interrupted write's leftovers
+            for stale in (*self.workdir.glob(".final.npz.tmp-*"), *self.workdir.glob(".best.npz.tmp-*")):
+                stale.unlink(missing_ok=True)
         except BlockingIOError:
             self._file.seek(0)
             holder = self._file.read().strip() or "?"
@@ -70,12 +75,33 @@ class WorkdirLock:
         self._file.close()  # closing releases the lock
 
 
+def newest_or_rebuilt(root: Path) -> str | None:
+    """The newest checkpoint's name under ``root``; a missing index is first rebuilt from the step folders that
+    verify, saying so in one line on stderr (rank 0 calls it). A damaged index raises CheckpointError."""
+    if not root.is_dir():
+        return None
+    name = checkpoint.latest_name(root)
+    if name is None and not (root / checkpoint.INDEX).exists() and any(root.glob("step-*")):
+        entries, refused = checkpoint.rebuild_index(root)
+        if entries:
+            print(f"shardmill: note: {str(root / checkpoint.INDEX)!r} was missing; rebuilt it from the "
+                  f"{len(entries)} step folder(s) that verify ({entries[0]['name']} … {entries[-1]['name']})"
+                  + (f"; {len(refused)} refused, the newest: {refused[-1]}" if refused else ""),
+                  file=sys.stderr, flush=True)
+            name = entries[-1]["name"]
+        elif refused:
+            raise checkpoint.CheckpointError(f"{str(root / checkpoint.INDEX)!r} is missing and no step folder "
+                                             f"verifies to rebuild it; the newest: {refused[-1]}")
+    return name
+
+
 def check_resumable(workdir: Path, comm: Comm) -> None:
-    """Refuse --resume (every rank alike) when the workdir has no checkpoint index to resume from."""
+    """Refuse --resume (every rank alike) when the workdir has no checkpoint to resume from; rebuild a missing
+    index from the step folders that verify."""
 
     def check() -> None:
         root = workdir / "checkpoints"
-        if not (root.is_dir() and checkpoint.latest_name(root)):  # a damaged index raises CheckpointError
+        if not newest_or_rebuilt(root):  # a damaged index raises CheckpointError
             raise JobError(f"nothing to resume: no checkpoint under {str(root)!r}; start the run without --resume")
 
     lead_then_share(comm, check)
@@ -90,7 +116,7 @@ def continue_or_start(workdir: Path, comm: Comm) -> tuple[bool, bool]:
 
     def look() -> tuple[bool, bool]:
         root = workdir / "checkpoints"
-        if root.is_dir() and checkpoint.latest_name(root):  # a damaged index raises CheckpointError
+        if newest_or_rebuilt(root):  # a damaged index raises CheckpointError
             return True, False
         results = (workdir / "final.npz").exists() or (workdir / "best.npz").exists()
         return False, not results

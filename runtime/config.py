@@ -130,6 +130,9 @@ SCHEMA: tuple[Key, ...] = (
         choices=("auto", "yes", "no"), digest_default=False),
     Key("data.validation_fraction", "number", 0.1, "share of the rows held out for validation",
         low=0.0, high=0.9),
+    Key("data.split", "choice", "random", "which rows `data.validation_fraction` holds out: random (seeded), last "
+        "(the last rows in file order: a time series validates on its future) or groups (whole groups of "
+        "`data.groups`, seeded)", choices=("random", "last", "groups"), digest_default=False),
     Key("data.standardize", "flag", True, "scale each input column by the mean and standard deviation of the "
         "training rows (identical on every rank)"),
     Key("data.standardize_targets", "flag", True, "train a regression model (squared_error, huber or "
@@ -152,12 +155,13 @@ SCHEMA: tuple[Key, ...] = (
         "`data.categorical` column", allowed="a table of column = width, or a list of widths ≥ 1",
         digest_default=False),
     Key("data.folds", "integer", 0, "k of k-fold cross-validation: the rows are cut into k folds (contiguous blocks "
-        "in row order, or whole groups of `data.fold_groups`); fold `data.fold` validates, the others train, in "
+        "in row order, or whole groups of `data.groups`); fold `data.fold` validates, the others train, in "
         "place of `data.validation_fraction`; 0 = off", low=0, digest_default=False),
     Key("data.fold", "integer", 0, "the fold that validates when `data.folds` is on, counted from 0", low=0,
         digest_default=False),
-    Key("data.fold_groups", "file", "", "group labels kept whole in one fold (so windows of one machine never sit "
-        "on both sides): a column of `data.inputs` or a file of one number per row; empty: contiguous blocks",
+    Key("data.groups", "file", "", "group labels kept whole in one fold or on one side of `data.split` = groups "
+        "(so windows of one machine never sit on both sides): a column of `data.inputs` or a file of one number "
+        "per row; empty: folds are contiguous blocks",
         allowed="a column name, or a .npy, .npz, .csv or .parquet path", digest_default=False),
     Key("optimizer.method", "choice", "adam", "update rule", choices=METHODS),
     Key("optimizer.learning_rate", "number", 1e-3, "peak learning rate", low=0.0, low_open=True),
@@ -271,6 +275,7 @@ class DataSpec:
     features: list[str] = field(default_factory=list)
     header: str = default("data.header")
     validation_fraction: float = default("data.validation_fraction")
+    split: str = default("data.split")
     standardize: bool = default("data.standardize")
     standardize_targets: bool = default("data.standardize_targets")
     weights: str = default("data.weights")
@@ -279,7 +284,7 @@ class DataSpec:
     embedding_widths: dict[str, int] | list[int] = field(default_factory=dict)
     folds: int = default("data.folds")
     fold: int = default("data.fold")
-    fold_groups: str = default("data.fold_groups")
+    groups: str = default("data.groups")
 
 
 @dataclass
@@ -513,12 +518,16 @@ def _check_data(data: DataSpec, model: ModelSpec) -> None:
     if both:
         raise JobError(f"`data.features` must not hold a target column; got {both[0]!r} in both")
     _check_categorical(data, targets)
-    if data.folds == 1 or data.fold >= max(data.folds, 1) or (data.fold_groups and not data.folds):
-        key = "data.folds" if data.folds == 1 else "data.fold" if data.fold else "data.fold_groups"
+    if data.folds == 1 or data.fold >= max(data.folds, 1):
+        key = "data.folds" if data.folds == 1 else "data.fold"
         raise JobError(f"`{key}` needs `data.folds` = 0 (off) or ≥ 2, and 0 ≤ `data.fold` < `data.folds`; got "
-                       f"data.folds = {data.folds}, data.fold = {data.fold}, data.fold_groups = {data.fold_groups!r}")
-    if data.fold_groups and data.categorical:  # the vocabularies are fixed from the training rows before groups
-        raise JobError("`data.fold_groups` cannot be combined with `data.categorical` yet; use contiguous folds")
+                       f"data.folds = {data.folds}, data.fold = {data.fold}")
+    if (data.split == "groups") != bool(data.groups) and not data.folds or data.folds and data.split != "random":
+        raise JobError(f"`data.groups` goes with `data.split` = 'groups' or with `data.folds` ≥ 2 (whose split is "
+                       f"its own); got data.split = {data.split!r}, data.groups = {data.groups!r}, data.folds = "
+                       f"{data.folds}")
+    if data.groups and data.categorical:  # the vocabularies are fixed from the training rows before groups
+        raise JobError("`data.groups` cannot be combined with `data.categorical` yet; use contiguous folds")
     if data.features and len(data.features) + len(data.categorical) != model.layers[0]:
         more = f" and `data.categorical` {len(data.categorical)}" if data.categorical else ""
         raise JobError(f"`data.features` names {len(data.features)} columns{more} but `model.layers` starts with "

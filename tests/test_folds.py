@@ -1,4 +1,4 @@
-"""k-fold cross-validation splits (``data.folds``, ``data.fold``, ``data.fold_groups``): contiguous blocks and
+"""k-fold cross-validation splits (``data.folds``, ``data.fold``, ``data.groups``): contiguous blocks and
 whole groups, checked against scikit-learn's KFold and GroupKFold, and the split a training run then uses."""
 
 from __future__ import annotations
@@ -59,15 +59,20 @@ def test_more_folds_than_rows_or_groups_is_refused():
         fold_of_rows(5, 6)
     with pytest.raises(JobError, match=r"more folds than the 2 groups"):
         fold_of_rows(6, 3, np.array([1, 1, 2, 2, 2, 1]))
-    with pytest.raises(JobError, match=r"`data.fold_groups` row 2 holds no group"):
+    with pytest.raises(JobError, match=r"`data.groups` row 2 holds no group"):
         fold_of_rows(4, 2, np.array([1.0, 2.0, np.nan, 1.0]))
 
 
 @pytest.mark.parametrize(("data", "key"), [({"folds": 1}, "data.folds"), ({"folds": 3, "fold": 3}, "data.fold"),
-                                           ({"fold": 2}, "data.fold"), ({"fold_groups": "g.npy"}, "data.fold_groups")])
+                                           ({"fold": 2}, "data.fold")])
 def test_fold_keys_are_checked(data, key):
     with pytest.raises(JobError, match=rf"^`{key}` needs `data.folds` = 0 \(off\) or ≥ 2"):
         job_from_dict({"model": {"layers": [3, 2]}, "data": data})
+
+
+def test_groups_without_folds_or_a_group_split_are_refused():
+    with pytest.raises(JobError, match=r"^`data.groups` goes with `data.split` = 'groups' or with `data.folds` ≥ 2"):
+        job_from_dict({"model": {"layers": [3, 2]}, "data": {"groups": "g.npy"}})
 
 
 def test_a_run_validates_on_its_fold_and_leaves_other_runs_alone(tmp_path):
@@ -77,7 +82,7 @@ def test_a_run_validates_on_its_fold_and_leaves_other_runs_alone(tmp_path):
     plain = job_from_dict(base, base=tmp_path)
     data = load_dataset(plain, model_from_job(plain), Comm.alone())
     np.testing.assert_array_equal(data.split.validation, split_rows(60, 0.1, 0).validation)
-    job = job_from_dict(base, base=tmp_path, overrides=["data.folds=4", "data.fold=1", "data.fold_groups=g.npy"])
+    job = job_from_dict(base, base=tmp_path, overrides=["data.folds=4", "data.fold=1", "data.groups=g.npy"])
     data = load_dataset(job, model_from_job(job), Comm.alone())
     np.testing.assert_array_equal(data.split.validation, np.flatnonzero(fold_of_rows(60, 4, np.arange(60) // 6) == 1))
     assert not set((data.split.train // 6).tolist()) & set((data.split.validation // 6).tolist())

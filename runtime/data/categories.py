@@ -42,7 +42,8 @@ def widths_of(job: Job, vocabularies: list[list[str]]) -> list[int]:
 def categories_from_rows(job: Job, columns: list[list[str]]) -> tuple[list[Category], np.ndarray]:
     """The vocabularies (from the training rows of the job's split) and the codes (n, c) int64 of every row."""
     n = len(columns[0])
-    train = split_rows(n, job.data.validation_fraction, job.run.seed, job.data.folds, job.data.fold).train
+    train = split_rows(n, job.data.validation_fraction, job.run.seed, job.data.folds, job.data.fold,
+                       how=job.data.split).train  # (groups with categories are refused by the job's checks)
     vocabularies = [vocabulary_of([texts[i] for i in train.tolist()]) for texts in columns]
     widths = widths_of(job, vocabularies)
     categories = [Category(name, vocabulary, width)

@@ -152,8 +152,8 @@ def job_split(job: Job, n_rows: int, comm: Comm) -> Split:
     """The job's training and validation rows (:func:`rows.split_rows`), with the fold keys' groups read
     (collective: a group column or file is read alike on every rank)."""
     data = job.data
-    groups = open_job_column(job, comm, "data.fold_groups") if data.fold_groups else None
-    return split_rows(n_rows, data.validation_fraction, job.run.seed, data.folds, data.fold, groups)
+    groups = open_job_column(job, comm, "data.groups") if data.groups else None
+    return split_rows(n_rows, data.validation_fraction, job.run.seed, data.folds, data.fold, groups, data.split)
 
 
 def scales_targets(job: Job, model: MLP) -> bool:

@@ -101,8 +101,8 @@ def open_job_data(job: Job, comm: Comm) -> tuple[np.ndarray, np.ndarray, list[st
             select(inputs, list(data.categorical), "data.categorical")
             weight_column = [] if weights_are_a_file(data.weights) else _names(data.weights)
             select(inputs, weight_column, "data.weights")
-            group_column = [] if weights_are_a_file(data.fold_groups) else _names(data.fold_groups)
-            select(inputs, group_column, "data.fold_groups")
+            group_column = [] if weights_are_a_file(data.groups) else _names(data.groups)
+            select(inputs, group_column, "data.groups")
             taken = target + weight_column + group_column + list(data.categorical)
             features = list(data.features) or [c for c in inputs.columns if c not in taken]
             if not features:
@@ -170,7 +170,7 @@ def open_job_weights(job: Job, comm: Comm) -> np.ndarray | None:
 
 
 def open_job_column(job: Job, comm: Comm, key: str) -> np.ndarray | None:
-    """One value per row named by the data key ``key`` (``data.weights``, ``data.fold_groups``): a file, read
+    """One value per row named by the data key ``key`` (``data.weights``, ``data.groups``): a file, read
     whole on every rank, or a column of the inputs table from its cache; (n,) or (n, 1), or None when the key is
     empty. Collective; failures are raised alike on every rank."""
     value = getattr(job.data, key.split(".")[1])

@@ -44,19 +44,45 @@ class Split:
 
 
 def split_rows(n_rows: int, validation_fraction: float, seed: int, folds: int = 0, fold: int = 0,
-               groups: np.ndarray | None = None) -> Split:
-    """A seeded split, the same on every rank and for every P: validation takes the first ⌊f·n⌋ rows of a
-    permutation, training the rest in ascending order.
+               groups: np.ndarray | None = None, how: str = "random") -> Split:
+    """The training and validation rows, both ascending, the same on every rank and for every P.
 
-    With ``folds`` ≥ 2 (k-fold cross-validation, ``data.folds``) the split is instead fold ``fold`` of
-    :func:`fold_of_rows` for validation and every other row for training, both ascending; no seed is involved.
+    ``how`` (``data.split``): "random" — validation takes the first ⌊f·n⌋ rows of a seeded permutation; "last" —
+    the last ⌊f·n⌋ rows in file order (a time series validates on its future); "groups" — whole groups of
+    ``groups`` ((n,) labels), taken in a seeded order of the groups until they hold ⌊f·n⌋ rows or more (at least
+    one group when f > 0; never every group). With ``folds`` ≥ 2 (k-fold cross-validation, ``data.folds``) the
+    split is instead fold ``fold`` of :func:`fold_of_rows` for validation and every other row for training.
     """
     if folds:
         where = fold_of_rows(n_rows, folds, groups) == fold
         return Split(train=np.flatnonzero(~where).astype(np.int64), validation=np.flatnonzero(where).astype(np.int64))
-    perm = np.random.default_rng([seed, 7919]).permutation(n_rows)
     n_val = int(validation_fraction * n_rows)
+    if how == "last":
+        held = np.zeros(n_rows, dtype=bool)
+        held[n_rows - n_val:] = n_val > 0
+        return Split(train=np.flatnonzero(~held).astype(np.int64), validation=np.flatnonzero(held).astype(np.int64))
+    if how == "groups":
+        return Split(*(np.flatnonzero(side).astype(np.int64) for side in _group_split(groups, n_rows, n_val, seed)))
+    perm = np.random.default_rng([seed, 7919]).permutation(n_rows)
     return Split(train=np.sort(perm[n_val:]).astype(np.int64), validation=np.sort(perm[:n_val]).astype(np.int64))
+
+
+def _group_split(groups: np.ndarray | None, n_rows: int, n_val: int, seed: int) -> tuple[np.ndarray, np.ndarray]:
+    """(training mask, validation mask) of whole groups: a seeded order of the groups, validation taking them
+    until it holds ``n_val`` rows or more."""
+    labels = _group_labels(groups, n_rows, "data.groups")
+    _, inverse, counts = np.unique(labels, return_inverse=True, return_counts=True)
+    if n_val and counts.size < 2:
+        raise JobError(f"`data.split` = 'groups' needs at least two groups in `data.groups`; got {counts.size}")
+    order = np.random.default_rng([seed, 7919]).permutation(counts.size)
+    taken = np.zeros(counts.size, dtype=bool)
+    held = 0
+    for g in order[:-1].tolist():  # the last group in the order always trains
+        if held >= n_val:
+            break
+        taken[g], held = True, held + int(counts[g])
+    validation = taken[inverse.reshape(-1)]
+    return ~validation, validation
 
 
 def fold_of_rows(n_rows: int, folds: int, groups: np.ndarray | None = None) -> np.ndarray:
@@ -73,15 +99,11 @@ def fold_of_rows(n_rows: int, folds: int, groups: np.ndarray | None = None) -> n
         sizes = np.full(folds, n_rows // folds, dtype=np.int64)
         sizes[:n_rows % folds] += 1
         return np.repeat(np.arange(folds, dtype=np.int64), sizes)
-    labels = np.asarray(groups).reshape(-1)
-    if labels.dtype.kind == "f" and not np.isfinite(labels).all():
-        raise JobError(f"`data.fold_groups` row {int(np.argmin(np.isfinite(labels)))} holds no group (NaN or inf)")
-    if labels.size != n_rows:
-        raise JobError(f"`data.fold_groups` holds {labels.size} labels for {n_rows} rows; give one per row")
+    labels = _group_labels(groups, n_rows, "data.groups")
     _, first, inverse, counts = np.unique(labels, return_index=True, return_inverse=True, return_counts=True)
     if counts.size < folds:
         raise JobError(f"`data.folds` = {folds} asks for more folds than the {counts.size} groups of "
-                       f"`data.fold_groups`")
+                       f"`data.groups`")
     order = np.lexsort((first, -counts))  # largest first, then first seen
     load = np.zeros(folds, dtype=np.int64)
     fold_of_group = np.empty(counts.size, dtype=np.int64)
@@ -90,6 +112,18 @@ def fold_of_rows(n_rows: int, folds: int, groups: np.ndarray | None = None) -> n
         fold_of_group[g] = target
         load[target] += counts[g]
     return fold_of_group[inverse.reshape(-1)]
+
+
+def _group_labels(groups: np.ndarray | None, n_rows: int, key: str) -> np.ndarray:
+    """The (n_rows,) group labels, checked: one per row, none NaN or inf."""
+    if groups is None:
+        raise JobError(f"`{key}` must name the group labels (a column of `data.inputs` or a file)")
+    labels = np.asarray(groups).reshape(-1)
+    if labels.dtype.kind == "f" and not np.isfinite(labels).all():
+        raise JobError(f"`{key}` row {int(np.argmin(np.isfinite(labels)))} holds no group (NaN or inf)")
+    if labels.size != n_rows:
+        raise JobError(f"`{key}` holds {labels.size} labels for {n_rows} rows; give one per row")
+    return labels
 
 
 def block_range(n_blocks: int, rank: int, size: int) -> tuple[int, int]:

@@ -7,7 +7,7 @@ A plan is TOML with up to three parts, every one optional but at least one varia
     ranks_per_variant = 2             # g: ranks that train one variant together; 0 = chosen (see allocation.py)
     seeds = [0, 1, 2]                 # run.seed values: one more axis
     folds = 5                         # k-fold cross-validation: data.folds = 5, data.fold = 0 … 4 as one more axis
-    fold_groups = "machine"           # data.fold_groups: whole groups per fold; empty: contiguous blocks
+    groups = "machine"           # data.groups: whole groups per fold; empty: contiguous blocks
     folder = "study"                  # where the variants' workdirs and the tables go, relative to the plan
 
     [grid]                            # every combination of these values is a variant
@@ -38,7 +38,7 @@ from shardmill.errors import JobError
 from shardmill.model.losses import LOSSES
 
 METRICS = ("validation.loss", "validation.accuracy", "validation.rmse", "train.loss", "train.accuracy", "train.rmse")
-STUDY_KEYS = {"metric": "validation.loss", "ranks_per_variant": 0, "seeds": [], "folds": 0, "fold_groups": "",
+STUDY_KEYS = {"metric": "validation.loss", "ranks_per_variant": 0, "seeds": [], "folds": 0, "groups": "",
               "folder": "study"}
 PARTS = ("study", "grid", "variant")
 
@@ -95,11 +95,11 @@ def _study(table: Any, where: str) -> dict[str, Any]:
     seeds = options["seeds"]
     if not isinstance(seeds, list) or not all(isinstance(s, int) and not isinstance(s, bool) for s in seeds):
         raise JobError(f"{where}: `study.seeds` must be a list of integers (values of run.seed); got {seeds!r}")
-    for name in ("fold_groups", "folder"):
+    for name in ("groups", "folder"):
         if not isinstance(options[name], str) or (name == "folder" and not options[name].strip()):
             raise JobError(f"{where}: `study.{name}` must be text; got {options[name]!r}")
-    if options["fold_groups"] and not options["folds"]:
-        raise JobError(f"{where}: `study.fold_groups` needs `study.folds` ≥ 2")
+    if options["groups"] and not options["folds"]:
+        raise JobError(f"{where}: `study.groups` needs `study.folds` ≥ 2")
     return options
 
 
@@ -169,7 +169,7 @@ def read_plan(path: str | Path, folder: str | Path | None = None) -> tuple[Plan,
     axes = _grid(raw["grid"], where) if "grid" in raw else []
     seeds = [[f"run.seed={s}"] for s in dict.fromkeys(options["seeds"])] or [[]]
     k = options["folds"]
-    groups = [f"data.fold_groups={toml_value(options['fold_groups'])}"] if options["fold_groups"] else []
+    groups = [f"data.groups={toml_value(options['groups'])}"] if options["groups"] else []
     folds = [[f"data.folds={k}", f"data.fold={f}", *groups] for f in range(k)] or [[]]
     variants, varied = [], []
     for base, combination, seed, fold in itertools.product(explicit, itertools.product(*axes), seeds, folds):

@@ -133,7 +133,7 @@ def check_folds(jobs: list[Job], world: Comm, folder: Path) -> None:
 
     seen = set()
     for job in jobs:
-        key = (job.data.folds, job.data.fold_groups)
+        key = (job.data.folds, job.data.groups)
         if not job.data.folds or key in seen:
             continue
         seen.add(key)

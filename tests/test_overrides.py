@@ -14,8 +14,9 @@ import tomllib
 import numpy as np
 import pytest
 from helpers import make_classification, run_cli, write_job
-from shardmill.config import apply_overrides, job_from_dict, job_toml, load_job, parse_override
+from shardmill.config import apply_overrides, job_from_dict, load_job, parse_override
 from shardmill.errors import JobError
+from shardmill.jobtext import job_toml
 from sklearn.datasets import load_wine
 
 BASE = {"model": {"layers": [13, 8, 3]}, "optimizer": {"learning_rate": 0.001}}

@@ -15,7 +15,7 @@ from pathlib import Path
 import pytest
 import shardmill as sm
 from helpers import run_cli
-from shardmill import config
+from shardmill import config, jobtext
 from shardmill.commands.cli import build_parser
 from shardmill.config import job_from_dict
 from shardmill.docblocks import block_between
@@ -102,10 +102,10 @@ def test_each_default_is_valid_and_is_what_a_missing_key_gives():
 
 def test_readme_table_is_the_generated_one():
     text = README.read_text()
-    assert text.count(config.README_BEGIN) == 1 and text.count(config.README_END) == 1
-    block = block_between(text, config.README_BEGIN, config.README_END)
-    assert block == config.defaults_markdown(), (
-        "README.md's table of job keys is stale; run: python -c \"from shardmill.config import "
+    assert text.count(jobtext.README_BEGIN) == 1 and text.count(jobtext.README_END) == 1
+    block = block_between(text, jobtext.README_BEGIN, jobtext.README_END)
+    assert block == jobtext.defaults_markdown(), (
+        "README.md's table of job keys is stale; run: python -c \"from shardmill.jobtext import "
         "write_defaults_markdown; write_defaults_markdown('README.md')\"")
     for key in config.SCHEMA:  # one row per key
         assert block.count(f"| `{key.path}`") == 1, key.path

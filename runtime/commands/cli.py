@@ -308,7 +308,7 @@ def cmd_expand(args: argparse.Namespace) -> int:
     """``shardmill expand JOB``: the job checked (keys and a first look at the data, ``commands/expand.py``), printed
     with every key (TOML whose comments say what of the data was checked, or JSON with --json)."""
     from shardmill.commands.expand import check_data
-    from shardmill.config import job_toml
+    from shardmill.jobtext import job_toml
 
     job = read_job(args)
     checked = check_data(job)

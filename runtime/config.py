@@ -128,6 +128,10 @@ SCHEMA: tuple[Key, ...] = (
         choices=("auto", "yes", "no"), digest_default=False),
     Key("data.validation_fraction", "number", 0.1, "share of the rows held out for validation",
         low=0.0, high=0.9),
+    Key("data.validation", "file", "", "a table of its own holding the validation rows, with the columns of "
+        "`data.inputs` (and `data.target`); every row of `data.inputs` then trains, and `data.validation_fraction` and "
+        "`data.split` are not used; empty: validation rows come from `data.inputs`", allowed="a .csv or .parquet path",
+        digest_default=False),
     Key("data.split", "choice", "random", "which rows `data.validation_fraction` holds out: random (seeded), last "
         "(the last rows in file order: a time series validates on its future) or groups (whole groups of "
         "`data.groups`, seeded)", choices=("random", "last", "groups"), digest_default=False),
@@ -274,6 +278,7 @@ class DataSpec:
     header: str = default("data.header")
     validation_fraction: float = default("data.validation_fraction")
     split: str = default("data.split")
+    validation: str = default("data.validation")
     standardize: bool = default("data.standardize")
     standardize_targets: bool = default("data.standardize_targets")
     weights: str = default("data.weights")
@@ -524,6 +529,11 @@ def _check_data(data: DataSpec, model: ModelSpec) -> None:
         raise JobError(f"`data.groups` goes with `data.split` = 'groups' or with `data.folds` ≥ 2 (whose split is "
                        f"its own); got data.split = {data.split!r}, data.groups = {data.groups!r}, data.folds = "
                        f"{data.folds}")
+    if data.validation and (not data.target or data.folds or data.split != "random" or data.groups or (
+            data.weights and data.weights.lower().endswith((".npy", ".npz", ".csv", ".parquet")))):
+        raise JobError(f"`data.validation` = {data.validation!r} takes the validation rows from a table of their own: "
+                       f"it needs `data.target` (columns of both tables), a `data.weights` column rather than a file, "
+                       f"and no `data.folds`, `data.split` or `data.groups`")
     if data.groups and data.categorical:  # the vocabularies are fixed from the training rows before groups
         raise JobError("`data.groups` cannot be combined with `data.categorical` yet; use contiguous folds")
     if data.features and len(data.features) + len(data.categorical) != model.layers[0]:

@@ -72,3 +72,66 @@ def test_bad_split_settings_are_one_line(data: dict, words: str) -> None:
 def test_one_group_cannot_be_split() -> None:
     with pytest.raises(JobError, match="needs at least two groups"):
         split_rows(10, 0.2, seed=0, groups=np.zeros(10), how="groups")
+
+
+# --- data.validation: the validation rows in a table of their own ------------------------------------------------
+
+def _tables(folder: Path, validation_columns: str = "b,kind,y,z,a") -> None:
+    """train.csv (a,b,kind,y) and valid.csv with ``validation_columns`` in its own order (z: one column more)."""
+    rng = np.random.default_rng(6)
+
+    def table(name: str, rows: int, kinds: tuple[str, ...], columns: list[str]) -> None:
+        lines = [",".join(columns)]
+        for _ in range(rows):
+            a, b = rng.normal(size=2)
+            row = {"a": f"{a:.6f}", "b": f"{b:.6f}", "kind": str(rng.choice(kinds)), "y": str(int(a + b > 0)), "z": "1"}
+            lines.append(",".join(row[c] for c in columns))
+        (folder / name).write_text("\n".join(lines) + "\n")
+
+    table("train.csv", 160, ("p", "q"), ["a", "b", "kind", "y"])
+    table("valid.csv", 40, ("p", "q", "never_seen"), validation_columns.split(","))
+
+
+def _validation_job(folder: Path) -> sm.Job:
+    return sm.job_from_dict({"model": {"layers": [3, 8, 2]},
+                             "data": {"inputs": "train.csv", "validation": "valid.csv", "target": "y",
+                                      "categorical": ["kind"]},
+                             "optimizer": {"learning_rate": 0.01},
+                             "run": {"global_batch": 16, "epochs": 3, "workdir": "run"}}, base=folder)
+
+
+def test_a_validation_table_validates_and_every_input_row_trains(tmp_path: Path) -> None:
+    import json
+
+    from sklearn.metrics import accuracy_score
+
+    _tables(tmp_path)
+    result = sm.train(_validation_job(tmp_path), progress=False)
+    trainer_split = Trainer(_validation_job(tmp_path), Comm.alone()).data.split
+    np.testing.assert_array_equal(trainer_split.train, np.arange(160))
+    np.testing.assert_array_equal(trainer_split.validation, np.arange(160, 200))
+    # the logged validation accuracy is scikit-learn's accuracy of the model's predictions on the validation table
+    rows = [dict(zip("b,kind,y,z,a".split(","), line.split(","), strict=True))
+            for line in (tmp_path / "valid.csv").read_text().splitlines()[1:]]  # its columns in its own order
+    X = np.array([[float(r["a"]), float(r["b"])] for r in rows])
+    kinds, truth = [r["kind"] for r in rows], [int(r["y"]) for r in rows]
+    predicted = result["predictor"].predict(X, categories={"kind": kinds})  # "never_seen": the unknown slot
+    records = [json.loads(r) for r in (tmp_path / "run" / "metrics.jsonl").read_text().splitlines()]
+    logged = [r for r in records if r.get("kind") == "epoch"][-1]["validation"]["accuracy"]
+    assert logged == pytest.approx(accuracy_score(truth, predicted), abs=1e-12)
+
+
+def test_a_validation_table_lacking_a_column_is_one_line(tmp_path: Path) -> None:
+    _tables(tmp_path, validation_columns="a,kind,y")
+    with pytest.raises(JobError) as err:
+        sm.train(_validation_job(tmp_path), progress=False)
+    assert "`data.validation` 'valid.csv' lacks the column(s) ['b']" in str(err.value) and "\n" not in str(err.value)
+
+
+@pytest.mark.parametrize("data", [{"folds": 3}, {"split": "last"}, {"target": ""}])
+def test_a_validation_table_with_another_way_of_choosing_is_refused(data: dict) -> None:
+    keys = {"inputs": "t.csv", "validation": "v.csv", "target": "y", **data}
+    if not keys["target"]:
+        keys.update(target="", targets="y.npy")
+    with pytest.raises(JobError, match="takes the validation rows from a table of their own"):
+        sm.job_from_dict({"model": {"layers": [2, 2]}, "data": keys})

@@ -42,8 +42,11 @@ def widths_of(job: Job, vocabularies: list[list[str]]) -> list[int]:
 def categories_from_rows(job: Job, columns: list[list[str]]) -> tuple[list[Category], np.ndarray]:
     """The vocabularies (from the training rows of the job's split) and the codes (n, c) int64 of every row."""
     n = len(columns[0])
-    train = split_rows(n, job.data.validation_fraction, job.run.seed, job.data.folds, job.data.fold,
-                       how=job.data.split).train  # (groups with categories are refused by the job's checks)
+    if job.data.validation:  # the validation rows are a table of their own: every row here trains
+        train = np.arange(n)
+    else:  # (groups with categories are refused by the job's checks)
+        train = split_rows(n, job.data.validation_fraction, job.run.seed, job.data.folds, job.data.fold,
+                           how=job.data.split).train
     vocabularies = [vocabulary_of([texts[i] for i in train.tolist()]) for texts in columns]
     widths = widths_of(job, vocabularies)
     categories = [Category(name, vocabulary, width)
@@ -75,6 +78,11 @@ def load_categories(job: Job, comm: Comm) -> tuple[list[Category], np.ndarray | 
                            f"without column names; store the inputs as .csv or .parquet")
         table = describe(path, "data.inputs", job.data.header)
         categories, codes = categories_from_rows(job, read_columns(table, names, "data.categorical"))
+        if job.data.validation:  # its rows come after the inputs' (data/validation.py), coded by the same words
+            other = describe(job.path(job.data.validation), "data.validation", job.data.header)
+            columns = read_columns(other, names, "data.categorical")
+            codes = np.vstack([codes, np.column_stack([c.encode(v) for c, v in zip(categories, columns, strict=True)])
+                               if columns[0] else np.zeros((0, len(names)), dtype=np.int64)])
         return [c.record() for c in categories], codes
 
     result = _errors(comm, read)

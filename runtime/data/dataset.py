@@ -13,6 +13,7 @@ from shardmill.config import Job
 from shardmill.data.categories import Category
 from shardmill.data.files import open_job_column, open_job_data, open_job_weights
 from shardmill.data.rows import Split, as_numbers, block_range, column_statistics, first_of_ranks, split_rows
+from shardmill.data.validation import join_validation, validation_job
 from shardmill.errors import JobError, LocalJobError
 from shardmill.model.activations import OUTPUTS
 from shardmill.model.mlp import MLP, check_weights
@@ -104,8 +105,11 @@ def load_dataset(job: Job, model: MLP, comm: Comm, categories: list[Category] | 
     ``arrays``: the data in memory instead of the job's files."""
     error: Exception | None = None
     targets = None
+    n_train = None  # rows of data.inputs when data.validation adds its own after them
     if arrays is None:
         X, y, feature_names = open_job_data(job, comm)  # collective; its own failures are raised alike on every rank
+        if job.data.validation:
+            X, y, n_train = join_validation(job, X, y, feature_names, comm)
     else:  # checked by check_arrays first (the Trainer does, before the categorical columns would be read)
         X, y, feature_names = np.asarray(arrays.inputs), np.asarray(arrays.targets), None
     mapped = X if isinstance(X, np.memmap) and X.filename is not None else None
@@ -122,7 +126,7 @@ def load_dataset(job: Job, model: MLP, comm: Comm, categories: list[Category] | 
     except (JobError, OSError, MemoryError) as err:
         error = err if isinstance(err, JobError) else JobError(f"data cannot be loaded: {err}")
     share_error(comm, error)
-    split = job_split(job, X.shape[0], comm)
+    split = job_split(job, X.shape[0], comm, n_train)
     if split.train.size == 0:
         raise JobError("`data.validation_fraction` leaves no training rows")
     mean, inv_std, (bad, rank) = column_statistics(X, split.train if job.data.standardize else split.train[:0],
@@ -142,16 +146,22 @@ def load_dataset(job: Job, model: MLP, comm: Comm, categories: list[Category] | 
                    ).astype(targets.dtype)
     # collective; the same array on every rank, so the checks agree
     raw_weights = open_job_weights(job, comm) if arrays is None else arrays.weights
+    if raw_weights is not None and n_train is not None:  # a weights column of both tables
+        more = open_job_weights(validation_job(job), comm)
+        raw_weights = np.concatenate([raw_weights.reshape(-1), more.reshape(-1)])
     weights, class_weights = row_weights(job, targets, split, raw_weights, model.sizes[-1])
     return Dataset(X=X, targets=targets, split=split, mean=mean, inv_std=inv_std, feature_names=feature_names,
                    weights=weights, class_weights=class_weights, categories=list(categories or []), codes=codes,
                    target_mean=target_mean, target_std=target_std, inputs_file=inputs_file)
 
 
-def job_split(job: Job, n_rows: int, comm: Comm) -> Split:
+def job_split(job: Job, n_rows: int, comm: Comm, n_train: int | None = None) -> Split:
     """The job's training and validation rows (:func:`rows.split_rows`), with the fold keys' groups read
-    (collective: a group column or file is read alike on every rank)."""
+    (collective: a group column or file is read alike on every rank). ``n_train``: with ``data.validation``, the
+    first ``n_train`` rows train and the rest (the validation table's) validate."""
     data = job.data
+    if n_train is not None:
+        return Split(train=np.arange(n_train, dtype=np.int64), validation=np.arange(n_train, n_rows, dtype=np.int64))
     groups = open_job_column(job, comm, "data.groups") if data.groups else None
     return split_rows(n_rows, data.validation_fraction, job.run.seed, data.folds, data.fold, groups, data.split)
 

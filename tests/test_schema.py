@@ -28,7 +28,7 @@ DIGEST_RUN_KEYS = ("global_batch", "seed", "reduction", "exact_chunk")
 # the digest only away from their defaults, as the checkpoints on disk were written without them.
 ADDED_DATA_KEYS = {"target": "", "features": [], "header": "auto", "weights": "", "class_weights": "",
                    "categorical": [], "embedding_widths": {}, "standardize_targets": True, "folds": 0, "fold": 0,
-                   "groups": "", "split": "random"}
+                   "groups": "", "split": "random", "validation": ""}
 # [model] keys added in 0.3 (the robust losses' parameters; norm, dropout and residual): likewise, at their defaults
 # they stay out of the digest.
 ADDED_MODEL_KEYS = {"huber_delta": 1.0, "norm": "none", "dropout": 0.0, "residual": False}

@@ -99,3 +99,13 @@ def test_inputs_cut_short_under_a_running_job_end_it_in_words(tmp_path: Path) ->
         f.truncate(size // 2)  # reading the lost half through the mapping would be SIGBUS ("Bus error")
     with pytest.raises(LocalJobError, match=r"was cut to [\d,]+ bytes while the job reads it"):
         trainer.step(0, 1)
+
+
+def test_a_refused_start_leaves_no_converted_table_behind(tmp_path: Path) -> None:
+    lines = ["a,b,y"] + [f"{i * 0.1:.1f},{i % 3},{i % 2}" for i in range(30)]
+    lines[5] = "0.5,2,7"  # a label beyond the model's two classes
+    (tmp_path / "t.csv").write_text("\n".join(lines) + "\n")
+    job = write_job(tmp_path, {"layers": [2, 4, 2]}, {"global_batch": 8, "workdir": "run"},
+                    data={"inputs": "t.csv", "target": "y"})
+    _one_line(run_cli(["train", str(job)]), "labels must lie in [0, 1] for 2 outputs; got 7 in row 4")
+    assert not (tmp_path / "run" / "tables").exists()  # the corrected table converts again, nothing stale stays

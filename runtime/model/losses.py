@@ -152,8 +152,8 @@ def _class_labels(y: np.ndarray, n: int, k: int, name: str, loss: str) -> np.nda
         raise JobError(f"`{name}` must hold integer class labels; got dtype {y.dtype}")
     labels = np.asarray(y, dtype=np.int64)
     if labels.size and (labels.min() < 0 or labels.max() >= k):
-        bad = int(labels[(labels < 0) | (labels >= k)][0])
-        raise JobError(f"`{name}` labels must lie in [0, {k - 1}] for {k} outputs; got {bad}")
+        row = int(np.flatnonzero((labels < 0) | (labels >= k))[0])
+        raise JobError(f"`{name}` labels must lie in [0, {k - 1}] for {k} outputs; got {int(labels[row])} in row {row}")
     return labels
 
 

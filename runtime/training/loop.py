@@ -29,6 +29,7 @@ from shardmill.training.workdir import (
     check_resumable,
     claim_workdir,
     continue_or_start,
+    forget_a_refused_start,
 )
 from threadpoolctl import threadpool_limits
 
@@ -60,7 +61,12 @@ def train(job: Job, comm: Comm | None = None, resume: bool | str = False, progre
         # warnings would only print ahead of that line
         with threadpool_limits(limits=job.run.threads, user_api="blas"), StopSignals() as stop, \
                 np.errstate(over="ignore", invalid="ignore", divide="ignore"):
-            trainer = Trainer(job, comm, arrays=arrays)
+            try:
+                trainer = Trainer(job, comm, arrays=arrays)
+            except JobError:
+                if not resume:
+                    forget_a_refused_start(job.workdir, comm)
+                raise
             trainer.flags = LoopFlags(stop, job.run.save_minutes, comm.rank == 0)
             return RunLoop(trainer, resume, progress, echo).run()
 

@@ -6,6 +6,7 @@ Rank 0 looks at the files; every rank learns the outcome alike (``parallel.comm.
 from __future__ import annotations
 
 import os
+import shutil
 import sys
 from pathlib import Path
 from typing import Any
@@ -138,3 +139,10 @@ def claim_workdir(workdir: Path, fresh: bool, comm: Comm) -> None:
                            f"another `run.workdir`")
 
     lead_then_share(comm, claim)
+
+
+def forget_a_refused_start(workdir: Path, comm: Comm) -> None:
+    """A new run refused before its first step (bad labels, a non-finite value) leaves no converted tables
+    behind: the corrected data converts again, and nothing stale stays in the workdir. Collective (the refusal
+    was raised alike on every rank); rank 0 removes ``workdir/tables``."""
+    lead_then_share(comm, lambda: shutil.rmtree(workdir / "tables", ignore_errors=True))

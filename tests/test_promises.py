@@ -121,3 +121,15 @@ def test_a_sigterm_while_the_ranks_start_ends_cleanly(wine: Path, delay: float) 
     # shell reports both as 143)
     assert process.returncode in (128 + signal.SIGTERM, -signal.SIGTERM), out[-2000:]
     assert "BAD TERMINATION" not in out and "Traceback" not in out, out[-2000:]
+
+
+@pytest.mark.mpi
+def test_a_signal_after_the_job_ended_does_not_kill_the_launcher(tmp_path: Path) -> None:
+    import subprocess
+    import sys
+
+    code = ("import os, signal; from shardmill.commands import cli; "
+            "cli.relaunch = lambda ranks, args: 0; status = cli.main(['train', 'job.toml', '--ranks', '2']); "
+            "os.kill(os.getpid(), signal.SIGTERM); print('exit', status)")  # the job itself stubbed out
+    done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120, cwd=tmp_path)
+    assert done.returncode == 0 and "exit 0" in done.stdout, done.stderr[-2000:]

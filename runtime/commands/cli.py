@@ -15,7 +15,7 @@ from pathlib import Path
 
 from shardmill.config import choices, default
 from shardmill.errors import JobError
-from shardmill.parallel.launch import LAUNCHED, relaunch, strip_ranks
+from shardmill.parallel.launch import LAUNCHED, ignore_late_signals, relaunch, strip_ranks
 
 
 def _layers(text: str) -> list[int]:
@@ -235,7 +235,9 @@ def main(argv: list[str] | None = None) -> int:
     argv = list(sys.argv[1:] if argv is None else argv)
     args = build_parser().parse_args(argv)
     if args.command in ("train", "verify", "bench", "variants") and args.ranks and not os.environ.get(LAUNCHED):
-        return relaunch(args.ranks, strip_ranks(argv))
+        status = relaunch(args.ranks, strip_ranks(argv))
+        ignore_late_signals()  # the job is over: a late signal must not turn its status into "killed"
+        return status
     if args.command == "train":  # a stop signal while the rank starts up stops it after its first step
         from shardmill.training.signals import note_early_signals
 

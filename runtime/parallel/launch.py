@@ -175,6 +175,14 @@ def relaunch(ranks: int, args: list[str], timeout: float | None = None) -> int:
                           forward_signals=True, env=env)
 
 
+def ignore_late_signals() -> None:
+    """The job is over and this process is about to exit with its status: a SIGTERM or SIGINT now must not turn
+    that status into "killed by a signal" (a batch system's late signal, a Ctrl-C at the prompt's return)."""
+    if threading.current_thread() is threading.main_thread():
+        for signum in (signal.SIGTERM, signal.SIGINT):
+            signal.signal(signum, signal.SIG_IGN)
+
+
 def strip_ranks(argv: list[str]) -> list[str]:
     """argv without ``--ranks P`` / ``--ranks=P``."""
     out, skip = [], False

@@ -138,6 +138,8 @@ def test_eight_variants_on_four_ranks_match_each_variant_trained_alone(tmp_path)
         alone = train_alone(job, row["sets"], tmp_path / "alone" / row["variant"])
         # exact mode: the same bits at every process count (README, "exact"); SHA-256 per array (FIPS 180-4)
         assert sha256_of_arrays(tmp_path / "study" / "variants" / row["variant"] / "final.npz") == alone
+    picture = tmp_path / "study" / "variants.png"
+    assert picture.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n" and "picture in" in result.stdout  # PNG signature
 
 
 def starts_of(metrics: Path) -> list[int]:
@@ -186,3 +188,58 @@ def test_a_stopped_study_relaunched_on_other_ranks_ends_as_an_uninterrupted_one(
         alone = train_alone(job, row["sets"], tmp_path / "alone" / row["variant"])
         assert sha256_of_arrays(folder / "final.npz") == alone  # exact mode: same bits after a resume at another P
     assert resumed >= 1  # at least one variant went on from its checkpoint
+
+
+@pytest.mark.mpi
+def test_a_study_killed_outright_is_finished_by_a_relaunch(tmp_path):
+    """kill -9 of the launcher and every rank (a node lost, a preemption without warning): no record is written
+    for the variants in progress; the relaunch skips the finished ones and continues the others from their last
+    checkpoint, to the bits of each variant trained alone."""
+    mpiexec()
+    job = study_job(tmp_path, epochs=40, rows=240)
+    job.write_text(job.read_text().replace("[run]", "[run]\nsave_every = 10"))
+    plan = plan_file(tmp_path, '[grid]\n"optimizer.learning_rate" = [0.01, 0.02, 0.03, 0.04]\n')
+    env = rank_environment(threads=1, launched=False)
+    command = [sys.executable, "-m", "shardmill", "variants", str(job), str(plan)]
+    process = subprocess.Popen([*command, "--ranks", "2", "--group-ranks", "1"], stdout=subprocess.DEVNULL,
+                               stderr=subprocess.DEVNULL, env=env, start_new_session=True)
+    try:
+        deadline = time.monotonic() + 120
+        while time.monotonic() < deadline and not list((tmp_path / "study" / "variants").glob("*/variant.json")):
+            time.sleep(0.05)
+        time.sleep(0.5)
+    finally:
+        os.killpg(process.pid, signal.SIGKILL)  # the launcher and every rank at once: no handler runs
+        process.wait(timeout=30)
+    finished = [p.parent.name for p in (tmp_path / "study" / "variants").glob("*/variant.json")]
+    assert finished
+    lock = tmp_path / "study" / ".lock"
+    again = subprocess.run([*command, "--ranks", "2", "--group-ranks", "1"], capture_output=True, text=True,
+                           env=env, timeout=240)
+    assert again.returncode == 0, again.stderr[-2000:] + (" (lock left)" if lock.exists() else "")
+    rows = json.loads((tmp_path / "study" / "variants.json").read_text())["variants"]
+    assert len(rows) == 4 and all(r["status"] == "done" for r in rows)
+    for row in rows:
+        folder = tmp_path / "study" / "variants" / row["variant"]
+        if row["variant"] in finished:
+            assert starts_of(folder / "metrics.jsonl") == [0]  # trained once
+        alone = train_alone(job, row["sets"], tmp_path / "alone" / row["variant"])
+        assert sha256_of_arrays(folder / "final.npz") == alone  # exact mode: the same bits after the kill
+
+
+def test_g_from_a_scale_study_is_the_largest_p_that_still_scales(tmp_path):
+    from shardmill.study.run import scaled_group_ranks
+
+    points = [{"p": 1, "efficiency": 1.0, "step_s": 2e-3}, {"p": 2, "efficiency": 0.85, "step_s": 1.18e-3},
+              {"p": 4, "efficiency": 0.6, "step_s": 0.83e-3}]
+    (tmp_path / "scaling.json").write_text(json.dumps({"mode": "strong", "points": points}))
+    g, why = scaled_group_ranks(tmp_path, world=8)
+    # strong-scaling efficiency T1 / (P·TP) ≥ 0.8 holds up to P = 2 (common practice for "still scales")
+    assert g == 2 and "efficiency 0.85 at P = 2" in why and "1.18 ms" in why
+    assert scaled_group_ranks(tmp_path, world=1)[0] == 1  # no more than the world holds
+    (tmp_path / "scaling.json").write_text(json.dumps({"mode": "weak", "points": points}))
+    with pytest.raises(JobError, match="is a weak scaling study; give a strong one"):
+        scaled_group_ranks(tmp_path / "scaling.json", world=8)
+    (tmp_path / "scaling.json").write_text("{not json")
+    with pytest.raises(JobError, match="is not a `shardmill scale` study"):
+        scaled_group_ranks(tmp_path, world=8)

@@ -178,6 +178,9 @@ def build_parser() -> argparse.ArgumentParser:
                         "chosen: the most groups the variants can fill)")
     p.add_argument("--out-dir", type=Path, default=None, metavar="DIR",
                    help="the study folder (default: the plan's study.folder, beside the plan)")
+    p.add_argument("--scaling", type=Path, default=None, metavar="DIR",
+                   help="a `shardmill scale` study of this job (its folder or scaling.json): g becomes the largest "
+                        "measured process count whose efficiency stays at or above 0.8, unless given")
     ranks(p)
 
     p = command("predict", "outputs (or labels) of a trained model on new inputs")

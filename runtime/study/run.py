@@ -14,6 +14,7 @@ study exits 143 (130), to be relaunched with the same line, on any number of ran
 from __future__ import annotations
 
 import argparse
+import json
 import sys
 import threading
 import time
@@ -25,7 +26,7 @@ import numpy as np
 from shardmill.config import Job
 from shardmill.errors import JobError, LocalJobError
 from shardmill.parallel.comm import Comm, abort_world
-from shardmill.study import results
+from shardmill.study import figure, results
 from shardmill.study.plan import Plan, Variant, read_plan, variant_jobs
 from shardmill.training.signals import StopSignals, TrainingStopped
 from shardmill.training.workdir import WorkdirLock
@@ -44,6 +45,28 @@ def choose_group_ranks(world: int, pending: int, given: int) -> int:
         return given
     wanted = max(1, min(pending, world))
     return max(d for d in range(1, world + 1) if world % d == 0 and world // d >= wanted)
+
+
+SCALING_EFFICIENCY = 0.8
+"""g chosen from a scale study (``--scaling``): the largest measured P whose efficiency is at least this."""
+
+
+def scaled_group_ranks(path: Path, world: int) -> tuple[int, str]:
+    """(g, a sentence saying why) from a ``shardmill scale`` study: the largest measured process count ≤ ``world``
+    whose strong-scaling efficiency is at least :data:`SCALING_EFFICIENCY`, and its measured step time. Raises
+    JobError for a file that is not such a study."""
+    source = path / "scaling.json" if path.is_dir() else path
+    try:
+        study = json.loads(source.read_text())
+        points = [(int(p["p"]), float(p["efficiency"]), float(p["step_s"])) for p in study["points"]]
+    except (OSError, ValueError, KeyError, TypeError) as err:
+        raise JobError(f"`--scaling` {str(source)!r} is not a `shardmill scale` study: {err}") from None
+    if study.get("mode") != "strong":
+        raise JobError(f"`--scaling` {str(source)!r} is a {study.get('mode')} scaling study; give a strong one")
+    good = [(p, eff, step) for p, eff, step in points if p <= world and eff >= SCALING_EFFICIENCY]
+    p, eff, step = max(good) if good else min(points)
+    return p, (f"g = {p} from {source}: efficiency {eff:.2f} at P = {p} (the largest measured P at or above "
+               f"{SCALING_EFFICIENCY}), a step of {step * 1e3:.3g} ms")
 
 
 class VariantQueue:
@@ -156,13 +179,17 @@ def cmd_variants(args: argparse.Namespace) -> int:
         pending = world.broadcast_object([v.index for v in plan.variants
                                           if (results.read_record(plan, v) or {}).get("status")
                                           not in results.FINISHED] if world.rank == 0 else None)
-        g = choose_group_ranks(world.size, len(pending), args.group_ranks or plan.ranks_per_variant)
+        given, why = args.group_ranks or plan.ranks_per_variant, ""
+        if not given and getattr(args, "scaling", None) is not None:
+            given, why = scaled_group_ranks(args.scaling, world.size)
+        g = choose_group_ranks(world.size, len(pending), given)
         groups = world.size // g
         if world.rank == 0:
             idle = world.size - groups * g
             print(f"variants: {len(plan.variants)} in {plan.folder} ({len(plan.variants) - len(pending)} finished "
                   f"before); {world.size} rank(s) as {groups} group(s) × {g} rank(s)"
-                  + (f", {idle} rank(s) idle" if idle else "") + f"; ranked by {plan.metric}", flush=True)
+                  + (f", {idle} rank(s) idle" if idle else "") + f"; ranked by {plan.metric}"
+                  + (f"; {why}" if why else ""), flush=True)
         control = world.duplicate()
         color = world.rank // g if world.rank < groups * g else None
         group = world.split(color, key=world.rank)
@@ -182,11 +209,12 @@ def cmd_variants(args: argparse.Namespace) -> int:
                      "busy_rank_s": queue.busy_rank_s, "busy_fraction": busy}
             table = results.table(plan)
             paths = results.write_tables(plan, table, usage)
+            picture = figure.draw(plan, table)  # the metric against each varied key; the best few's curves
             counts = {s: sum(row["status"] == s for row in table["variants"]) for s in ("done", "failed")}
             print(f"variants: {counts['done']} done, {counts['failed']} failed, "
                   f"{len(plan.variants) - counts['done'] - counts['failed']} to go; busy fraction of the "
                   f"rank-seconds {busy:.3f} ({world.size} ranks × {wall:.1f} s); table in {paths[0]} and "
-                  f"{paths[1]}", flush=True)
+                  f"{paths[1]}" + (f", picture in {picture}" if picture else ""), flush=True)
             line = results.best_line(plan, table, str(args.job))
             if line:
                 print(line, flush=True)

@@ -79,6 +79,10 @@ def targets(results: dict[str, Any]) -> list[dict[str, Any]]:
     if "embeddings_over_onehot" in quality:  # not speed: the error of embeddings against a one-hot MLP
         out.append({"name": "test RMSE, embeddings / scikit-learn one-hot MLP, diamonds",
                     "value": quality["embeddings_over_onehot"], "target": "<= 1.05", "met": quality["met"]})
+    packing = results.get("variants_packing", {})
+    if "ratio" in packing:
+        out.append({"name": "8 variants packed (2 groups of 1) / one after the other on 2 ranks",
+                    "value": packing["ratio"], "target": "<= 0.8", "met": packing["met"]})
     start = results.get("cold_start", {})
     if "cold_s" in start:
         for phase in ("cold", "warm"):
@@ -108,6 +112,7 @@ def main(argv: list[str] | None = None) -> int:
         "overlap_hidden": ([str(BENCHMARKS / "overlap_hidden.py"), *quick], 180 if args.quick else 600),
         "cold_start": ([str(BENCHMARKS / "cold_start.py"), *quick], 120 if args.quick else 300),
         "layers_cost": ([str(BENCHMARKS / "layers_cost.py"), *quick], 240 if args.quick else 600),
+        "variants_packing": ([str(BENCHMARKS / "variants_packing.py"), *quick], 240 if args.quick else 600),
         "categorical_quality": ([str(BENCHMARKS / "categorical_quality.py"), *(["--epochs", "20"] if args.quick
                                                                                else [])], 300),
     }

@@ -7,7 +7,7 @@ import math
 from numba import njit
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def take_rows(X, rows, mean, inv_std, out):
     """out[i] = (X[rows[i]] − mean) · inv_std; returns the index i of the first non-finite row, or −1.
 

@@ -11,6 +11,7 @@ from shardmill.data.rows import Split
 from shardmill.machine import machine
 from shardmill.model.losses import LOSSES
 from shardmill.parallel.comm import Comm
+from shardmill.parallel.exchange import blas_threads
 from shardmill.timing import median, slowest_call, time_call
 from shardmill.training.trainer import Trainer
 from shardmill.training.warmup import warm_up_kernels
@@ -79,7 +80,7 @@ def run_bench(layers: list[int], batch: int, dtype: str = default("model.dtype")
                 "exact_format": exact_format, "comm_driver": comm_driver, "epochs": 1},
     })
     rows = max(4 * batch, 1024)
-    with threadpool_limits(limits=threads, user_api="blas"):
+    with threadpool_limits(limits=blas_threads(job.run), user_api="blas"):
         trainer = Trainer(job, comm, dataset=synthetic_dataset(layers, loss, rows, dtype))
         compile_s = warm_up_kernels(trainer)
         spe = trainer.sampler.steps_per_epoch

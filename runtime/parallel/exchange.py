@@ -170,6 +170,10 @@ class Strategy:
         """The most rows of one part: the batch size the workspaces are built for."""
         return self.summation.part_rows(run, processes)
 
+    def lanes(self, run: RunSpec) -> int:
+        """Parts computed at once, each on a thread of its own (exact mode: ``run.threads``; fast mode: 1)."""
+        return self.summation.lanes(run)
+
     def from_run(self, comm: Comm, model: MLP, grads: np.ndarray, run: RunSpec) -> Exchange:
         """The exchange with the settings of a job's ``[run]`` table; ``grads``: the flat gradient buffer with the
         params layout, (n_params,) in the model's dtype. One rank owns everything: nothing to shard."""
@@ -195,6 +199,12 @@ def choose(update: str, reduction: str, exact_format: str = "wide") -> Strategy:
 def strategy(run: RunSpec) -> Strategy:
     """The exchange strategy for a job's ``run.reduction``, ``run.exact_format`` and ``run.update``."""
     return choose(run.update, run.reduction, run.exact_format)
+
+
+def blas_threads(run: RunSpec) -> int:
+    """BLAS threads per process for a job's ``[run]`` table: ``run.threads`` in fast mode, 1 in exact mode (whose
+    threads take whole chunks, so that its bits do not depend on ``run.threads``)."""
+    return strategy(run).summation.blas_threads(run)
 
 
 def resolve_update(job: Job, processes: int) -> RunSpec:

@@ -14,7 +14,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from helpers import make_classification, run_mpi
+from helpers import epoch_metrics, make_classification, run_mpi
 from shardmill.config import job_from_dict
 from shardmill.parallel.comm import Comm
 from shardmill.training.trainer import Trainer
@@ -70,6 +70,9 @@ def test_exact_mode_has_the_same_bits_for_every_thread_and_process_count(data_di
             assert results[P][f"{name}_t{T}"]["steps"] == 4
         # exact mode's promise (this project's design: fixed chunks, integer sums), now over P × T
         assert len({by_rank[0] for by_rank in digests.values()}) == 1, (name, digests)
+        logs = [epoch_metrics(data_dir / f"p{P}-{name}-t{T}") for P in (1, 2) for T in THREADS]
+        assert len(logs[0]) == 2 and all(0 < e["train"]["loss"] < 10 for e in logs[0])
+        assert all(log == logs[0] for log in logs[1:]), name  # compared with ==: exact sums, the same bits
 
 
 def test_fast_mode_across_threads_is_within_the_verify_bound(data_dir: Path, tmp_path: Path) -> None:

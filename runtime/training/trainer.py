@@ -20,9 +20,10 @@ from shardmill.data.dataset import Arrays, Dataset, check_arrays, load_dataset
 from shardmill.data.rows import Sampler, take_rows
 from shardmill.errors import JobError
 from shardmill.kernels import losses as loss_kernels
+from shardmill.kernels.dispatch import use_threads
 from shardmill.model.mlp import model_from_job
 from shardmill.parallel.comm import Comm, share_error
-from shardmill.parallel.exchange import resolve_update
+from shardmill.parallel.exchange import blas_threads, resolve_update
 from shardmill.parallel.exchange import strategy as exchange_strategy
 from shardmill.timing import PHASES, PhaseTimer
 from shardmill.training import saving
@@ -57,6 +58,7 @@ class Trainer:
         run = resolve_update(job, self.comm.size)  # run.update = "auto" decided for this many ranks
         Strategy = exchange_strategy(run)
         Strategy.check(run, self.comm.size)  # before any collective, identically on every rank
+        use_threads(blas_threads(run))  # the kernels' threads: BLAS's (exact mode: 1, its threads take chunks)
         error: Exception | None = None
         if arrays is not None:
             check_arrays(job, arrays, self.comm)

@@ -26,6 +26,9 @@ BLOCK_ELEMENTS = 8192
 COLUMN_BLOCK = 128
 """Columns per block of the column sums (512 bytes of a float32 row)."""
 
+# GNU OpenMP reads this when it loads (the first parallel kernel): its threads spin 10 000 times, not 300 000,
+# before they sleep, so they leave the cores to BLAS's threads between kernels (the launcher sets it for ranks too)
+os.environ.setdefault("GOMP_SPINCOUNT", "10000")
 if "NUMBA_THREADING_LAYER" not in os.environ:
     numba.config.THREADING_LAYER = "omp" if importlib.util.find_spec("numba.np.ufunc.omppool") else "workqueue"
 

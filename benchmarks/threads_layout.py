@@ -25,7 +25,7 @@ import sys
 import time
 from typing import Any
 
-from benchsupport import MID_MODEL, LoadMeter, emit, log, machine_record, run_child
+from benchsupport import MID_MODEL, LoadMeter, emit_measured, log, run_child
 from shardmill.timing import median
 
 BATCH = 512
@@ -108,7 +108,7 @@ def main(argv: list[str] | None = None) -> int:
                   "one_by_two_ratio_to_needed_floor": two["ratio_to_needed_floor"],
                   "kernel_phases_T2_over_T1": two["kernel_phases_ms"] / one["kernel_phases_ms"],
                   **projections(one, two)}
-    emit({
+    emit_measured({
         "benchmark": "threads_layout",
         "quick": args.quick,
         "layers": MID_MODEL,
@@ -121,10 +121,7 @@ def main(argv: list[str] | None = None) -> int:
         "targets": TARGETS,
         "ratios": ratios,
         "layouts": layouts,
-        "seconds": time.perf_counter() - begin,
-        "load": meter.stop(),
-        "machine": machine_record(),
-    })
+    }, begin, meter)
     return 0
 
 

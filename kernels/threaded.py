@@ -26,23 +26,17 @@ from shardmill.kernels.dispatch import BLOCK_ELEMENTS, COLUMN_BLOCK, parallel, r
 # --- the parallel forms: each runs the serial kernel on fixed blocks --------------------------------------------
 
 @njit(cache=True, nogil=True, parallel=True)
-def bias_forward_blocks(Z, b, A, code, rows):
-    """:func:`activations.bias_forward` on blocks of ``rows`` rows."""
+def activation_blocks(Z, b, A, D, code, rows, backward):
+    """On blocks of ``rows`` rows: :func:`activations.bias_forward` (Z, b, A; D unread) or, with ``backward``,
+    :func:`activations.backward` (Z, A, D; D in place, b unread). One driver for both: one specialisation fewer."""
     n = Z.shape[0]
     for k in prange((n + rows - 1) // rows):
         lo = k * rows
         hi = min(n, lo + rows)
-        activations.bias_forward(Z[lo:hi], b, A[lo:hi], code)
-
-
-@njit(cache=True, nogil=True, parallel=True)
-def backward_blocks(Z, A, D, code, rows):
-    """:func:`activations.backward` on blocks of ``rows`` rows (D in place, as the serial kernel)."""
-    n = Z.shape[0]
-    for k in prange((n + rows - 1) // rows):
-        lo = k * rows
-        hi = min(n, lo + rows)
-        activations.backward(Z[lo:hi], A[lo:hi], D[lo:hi], code)
+        if backward:
+            activations.backward(Z[lo:hi], A[lo:hi], D[lo:hi], code)
+        else:
+            activations.bias_forward(Z[lo:hi], b, A[lo:hi], code)
 
 
 @njit(cache=True, nogil=True, parallel=True)
@@ -91,7 +85,7 @@ def adam_blocks(params, grads, m, v, lr, beta1, beta2, eps, step, l2, decay):
 def bias_forward(Z: np.ndarray, b: np.ndarray, A: np.ndarray, code: int) -> None:
     """Z += b, A = f(Z) (``activations.bias_forward``); Z, A: (n, m), b: (m,)."""
     if parallel(Z.size):
-        bias_forward_blocks(Z, b, A, code, row_block(Z.shape[1]))
+        activation_blocks(Z, b, A, Z, code, row_block(Z.shape[1]), False)
     else:
         activations.bias_forward(Z, b, A, code)
 
@@ -99,7 +93,7 @@ def bias_forward(Z: np.ndarray, b: np.ndarray, A: np.ndarray, code: int) -> None
 def backward(Z: np.ndarray, A: np.ndarray, D: np.ndarray, code: int) -> None:
     """D ← f'(Z) ⊙ D (``activations.backward``); Z, A, D: (n, m)."""
     if parallel(Z.size):
-        backward_blocks(Z, A, D, code, row_block(Z.shape[1]))
+        activation_blocks(Z, Z[0], A, D, code, row_block(Z.shape[1]), True)
     else:
         activations.backward(Z, A, D, code)
 
@@ -151,6 +145,6 @@ def warm_up(dtype: np.dtype) -> None:
         return
     Z = np.zeros((2, 2), dtype=dtype)
     b = np.zeros(2, dtype=dtype)
-    bias_forward_blocks(Z, b, Z, activations.RELU, 1)
-    backward_blocks(Z, Z, Z.copy(), activations.RELU, 1)
+    activation_blocks(Z, b, Z, Z, activations.RELU, 1, False)
+    activation_blocks(Z, b, Z, Z.copy(), activations.RELU, 1, True)
     column_sums_blocks(Z, b, 1)

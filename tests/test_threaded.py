@@ -36,11 +36,11 @@ def test_bias_forward_and_backward_blocks_match_the_serial_kernels(dtype, code, 
     Zs, As = Z0.copy(), np.empty_like(Z0)
     act.bias_forward(Zs, b, As, code)
     Zp, Ap = Z0.copy(), np.empty_like(Z0)
-    threaded.bias_forward_blocks(Zp, b, Ap, code, rows)
+    threaded.activation_blocks(Zp, b, Ap, Zp, code, rows, False)
     assert Zs.tobytes() == Zp.tobytes() and As.tobytes() == Ap.tobytes()  # the same bits (fixed blocks)
     Ds, Dp = D0.copy(), D0.copy()
     act.backward(Zs, As, Ds, code)
-    threaded.backward_blocks(Zs, As, Dp, code, rows)
+    threaded.activation_blocks(Zs, b, As, Dp, code, rows, True)
     assert Ds.tobytes() == Dp.tobytes()
 
 

@@ -92,3 +92,27 @@ def test_fast_mode_across_threads_is_within_the_verify_bound(data_dir: Path, tmp
     _, abs_sums = serial_gradient(trainer, rows)
     report = compare(trainer.model, gradients[1], gradients[0], abs_sums, rows.size)
     assert max(row["bound_ratio"] for row in report) <= 1.0, report
+
+
+@pytest.mark.parametrize("exact_format", ["wide", "narrow"])
+def test_lanes_give_the_one_thread_gradient_with_norm_dropout_and_skips(data_dir: Path, tmp_path: Path,
+                                                                        exact_format: str) -> None:
+    """In one process: three exact steps with T = 1 and with T = 3 lanes (4 chunks of 4 rows: a wave of 3, then
+    a short one of 1), a model with layer norm, dropout and a residual skip, the same bits. BLAS at one thread (the
+    test process's) for both."""
+    runs = {}
+    for threads in (1, 3):
+        tables = job_tables(data_dir, "float32", {"method": "adam"}, {"exact_format": exact_format}, threads,
+                            tmp_path / f"t{threads}")
+        tables["model"].update({"layers": [784, 24, 24, 10], "norm": "layer", "dropout": 0.2, "residual": True})
+        tables["run"].update({"global_batch": 16, "exact_chunk": 4})
+        trainer = Trainer(job_from_dict(tables, base=str(data_dir)), Comm())
+        assert (trainer.lanes is None) == (threads == 1)
+        steps = []
+        for step in range(3):
+            trainer.step(0, step)
+            steps.append(trainer.model.params.copy())
+        runs[threads] = (np.stack(steps), trainer.take_train_sums())
+        trainer.close()
+    assert runs[1][0].tobytes() == runs[3][0].tobytes()  # the parameters after each step
+    assert runs[1][1].tobytes() == runs[3][1].tobytes()  # the metric sums, added in chunk order

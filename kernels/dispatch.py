@@ -18,9 +18,11 @@ import threading
 
 import numba
 
-MIN_ELEMENTS = 65536
-"""Arrays smaller than this run serial (measured on the 2-core VM: bias + ReLU forward of 32 768 float32 values
-took the same time on 1 and 2 threads; 131 072 values took 23 → 14 µs; see benchmarks/README.md)."""
+MIN_ELEMENTS = 262144
+"""Arrays smaller than this run serial. Measured on the 2-core VM: alone, bias + ReLU forward of 65 536 float32
+values took 13.2 µs on one thread and 9.0 on two, but inside the step of 16-128-128-5 (G = 512: 65 536 per hidden
+layer) the two-thread kernels, between GEMMs, made the step 0.86 → 1.18 ms; 524 288 values (the mid model) gain
+inside the step too (benchmarks/README.md)."""
 BLOCK_ELEMENTS = 8192
 """Elements per block of the row-wise and flat kernels (whole rows: max(1, BLOCK_ELEMENTS // columns) rows)."""
 COLUMN_BLOCK = 128

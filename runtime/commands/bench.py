@@ -80,7 +80,7 @@ def run_bench(layers: list[int], batch: int, dtype: str = default("model.dtype")
                 "exact_format": exact_format, "comm_driver": comm_driver, "epochs": 1},
     })
     rows = max(4 * batch, 1024)
-    with threadpool_limits(limits=blas_threads(job.run), user_api="blas"):
+    with threadpool_limits(limits=blas_threads(job, comm.size), user_api="blas"):
         trainer = Trainer(job, comm, dataset=synthetic_dataset(layers, loss, rows, dtype))
         compile_s = warm_up_kernels(trainer)
         spe = trainer.sampler.steps_per_epoch
@@ -119,6 +119,7 @@ def run_bench(layers: list[int], batch: int, dtype: str = default("model.dtype")
         "dropout": dropout,
         "residual": residual,
         "threads": threads,
+        "threads_used": blas_threads(job, comm.size),  # BLAS's and the kernels' (1: exact mode, or a small model)
         "reduction": reduction,
         "update": update,
         "exact_format": exact_format,

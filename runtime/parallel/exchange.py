@@ -201,10 +201,22 @@ def strategy(run: RunSpec) -> Strategy:
     return choose(run.update, run.reduction, run.exact_format)
 
 
-def blas_threads(run: RunSpec) -> int:
-    """BLAS threads per process for a job's ``[run]`` table: ``run.threads`` in fast mode, 1 in exact mode (whose
-    threads take whole chunks, so that its bits do not depend on ``run.threads``)."""
-    return strategy(run).summation.blas_threads(run)
+GEMM_THREADS_MIN = 2**24
+"""Multiply-adds of a part's largest GEMM (rows × fan_in × fan_out) below which fast mode keeps one thread: measured
+on the 2-core VM (G = 512, float32, Adam, one process), 16-128-128-5 (8.4 M) trained at 721 k samples/s on one
+thread and 585 k on two, 16-256-256-5 (33.5 M) at 243 k and 277 k (benchmarks/README.md)."""
+
+
+def blas_threads(job: Job, processes: int) -> int:
+    """BLAS threads per process (and the kernels' threads, ``kernels.dispatch.use_threads``) for a job on
+    ``processes`` ranks: ``run.threads`` in fast mode, 1 in exact mode (whose threads take whole chunks, so that its
+    bits do not depend on ``run.threads``), and 1 for a model whose largest GEMM of one part is under
+    :data:`GEMM_THREADS_MIN` multiply-adds (waking threads costs more than they save there)."""
+    run = job.run
+    threads = strategy(run).summation.blas_threads(run)
+    layers = job.model.layers
+    largest = max(a * b for a, b in zip(layers, layers[1:], strict=False)) * -(-run.global_batch // processes)
+    return threads if largest >= GEMM_THREADS_MIN else 1
 
 
 def resolve_update(job: Job, processes: int) -> RunSpec:

@@ -134,7 +134,7 @@ def run_worker(job_path: Path, global_batch: int, steps: int, threads: int, pin:
     job = load_job(job_path, overrides=sets)
     job.run.global_batch = global_batch
     job.run.threads = threads
-    with threadpool_limits(limits=blas_threads(job.run), user_api="blas"):
+    with threadpool_limits(limits=blas_threads(job, comm.size), user_api="blas"):
         trainer = Trainer(job, comm)
         compile_s = warm_up_kernels(trainer)
         per_epoch = trainer.sampler.steps_per_epoch

@@ -59,7 +59,7 @@ def train(job: Job, comm: Comm | None = None, resume: bool | str = False, progre
             claim_workdir(job.workdir, fresh, comm)
         # a diverging run overflows on its way to the non-finite loss that stops it in words (Diverged): numpy's
         # warnings would only print ahead of that line
-        with threadpool_limits(limits=blas_threads(job.run), user_api="blas"), StopSignals() as stop, \
+        with threadpool_limits(limits=blas_threads(job, comm.size), user_api="blas"), StopSignals() as stop, \
                 np.errstate(over="ignore", invalid="ignore", divide="ignore"):
             trainer = Trainer(job, comm, arrays=arrays)
             trainer.flags = LoopFlags(stop, job.run.save_minutes, comm.rank == 0)

@@ -58,7 +58,7 @@ class Trainer:
         run = resolve_update(job, self.comm.size)  # run.update = "auto" decided for this many ranks
         Strategy = exchange_strategy(run)
         Strategy.check(run, self.comm.size)  # before any collective, identically on every rank
-        use_threads(blas_threads(run))  # the kernels' threads: BLAS's (exact mode: 1, its threads take chunks)
+        use_threads(blas_threads(job, self.comm.size))  # the kernels' threads: BLAS's (exact mode: 1)
         error: Exception | None = None
         if arrays is not None:
             check_arrays(job, arrays, self.comm)

@@ -161,7 +161,7 @@ def verify(job: Job, comm: Comm | None = None, batches: int = 3, trajectory: int
     in parallel and serially (rank 0 alone, ``Comm.alone()``) and reports the parameter divergence per step.
     """
     comm = comm or Comm()
-    with threadpool_limits(limits=blas_threads(job.run), user_api="blas"):
+    with threadpool_limits(limits=blas_threads(job, comm.size), user_api="blas"):
         trainer = Trainer(job, comm)
         warm_up_kernels(trainer)
         batches = min(batches, trainer.sampler.steps_per_epoch)

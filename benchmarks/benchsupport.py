@@ -12,6 +12,7 @@ import json
 import os
 import subprocess
 import sys
+import time
 from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import Any
@@ -121,6 +122,12 @@ def wait_until_quiet(limit_s: float, threshold: float = 0.15) -> dict[str, Any]:
 def emit(result: dict[str, Any]) -> None:
     """Print one JSON object on stdout (the only thing a benchmark script writes there)."""
     print(json.dumps(result, indent=1, allow_nan=True), flush=True)
+
+
+def emit_measured(result: dict[str, Any], begin: float, meter: LoadMeter) -> None:
+    """:func:`emit` ``result`` with what every script ends with: its seconds since ``begin`` (perf_counter), the
+    background load ``meter`` saw, and the machine record."""
+    emit({**result, "seconds": time.perf_counter() - begin, "load": meter.stop(), "machine": machine_record()})
 
 
 def last_json(text: str) -> dict[str, Any]:

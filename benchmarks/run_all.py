@@ -83,6 +83,17 @@ def targets(results: dict[str, Any]) -> list[dict[str, Any]]:
     if "ratio" in packing:
         out.append({"name": "8 variants packed (2 groups of 1) / one after the other on 2 ranks",
                     "value": packing["ratio"], "target": "<= 0.8", "met": packing["met"]})
+    layout = results.get("threads_layout", {})
+    ratios, limits = layout.get("ratios", {}), layout.get("targets", {})
+    for name, limit_key, at_least in (("one_by_two_over_two_by_one", "one_by_two_over_two_by_one_at_least", True),
+                                      ("kernel_phases_T2_over_T1", "kernel_phases_T2_over_T1_at_most", False),
+                                      ("one_by_two_ratio_to_needed_floor", "one_by_two_ratio_to_needed_floor_at_least",
+                                       True)):
+        if name in ratios:
+            value, limit = ratios[name], limits[limit_key]
+            out.append({"name": f"threads_layout {name}", "value": value,
+                        "target": f"{'>=' if at_least else '<='} {limit}",
+                        "met": value >= limit if at_least else value <= limit})
     start = results.get("cold_start", {})
     if "cold_s" in start:
         for phase in ("cold", "warm"):
@@ -113,6 +124,7 @@ def main(argv: list[str] | None = None) -> int:
         "cold_start": ([str(BENCHMARKS / "cold_start.py"), *quick], 120 if args.quick else 300),
         "layers_cost": ([str(BENCHMARKS / "layers_cost.py"), *quick], 240 if args.quick else 600),
         "variants_packing": ([str(BENCHMARKS / "variants_packing.py"), *quick], 240 if args.quick else 600),
+        "threads_layout": ([str(BENCHMARKS / "threads_layout.py"), *quick], 120 if args.quick else 300),
         "categorical_quality": ([str(BENCHMARKS / "categorical_quality.py"), *(["--epochs", "20"] if args.quick
                                                                                else [])], 300),
     }

@@ -108,7 +108,7 @@ def _backward_rows(Z, A, D, code):
                 d_row[j] = derivative(code, z_row[j], a_row[j]) * d_row[j]
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def bias_forward(Z, b, A, code):
     """Z += b (row broadcast), then A = f(Z).
 
@@ -125,7 +125,7 @@ def bias_forward(Z, b, A, code):
         _forward_rows(Z, b, A, code)
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def backward(Z, A, D, code):
     """dZ = f'(Z) ⊙ dA in place, the delta of a layer from the gradient of its output.
 
@@ -146,7 +146,7 @@ def backward(Z, A, D, code):
         _backward_rows(Z, A, D, code)
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def column_sums(dZ, db):
     """db_j = Σ_i dZ[i, j]: the bias gradient. dZ: (n, m); db: (m,) overwritten."""
     n, m = dZ.shape
@@ -162,7 +162,7 @@ def code_of(name: str) -> int:
     return CODES[name]
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def unit_activity(Z, threshold, saturated, alive):
     """Health counts of one layer's pre-activations Z (n, m).
 

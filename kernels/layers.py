@@ -103,17 +103,17 @@ def _norm_forward_rows(Z, b, gain, shift, H, stats, scratch, code):
             out[j] = act.forward(code, gain[j] * ((z[j] - mu_t) * r_t) + shift[j])
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def _norm_forward_relu(Z, b, gain, shift, H, stats, scratch):
     _norm_forward_rows(Z, b, gain, shift, H, stats, scratch, act.RELU)
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def _norm_forward_identity(Z, b, gain, shift, H, stats, scratch):
     _norm_forward_rows(Z, b, gain, shift, H, stats, scratch, act.IDENTITY)
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def _norm_forward_any(Z, b, gain, shift, H, stats, scratch, code):
     _norm_forward_rows(Z, b, gain, shift, H, stats, scratch, code)
 
@@ -190,17 +190,17 @@ def _norm_backward_rows(Z, stats, gain, shift, H, D, dgain, dshift, scratch, cod
             d[j] = r_t * ((gain[j] * dn - a_t) - xhat * c_t)
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def _norm_backward_relu(Z, stats, gain, shift, H, D, dgain, dshift, scratch):
     _norm_backward_rows(Z, stats, gain, shift, H, D, dgain, dshift, scratch, act.RELU)
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def _norm_backward_identity(Z, stats, gain, shift, H, D, dgain, dshift, scratch):
     _norm_backward_rows(Z, stats, gain, shift, H, D, dgain, dshift, scratch, act.IDENTITY)
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def _norm_backward_any(Z, stats, gain, shift, H, D, dgain, dshift, scratch, code):
     _norm_backward_rows(Z, stats, gain, shift, H, D, dgain, dshift, scratch, code)
 
@@ -238,7 +238,7 @@ def splitmix64(x):
     return z ^ (z >> uint64(31))
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def dropout_key(seed, step, layer):
     """The 64-bit key of one (seed, step, layer): nested SplitMix64 of the three counters."""
     return splitmix64(splitmix64(splitmix64(uint64(seed)) ^ uint64(step)) ^ uint64(layer))
@@ -263,7 +263,7 @@ def unit_hash(low, high, j):
     return h ^ (h >> uint64(16))
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def dropout_forward(H, skip, A, keep, rows, key, threshold, scale, has_skip):
     """A = H ⊙ keep·scale (+ skip) with keep = [hash(key, row, unit) ≥ threshold]: inverted dropout
     (Srivastava et al. 2014), the kept units scaled by 1/(1 − p) so the expected output is H.
@@ -293,7 +293,7 @@ def dropout_forward(H, skip, A, keep, rows, key, threshold, scale, has_skip):
                 a_row[j] = h_row[j] * scale if kept else zero
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def dropout_backward(D, saved, keep, scale, has_skip):
     """Backward of :func:`dropout_forward`: D = ∂loss/∂A on entry, ∂loss/∂H = D ⊙ keep·scale on exit; with a
     skip, ``saved`` first receives ∂loss/∂A, the skip's share (the caller adds it to ∂loss/∂A_h).
@@ -314,7 +314,7 @@ def dropout_backward(D, saved, keep, scale, has_skip):
 
 # --- the residual add ------------------------------------------------------------------------------------------
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def residual_forward(H, skip, A):
     """A = H + skip, the identity shortcut (He et al. 2016). H, skip, A: (n, m); A may be H."""
     n, m = H.shape
@@ -324,7 +324,7 @@ def residual_forward(H, skip, A):
             a_row[j] = h_row[j] + s_row[j]
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def residual_backward(D, saved):
     """dA_h += ∂loss/∂A_{h+1}: the shortcut passes the gradient through unchanged. D, saved: (n, m) two buffers;
     D is ∂loss/∂A_h from the layer's GEMM, in place."""
@@ -335,7 +335,7 @@ def residual_backward(D, saved):
             d_row[j] = d_row[j] + s_row[j]
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def copy_rows(src, dst):
     """dst = src, row by row (the skip's share of the gradient when there is no dropout). (n, m) each."""
     n, m = src.shape
@@ -347,7 +347,7 @@ def copy_rows(src, dst):
 
 # --- embeddings (the inputs' categorical columns) ----------------------------------------------------------------
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def embedding_forward(numeric, codes, table, offsets, widths, out):
     """out[i] = [numeric[i], E_0[codes[i, 0]], E_1[codes[i, 1]], …]: the first layer's input row.
 
@@ -369,7 +369,7 @@ def embedding_forward(numeric, codes, table, offsets, widths, out):
             column += w
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def embedding_backward(dA, codes, d, offsets, widths, grad):
     """∂loss/∂E_j[r] = Σ over the rows i with codes[i, j] = r of dA[i, columns of E_j]: a scatter-add into ``grad``
     (the flat gradient, E_j at offsets[j]), which the caller zeroed. Rows are added in order i = 0, 1, …, so the

@@ -26,7 +26,7 @@ CODES = {
 }
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def softmax_cross_entropy(Z, labels, W, scale, O, dZ):
     """Per row: loss = logsumexp(z) − z_y; O = softmax(z); dZ = (O − onehot(y))·scale·w.
 
@@ -57,7 +57,7 @@ def softmax_cross_entropy(Z, labels, W, scale, O, dZ):
     return total
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def binary_cross_entropy(Z, T, W, scale, O, dZ):
     """Per element, from logits: loss = softplus(z) − t·z; O = σ(z); dZ = (σ(z) − t)·scale·w.
 
@@ -78,7 +78,7 @@ def binary_cross_entropy(Z, T, W, scale, O, dZ):
     return total
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def squared_error(O, T, W, scale, dO):
     """Per row: loss = ½ Σ_k (o_k − t_k)²; dO = (O − T)·scale·w.
 
@@ -97,7 +97,7 @@ def squared_error(O, T, W, scale, dO):
     return total
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def huber(O, T, W, delta, scale, dO):
     """Per row: loss = Σ_k h(o_k − t_k) with h(r) = ½r² for |r| ≤ δ and δ·(|r| − ½δ) beyond (Huber 1964);
     dO = clip(O − T, −δ, δ)·scale·w.
@@ -121,7 +121,7 @@ def huber(O, T, W, delta, scale, dO):
     return total
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def absolute_error(O, T, W, scale, dO):
     """Per row: loss = Σ_k |o_k − t_k|; dO = sign(O − T)·scale·w, 0 where O = T (the subgradient numpy's sign takes).
 
@@ -138,7 +138,7 @@ def absolute_error(O, T, W, scale, dO):
     return total
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def poisson(Z, T, W, scale, O, dZ):
     """Poisson regression with the log link (McCullagh & Nelder 1989, §6.2): per row loss = Σ_k (e^z − t·z), the
     negative log-likelihood of the counts t without its constant log(t!); O = e^z; dZ = (e^z − t)·scale·w.
@@ -159,7 +159,7 @@ def poisson(Z, T, W, scale, O, dZ):
     return total
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def exp_rows(Z, O):
     """O = e^Z elementwise (the log link's inverse: the outputs of a Poisson model). Z, O: (n, k)."""
     n, k = Z.shape
@@ -168,7 +168,7 @@ def exp_rows(Z, O):
             O[i, j] = math.exp(Z[i, j])
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def softmax_rows(Z, O):
     """O = softmax(Z) per row, shifted by the row maximum. Z, O: (n, k); O may be Z."""
     n, k = Z.shape
@@ -187,7 +187,7 @@ def softmax_rows(Z, O):
             O[i, j] *= inv
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def count_correct(O, labels):
     """Number of rows whose arg-max output equals the integer label. O: (n, k); labels: (n,)."""
     n, k = O.shape
@@ -202,7 +202,7 @@ def count_correct(O, labels):
     return correct
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def count_correct_binary(O, T):
     """Number of elements with (O > ½) == (T > ½). O, T: (n, k)."""
     n, k = O.shape
@@ -214,7 +214,7 @@ def count_correct_binary(O, T):
     return correct
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def squared_error_sum(O, T):
     """Σ (o − t)² over all elements, float64 (for RMSE). O, T: (n, k)."""
     n, k = O.shape
@@ -226,7 +226,7 @@ def squared_error_sum(O, T):
     return total
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def squared_error_sum_scaled(O, T, S):
     """Σ ((o − t)·s_j)² over all elements, float64: the squared error in the targets' own units of outputs and
     targets standardised per output j by the standard deviations S (k,) float64 (``data.standardize_targets``;

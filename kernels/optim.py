@@ -21,14 +21,14 @@ import numpy as np
 from numba import njit
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def sgd(params, grads, lr, l2):
     """θ ← θ − lr·(g + l2·θ)."""
     for i in range(params.size):
         params[i] -= lr * (grads[i] + l2 * params[i])
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def momentum(params, grads, velocity, lr, mu, l2):
     """Classical momentum (Polyak; Sutskever et al. 2013, eq. 1–2): v ← μv − lr·g; θ ← θ + v."""
     for i in range(params.size):
@@ -38,7 +38,7 @@ def momentum(params, grads, velocity, lr, mu, l2):
         params[i] += v
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def nesterov(params, grads, velocity, lr, mu, l2):
     """Nesterov momentum (Sutskever et al. 2013, eq. 3–4) in look-ahead form.
 
@@ -56,7 +56,7 @@ def nesterov(params, grads, velocity, lr, mu, l2):
 # error_model="numpy": Python's semantics would test the denominator √v̂ + ε for zero before each division
 # and raise, a branch out of the loop that keeps LLVM from vectorising it (Adam ran scalar). With
 # ε > 0 (the job schema's rule) the denominator is never zero, so IEEE division gives the same bits.
-@njit(cache=True, error_model="numpy")
+@njit(cache=True, nogil=True, error_model="numpy")
 def adam(params, grads, m, v, lr, beta1, beta2, eps, step, l2, decay):
     """Adam (Kingma & Ba 2015, Algorithm 1) with optional decoupled decay (Loshchilov & Hutter 2019, Alg. 2).
 
@@ -82,7 +82,7 @@ def adam(params, grads, m, v, lr, beta1, beta2, eps, step, l2, decay):
         params[i] = p - rate * (mi * c1) / (np.sqrt(vi * c2) + epsilon) - shrink * p
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def sum_squares(x):
     """Σ x_i² accumulated in float64 (the square of the global gradient norm). x: (n,).
 
@@ -97,7 +97,7 @@ def sum_squares(x):
     return total
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def block_sum_squares(x, block, out):
     """out[b] = Σ x_i² over x[b·block:(b+1)·block] (the last block may be short), each a left-to-right float64 sum.
 
@@ -112,7 +112,7 @@ def block_sum_squares(x, block, out):
         out[b] = total
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def scale(x, factor):
     """x ← factor·x in place (gradient clipping). x: (n,)."""
     for i in range(x.size):

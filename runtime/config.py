@@ -222,7 +222,8 @@ SCHEMA: tuple[Key, ...] = (
         "improvement (in the metric's own units)", low=0.0, trajectory=False),
     Key("run.workdir", "text", "run", "folder for metrics.jsonl, checkpoints/ and final.npz, relative to the job "
         "file", trajectory=False, allowed="a folder path"),
-    Key("run.threads", "integer", 1, "BLAS threads per process", low=1, high=1024, trajectory=False),
+    Key("run.threads", "integer", 1, "threads per process: BLAS's and the element-wise kernels' in fast mode, "
+        "whole chunks each in exact mode (the same bits for every count)", low=1, high=1024, trajectory=False),
     Key("run.max_steps", "integer", 0, "stop after this many steps; 0 = run all epochs", low=0, trajectory=False),
     Key("run.check_every", "integer", 0, "steps between checks that every rank holds the same parameters; "
         "0 = off", low=0, trajectory=False),

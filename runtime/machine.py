@@ -23,6 +23,13 @@ def machine() -> dict[str, Any]:
     }
 
 
+def resident_bytes() -> int:
+    """This process's resident set size now, bytes (psutil: the kernel's count of pages in memory)."""
+    import psutil
+
+    return int(psutil.Process().memory_info().rss)
+
+
 def numba_cache_dir() -> str:
     """Where Numba keeps compiled kernels: NUMBA_CACHE_DIR if set, else __pycache__ beside kernels/."""
     from numba.core import config

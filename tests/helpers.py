@@ -123,3 +123,10 @@ def stop_a_run(job: Path, ranks: int, metrics: Path, records: int = 3, signum: i
         if process.poll() is None:
             os.killpg(process.pid, signal.SIGKILL)
     return process.returncode, err
+
+
+def epoch_metrics(workdir: Path) -> list[dict]:
+    """The logged training and validation metrics of each epoch (timings dropped: they differ run to run)."""
+    records = [json.loads(line) for line in (workdir / "metrics.jsonl").read_text().splitlines()]
+    return [{"epoch": r["epoch"], "train": r["train"], "validation": r["validation"]}
+            for r in records if r["kind"] == "epoch"]

@@ -14,7 +14,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from helpers import make_classification, run_cli, run_mpi, write_job
+from helpers import epoch_metrics, make_classification, run_cli, run_mpi, write_job
 from shardmill.config import job_from_dict
 from shardmill.errors import JobError
 from shardmill.model.mlp import model_from_job
@@ -94,13 +94,6 @@ def test_final_parameters_identical_for_every_process_count(runs: dict, data_dir
     n_layers = len(MODELS[config.rsplit("_", 1)[0]][0]["layers"]) - 1
     assert len({final_digest(data_dir / f"{tag}-{config}", n_layers) for tag in ("p1", "p2", "p3", "p4")}) == 1
 
-
-
-def epoch_metrics(workdir: Path) -> list[dict]:
-    """The logged training and validation metrics of each epoch (timings dropped: they differ run to run)."""
-    records = [json.loads(line) for line in (workdir / "metrics.jsonl").read_text().splitlines()]
-    return [{"epoch": r["epoch"], "train": r["train"], "validation": r["validation"]}
-            for r in records if r["kind"] == "epoch"]
 
 
 @pytest.mark.parametrize("config", CONFIGS)

@@ -18,6 +18,7 @@ from helpers import mpiexec
 from shardmill.parallel.launch import (
     BLAS_THREAD_VARIABLES,
     LAUNCHED,
+    THREAD_WAITS,
     find_mpiexec,
     rank_environment,
     relaunch,
@@ -77,8 +78,10 @@ def test_without_the_variable_the_bundled_mpiexec_is_used(monkeypatch) -> None:
 
 
 def test_environment_without_marker_or_thread_count() -> None:
-    env = rank_environment(threads=None, launched=False, base={"OPENBLAS_NUM_THREADS": "8"})
-    assert env == {"OPENBLAS_NUM_THREADS": "8", "PYTHONUNBUFFERED": "1"}
+    env = rank_environment(threads=None, launched=False, base={"OPENBLAS_NUM_THREADS": "8", "GOMP_SPINCOUNT": "5"})
+    # the idle threads' spin limits are added where unset; a value already set wins
+    assert env == {"OPENBLAS_NUM_THREADS": "8", "PYTHONUNBUFFERED": "1", "GOMP_SPINCOUNT": "5",
+                   "OPENBLAS_THREAD_TIMEOUT": THREAD_WAITS["OPENBLAS_THREAD_TIMEOUT"]}
 
 
 @pytest.mark.mpi

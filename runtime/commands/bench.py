@@ -8,9 +8,10 @@ import numpy as np
 from shardmill.config import default, job_from_dict
 from shardmill.data.dataset import Dataset
 from shardmill.data.rows import Split
-from shardmill.machine import machine
+from shardmill.machine import machine, resident_bytes
 from shardmill.model.losses import LOSSES
 from shardmill.parallel.comm import Comm
+from shardmill.parallel.exchange import blas_threads
 from shardmill.timing import median, slowest_call, time_call
 from shardmill.training.trainer import Trainer
 from shardmill.training.warmup import warm_up_kernels
@@ -79,7 +80,7 @@ def run_bench(layers: list[int], batch: int, dtype: str = default("model.dtype")
                 "exact_format": exact_format, "comm_driver": comm_driver, "epochs": 1},
     })
     rows = max(4 * batch, 1024)
-    with threadpool_limits(limits=threads, user_api="blas"):
+    with threadpool_limits(limits=blas_threads(job, comm.size), user_api="blas"):
         trainer = Trainer(job, comm, dataset=synthetic_dataset(layers, loss, rows, dtype))
         compile_s = warm_up_kernels(trainer)
         spe = trainer.sampler.steps_per_epoch
@@ -102,8 +103,9 @@ def run_bench(layers: list[int], batch: int, dtype: str = default("model.dtype")
                 needed_times.append(float(local[1]))
             done += todo
     phase_max, _ = trainer.reduce_phases()  # seconds over the timed steps, slowest rank per phase
-    state_bytes = np.array([sum(a.nbytes for a in trainer.optimizer.state.values())], dtype=np.int64)
-    comm.allreduce_max(state_bytes)
+    state_bytes = np.array([sum(a.nbytes for a in trainer.optimizer.state.values()), resident_bytes()],
+                           dtype=np.int64)
+    comm.allreduce_max(state_bytes)  # and the largest resident set of any rank
     step_s = median(step_times)
     floor_s = median(floor_times)
     needed_s = median(needed_times)
@@ -117,6 +119,7 @@ def run_bench(layers: list[int], batch: int, dtype: str = default("model.dtype")
         "dropout": dropout,
         "residual": residual,
         "threads": threads,
+        "threads_used": blas_threads(job, comm.size),  # BLAS's and the kernels' (1: exact mode, or a small model)
         "reduction": reduction,
         "update": update,
         "exact_format": exact_format,
@@ -139,6 +142,7 @@ def run_bench(layers: list[int], batch: int, dtype: str = default("model.dtype")
         "compile_s": compile_s,
         "phase_ms": {phase: seconds * 1e3 / steps for phase, seconds in phase_max.items()},
         "optimizer_state_bytes_per_rank": int(state_bytes[0]),
+        "resident_mib_per_rank": int(state_bytes[1]) / 2**20,  # the largest over the ranks, after the timed steps
         "machine": machine(),
     }
 

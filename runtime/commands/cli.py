@@ -162,6 +162,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--steps", type=_positive, default=20, metavar="N", help="timed steps per process count")
     p.add_argument("--threads", type=_positive, default=1, metavar="N", help="BLAS threads per process")
     p.add_argument("--pin", action="store_true", help="pin rank r to core r")
+    p.add_argument("--layouts", default=None, metavar="PxT,…",
+                   help="instead of the process counts: compare these ranks × threads layouts, e.g. 1x2,2x1")
     p.add_argument("--network", default=None, metavar="BW,LAT",
                    help="project to this network, e.g. 100Gb/s,2us (default: the measured one)")
     p.add_argument("--project", default="8,16,64,256,1024", metavar="P1,P2,…", help="process counts to project to")

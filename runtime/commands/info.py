@@ -6,11 +6,12 @@ import platform
 import sys
 from typing import Any
 
-from shardmill.machine import numba_cache_dir
+from shardmill.machine import numba_cache_dir, resident_bytes
 
 
 def facts() -> dict[str, Any]:
-    """What ``shardmill info --json`` prints: versions, MPI, cores, memory, BLAS pools and the Numba cache."""
+    """What ``shardmill info --json`` prints: versions, MPI, cores, memory, BLAS pools, the Numba cache and this
+    process's resident memory (MiB) once the libraries a training rank loads are loaded."""
     import numba
     import numpy as np
     import psutil
@@ -36,6 +37,8 @@ def facts() -> dict[str, Any]:
                   "architecture": pool.get("architecture"), "threads": pool.get("num_threads")}
                  for pool in threadpool_info() if pool.get("user_api") == "blas"],
         "numba_cache": numba_cache_dir(),
+        # after importing numpy, Numba, mpi4py and MPI: the floor under every training rank
+        "resident_mib": resident_bytes() / 2**20,
     }
 
 
@@ -62,5 +65,6 @@ def cmd_info(as_json: bool = False) -> int:
         lines.append(f"BLAS      {pool['library']} {pool['version']} ({pool['architecture']}), {pool['threads']} "
                      f"thread(s) by default; shardmill uses run.threads (default 1)")
     lines.append(f"numba cache {found['numba_cache']}")
+    lines.append(f"resident  {found['resident_mib']:.0f} MiB in this process (numpy, Numba, MPI loaded)")
     print("\n".join(lines))
     return 0

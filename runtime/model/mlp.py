@@ -27,7 +27,7 @@ import numpy as np
 from shardmill.config import Job, default, model_spec, residual_layers
 from shardmill.errors import JobError
 from shardmill.kernels import activations as act
-from shardmill.kernels import layers
+from shardmill.kernels import layers, threaded
 from shardmill.model.activations import ACTIVATIONS, relu_family_only
 from shardmill.model.losses import LOSSES
 
@@ -346,9 +346,9 @@ class Workspace:
             if l < m.n_layers - 1:
                 self.hidden_forward(l, n, step, rows)
             elif m.loss_entry.from_logits:  # the loss kernel applies the output activation
-                act.bias_forward(Z, m.biases[l], Z, act.IDENTITY)
+                threaded.bias_forward(Z, m.biases[l], Z, act.IDENTITY)
             else:
-                act.bias_forward(Z, m.biases[l], self.O[:n], m.output_code)
+                threaded.bias_forward(Z, m.biases[l], self.O[:n], m.output_code)
         return self.Z[-1][:n]
 
     def hidden_forward(self, h: int, n: int, step: int | None, rows: np.ndarray | None) -> None:
@@ -359,7 +359,7 @@ class Workspace:
             layers.norm_forward(Z, m.biases[h], m.gains[h], m.shifts[h], H, self.stats[h][:n], self._scratch,
                                 m.hidden_codes[h])
         else:
-            act.bias_forward(Z, m.biases[h], H, m.hidden_codes[h])
+            threaded.bias_forward(Z, m.biases[h], H, m.hidden_codes[h])
         rate = m.dropout[h]
         self.dropped[h] = step is not None and rate > 0
         if self.dropped[h]:
@@ -406,7 +406,7 @@ class Workspace:
         dZ, free = self.delta(0, n, m.sizes[-1]), 1  # free: the ping-pong buffer dZ is not in
         for l in reversed(range(m.n_layers)):
             np.matmul(self.A[l][:n].T, dZ, out=dWs[l])
-            act.column_sums(dZ, dbs[l])
+            threaded.column_sums(dZ, dbs[l])
             done = dZ
             if l > 0:
                 dA = self.delta(free, n, m.sizes[l])
@@ -442,7 +442,7 @@ class Workspace:
         elif m.skips[h]:
             layers.copy_rows(D, self.saved(n, width))
         if not m.has_norm(h):
-            act.backward(self.Z[h][:n], self.H[h][:n], D, m.hidden_codes[h])
+            threaded.backward(self.Z[h][:n], self.H[h][:n], D, m.hidden_codes[h])
             return D
         if self.norm_input is not None:
             self.norm_input[h][:n] = D

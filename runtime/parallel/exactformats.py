@@ -36,16 +36,20 @@ at 64 it is 2^-18, near float32's own rounding; beyond, the compact format is th
 
 class WideFormat:
     """3 int64 limbs per value. ``grads``: the params-layout gradient (its shape and dtype); ``chunks``: K;
-    ``mine``: this rank's chunks; ``most``: the most chunks of any rank; ``read``: the slice this rank reads back.
+    ``mine``: this rank's chunks; ``most``: the most chunks of any rank; ``read``: the slice this rank reads back;
+    ``lanes``: how many chunks are computed at once (``run.threads``), each into a buffer of its own.
 
     A rank with two or more chunks computes its first two into separate buffers and writes their digits in one
     pass (``exactsum.assign_pair``): one read-and-write of the limbs fewer per step. The first chunk overwrites the
-    limbs: no zeroing pass, no read.
+    limbs: no zeroing pass, no read. Chunk i computes into buffer i mod (number of buffers); chunks are added in
+    order, after the chunks computed at the same time as them are complete.
     """
 
-    def __init__(self, grads: np.ndarray, chunks: int, mine: int, most: int, read: slice) -> None:
-        self.chunk_grads = np.zeros_like(grads)
-        self.pair_grads = np.zeros_like(grads) if most >= 2 else None  # every rank compiles the pair kernel
+    def __init__(self, grads: np.ndarray, chunks: int, mine: int, most: int, read: slice, lanes: int = 1) -> None:
+        # every rank compiles the pair kernel when any rank pairs
+        self.buffers = [np.zeros_like(grads) for _ in range(max(lanes, 2 if most >= 2 else 1))]
+        self.chunk_grads = self.buffers[0]
+        self.pair_grads = self.buffers[1] if most >= 2 else None
         self.paired = self.pair_grads is not None and mine >= 2
         self.limbs = exactsum.new_accumulator(grads.size)
         self.slice_limbs = exactsum.new_accumulator(read.stop - read.start)
@@ -61,7 +65,7 @@ class WideFormat:
 
     def buffer(self, i: int) -> np.ndarray:
         """Where this rank's chunk ``i`` (0, 1, …) computes its gradient."""
-        return self.pair_grads if self.paired and i == 1 else self.chunk_grads
+        return self.buffers[i % len(self.buffers)]
 
     def add(self, i: int, part_grads: np.ndarray) -> str | None:
         """Chunk ``i``'s gradient into the limbs; a value outside their range (|g| ≥ 2^31, inf, NaN) is named."""
@@ -113,14 +117,15 @@ class CompactFormat:
     """One int64 per value on a scale per block; arguments as :class:`WideFormat`'s.
 
     A rank keeps its chunks' gradients until the scales are known (only the blocks' largest magnitudes are taken
-    as they arrive), converts and adds them in int64 (exact, associative) in :meth:`complete`.
+    as they arrive), converts and adds them in int64 (exact, associative) in :meth:`complete`. Every chunk has a
+    buffer of its own, so ``lanes`` (chunks computed at once) needs none more.
     """
 
     integer: type = np.int64
     most_chunks = compactsum.MAX_CHUNKS
     hint = ""  # what to use instead beyond most_chunks
 
-    def __init__(self, grads: np.ndarray, chunks: int, mine: int, most: int, read: slice) -> None:
+    def __init__(self, grads: np.ndarray, chunks: int, mine: int, most: int, read: slice, lanes: int = 1) -> None:
         self.bits = compactsum.term_bits(self.integer)
         self.chunks = chunks
         self.dtype = grads.dtype

@@ -170,6 +170,10 @@ class Strategy:
         """The most rows of one part: the batch size the workspaces are built for."""
         return self.summation.part_rows(run, processes)
 
+    def lanes(self, run: RunSpec) -> int:
+        """Parts computed at once, each on a thread of its own (exact mode: ``run.threads``; fast mode: 1)."""
+        return self.summation.lanes(run)
+
     def from_run(self, comm: Comm, model: MLP, grads: np.ndarray, run: RunSpec) -> Exchange:
         """The exchange with the settings of a job's ``[run]`` table; ``grads``: the flat gradient buffer with the
         params layout, (n_params,) in the model's dtype. One rank owns everything: nothing to shard."""
@@ -195,6 +199,24 @@ def choose(update: str, reduction: str, exact_format: str = "wide") -> Strategy:
 def strategy(run: RunSpec) -> Strategy:
     """The exchange strategy for a job's ``run.reduction``, ``run.exact_format`` and ``run.update``."""
     return choose(run.update, run.reduction, run.exact_format)
+
+
+GEMM_THREADS_MIN = 2**24
+"""Multiply-adds of a part's largest GEMM (rows × fan_in × fan_out) below which fast mode keeps one thread: measured
+on the 2-core VM (G = 512, float32, Adam, one process), 16-128-128-5 (8.4 M) trained at 721 k samples/s on one
+thread and 585 k on two, 16-256-256-5 (33.5 M) at 243 k and 277 k (benchmarks/README.md)."""
+
+
+def blas_threads(job: Job, processes: int) -> int:
+    """BLAS threads per process (and the kernels' threads, ``kernels.dispatch.use_threads``) for a job on
+    ``processes`` ranks: ``run.threads`` in fast mode, 1 in exact mode (whose threads take whole chunks, so that its
+    bits do not depend on ``run.threads``), and 1 for a model whose largest GEMM of one part is under
+    :data:`GEMM_THREADS_MIN` multiply-adds (waking threads costs more than they save there)."""
+    run = job.run
+    threads = strategy(run).summation.blas_threads(run)
+    layers = job.model.layers
+    largest = max(a * b for a, b in zip(layers, layers[1:], strict=False)) * -(-run.global_batch // processes)
+    return threads if largest >= GEMM_THREADS_MIN else 1
 
 
 def resolve_update(job: Job, processes: int) -> RunSpec:

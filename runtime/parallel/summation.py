@@ -149,6 +149,16 @@ class MessageSum:
         return (Collective("reduce_scatter" if sharded else "allreduce", float(n_params * itemsize)),)
 
     @staticmethod
+    def lanes(run: RunSpec) -> int:
+        """Parts computed at once: 1 (one part per rank; ``run.threads`` go to BLAS)."""
+        return 1
+
+    @staticmethod
+    def blas_threads(run: RunSpec) -> int:
+        """BLAS threads per process: ``run.threads`` (the one part's GEMMs divide over them)."""
+        return run.threads
+
+    @staticmethod
     def part_rows(run: RunSpec, processes: int) -> int:
         """The most rows of one part: the largest shard, the batch size the workspaces are built for."""
         return -(-run.global_batch // processes)
@@ -246,7 +256,7 @@ class ExactSum:
     """
 
     def __init__(self, comm: Comm, grads: np.ndarray, ownership: Ownership, chunk: int, global_batch: int,
-                 exact_format: str = "wide") -> None:
+                 exact_format: str = "wide", lanes: int = 1) -> None:
         self.comm = comm
         self.grads = grads
         self.ownership = ownership
@@ -256,13 +266,13 @@ class ExactSum:
         self.first, self.stop = block_range(self.chunks, comm.rank, comm.size)  # this rank's chunks
         self.slice = slice(*ownership.bounds[comm.rank])  # the part of the sum this rank reads back
         self.format = FORMATS[exact_format](grads, self.chunks, self.stop - self.first, -(-self.chunks // comm.size),
-                                            self.slice)
-        self._index = 0  # of the current part among this rank's chunks
+                                            self.slice, lanes)
+        self._added = 0  # this step's chunks added so far: the next add is chunk number _added of this rank
 
     @classmethod
     def from_run(cls, comm: Comm, model: MLP, grads: np.ndarray, ownership: Ownership, run: RunSpec) -> ExactSum:
         """The summation with the settings of a job's ``[run]`` table."""
-        return cls(comm, grads, ownership, run.exact_chunk, run.global_batch, run.exact_format)
+        return cls(comm, grads, ownership, run.exact_chunk, run.global_batch, run.exact_format, run.threads)
 
     @staticmethod
     def check(run: RunSpec, processes: int) -> None:
@@ -281,6 +291,18 @@ class ExactSum:
         return summed if sharded else (*summed, Collective("allgather", float(n_params * itemsize)))
 
     @staticmethod
+    def lanes(run: RunSpec) -> int:
+        """Chunks computed at once: ``run.threads``, each whole chunk on one thread (``training/lanes.py``)."""
+        return run.threads
+
+    @staticmethod
+    def blas_threads(run: RunSpec) -> int:
+        """1: a threaded GEMM may sum in another order than a single-threaded one (A·W of 32×784 by 784×64
+        differs in float32 and float64 with OpenBLAS 0.3.31), so the threads take whole chunks instead and every
+        chunk's bits are those of one BLAS thread, whatever ``run.threads`` is."""
+        return 1
+
+    @staticmethod
     def part_rows(run: RunSpec, processes: int) -> int:
         """The most rows of one part: one chunk, whatever P is."""
         return run.exact_chunk
@@ -291,10 +313,13 @@ class ExactSum:
         return [(k * c, (k + 1) * c) for k in range(batch // c)]
 
     def parts(self, rows: np.ndarray) -> Iterator[tuple[np.ndarray, np.ndarray]]:
-        """(chunk rows, the buffer the format wants its gradient in) for each of this rank's chunks."""
+        """(chunk rows, the buffer the format wants its gradient in) for each of this rank's chunks.
+
+        The chunks may be computed several at once (``run.threads``: each into a buffer of its own); :meth:`add`
+        then takes them in this order."""
         c = self.chunk
+        self._added = 0
         for i, k in enumerate(range(self.first, self.stop)):
-            self._index = i
             yield rows[k * c:(k + 1) * c], self.format.buffer(i)
 
     def layer_done(self, layer: int) -> None:
@@ -303,7 +328,8 @@ class ExactSum:
     def add(self, part_grads: np.ndarray) -> None:
         """The current chunk's gradient joins the format's sum; a value it cannot hold is noted in ``problem``
         (the step then stops on every rank after the sum: the collectives still run, so no rank is left waiting)."""
-        problem = self.format.add(self._index, part_grads)
+        problem = self.format.add(self._added, part_grads)
+        self._added += 1
         if problem is not None and self.problem is None:
             self.problem = problem
 

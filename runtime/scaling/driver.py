@@ -1,6 +1,6 @@
 """`shardmill scale`: check the arguments, run the worker at each process count, then build and write the study.
 
-    cmd_scale                 check the arguments, then for each P
+    cmd_scale                 check the arguments, then for each P (or each ranks × threads layout: layouts.py)
       run_point               mpiexec -n P python -m shardmill.scaling.worker … (the one launcher), log to
                               out/logs/pP.log, stop it past --timeout, read out/runs/pP.json
     study.build_study         rows per P, communication model, projection
@@ -24,6 +24,8 @@ from shardmill.config import Job, load_job
 from shardmill.errors import JobError
 from shardmill.parallel.launch import run_ranks
 from shardmill.scaling import costmodel
+from shardmill.scaling.layouts import compare_layouts, parse_layouts
+from shardmill.scaling.layouts import text_table as layouts_table
 from shardmill.scaling.study import build_study, write_study
 
 
@@ -65,8 +67,9 @@ def cmd_scale(args: argparse.Namespace, job: Job | None = None) -> int:
     """`shardmill scale JOB --sizes 1,2,4 --mode strong|weak --out-dir DIR`: run, measure, model, report."""
     from shardmill.parallel.comm import Comm
 
+    layouts = parse_layouts(args.layouts) if getattr(args, "layouts", None) else None
     ranks = parse_counts(args.sizes, "--sizes")
-    if 1 not in ranks:
+    if 1 not in ranks and layouts is None:
         raise JobError(f"`--sizes` must include 1, the serial baseline of speedup and efficiency; got {args.sizes!r}")
     project_to = parse_counts(args.project, "--project")
     network = parse_network_option(args.network)
@@ -84,6 +87,8 @@ def cmd_scale(args: argparse.Namespace, job: Job | None = None) -> int:
     (out / "runs").mkdir(parents=True, exist_ok=True)
     (out / "logs").mkdir(parents=True, exist_ok=True)
 
+    if layouts is not None:
+        return scale_layouts(args, job, layouts, out, timeout, sets)
     raws: dict[int, dict[str, Any]] = {}
     bar = _progress(len(ranks), show=not getattr(args, "no_progress", False))
     try:
@@ -111,6 +116,32 @@ def cmd_scale(args: argparse.Namespace, job: Job | None = None) -> int:
     return 0
 
 
+def scale_layouts(args: argparse.Namespace, job: Job, layouts: list[tuple[int, int]], out: Path, timeout: float,
+                  sets: list[str]) -> int:
+    """`scale --layouts`: each ranks × threads layout timed at the job's global batch; the table, the best."""
+    if job.run.global_batch < max(P for P, _ in layouts):
+        raise JobError(f"`run.global_batch` = {job.run.global_batch} is smaller than the largest process count "
+                       f"{max(P for P, _ in layouts)} of `--layouts`")
+    bar = _progress(len(layouts), show=not getattr(args, "no_progress", False))
+
+    def one(P: int, T: int, tag: str) -> dict[str, Any]:
+        raw = run_point(Path(args.job), P, job.run.global_batch, args.steps, T, args.pin, out, timeout, bar, sets,
+                        tag=tag)
+        bar.update(1)
+        return raw
+
+    try:
+        result = compare_layouts(job, layouts, args.steps, out, one)
+    except RunFailed as failure:
+        bar.close()
+        print(f"shardmill: error: {failure}", file=sys.stderr, flush=True)
+        return failure.code
+    bar.close()
+    print(layouts_table(result))
+    print(f"wrote {out / 'layouts.json'}")
+    return 0
+
+
 def _progress(total: int, show: bool):
     from tqdm import tqdm
 
@@ -130,15 +161,18 @@ def worker_args(job: Path, global_batch: int, steps: int, threads: int, pin: boo
 
 
 def run_point(job: Path, p: int, global_batch: int, steps: int, threads: int, pin: bool, out: Path,
-              timeout: float, bar: Any = None, sets: list[str] | tuple[str, ...] = ()) -> dict[str, Any]:
+              timeout: float, bar: Any = None, sets: list[str] | tuple[str, ...] = (),
+              tag: str | None = None) -> dict[str, Any]:
     """Run the worker on p processes and return what its rank 0 wrote (see `worker.run_worker`).
 
-    Output of all ranks goes to out/logs/pP.log. A run past `timeout` seconds is stopped (its whole process
-    group) and raises RunFailed with status 124; a user error in the worker (bad job, too few rows) raises
-    RunFailed with status 2 and the worker's message; any other failure shows the end of the log, status 1.
+    Output of all ranks goes to out/logs/TAG.log (TAG: pP unless given), the record to out/runs/TAG.json. A run
+    past `timeout` seconds is stopped (its whole process group) and raises RunFailed with status 124; a user error
+    in the worker (bad job, too few rows) raises RunFailed with status 2 and the worker's message; any other
+    failure shows the end of the log, status 1.
     """
-    result = out / "runs" / f"p{p}.json"
-    log_path = out / "logs" / f"p{p}.log"
+    tag = tag or f"p{p}"
+    result = out / "runs" / f"{tag}.json"
+    log_path = out / "logs" / f"{tag}.log"
     result.unlink(missing_ok=True)
 
     def show(elapsed: float) -> None:

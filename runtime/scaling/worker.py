@@ -124,6 +124,7 @@ def run_worker(job_path: Path, global_batch: int, steps: int, threads: int, pin:
     rank 0 measures γ at the message size.
     """
     from shardmill.parallel.comm import Comm, library
+    from shardmill.parallel.exchange import blas_threads
     from shardmill.training.trainer import Trainer
     from shardmill.training.warmup import warm_up_kernels
     from threadpoolctl import threadpool_limits
@@ -133,7 +134,7 @@ def run_worker(job_path: Path, global_batch: int, steps: int, threads: int, pin:
     job = load_job(job_path, overrides=sets)
     job.run.global_batch = global_batch
     job.run.threads = threads
-    with threadpool_limits(limits=threads, user_api="blas"):
+    with threadpool_limits(limits=blas_threads(job, comm.size), user_api="blas"):
         trainer = Trainer(job, comm)
         compile_s = warm_up_kernels(trainer)
         per_epoch = trainer.sampler.steps_per_epoch

@@ -103,6 +103,6 @@ class HealthWatch:
         if self._before is None:
             return
         grad_squares = trainer.exchange.layer_sum_squares(trainer.model.slices)
-        self.records.append(diagnose(trainer.model, trainer.ws, trainer.last_part_rows, grad_squares,
+        self.records.append(diagnose(trainer.model, trainer.last_workspace, trainer.last_part_rows, grad_squares,
                                      self._before, trainer.comm, trainer.step_count))
         self._before = None

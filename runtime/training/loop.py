@@ -17,6 +17,7 @@ from shardmill.config import Job
 from shardmill.data.dataset import Arrays
 from shardmill.errors import JobError
 from shardmill.parallel.comm import Comm
+from shardmill.parallel.exchange import blas_threads
 from shardmill.training import saving
 from shardmill.training.console import Console, compiling_notice, kernels_cached, kernels_ready, say
 from shardmill.training.health import HealthWatch
@@ -59,7 +60,7 @@ def train(job: Job, comm: Comm | None = None, resume: bool | str = False, progre
             claim_workdir(job.workdir, fresh, comm)
         # a diverging run overflows on its way to the non-finite loss that stops it in words (Diverged): numpy's
         # warnings would only print ahead of that line
-        with threadpool_limits(limits=job.run.threads, user_api="blas"), StopSignals() as stop, \
+        with threadpool_limits(limits=blas_threads(job, comm.size), user_api="blas"), StopSignals() as stop, \
                 np.errstate(over="ignore", invalid="ignore", divide="ignore"):
             try:
                 trainer = Trainer(job, comm, arrays=arrays)
@@ -152,7 +153,7 @@ class RunLoop:
                 # new best model, or before stopping
             if signum:  # every rank finished this step and the checkpoint is written: leave together
                 console.close()
-                trainer.exchange.close()
+                trainer.close()
                 raise TrainingStopped(signum, self.step, job.workdir, job.overrides)
         console.close()
         return self.finish()
@@ -237,7 +238,7 @@ class RunLoop:
 
         trainer, job, best = self.trainer, self.trainer.job, self.trainer.best
         state = self.save(best=self.improved)
-        trainer.exchange.close()
+        trainer.close()
         if self.lead:
             checkpoint.write_final(job.workdir / "final.npz", state)
         model, data = trainer.model, trainer.data

@@ -7,6 +7,7 @@ import math
 import numpy as np
 from shardmill.config import OptimizerSpec
 from shardmill.kernels import optim as kernels
+from shardmill.kernels import threaded
 
 STATE_NAMES = {"sgd": (), "momentum": ("velocity",), "nesterov": ("velocity",), "adam": ("m", "v"),
                "adamw": ("m", "v")}
@@ -62,11 +63,11 @@ class Optimizer:
         lr = learning_rate(s, self.updates, total_steps)
         self.updates += 1
         if s.method == "sgd":
-            kernels.sgd(params, grads, lr, s.weight_decay)
+            threaded.sgd(params, grads, lr, s.weight_decay)
         elif s.method == "momentum":
-            kernels.momentum(params, grads, self.state["velocity"], lr, s.momentum, s.weight_decay)
+            threaded.momentum(params, grads, self.state["velocity"], lr, s.momentum, s.weight_decay)
         elif s.method == "nesterov":
-            kernels.nesterov(params, grads, self.state["velocity"], lr, s.momentum, s.weight_decay)
+            threaded.nesterov(params, grads, self.state["velocity"], lr, s.momentum, s.weight_decay)
         else:
             decoupled = s.method == "adamw"
             # AdamW (Loshchilov & Hutter 2019, Alg. 2): decay λ·η_t with η_t the schedule multiplier.
@@ -75,6 +76,6 @@ class Optimizer:
             # The kernel rounds ε to the arrays' dtype: an ε below float32's smallest normal would become 0 there
             # and a zero gradient would give 0/0. Any normal ε keeps its bits.
             eps = max(s.eps, float(np.finfo(params.dtype).tiny))
-            kernels.adam(params, grads, self.state["m"], self.state["v"], lr, s.beta1, s.beta2, eps,
+            threaded.adam(params, grads, self.state["m"], self.state["v"], lr, s.beta1, s.beta2, eps,
                          float(self.updates), l2, decay)
         return lr

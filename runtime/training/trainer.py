@@ -20,13 +20,15 @@ from shardmill.data.dataset import Arrays, Dataset, check_arrays, load_dataset
 from shardmill.data.rows import Sampler, take_rows
 from shardmill.errors import JobError
 from shardmill.kernels import losses as loss_kernels
+from shardmill.kernels.dispatch import use_threads
 from shardmill.model.mlp import model_from_job
 from shardmill.parallel.comm import Comm, share_error
-from shardmill.parallel.exchange import resolve_update
+from shardmill.parallel.exchange import blas_threads, resolve_update
 from shardmill.parallel.exchange import strategy as exchange_strategy
 from shardmill.timing import PHASES, PhaseTimer
 from shardmill.training import saving
 from shardmill.training.best import BestTracker
+from shardmill.training.lanes import Lane, Lanes
 from shardmill.training.optim import Optimizer
 
 
@@ -56,6 +58,7 @@ class Trainer:
         run = resolve_update(job, self.comm.size)  # run.update = "auto" decided for this many ranks
         Strategy = exchange_strategy(run)
         Strategy.check(run, self.comm.size)  # before any collective, identically on every rank
+        use_threads(blas_threads(job, self.comm.size))  # the kernels' threads: BLAS's (exact mode: 1)
         error: Exception | None = None
         if arrays is not None:
             check_arrays(job, arrays, self.comm)
@@ -75,10 +78,14 @@ class Trainer:
         self.sampler = Sampler(self.data.split.train, run.global_batch, run.seed)
         self.grads = np.zeros_like(self.model.params)
         self.ws = self.model.workspace(Strategy.part_rows(run, self.comm.size))
+        self.timer = PhaseTimer()
         self.batch_targets = np.zeros((self.ws.rows,) + self.data.targets.shape[1:], dtype=self.data.targets.dtype)
         self.batch_weights = np.ones(self.ws.rows)  # the part's row weights (ones stay ones for an unweighted job)
         self.scale = 1.0 / run.global_batch  # 1 / Σ w of the current global batch (1/G unweighted)
         self.exchange = Strategy.from_run(self.comm, self.model, self.grads, run)
+        # the part's own buffers (lane 0), and the lanes that compute several parts at once (exact mode, T > 1)
+        self.lane = Lane(self.ws, self.batch_targets, self.batch_weights, self.timer)
+        self.lanes = Lanes(self, Strategy.lanes(run)) if Strategy.lanes(run) > 1 else None
         # State for the parameters this rank updates: all of them, or its slice when the update is sharded.
         self.optimizer = Optimizer(job.optimizer, self.exchange.owned_size, self.model.dtype)
         self.step_count = 0  # global steps completed
@@ -86,12 +93,11 @@ class Trainer:
         self.total_steps = self.planned_steps()
         # The schedule spans all epochs; run.max_steps only stops early, so a stopped run resumes onto the same curve.
         self.schedule_steps = run.epochs * self.sampler.steps_per_epoch
-        self.timer = PhaseTimer()
         # weighted loss sum, correct (or Σ (o − t)²), rows, Σ w: since the last epoch record
         self.train_sums = self.exchange.metric_sums(4)
-        self.part_sums = np.zeros(4)
         self.problem: str | None = None  # why this step's loss cannot be trusted (a diverged run), or None
-        self.last_part_rows = 0  # rows of the part whose activations the workspace holds (for health)
+        self.last_part_rows = 0  # rows of the last part, whose activations last_workspace holds (for health)
+        self.last_workspace = self.ws
         self.flags = StepFlags()  # the run loop hands in its own: stop signals and the checkpoint clock
         self.best = (BestTracker(run.best_metric, run.patience, run.min_improvement)
                      if run.best_metric != "off" else None)  # the best model so far (run.best_metric)
@@ -110,15 +116,19 @@ class Trainer:
         if self.data.codes is not None:
             np.take(self.data.codes, rows, axis=0, out=ws.codes[:rows.size])
 
-    def take_targets(self, rows: np.ndarray) -> np.ndarray:
-        np.take(self.data.targets, rows, axis=0, out=self.batch_targets[:rows.size])
-        return self.batch_targets
+    def take_targets(self, rows: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
+        """The targets of ``rows`` in ``out`` (default: the batch target buffer), rows first; returns ``out``."""
+        out = self.batch_targets if out is None else out
+        np.take(self.data.targets, rows, axis=0, out=out[:rows.size])
+        return out
 
-    def take_weights(self, rows: np.ndarray) -> np.ndarray:
-        """The weights of ``rows`` in the batch weight buffer, (≥ rows.size,) float64 (ones when unweighted)."""
+    def take_weights(self, rows: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
+        """The weights of ``rows`` in ``out`` (default: the batch weight buffer), (≥ rows.size,) float64 (ones
+        when unweighted)."""
+        out = self.batch_weights if out is None else out
         if self.data.weights is not None:
-            np.take(self.data.weights, rows, out=self.batch_weights[:rows.size])
-        return self.batch_weights
+            np.take(self.data.weights, rows, out=out[:rows.size])
+        return out
 
     def batch_scale(self, rows: np.ndarray) -> float:
         """1 / Σ w over the global batch ``rows`` (1/G unweighted): every rank computes it from all G rows, Σ
@@ -145,14 +155,24 @@ class Trainer:
         """
         self.problem = None  # the exchange resets its own at the start of parts()
         self.scale = self.batch_scale(rows)
-        for part, part_grads in self.exchange.parts(rows):
+        parts = self.exchange.parts(rows)
+        if self.lanes is not None:  # exact mode, T > 1: whole parts at once, joined in order
+            self.lanes.run(self, parts)
+            self.timer.lap("backward")  # the lanes' data, forward and backward, as one phase
+        for part, part_grads in parts:  # (nothing left after the lanes)
             self.part_gradient(part, part_grads)
-            self.exchange.add(part_grads)
+            self.join_part(part, part_grads, self.lane)
             self.timer.lap("backward")
         self.exchange.finish()
         self.timer.hold("exchange")  # the exchange phase goes on with the publish after the update
         self.agree()
         return self.exchange.owned_gradient()
+
+    def close(self) -> None:
+        """Release what the step started (the exchange's communication thread, the lanes' pool); idempotent."""
+        self.exchange.close()
+        if self.lanes is not None:
+            self.lanes.close()
 
     def agree(self) -> None:
         """What every rank must decide alike after the sum: one MAX allreduce of three flags (P > 1).
@@ -185,37 +205,45 @@ class Trainer:
         self.timer.lap("exchange")
         self.step_count += 1
 
-    def part_gradient(self, rows: np.ndarray, grads: np.ndarray) -> None:
-        """Gradient of one part's rows into ``grads`` (scaled by 1/Σw of the global batch: 1/G unweighted); the
-        loss and counts join ``train_sums``.
+    def part_gradient(self, rows: np.ndarray, grads: np.ndarray, lane: Lane | None = None) -> None:
+        """Gradient of one part's rows into ``grads`` (scaled by 1/Σw of the global batch: 1/G unweighted), with
+        ``lane``'s buffers (default: the trainer's own); the loss and counts into ``lane.sums`` (:meth:`join_part`
+        adds them to ``train_sums``). Safe to run in several threads at once on distinct lanes.
 
         Backward tells the exchange as each layer's gradient is complete, so it can start sending.
         """
-        n = rows.size
-        self.take_inputs(rows)
-        targets, weights = self.take_targets(rows), self.take_weights(rows)
-        self.timer.lap("data")
-        loss_sum = self.ws.forward_loss(n, targets, weights, self.scale, step=self.step_count, rows=rows)
-        if not math.isfinite(loss_sum) and self.problem is None:
-            self.problem = f"the loss of {n} rows is {loss_sum!r}"
-        self.part_sums[:] = (loss_sum, self.quality_sum(n, targets), n, self.weight_sum(n))
-        self.train_sums.add(self.part_sums)
-        self.last_part_rows = n
-        self.timer.lap("forward")
-        for layer, _ in self.ws.backward(n, grads):
+        lane = lane or self.lane
+        n, ws = rows.size, lane.ws
+        self.take_inputs(rows, ws)
+        targets, weights = self.take_targets(rows, lane.targets), self.take_weights(rows, lane.weights)
+        lane.timer.lap("data")
+        loss_sum = ws.forward_loss(n, targets, weights, self.scale, step=self.step_count, rows=rows)
+        lane.problem = None if math.isfinite(loss_sum) else f"the loss of {n} rows is {loss_sum!r}"
+        lane.sums[:] = (loss_sum, self.quality_sum(n, targets, ws), n, self.weight_sum(n, weights))
+        lane.timer.lap("forward")
+        for layer, _ in ws.backward(n, grads):
             self.exchange.layer_done(layer)
 
-    def quality_sum(self, n: int, targets: np.ndarray) -> float:
+    def join_part(self, rows: np.ndarray, grads: np.ndarray, lane: Lane) -> None:
+        """A computed part joins the step (in part order): its gradient the exchange's sum, its metric sums
+        ``train_sums``, its problem (the first one) the step's."""
+        self.exchange.add(grads)
+        self.train_sums.add(lane.sums)
+        self.problem = self.problem or lane.problem
+        self.last_part_rows, self.last_workspace = rows.size, lane.ws
+
+    def quality_sum(self, n: int, targets: np.ndarray, ws=None) -> float:
         """The second metric sum of the batch in the workspace (correct predictions, or Σ (o − t)²): the loss's entry
         says which (``model/losses.py``). Standardised targets (``data.standardize_targets``): Σ (o − t)² in the
         targets' own units, so RMSE is logged in them."""
         if self.data.target_std is not None:
-            return loss_kernels.squared_error_sum_scaled(self.ws.O[:n], targets[:n], self.data.target_std)
-        return self.model.loss_entry.quality_sum(self.ws.O[:n], targets[:n])
+            return loss_kernels.squared_error_sum_scaled((ws or self.ws).O[:n], targets[:n], self.data.target_std)
+        return self.model.loss_entry.quality_sum((ws or self.ws).O[:n], targets[:n])
 
-    def weight_sum(self, n: int) -> float:
-        """Σ w of the n rows in the batch weight buffer (n itself, exactly, when unweighted)."""
-        return float(n) if self.data.weights is None else math.fsum(self.batch_weights[:n])
+    def weight_sum(self, n: int, weights: np.ndarray | None = None) -> float:
+        """Σ w of the n rows in ``weights`` (default: the batch weight buffer; n itself, exactly, when unweighted)."""
+        return float(n) if self.data.weights is None else math.fsum((self.batch_weights if weights is None
+                                                                     else weights)[:n])
 
     def take_train_sums(self) -> np.ndarray:
         """The training (weighted loss sum, correct, rows, Σ w) since the last call, summed over ranks; resets them.

@@ -32,6 +32,7 @@ from shardmill.errors import JobError
 from shardmill.kernels import activations as act
 from shardmill.kernels import layers
 from shardmill.parallel.comm import Comm
+from shardmill.parallel.exchange import blas_threads
 from shardmill.training.trainer import Trainer
 from shardmill.training.warmup import warm_up_kernels
 from threadpoolctl import threadpool_limits
@@ -160,7 +161,7 @@ def verify(job: Job, comm: Comm | None = None, batches: int = 3, trajectory: int
     in parallel and serially (rank 0 alone, ``Comm.alone()``) and reports the parameter divergence per step.
     """
     comm = comm or Comm()
-    with threadpool_limits(limits=job.run.threads, user_api="blas"):
+    with threadpool_limits(limits=blas_threads(job, comm.size), user_api="blas"):
         trainer = Trainer(job, comm)
         warm_up_kernels(trainer)
         batches = min(batches, trainer.sampler.steps_per_epoch)

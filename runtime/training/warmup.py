@@ -6,6 +6,7 @@ import time
 
 import numpy as np
 from shardmill.kernels import optim as kernels_optim
+from shardmill.kernels import threaded
 from shardmill.training.optim import Optimizer
 from shardmill.training.trainer import Trainer
 
@@ -35,6 +36,7 @@ def warm_up_kernels(trainer: Trainer) -> float:
         kernels_optim.scale(grads, 1.0)
         scratch.step(trainer.model.params.copy(), grads, 1)
         trainer.exchange.warm_up()
+        threaded.warm_up(trainer.model.dtype)  # the parallel forms, when kernels run on threads
 
     if comm.rank == 0:
         run()

@@ -1,0 +1,150 @@
+"""The element-wise kernels over T threads, with the serial kernels' bits: fixed blocks, Numba's parallel loops.
+
+Each parallel kernel cuts its arrays into blocks whose size does not depend on T and runs the serial kernel
+(``activations``, ``optim``; ``data.take_rows`` has its own) on each block in a ``prange`` loop. Element-wise
+work (bias + activation, its backward, the optimizer updates, taking rows) gives every element the same operations
+whichever block it lies in, and the column sums are cut into blocks of whole columns, each summed over every row in
+row order as the serial loop does, so **every parallel kernel has the bits of its serial form for any T**
+(``tests/test_threaded.py``). take_rows' first non-finite row is the first over the blocks, read in block order.
+
+Dispatch (the plain functions below; the rule is ``dispatch.py``'s): the serial kernel when this process runs one
+kernel thread (``dispatch.use_threads``), when the array has fewer than ``dispatch.MIN_ELEMENTS`` elements
+(launching threads costs more than they save there), or when the caller is not the main thread (exact mode's lanes
+run whole chunks on threads of their own and their kernels stay serial: only the main thread starts a parallel
+loop).
+
+Threading layer and thread count: ``dispatch.py``.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from numba import njit, prange
+from shardmill.kernels import activations, optim
+from shardmill.kernels.dispatch import BLOCK_ELEMENTS, COLUMN_BLOCK, parallel, row_block, threads
+
+# --- the parallel forms: each runs the serial kernel on fixed blocks --------------------------------------------
+
+@njit(cache=True, nogil=True, parallel=True)
+def activation_blocks(Z, b, A, D, code, rows, backward):
+    """On blocks of ``rows`` rows: :func:`activations.bias_forward` (Z, b, A; D unread) or, with ``backward``,
+    :func:`activations.backward` (Z, A, D; D in place, b unread). One driver for both: one specialisation fewer."""
+    n = Z.shape[0]
+    for k in prange((n + rows - 1) // rows):
+        lo = k * rows
+        hi = min(n, lo + rows)
+        if backward:
+            activations.backward(Z[lo:hi], A[lo:hi], D[lo:hi], code)
+        else:
+            activations.bias_forward(Z[lo:hi], b, A[lo:hi], code)
+
+
+@njit(cache=True, nogil=True, parallel=True)
+def column_sums_blocks(dZ, db, columns):
+    """:func:`activations.column_sums` on blocks of ``columns`` whole columns: each column summed over every row
+    in row order, as the serial loop sums it."""
+    m = dZ.shape[1]
+    for k in prange((m + columns - 1) // columns):
+        lo = k * columns
+        hi = min(m, lo + columns)
+        activations.column_sums(dZ[:, lo:hi], db[lo:hi])
+
+
+@njit(cache=True, nogil=True, parallel=True)
+def sgd_blocks(params, grads, lr, l2):
+    n = params.size
+    for k in prange((n + BLOCK_ELEMENTS - 1) // BLOCK_ELEMENTS):
+        lo = k * BLOCK_ELEMENTS
+        hi = min(n, lo + BLOCK_ELEMENTS)
+        optim.sgd(params[lo:hi], grads[lo:hi], lr, l2)
+
+
+@njit(cache=True, nogil=True, parallel=True)
+def momentum_blocks(params, grads, velocity, lr, mu, l2, nesterov):
+    n = params.size
+    for k in prange((n + BLOCK_ELEMENTS - 1) // BLOCK_ELEMENTS):
+        lo = k * BLOCK_ELEMENTS
+        hi = min(n, lo + BLOCK_ELEMENTS)
+        if nesterov:
+            optim.nesterov(params[lo:hi], grads[lo:hi], velocity[lo:hi], lr, mu, l2)
+        else:
+            optim.momentum(params[lo:hi], grads[lo:hi], velocity[lo:hi], lr, mu, l2)
+
+
+@njit(cache=True, nogil=True, parallel=True)
+def adam_blocks(params, grads, m, v, lr, beta1, beta2, eps, step, l2, decay):
+    n = params.size
+    for k in prange((n + BLOCK_ELEMENTS - 1) // BLOCK_ELEMENTS):
+        lo = k * BLOCK_ELEMENTS
+        hi = min(n, lo + BLOCK_ELEMENTS)
+        optim.adam(params[lo:hi], grads[lo:hi], m[lo:hi], v[lo:hi], lr, beta1, beta2, eps, step, l2, decay)
+
+
+# --- dispatch: the same arguments as the serial kernels ------------------------------------------------------------
+
+def bias_forward(Z: np.ndarray, b: np.ndarray, A: np.ndarray, code: int) -> None:
+    """Z += b, A = f(Z) (``activations.bias_forward``); Z, A: (n, m), b: (m,)."""
+    if parallel(Z.size):
+        activation_blocks(Z, b, A, Z, code, row_block(Z.shape[1]), False)
+    else:
+        activations.bias_forward(Z, b, A, code)
+
+
+def backward(Z: np.ndarray, A: np.ndarray, D: np.ndarray, code: int) -> None:
+    """D ← f'(Z) ⊙ D (``activations.backward``); Z, A, D: (n, m)."""
+    if parallel(Z.size):
+        activation_blocks(Z, Z[0], A, D, code, row_block(Z.shape[1]), True)
+    else:
+        activations.backward(Z, A, D, code)
+
+
+def column_sums(dZ: np.ndarray, db: np.ndarray) -> None:
+    """db_j = Σ_i dZ[i, j] (``activations.column_sums``); dZ: (n, m), db: (m,)."""
+    if parallel(dZ.size) and dZ.shape[1] > COLUMN_BLOCK:
+        column_sums_blocks(dZ, db, COLUMN_BLOCK)
+    else:
+        activations.column_sums(dZ, db)
+
+
+def sgd(params: np.ndarray, grads: np.ndarray, lr: float, l2: float) -> None:
+    """``optim.sgd``, over the threads for large arrays."""
+    if parallel(params.size):
+        sgd_blocks(params, grads, lr, l2)
+    else:
+        optim.sgd(params, grads, lr, l2)
+
+
+def momentum(params: np.ndarray, grads: np.ndarray, velocity: np.ndarray, lr: float, mu: float, l2: float) -> None:
+    """``optim.momentum``, over the threads for large arrays."""
+    if parallel(params.size):
+        momentum_blocks(params, grads, velocity, lr, mu, l2, False)
+    else:
+        optim.momentum(params, grads, velocity, lr, mu, l2)
+
+
+def nesterov(params: np.ndarray, grads: np.ndarray, velocity: np.ndarray, lr: float, mu: float, l2: float) -> None:
+    """``optim.nesterov``, over the threads for large arrays."""
+    if parallel(params.size):
+        momentum_blocks(params, grads, velocity, lr, mu, l2, True)
+    else:
+        optim.nesterov(params, grads, velocity, lr, mu, l2)
+
+
+def adam(params: np.ndarray, grads: np.ndarray, m: np.ndarray, v: np.ndarray, lr: float, beta1: float,
+         beta2: float, eps: float, step: int, l2: float, decay: float) -> None:
+    """``optim.adam``, over the threads for large arrays."""
+    if parallel(params.size):
+        adam_blocks(params, grads, m, v, lr, beta1, beta2, eps, step, l2, decay)
+    else:
+        optim.adam(params, grads, m, v, lr, beta1, beta2, eps, step, l2, decay)
+
+
+def warm_up(dtype: np.dtype) -> None:
+    """Compile (or load from Numba's cache) the parallel forms for ``dtype`` when kernels run on threads."""
+    if threads() < 2:
+        return
+    Z = np.zeros((2, 2), dtype=dtype)
+    b = np.zeros(2, dtype=dtype)
+    activation_blocks(Z, b, Z, Z, activations.RELU, 1, False)
+    activation_blocks(Z, b, Z, Z.copy(), activations.RELU, 1, True)
+    column_sums_blocks(Z, b, 1)

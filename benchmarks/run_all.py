@@ -123,6 +123,8 @@ def main(argv: list[str] | None = None) -> int:
         "overlap_hidden": ([str(BENCHMARKS / "overlap_hidden.py"), *quick], 180 if args.quick else 600),
         "cold_start": ([str(BENCHMARKS / "cold_start.py"), *quick], 120 if args.quick else 300),
         "layers_cost": ([str(BENCHMARKS / "layers_cost.py"), *quick], 240 if args.quick else 600),
+        "rank_memory": ([str(BENCHMARKS / "rank_memory.py")], 300),
+        "kernel_threads": ([str(BENCHMARKS / "kernel_threads.py"), *quick], 120 if args.quick else 300),
         "variants_packing": ([str(BENCHMARKS / "variants_packing.py"), *quick], 240 if args.quick else 600),
         "threads_layout": ([str(BENCHMARKS / "threads_layout.py"), *quick], 120 if args.quick else 300),
         "categorical_quality": ([str(BENCHMARKS / "categorical_quality.py"), *(["--epochs", "20"] if args.quick

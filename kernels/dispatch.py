@@ -25,8 +25,6 @@ layer) the two-thread kernels, between GEMMs, made the step 0.86 → 1.18 ms; 52
 inside the step too (benchmarks/README.md)."""
 BLOCK_ELEMENTS = 8192
 """Elements per block of the row-wise and flat kernels (whole rows: max(1, BLOCK_ELEMENTS // columns) rows)."""
-COLUMN_BLOCK = 128
-"""Columns per block of the column sums (512 bytes of a float32 row)."""
 
 # GNU OpenMP reads this when it loads (the first parallel kernel): its threads spin 10 000 times, not 300 000,
 # before they sleep, so they leave the cores to BLAS's threads between kernels (the launcher sets it for ranks too)

@@ -3,9 +3,9 @@
 Each parallel kernel cuts its arrays into blocks whose size does not depend on T and runs the serial kernel
 (``activations``, ``optim``; ``data.take_rows`` has its own) on each block in a ``prange`` loop. Element-wise
 work (bias + activation, its backward, the optimizer updates, taking rows) gives every element the same operations
-whichever block it lies in, and the column sums are cut into blocks of whole columns, each summed over every row in
-row order as the serial loop does, so **every parallel kernel has the bits of its serial form for any T**
-(``tests/test_threaded.py``). take_rows' first non-finite row is the first over the blocks, read in block order.
+whichever block it lies in, so **every parallel kernel has the bits of its serial form for any T**
+(``tests/test_threaded.py``). The bias gradient's column sums stay serial (:func:`column_sums`: a parallel form was
+slower than one thread). take_rows' first non-finite row is the first over the blocks, read in block order.
 
 Dispatch (the plain functions below; the rule is ``dispatch.py``'s): the serial kernel when this process runs one
 kernel thread (``dispatch.use_threads``), when the array has fewer than ``dispatch.MIN_ELEMENTS`` elements
@@ -21,7 +21,7 @@ from __future__ import annotations
 import numpy as np
 from numba import njit, prange
 from shardmill.kernels import activations, optim
-from shardmill.kernels.dispatch import BLOCK_ELEMENTS, COLUMN_BLOCK, parallel, row_block, threads
+from shardmill.kernels.dispatch import BLOCK_ELEMENTS, parallel, row_block, threads
 
 # --- the parallel forms: each runs the serial kernel on fixed blocks --------------------------------------------
 
@@ -37,17 +37,6 @@ def activation_blocks(Z, b, A, D, code, rows, backward):
             activations.backward(Z[lo:hi], A[lo:hi], D[lo:hi], code)
         else:
             activations.bias_forward(Z[lo:hi], b, A[lo:hi], code)
-
-
-@njit(cache=True, nogil=True, parallel=True)
-def column_sums_blocks(dZ, db, columns):
-    """:func:`activations.column_sums` on blocks of ``columns`` whole columns: each column summed over every row
-    in row order, as the serial loop sums it."""
-    m = dZ.shape[1]
-    for k in prange((m + columns - 1) // columns):
-        lo = k * columns
-        hi = min(m, lo + columns)
-        activations.column_sums(dZ[:, lo:hi], db[lo:hi])
 
 
 @njit(cache=True, nogil=True, parallel=True)
@@ -99,11 +88,11 @@ def backward(Z: np.ndarray, A: np.ndarray, D: np.ndarray, code: int) -> None:
 
 
 def column_sums(dZ: np.ndarray, db: np.ndarray) -> None:
-    """db_j = Σ_i dZ[i, j] (``activations.column_sums``); dZ: (n, m), db: (m,)."""
-    if parallel(dZ.size) and dZ.shape[1] > COLUMN_BLOCK:
-        column_sums_blocks(dZ, db, COLUMN_BLOCK)
-    else:
-        activations.column_sums(dZ, db)
+    """db_j = Σ_i dZ[i, j] (``activations.column_sums``); dZ: (n, m), db: (m,). Serial at every thread count:
+    a parallel form over blocks of whole columns (same bits) ran 2.5-2.8x *slower* on two threads than this on one,
+    at (512, 1024), (2048, 1024) and (4096, 4096) float32 (``benchmarks/kernel_threads.py``): the row loop is one
+    streaming pass that a second thread only splits into two half-width ones."""
+    activations.column_sums(dZ, db)
 
 
 def sgd(params: np.ndarray, grads: np.ndarray, lr: float, l2: float) -> None:
@@ -147,4 +136,3 @@ def warm_up(dtype: np.dtype) -> None:
     b = np.zeros(2, dtype=dtype)
     activation_blocks(Z, b, Z, Z, activations.RELU, 1, False)
     activation_blocks(Z, b, Z, Z.copy(), activations.RELU, 1, True)
-    column_sums_blocks(Z, b, 1)

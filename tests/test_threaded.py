@@ -44,18 +44,6 @@ def test_bias_forward_and_backward_blocks_match_the_serial_kernels(dtype, code, 
     assert Ds.tobytes() == Dp.tobytes()
 
 
-@pytest.mark.parametrize("dtype", [np.float32, np.float64])
-@pytest.mark.parametrize("shape,columns", [((512, 1024), 128), ((300, 257), 5), ((3, 700), 128)])
-def test_column_sums_blocks_match_the_serial_kernel(dtype, shape, columns):
-    dZ = draws(shape, dtype, 4)
-    serial, blocks = np.empty(shape[1], dtype=dtype), np.empty(shape[1], dtype=dtype)
-    act.column_sums(dZ, serial)
-    threaded.column_sums_blocks(dZ, blocks, columns)
-    assert serial.tobytes() == blocks.tobytes()
-    # the serial kernel's own reference: a left-to-right sum over the rows (common practice)
-    np.testing.assert_allclose(serial, dZ.astype(np.float64).sum(axis=0), rtol=1e-4, atol=1e-4)
-
-
 @pytest.mark.parametrize("bad_row", [None, 0, 37, 511])
 def test_take_rows_blocks_match_the_serial_kernel(bad_row):
     X = draws((2000, 96), np.float64, 5)

@@ -4,13 +4,17 @@
 #   Resubmit:  the same line, unedited. `train --continue` resumes from the workdir's newest checkpoint when there is
 #              one and starts the run otherwise, so a first submission, a resubmission and a requeue all work.
 # Lines marked "site" are the only ones to adapt.
+# Ranks × threads: `shardmill scale job.toml --layouts 1x32,2x16,4x8,8x4,16x2,32x1` on one node of the partition
+#   compares the layouts of its cores and prints the Slurm request of the best one (README, "Threads inside a rank"):
+#   --ntasks-per-node=P and --cpus-per-task=T here, and `--set run.threads=T` on the sbatch line. Exact mode gives
+#   the same bits for every P and T.
 # Many variants of a job in the same allocation (README, "Many variants in one allocation"): replace the srun line's
 #   `shardmill train "$JOB" --continue --no-progress "$@"` by `shardmill variants "$JOB" plan.toml --group-ranks 2`;
 #   resubmitting the same line skips the finished variants and continues the others from their checkpoints.
 #SBATCH --job-name=shardmill
 #SBATCH --nodes=2                 # site: nodes
-#SBATCH --ntasks-per-node=32      # site: one rank per core
-#SBATCH --cpus-per-task=1
+#SBATCH --ntasks-per-node=32      # site: one rank per core, or cores / T ranks of T threads each (below)
+#SBATCH --cpus-per-task=1         # site: T, the threads of each rank; then add --set run.threads=T when submitting
 #SBATCH --time=01:00:00           # site
 #SBATCH --output=shardmill-%j.out
 #SBATCH --signal=TERM@120         # SIGTERM 2 min before the limit: every rank checkpoints, then exits 143
@@ -26,7 +30,9 @@ REQUEUE=${REQUEUE:-no}            # site, optional: yes requeues this job after 
 # module load mpi/openmpi
 # source /path/to/venv/bin/activate
 
-export OPENBLAS_NUM_THREADS=1 OMP_NUM_THREADS=1 MKL_NUM_THREADS=1
+# at most T threads per rank (run.threads chooses within it; --cpus-per-task gives each rank its T cores)
+THREADS=${SLURM_CPUS_PER_TASK:-1}
+export OPENBLAS_NUM_THREADS=$THREADS OMP_NUM_THREADS=$THREADS MKL_NUM_THREADS=$THREADS
 # One compile of the job's kernels before the ranks start, so they all load them from the cache.
 export NUMBA_CACHE_DIR=${NUMBA_CACHE_DIR:-$HOME/.cache/shardmill-numba}
 SETS=()

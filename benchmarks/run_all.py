@@ -126,7 +126,9 @@ def main(argv: list[str] | None = None) -> int:
         "rank_memory": ([str(BENCHMARKS / "rank_memory.py")], 300),
         "kernel_threads": ([str(BENCHMARKS / "kernel_threads.py"), *quick], 120 if args.quick else 300),
         "variants_packing": ([str(BENCHMARKS / "variants_packing.py"), *quick], 240 if args.quick else 600),
-        "threads_layout": ([str(BENCHMARKS / "threads_layout.py"), *quick], 120 if args.quick else 300),
+        "threads_layout": ([str(BENCHMARKS / "threads_layout.py"), *quick,  # a 16-core node: its splits too
+                            *(["--cores", str(most)] if (most := max(int(p) for p in args.sizes.split(","))) >= 4
+                              else [])], (120 if args.quick else 300) * (3 if most >= 4 else 1)),
         "categorical_quality": ([str(BENCHMARKS / "categorical_quality.py"), *(["--epochs", "20"] if args.quick
                                                                                else [])], 300),
     }

@@ -1,4 +1,5 @@
-"""Ranks × threads on one node: samples/s of the layouts P×T = 1×1, 1×2, 2×1 of the mid model, and the shares.
+"""Ranks × threads on one node: samples/s of the layouts P×T = 1×1, 1×2, 2×1 of the mid model, and the shares
+(``--cores C`` adds every split of C cores, for a larger node).
 
 Prints one JSON object. Every figure is one ``mpiexec -n P python -m shardmill bench --threads T … --json`` run of
 the mid model (784-1024-1024-10, G = 512, float32, Adam; median step after warm-up, see
@@ -86,15 +87,21 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--steps", type=int, default=None, help="timed steps per run (default 30, quick 6)")
     parser.add_argument("--rounds", type=int, default=None, help="rounds over the layouts (default 3, quick 1)")
     parser.add_argument("--timeout", type=float, default=240.0, help="seconds per mpiexec run")
+    parser.add_argument("--cores", type=int, default=0,
+                        help="also time every split of this many cores into P×T (a larger node: 16 gives 1x16, 2x8, "
+                             "4x4, 8x2, 16x1)")
     args = parser.parse_args(argv)
+    extra = [(args.cores // t, t) for t in range(args.cores, 0, -1)
+             if args.cores > 2 and args.cores % t == 0 and (args.cores // t, t) not in LAYOUTS]
+    layouts_here = LAYOUTS + extra
     steps = args.steps or (6 if args.quick else 30)
     warmup = 2 if args.quick else 5
     rounds = args.rounds or (1 if args.quick else 3)
     meter = LoadMeter()
     begin = time.perf_counter()
-    runs: dict[str, list[dict[str, Any]]] = {name(P, T): [] for P, T in LAYOUTS}
+    runs: dict[str, list[dict[str, Any]]] = {name(P, T): [] for P, T in layouts_here}
     for r in range(rounds):
-        for P, T in LAYOUTS if r % 2 == 0 else list(reversed(LAYOUTS)):
+        for P, T in layouts_here if r % 2 == 0 else list(reversed(layouts_here)):
             log(f"round {r + 1}/{rounds}: P×T = {name(P, T)}")
             out = run_child(bench_args(P, T, steps, warmup), args.timeout, ranks=P)
             out.pop("machine", None)
@@ -121,6 +128,8 @@ def main(argv: list[str] | None = None) -> int:
         "targets": TARGETS,
         "ratios": ratios,
         "layouts": layouts,
+        "best_layout": max((key for key, entry in layouts.items() if "samples_per_s" in entry),
+                           key=lambda key: layouts[key]["samples_per_s"], default=None),
     }, begin, meter)
     return 0
 

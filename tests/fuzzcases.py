@@ -11,6 +11,7 @@ Seeded: the same count and seed give the same cases. ``tests/test_fuzz.py`` runs
 
 from __future__ import annotations
 
+import hashlib
 import json
 import math
 import os
@@ -229,16 +230,12 @@ def checkpoints(rng: np.random.Generator, folder: Path) -> Case:
 
 
 def _sha(path: Path) -> str:
-    import hashlib
-
     return hashlib.sha256(path.read_bytes()).hexdigest()
 
 
 def _recompute_checksums(newest: Path) -> None:
     """What a tool or a person rewriting a checkpoint does: every checksum made to fit the new bytes (the files'
     in state.json, state.json's in the index, the index's own: the formula ``checkpoint.py`` writes)."""
-    import hashlib
-
     state = json.loads((newest / "state.json").read_text())
     if isinstance(state.get("files"), dict):
         state["files"] = {name: _sha(newest / name) for name in state["files"] if (newest / name).is_file()}

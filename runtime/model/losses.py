@@ -283,6 +283,15 @@ def _normal(rng, rows, k, dtype):
     return rng.standard_normal((rows, k)).astype(dtype)
 
 
+_REAL_TARGETS: dict[str, Any] = dict(
+    class_labels=False, target_range=None, targets_text="real targets (n, k)",
+    metric="rmse", metric_text="√(Σ (o − t)² / (n·k)) over every output",
+    quality_sum=kernels.squared_error_sum, metric_of=_root_mean_square, metric_reference=_rmse,
+    labels=None, label_rule="none: the outputs are the prediction",
+    synthetic_targets=_normal, scaled_targets=True)
+"""What the regression losses of real targets (squared_error, huber, absolute_error) share: their targets, the RMSE
+metric, no labels, and ``data.standardize_targets``."""
+
 _TABLE = (
     Loss("softmax_cross_entropy", kernels.SOFTMAX_CROSS_ENTROPY, "softmax", True,
          _softmax_cross_entropy, _softmax_outputs, class_labels=True, target_range=None,
@@ -306,40 +315,18 @@ _TABLE = (
          reference=_cross_entropy_of_outputs,
          formula="per output: max(z, 0) + log1p(exp(−|z|)) − t·z, z the logit, t the 0/1 target",
          synthetic_targets=lambda rng, rows, k, dtype: rng.integers(0, 2, size=(rows, k)).astype(dtype)),
-    Loss("squared_error", kernels.SQUARED_ERROR, "identity", False,
-         _squared_error, _outputs_already_there, class_labels=False, target_range=None,
-         targets_text="real targets (n, k)",
-         metric="rmse", metric_text="√(Σ (o − t)² / (n·k)) over every output",
-         quality_sum=kernels.squared_error_sum, metric_of=_root_mean_square,
-         metric_reference=_rmse,
-         labels=None,
-         label_rule="none: the outputs are the prediction",
+    Loss("squared_error", kernels.SQUARED_ERROR, "identity", False, _squared_error, _outputs_already_there,
          reference=_half_squared_error,
-         formula="per row: ½ Σ_j (o_j − t_j)², o the outputs after the output activation",
-         synthetic_targets=_normal, scaled_targets=True),
+         formula="per row: ½ Σ_j (o_j − t_j)², o the outputs after the output activation", **_REAL_TARGETS),
     Loss("huber", kernels.HUBER, "identity", False,
-         lambda *args: _huber(*args, HUBER_DELTA), _outputs_already_there, class_labels=False, target_range=None,
-         targets_text="real targets (n, k)",
-         metric="rmse", metric_text="√(Σ (o − t)² / (n·k)) over every output",
-         quality_sum=kernels.squared_error_sum, metric_of=_root_mean_square,
-         metric_reference=_rmse,
-         labels=None,
-         label_rule="none: the outputs are the prediction",
+         lambda *args: _huber(*args, HUBER_DELTA), _outputs_already_there,
          reference=lambda o, targets: _huber_of_rows(o, targets, HUBER_DELTA),
          formula="per row: Σ_j h(o_j − t_j), h(r) = ½r² for |r| ≤ δ, δ·(|r| − ½δ) beyond, δ = `model.huber_delta` "
                  "(Huber 1964)",
-         synthetic_targets=_normal, parameters=("huber_delta",), scaled_targets=True, bind=_bind_huber),
-    Loss("absolute_error", kernels.ABSOLUTE_ERROR, "identity", False,
-         _absolute_error, _outputs_already_there, class_labels=False, target_range=None,
-         targets_text="real targets (n, k)",
-         metric="rmse", metric_text="√(Σ (o − t)² / (n·k)) over every output",
-         quality_sum=kernels.squared_error_sum, metric_of=_root_mean_square,
-         metric_reference=_rmse,
-         labels=None,
-         label_rule="none: the outputs are the prediction",
+         parameters=("huber_delta",), bind=_bind_huber, **_REAL_TARGETS),
+    Loss("absolute_error", kernels.ABSOLUTE_ERROR, "identity", False, _absolute_error, _outputs_already_there,
          reference=_absolute_error_of_rows,
-         formula="per row: Σ_j |o_j − t_j|; its gradient is sign(o − t), 0 where o = t",
-         synthetic_targets=_normal, scaled_targets=True),
+         formula="per row: Σ_j |o_j − t_j|; its gradient is sign(o − t), 0 where o = t", **_REAL_TARGETS),
     Loss("poisson", kernels.POISSON, "exp", True,
          _poisson, _exp_outputs, class_labels=False, target_range=(0.0, math.inf),
          targets_text="counts (n, k), any value ≥ 0",

@@ -111,7 +111,6 @@ class Trainer:
     def take_inputs(self, rows: np.ndarray, ws=None) -> None:
         """The standardised numeric columns of ``rows`` and their category codes into the workspace (``self.ws``)."""
         ws = ws or self.ws
-        self.data.check_inputs_file()  # a memory-mapped file cut short would end the process with SIGBUS
         take_rows(self.data.X, rows, self.data.mean, self.data.inv_std, ws.numeric)
         if self.data.codes is not None:
             np.take(self.data.codes, rows, axis=0, out=ws.codes[:rows.size])
@@ -154,6 +153,7 @@ class Trainer:
         call). Ends with the step's agreement (:meth:`agree`), so a diverged sum stops every rank here.
         """
         self.problem = None  # the exchange resets its own at the start of parts()
+        self.data.check_inputs_file()  # once a step: a memory-mapped file cut short would end it with SIGBUS
         self.scale = self.batch_scale(rows)
         parts = self.exchange.parts(rows)
         if self.lanes is not None:  # exact mode, T > 1: whole parts at once, joined in order
@@ -259,6 +259,7 @@ class Trainer:
         Each rank evaluates the part the exchange strategy gives it (exact mode: whole chunks of
         ``exact_chunk`` rows whatever P is, summed exactly, so the result has the same bits for every P).
         """
+        self.data.check_inputs_file()
         width = self.ws.rows
         part = self.exchange.evaluation_rows(rows)
         sums = self.exchange.metric_sums(4)  # weighted loss sum, correct or squared-error sum, rows, Σ w

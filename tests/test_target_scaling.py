@@ -160,3 +160,33 @@ def test_exact_mode_resume_gives_the_uninterrupted_bits(tmp_path) -> None:
     with np.load(whole / "run" / "final.npz") as a, np.load(halves / "run" / "final.npz") as b:
         for name in ("W0", "b0", "W1", "b1", "target_mean", "target_std"):
             np.testing.assert_array_equal(a[name], b[name])
+
+
+@pytest.mark.mpi
+def test_exact_bits_for_every_process_count_and_a_resume_at_another(tmp_path) -> None:
+    from helpers import run_mpi
+
+    def job(folder: Path, max_steps: int = 0) -> Path:
+        _data(folder, outputs=2)
+        path = _job(folder, outputs=2, epochs=3, reduction="exact", max_steps=max_steps)
+        text = path.read_text().replace("[data]", '[data]\nsplit = "last"')  # and the time-order split
+        path.write_text(text.replace("[run]", "[run]\nexact_chunk = 8"))  # 4 chunks of the batch of 32
+        return path
+
+    digests = set()
+    for P in (1, 2, 3):
+        folder = tmp_path / f"p{P}"
+        done = run_mpi(P, ["-m", "shardmill", "train", str(job(folder)), "--no-progress"], timeout=180)
+        assert done.returncode == 0, done.stderr[-2000:]
+        with np.load(folder / "run" / "final.npz") as saved:
+            digests.add(b"".join(saved[k].tobytes() for k in ("W0", "b0", "W1", "b1", "target_mean", "target_std")))
+    assert len(digests) == 1  # the exactness model: the same bits for every P
+    stopped = tmp_path / "stopped"
+    assert run_mpi(2, ["-m", "shardmill", "train", str(job(stopped, max_steps=9)), "--no-progress"]).returncode == 0
+    text = (stopped / "job.toml").read_text().replace("max_steps = 9", "max_steps = 0")
+    (stopped / "job.toml").write_text(text)
+    resumed = run_mpi(3, ["-m", "shardmill", "train", str(stopped / "job.toml"), "--resume", "--no-progress"],
+                      timeout=180)
+    assert resumed.returncode == 0, resumed.stderr[-2000:]
+    with np.load(stopped / "run" / "final.npz") as saved:
+        assert b"".join(saved[k].tobytes() for k in ("W0", "b0", "W1", "b1", "target_mean", "target_std")) in digests

@@ -26,9 +26,8 @@ inside the step too (benchmarks/README.md)."""
 BLOCK_ELEMENTS = 8192
 """Elements per block of the row-wise and flat kernels (whole rows: max(1, BLOCK_ELEMENTS // columns) rows)."""
 
-# GNU OpenMP reads this when it loads (the first parallel kernel): its threads spin 10 000 times, not 300 000,
-# before they sleep, so they leave the cores to BLAS's threads between kernels (the launcher sets it for ranks too)
-os.environ.setdefault("GOMP_SPINCOUNT", "10000")
+# GNU OpenMP's spin count (GOMP_SPINCOUNT) and OpenBLAS's thread timeout are set when the package is imported,
+# before numpy loads (shardmill/__init__.py, parallel.launch.THREAD_WAITS)
 if "NUMBA_THREADING_LAYER" not in os.environ:
     numba.config.THREADING_LAYER = "omp" if importlib.util.find_spec("numba.np.ufunc.omppool") else "workqueue"
 

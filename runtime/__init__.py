@@ -27,6 +27,11 @@ if _os.environ.get("SHARDMILL_LAUNCHED") and _sys.argv[1:2] == ["train"]:  # a r
 
     _note_early_signals()
 
+from shardmill.parallel.launch import THREAD_WAITS as _THREAD_WAITS  # noqa: E402 (imports no numpy)
+
+# idle BLAS and OpenMP threads sleep soon, set before numpy loads OpenBLAS (a value already set wins)
+_os.environ.update({_name: _os.environ.get(_name, _value) for _name, _value in _THREAD_WAITS.items()})
+
 from importlib.metadata import PackageNotFoundError, version  # noqa: E402
 from typing import Any
 

@@ -128,3 +128,18 @@ def test_status_past_the_limit_is_124_with_a_message(tmp_path, monkeypatch, caps
     monkeypatch.setenv("SHARDMILL_MPIEXEC", str(script))
     assert run_for_status(2, ["-c", "pass"], timeout=0.5) == 124  # 124: timeout(1)'s status, GNU coreutils
     assert "the 2-process job ran past 0.5 s and was stopped" in capsys.readouterr().err
+
+
+def test_importing_shardmill_sets_the_thread_waits_before_numpy_loads() -> None:
+    """A single process (`shardmill bench --threads 2`, `sm.train` in a script) gets the short waits too, not only the
+    ranks the launcher starts. The libraries read them once, when they load: GNU OpenMP's manual says so of
+    GOMP_SPINCOUNT; OpenBLAS reads OPENBLAS_THREAD_TIMEOUT in its start-up scan of the environment (its source, from
+    memory). So the package sets them before it imports numpy; a value the user set wins."""
+    code = ("import json, os, sys; import shardmill; "
+            f"print(json.dumps({{k: os.environ.get(k) for k in {sorted(THREAD_WAITS)!r}}}))")
+    env = {k: v for k, v in os.environ.items() if k not in THREAD_WAITS}
+    out = subprocess.run([sys.executable, "-c", code], env=env, capture_output=True, text=True, check=True).stdout
+    assert json.loads(out) == THREAD_WAITS
+    env["OPENBLAS_THREAD_TIMEOUT"] = "9"
+    out = subprocess.run([sys.executable, "-c", code], env=env, capture_output=True, text=True, check=True).stdout
+    assert json.loads(out) == dict(THREAD_WAITS, OPENBLAS_THREAD_TIMEOUT="9")

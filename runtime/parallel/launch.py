@@ -32,7 +32,8 @@ BLAS_THREAD_VARIABLES = ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THR
 """The variables OpenBLAS, OpenMP builds and MKL read for their thread count when they load."""
 
 THREAD_WAITS = {"OPENBLAS_THREAD_TIMEOUT": "4", "GOMP_SPINCOUNT": "10000"}
-"""How long idle threads spin before they sleep, read when the libraries load (a value already set wins). With T > 1
+"""How long idle threads spin before they sleep, read when the libraries load (a value already set wins; the package
+sets them on import, before numpy loads, and every process started here gets them). With T > 1
 BLAS's threads and the kernels' OpenMP threads take turns on the same cores: OpenBLAS's default spin (2^28 cycles
 after each GEMM) and GNU OpenMP's kept each pool spinning through the other's work. Measured on the 2-core VM,
 784-1024-1024-10, G = 512, Adam, T = 2: step 74.0 ms with both defaults, 21.0 ms with these (20.9 with kernels on

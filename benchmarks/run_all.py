@@ -94,6 +94,10 @@ def targets(results: dict[str, Any]) -> list[dict[str, Any]]:
             out.append({"name": f"threads_layout {name}", "value": value,
                         "target": f"{'>=' if at_least else '<='} {limit}",
                         "met": value >= limit if at_least else value <= limit})
+    inside = results.get("step_kernels", {}).get("forward_backward_outside_blas_ms", {})
+    if inside.get("T2_over_T1") is not None:
+        out.append({"name": "step_kernels forward + backward outside BLAS, T2 / T1", "value": inside["T2_over_T1"],
+                    "target": "<= 0.6", "met": inside["T2_over_T1"] <= 0.6})
     start = results.get("cold_start", {})
     if "cold_s" in start:
         for phase in ("cold", "warm"):
@@ -125,6 +129,7 @@ def main(argv: list[str] | None = None) -> int:
         "layers_cost": ([str(BENCHMARKS / "layers_cost.py"), *quick], 240 if args.quick else 600),
         "rank_memory": ([str(BENCHMARKS / "rank_memory.py")], 300),
         "kernel_threads": ([str(BENCHMARKS / "kernel_threads.py"), *quick], 120 if args.quick else 300),
+        "step_kernels": ([str(BENCHMARKS / "step_kernels.py"), *quick], 120 if args.quick else 300),
         "variants_packing": ([str(BENCHMARKS / "variants_packing.py"), *quick], 240 if args.quick else 600),
         "threads_layout": ([str(BENCHMARKS / "threads_layout.py"), *quick,  # a 16-core node: its splits too
                             *(["--cores", str(most)] if (most := max(int(p) for p in args.sizes.split(","))) >= 4

@@ -157,6 +157,35 @@ def column_sums(dZ, db):
             db[j] += dZ[i, j]
 
 
+@njit(cache=True, nogil=True)
+def backward_block(Z, A, D, code, rows, k, partial):
+    """Block k of :func:`backward_sums`: rows k·rows … of D ← f'(Z) ⊙ D, then their column sums into ``partial[k]``
+    (while the block is still in cache)."""
+    lo = k * rows
+    hi = min(Z.shape[0], lo + rows)
+    backward(Z[lo:hi], A[lo:hi], D[lo:hi], code)
+    column_sums(D[lo:hi], partial[k])
+
+
+@njit(cache=True, nogil=True)
+def add_blocks(partial, db):
+    """db_j = Σ_k partial[k, j], k in order: the block sums joined. partial: (blocks, m); db: (m,) overwritten."""
+    db[:] = partial[0]
+    for k in range(1, partial.shape[0]):
+        for j in range(db.size):
+            db[j] += partial[k, j]
+
+
+@njit(cache=True, nogil=True)
+def backward_sums(Z, A, D, code, rows, partial, db):
+    """D ← f'(Z) ⊙ D (:func:`backward`) and db = its column sums, in one pass over blocks of ``rows`` rows:
+    each block's sums into ``partial`` ((⌈n/rows⌉, m), scratch), then joined in block order (:func:`add_blocks`).
+    The blocks depend on the shape alone, so the threaded form (``threaded.backward_sums``) has these bits."""
+    for k in range(partial.shape[0]):
+        backward_block(Z, A, D, code, rows, k, partial)
+    add_blocks(partial, db)
+
+
 def code_of(name: str) -> int:
     """Activation code for a name from :data:`CODES`."""
     return CODES[name]

@@ -23,6 +23,10 @@ from numba import njit, prange
 from shardmill.kernels import activations, optim
 from shardmill.kernels.dispatch import BLOCK_ELEMENTS, parallel, row_block, threads
 
+SUM_BLOCK_ELEMENTS = 16384
+"""Values per block of the fused activation backward and bias gradient (64 KiB of float32: a block's sums are
+formed while it is in cache; 32 blocks of a (512, 1024) delta, whose partial sums cost 1/16 of the pass to join)."""
+
 # --- the parallel forms: each runs the serial kernel on fixed blocks --------------------------------------------
 
 @njit(cache=True, nogil=True, parallel=True)
@@ -37,6 +41,14 @@ def activation_blocks(Z, b, A, D, code, rows, backward):
             activations.backward(Z[lo:hi], A[lo:hi], D[lo:hi], code)
         else:
             activations.bias_forward(Z[lo:hi], b, A[lo:hi], code)
+
+
+@njit(cache=True, nogil=True, parallel=True)
+def backward_sums_blocks(Z, A, D, code, rows, partial, db):
+    """:func:`activations.backward_sums` with its blocks over the threads; the join stays in block order."""
+    for k in prange(partial.shape[0]):
+        activations.backward_block(Z, A, D, code, rows, k, partial)
+    activations.add_blocks(partial, db)
 
 
 @njit(cache=True, nogil=True, parallel=True)
@@ -85,6 +97,26 @@ def backward(Z: np.ndarray, A: np.ndarray, D: np.ndarray, code: int) -> None:
         activation_blocks(Z, Z[0], A, D, code, row_block(Z.shape[1]), True)
     else:
         activations.backward(Z, A, D, code)
+
+
+def backward_sums(Z: np.ndarray, A: np.ndarray, D: np.ndarray, code: int, db: np.ndarray) -> None:
+    """D ← f'(Z) ⊙ D and db = Σ_rows D, fused (``activations.backward_sums``); Z, A, D: (n, m), db: (m,). Blocks of
+    :func:`sum_rows` rows: the same bits on one thread and on many."""
+    n, m = Z.shape
+    rows = sum_rows(m)
+    partial = np.empty((max(1, -(-n // rows)), m), dtype=D.dtype)
+    if n == 0:
+        db[:] = 0
+    elif parallel(Z.size):
+        backward_sums_blocks(Z, A, D, code, rows, partial, db)
+    else:
+        activations.backward_sums(Z, A, D, code, rows, partial, db)
+
+
+def sum_rows(columns: int) -> int:
+    """Rows per block of :func:`backward_sums`: :data:`SUM_BLOCK_ELEMENTS` values, whole rows; the shape alone
+    decides (never T), so the sums' bits do not depend on the thread count."""
+    return max(1, SUM_BLOCK_ELEMENTS // max(columns, 1))
 
 
 def column_sums(dZ: np.ndarray, db: np.ndarray) -> None:
@@ -136,3 +168,4 @@ def warm_up(dtype: np.dtype) -> None:
     b = np.zeros(2, dtype=dtype)
     activation_blocks(Z, b, Z, Z, activations.RELU, 1, False)
     activation_blocks(Z, b, Z, Z.copy(), activations.RELU, 1, True)
+    backward_sums_blocks(Z, Z, Z.copy(), activations.RELU, 1, np.zeros((2, 2), dtype=dtype), b)

@@ -104,3 +104,39 @@ def test_dispatched_row_kernels_match_the_serial_kernels_above_the_threshold(two
     act.column_sums(Ds, serial)
     threaded.column_sums(Dp, par)
     assert serial.tobytes() == par.tobytes()
+
+
+@pytest.mark.parametrize("dtype", [np.float32, np.float64])
+@pytest.mark.parametrize("code", [act.RELU, act.TANH, act.IDENTITY])
+@pytest.mark.parametrize("shape", [(512, 1024), (700, 513), (3, 5), (1, 1024)])
+def test_fused_backward_and_bias_gradient_match_numpy_and_have_one_set_of_bits(dtype, code, shape, two_threads):
+    """D ← f'(Z) ⊙ D and db = Σ_rows D in one pass over fixed blocks: against NumPy's elementwise product and
+    ``np.sum(axis=0)`` in float64 (the textbook bias gradient, common practice), and bit for bit between the serial
+    form and the threaded one (blocks fixed by the shape, joined in block order)."""
+    Z0, b, D0 = draws(shape, dtype, 21), draws(shape[1], dtype, 22), draws(shape, dtype, 23)
+    Z, A = Z0.copy(), np.empty_like(Z0)
+    act.bias_forward(Z, b, A, code)
+    derivative = {act.RELU: (Z > 0).astype(np.float64), act.TANH: 1.0 - A.astype(np.float64) ** 2,
+                  act.IDENTITY: np.ones(shape)}[code]
+    expected = derivative * D0.astype(np.float64)
+    Ds, dbs = D0.copy(), np.full(shape[1], np.nan, dtype)
+    rows = threaded.sum_rows(shape[1])
+    act.backward_sums(Z, A, Ds, code, rows, np.empty((-(-shape[0] // rows), shape[1]), dtype), dbs)
+    tol = 1e-5 if dtype == np.float32 else 1e-12
+    np.testing.assert_allclose(Ds, expected, rtol=tol, atol=tol)
+    np.testing.assert_allclose(dbs, expected.sum(axis=0), rtol=tol, atol=tol * np.abs(expected).sum(axis=0).max())
+    Dp, dbp = D0.copy(), np.full(shape[1], np.nan, dtype)
+    assert dispatch.parallel(Z.size) == (Z.size >= dispatch.MIN_ELEMENTS)
+    threaded.backward_sums(Z, A, Dp, code, dbp)  # the threaded form for the large shapes, serial for the small
+    assert Ds.tobytes() == Dp.tobytes() and dbs.tobytes() == dbp.tobytes()
+    Dq, dbq = D0.copy(), np.empty(shape[1], dtype)
+    partial = np.empty((-(-shape[0] // rows), shape[1]), dtype)
+    threaded.backward_sums_blocks(Z, A, Dq, code, rows, partial, dbq)  # forced threaded form, any size
+    assert dbs.tobytes() == dbq.tobytes()
+
+
+def test_fused_backward_of_no_rows_gives_a_zero_bias_gradient():
+    Z = np.zeros((0, 4), np.float32)
+    db = np.full(4, np.nan, np.float32)
+    threaded.backward_sums(Z, Z, Z.copy(), act.RELU, db)
+    assert db.tolist() == [0.0] * 4

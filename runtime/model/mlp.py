@@ -404,16 +404,18 @@ class Workspace:
         dWs, dbs = m.views(grads)
         dGs, dBs = m.norm_views(grads)
         dZ, free = self.delta(0, n, m.sizes[-1]), 1  # free: the ping-pong buffer dZ is not in
+        summed = False  # whether db_l was formed with dZ_l (the plain hidden layer's fused backward)
         for l in reversed(range(m.n_layers)):
             np.matmul(self.A[l][:n].T, dZ, out=dWs[l])
-            threaded.column_sums(dZ, dbs[l])
+            if not summed:
+                threaded.column_sums(dZ, dbs[l])
             done = dZ
             if l > 0:
                 dA = self.delta(free, n, m.sizes[l])
                 np.matmul(dZ, m.weights[l].T, out=dA)
                 if l < m.n_layers - 1 and m.skips[l]:
                     layers.residual_backward(dA, self.saved(n, m.sizes[l]))
-                dZ = self.hidden_backward(l - 1, n, dA, dGs[l - 1], dBs[l - 1])
+                dZ, summed = self.hidden_backward(l - 1, n, dA, dGs[l - 1], dBs[l - 1], dbs[l - 1])
                 free = 1 - free
             elif m.embeddings:
                 dA = self.delta(free, n, m.sizes[0])
@@ -431,9 +433,10 @@ class Workspace:
         return self._saved[: n * width].reshape(n, width)
 
     def hidden_backward(self, h: int, n: int, D: np.ndarray, dgain: np.ndarray | None,
-                        dshift: np.ndarray | None) -> np.ndarray:
-        """∂loss/∂A_{h+1} in D (n, m) → dZ_h in D, returned; the norm's gain and shift gradients into ``dgain``,
-        ``dshift``. The skip's share of D is kept for :meth:`backward`."""
+                        dshift: np.ndarray | None, db: np.ndarray) -> tuple[np.ndarray, bool]:
+        """∂loss/∂A_{h+1} in D (n, m) → dZ_h in D; the norm's gain and shift gradients into ``dgain``, ``dshift``.
+        Returns (D, whether the bias gradient ``db`` (m,) = Σ_rows dZ_h is formed too: yes without norm, where
+        the activation's backward and the sums are one pass). The skip's share of D is kept for :meth:`backward`."""
         m = self.model
         width = D.shape[1]
         if self.dropped[h]:
@@ -442,13 +445,13 @@ class Workspace:
         elif m.skips[h]:
             layers.copy_rows(D, self.saved(n, width))
         if not m.has_norm(h):
-            threaded.backward(self.Z[h][:n], self.H[h][:n], D, m.hidden_codes[h])
-            return D
+            threaded.backward_sums(self.Z[h][:n], self.H[h][:n], D, m.hidden_codes[h], db)
+            return D, True
         if self.norm_input is not None:
             self.norm_input[h][:n] = D
         layers.norm_backward(self.Z[h][:n], self.stats[h][:n], m.gains[h], m.shifts[h], self.H[h][:n], D, dgain,
                              dshift, self._row_sums, m.hidden_codes[h])
-        return D
+        return D, False
 
     def preactivations(self, h: int, n: int) -> np.ndarray:
         """The input of hidden layer h's activation for the last forward pass, (n, m): Z, or the norm's

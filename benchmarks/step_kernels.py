@@ -18,7 +18,9 @@ Z = A W per layer; backward: dW = Aᵀ dZ per layer and dA = dZ Wᵀ above the f
 cost of handing the cores between BLAS's threads and the kernels' threads. Ratios T2 / T1 below 1 are gains.
 
 ``parallel_loop_us``: what a parallel loop over a tiny array costs right after another one and right after a GEMM,
-during which the kernels' threads went to sleep: the price of each hand-over from BLAS's threads to ours.
+during which the kernels' threads went to sleep: the price of each hand-over from BLAS's threads to ours; and
+``triad_us``, STREAM's triad over the values of one (512, 1024) layer on the kernel threads, whose T2 / T1 is the
+most any kernel that streams its arrays through memory can gain from a second thread here.
 
 Usage: ``python benchmarks/step_kernels.py [--quick] [--rounds N] [--steps N]``.
 """
@@ -132,6 +134,29 @@ def phase_floors(trainer: Any, repeats: int) -> dict[str, float]:
             "backward": median([time_call(backward) for _ in range(repeats)])}
 
 
+def stream_triad_us(repeats: int = 50) -> float:
+    """µs of a = b + s·c over 524,288 float32 values in blocks of 8,192 on the kernel threads (the access pattern
+    of an activation kernel on a (512, 1024) layer: two arrays read, one written; STREAM's triad, McCalpin 1995),
+    median: what memory lets any element-wise kernel of that size reach at this thread count."""
+    import numpy as np
+    from numba import njit, prange
+
+    @njit(parallel=True, nogil=True)
+    def triad(a, b, c, s):
+        for k in prange(a.size // 8192):
+            for i in range(k * 8192, (k + 1) * 8192):
+                a[i] = b[i] + s * c[i]
+
+    a, b, c = np.zeros(524288, np.float32), np.ones(524288, np.float32), np.ones(524288, np.float32)
+    triad(a, b, c, np.float32(0.5))
+    times = []
+    for _ in range(repeats):
+        start = time.perf_counter()
+        triad(a, b, c, np.float32(0.5))
+        times.append(time.perf_counter() - start)
+    return 1e6 * median(times)
+
+
 def wake_cost(repeats: int = 200) -> dict[str, float]:
     """µs of a parallel loop over a tiny array (64 blocks of one row): straight after another one (the kernel
     threads still spinning), and straight after a GEMM (they went to sleep during it, as in the step); medians."""
@@ -150,7 +175,7 @@ def wake_cost(repeats: int = 200) -> dict[str, float]:
         start = time.perf_counter()
         threaded.activation_blocks(Z, b, Z, Z, activations.RELU, 1, False)
         after_gemm.append(time.perf_counter() - start)
-    return {"hot_us": 1e6 * median(hot), "after_gemm_us": 1e6 * median(after_gemm)}
+    return {"hot_us": 1e6 * median(hot), "after_gemm_us": 1e6 * median(after_gemm), "triad_us": stream_triad_us()}
 
 
 def child(threads: int, steps: int) -> dict[str, Any]:
@@ -222,8 +247,9 @@ def summarise(runs: dict[int, list[dict[str, Any]]]) -> dict[str, Any]:
         table[phase] = row
     fb = {t: med(t, "forward", "outside_blas_ms") + med(t, "backward", "outside_blas_ms") for t in (1, 2)}
     over = {t: med(t, "forward", "over_floor_ms") + med(t, "backward", "over_floor_ms") for t in (1, 2)}
-    loop = {t: {key: median([run["parallel_loop_us"][key] for run in runs[t]]) for key in ("hot_us", "after_gemm_us")}
-            for t in (1, 2)}
+    loop: dict[Any, Any] = {t: {key: median([run["parallel_loop_us"][key] for run in runs[t]])
+                                for key in ("hot_us", "after_gemm_us", "triad_us")} for t in (1, 2)}
+    loop["triad_T2_over_T1"] = round(loop[2]["triad_us"] / loop[1]["triad_us"], 3)
     return {"phases": table, "parallel_loop_us": loop, "forward_backward_outside_blas_ms": ratio_row(fb[1], fb[2]),
             "forward_backward_over_floor_ms": ratio_row(over[1], over[2])}
 

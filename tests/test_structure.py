@@ -7,6 +7,7 @@ These are checks of our own conventions, not of outside facts: each says which c
 from __future__ import annotations
 
 import ast
+import json
 from pathlib import Path
 
 import pytest
@@ -146,3 +147,40 @@ def test_no_loss_or_activation_name_is_compared_outside_its_table(kind: str) -> 
                 found += [f"{name}:{node.lineno} {k.value!r}" for k in node.keys
                           if isinstance(k, ast.Constant) and k.value in names]
     assert found == []
+
+
+LEAN_PROBE = """\
+import json, sys
+sys.argv = ["shardmill", "train", "job.toml"]
+from shardmill.commands.cli import main
+try:
+    main()
+finally:
+    print(json.dumps(sorted({name.split(".")[0] for name in sys.modules})))
+"""
+
+
+def test_a_training_rank_imports_no_plotting_table_or_export_library(tmp_path: Path) -> None:
+    """Issue 17's lean ranks: `shardmill train` on a CSV job with categories, layer norm and dropout loads none
+    of the plotting, table-format or export libraries (they load where a command needs them: curves, parquet,
+    export). SciPy is allowed: Numba imports it itself when it loads (numba/__init__.py, _ensure_critical_deps)."""
+    import subprocess
+    import sys
+
+    import numpy as np
+
+    rng = np.random.default_rng(0)
+    lines = ["a,b,site,label"] + [f"{x:.4f},{y:.4f},{'north' if x > 0 else 'south'},{int(x + y > 0)}"
+                                  for x, y in rng.normal(size=(64, 2))]
+    (tmp_path / "rows.csv").write_text("\n".join(lines) + "\n")
+    (tmp_path / "job.toml").write_text(
+        '[model]\nlayers = [3, 8, 2]\nnorm = "layer"\ndropout = 0.1\n'
+        '[data]\ninputs = "rows.csv"\ntarget = "label"\ncategorical = ["site"]\n'
+        '[run]\nepochs = 1\nglobal_batch = 16\nworkdir = "run"\n')
+    done = subprocess.run([sys.executable, "-c", LEAN_PROBE], cwd=tmp_path, capture_output=True, text=True,
+                          timeout=240)
+    assert done.returncode == 0, done.stderr[-2000:]
+    loaded = set(json.loads(done.stdout.strip().splitlines()[-1]))
+    assert "shardmill" in loaded and "numba" in loaded  # the probe saw a real training process
+    heavy = {"matplotlib", "onnx", "onnxruntime", "pyarrow", "pandas", "polars", "plotnine", "sklearn", "PIL"}
+    assert loaded & heavy == set()

@@ -4,8 +4,11 @@ Each parallel kernel cuts its arrays into blocks whose size does not depend on T
 (``activations``, ``optim``; ``data.take_rows`` has its own) on each block in a ``prange`` loop. Element-wise
 work (bias + activation, its backward, the optimizer updates, taking rows) gives every element the same operations
 whichever block it lies in, so **every parallel kernel has the bits of its serial form for any T**
-(``tests/test_threaded.py``). The bias gradient's column sums stay serial (:func:`column_sums`: a parallel form was
-slower than one thread). take_rows' first non-finite row is the first over the blocks, read in block order.
+(``tests/test_threaded.py``). A hidden layer's bias gradient is formed with its activation's backward
+(:func:`backward_sums`): each block's column sums while the block is in cache, joined in block order, so it too
+has one set of bits for every T. The output layer's and the normed layers' column sums stay serial
+(:func:`column_sums`: a parallel form over whole columns was slower than one thread). take_rows' first
+non-finite row is the first over the blocks, read in block order.
 
 Dispatch (the plain functions below; the rule is ``dispatch.py``'s): the serial kernel when this process runs one
 kernel thread (``dispatch.use_threads``), when the array has fewer than ``dispatch.MIN_ELEMENTS`` elements

@@ -29,7 +29,7 @@ from typing import Any
 
 import numpy as np
 from shardmill.config import Job
-from shardmill.scaling import costmodel
+from shardmill.scaling import costmodel, fitting
 from shardmill.scaling.measure import COMM_BUDGET_S
 from shardmill.scaling.worker import WARMUP_STEPS
 from shardmill.timing import PHASES
@@ -155,8 +155,8 @@ EXTRA_ASSUMPTIONS: list[str] = [
 """What this study adds to costmodel.ASSUMPTIONS, one sentence each."""
 
 
-def fit_record(fit: costmodel.Fit) -> dict[str, Any]:
-    """A costmodel.Fit as plain JSON values (bandwidth None when β = 0)."""
+def fit_record(fit: fitting.Fit) -> dict[str, Any]:
+    """A fitting.Fit as plain JSON values (bandwidth None when β = 0)."""
     bandwidth = fit.bandwidth_bytes_per_s
     return {
         "algorithm": fit.algorithm,
@@ -174,7 +174,7 @@ def fit_record(fit: costmodel.Fit) -> dict[str, Any]:
     }
 
 
-def _cheapest_rms_error(fit: costmodel.Fit) -> float:
+def _cheapest_rms_error(fit: fitting.Fit) -> float:
     """RMS relative error of best_allreduce with the fitted α, β, γ against the fitted times."""
     errors = [(costmodel.best_allreduce(fit.p, n, fit.alpha, fit.beta, fit.gamma)[1] - t) / t
               for n, t in zip(fit.sizes_bytes, fit.times_s, strict=True)]
@@ -223,7 +223,7 @@ def communication_model(points: list[dict[str, Any]], raws: dict[int, dict[str, 
     sizes = [m["n_bytes"] for m in timings]
     times = [m["median_s"] for m in timings]
     gamma = raws[largest]["gamma_s_per_byte"]
-    candidates = [costmodel.fit_alpha_beta(largest, sizes, times, algorithm=name, gamma=gamma)
+    candidates = [fitting.fit_alpha_beta(largest, sizes, times, algorithm=name, gamma=gamma)
                   for name in costmodel.ALGORITHMS]
     cheapest_errors = [_cheapest_rms_error(f) for f in candidates]
     choice = min(range(len(candidates)), key=lambda i: cheapest_errors[i])

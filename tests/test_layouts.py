@@ -58,6 +58,9 @@ def test_scale_layouts_runs_each_layout_and_names_the_best(tmp_path) -> None:
     assert projection["available"] and projection["nodes"] == [1, 4, 32]
     assert projection["network"]["name"] == "measured (fit at P=2)"
     assert set(projection["fit"]["parts"]) == {"gemm", "other", "update"}
+    assert not any(text.startswith("One rank per core") for text in projection["assumptions"])
+    assert any("intra-node and inter-node messages cost the same" in text.lower()
+               for text in projection["assumptions"])
     rows = {(row["layout"], row["nodes"]): row for row in projection["rows"]}
     assert set(rows) == {(layout, n) for layout in ("1x1", "1x2", "2x1") for n in (1, 4, 32)}
     for (layout, n), row in rows.items():
@@ -255,3 +258,12 @@ def test_the_table_warns_when_the_fit_misses_a_measured_layout() -> None:
         assert lines[2].split() == ["1", "1x1", "1", "10.00", "100", "1.000"]
         assert any(line.startswith("warning: the threaded compute term misses") for line in lines) == warned
     assert projection_lines({"available": False, "reason": "why"}) == ["no projection to many nodes: why"]
+
+
+def test_project_nodes_are_read_as_node_counts() -> None:
+    from shardmill.scaling.driver import project_nodes
+
+    assert project_nodes(None, [(1, 2), (2, 1)]) == [1, 2, 4, 16, 64] and project_nodes(None, None) is None
+    assert project_nodes("64,1,4", [(1, 1), (1, 2)]) == [1, 4, 64]
+    with pytest.raises(JobError, match=r"`--project-nodes` must be comma-separated node counts ≥ 1 like 1,2,4; got"):
+        project_nodes("0,2", [(1, 1), (1, 2)])

@@ -38,14 +38,15 @@ class RunFailed(Exception):
         self.code = code
 
 
-def parse_counts(text: str, option: str) -> list[int]:
-    """Comma-separated process counts such as "1,2,4" as a sorted list of distinct ints ≥ 1."""
+def parse_counts(text: str, option: str, what: str = "process counts") -> list[int]:
+    """Comma-separated counts (`what`: process counts, node counts) such as "1,2,4" as a sorted list of distinct
+    ints ≥ 1."""
     try:
         counts = [int(part) for part in str(text).split(",") if part.strip()]
     except ValueError:
         counts = []
     if not counts or min(counts) < 1:
-        raise JobError(f"`{option}` must be comma-separated process counts ≥ 1 like 1,2,4; got {text!r}")
+        raise JobError(f"`{option}` must be comma-separated {what} ≥ 1 like 1,2,4; got {text!r}")
     return sorted(set(counts))
 
 
@@ -129,7 +130,7 @@ def project_nodes(text: str | None, layouts: list[tuple[int, int]] | None) -> li
     if layouts is None:
         raise JobError(f"`--project-nodes` projects the layouts of `--layouts`, which was not given; got "
                        f"--project-nodes {text!r}")
-    counts = parse_counts(text, "--project-nodes")
+    counts = parse_counts(text, "--project-nodes", "node counts")
     check_fittable(layouts)
     return counts
 

@@ -283,4 +283,5 @@ def layout_projection(job: Job, raws: Mapping[tuple[int, int], dict[str, Any]], 
             "fit": compute.record(), "network": dict(net, gamma_s_per_byte=gamma), "update": update,
             "collectives": [{"kind": c.kind, "n_bytes": c.n_bytes, "calls": c.calls} for c in collectives],
             "rows": rows, "best": best_per_node_count(rows),
-            "assumptions": list(costmodel.ASSUMPTIONS) + list(ASSUMPTIONS)}
+            "assumptions": [text for text in costmodel.ASSUMPTIONS if not text.startswith("One rank per core")]
+            + list(ASSUMPTIONS)}  # the threaded term's own replace the process study's one rank per core

@@ -26,18 +26,17 @@ from shardmill.scaling.costmodel import (
     COMPACT_SCALE_BLOCK,
     NO_COMMUNICATION,
     Collective,
-    Fit,
     allgather_time,
     allreduce_time,
     best_allreduce,
     best_collective,
-    fit_alpha_beta,
     parse_network,
     project,
     project_step,
     reduce_scatter_time,
     step_collectives,
 )
+from shardmill.scaling.fitting import Fit, fit_alpha_beta
 from shardmill.scaling.measure import measure_reduction_gamma
 
 MIB = 1 << 20
@@ -524,7 +523,7 @@ def test_project_keeps_its_replicated_rows() -> None:
 @given(seed=st.integers(min_value=0, max_value=2**32 - 1), columns=st.integers(min_value=1, max_value=3))
 def test_non_negative_fit_matches_scipy_nnls(seed, columns):
     from scipy.optimize import nnls  # Lawson & Hanson's active-set NNLS, as SciPy ships it
-    from shardmill.scaling.costmodel import _non_negative_least_squares
+    from shardmill.scaling.fitting import _non_negative_least_squares
 
     rng = np.random.default_rng(seed)
     A = rng.standard_normal((8, columns))
@@ -539,8 +538,8 @@ def test_the_fit_needs_no_scipy():
     # `shardmill scale` after the quickstart install (no test extra): the cost model must not import SciPy.
     # A None entry in sys.modules makes every `import scipy…` fail (Python's import system), as without SciPy.
     code = ("import sys\nfor name in ('scipy', 'scipy.optimize'):\n    sys.modules[name] = None\n"
-            "from shardmill.scaling import costmodel\n"
-            "fit = costmodel.fit_alpha_beta(2, [1e3, 1e5, 1e7], [1e-5, 2e-5, 1e-3])\n"
+            "from shardmill.scaling import fitting\n"
+            "fit = fitting.fit_alpha_beta(2, [1e3, 1e5, 1e7], [1e-5, 2e-5, 1e-3])\n"
             "assert fit.alpha >= 0 and fit.beta >= 0\n")
     done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=60)
     assert done.returncode == 0, done.stderr

@@ -1,4 +1,5 @@
-"""Step timing against the BLAS floor (the same process timing only the GEMMs of the same shapes)."""
+"""Step timing against the BLAS floor (the same process timing only the GEMMs of the same shapes:
+`scaling.measure.gemm_floor_step`, which the layouts study times too)."""
 
 from __future__ import annotations
 
@@ -12,7 +13,8 @@ from shardmill.machine import machine, resident_bytes
 from shardmill.model.losses import LOSSES
 from shardmill.parallel.comm import Comm
 from shardmill.parallel.exchange import blas_threads
-from shardmill.timing import median, slowest_call, time_call
+from shardmill.scaling.measure import gemm_floor_step
+from shardmill.timing import median, slowest_call
 from shardmill.training.trainer import Trainer
 from shardmill.training.warmup import warm_up_kernels
 from threadpoolctl import threadpool_limits
@@ -25,30 +27,6 @@ def synthetic_dataset(layers: list[int], loss: str, rows: int, dtype: str, seed:
     targets = LOSSES[loss].synthetic_targets(rng, rows, layers[-1], dtype)
     split = Split(train=np.arange(rows, dtype=np.int64), validation=np.zeros(0, dtype=np.int64))
     return Dataset(X=X, targets=targets, split=split, mean=np.zeros(layers[0]), inv_std=np.ones(layers[0]))
-
-
-def gemm_floor_step(trainer: Trainer, first_layer_dA: bool = True) -> float:
-    """Seconds for the GEMMs of one step on this rank's local batch shapes.
-
-    Times the three GEMMs per layer (Z = A W, dW = Aᵀ dZ, dA = dZ Wᵀ). With ``first_layer_dA`` it includes
-    the first layer's dA (the gradient with respect to the inputs), which training never needs: that floor
-    is *more* work than the step does. Without it, the floor is exactly the GEMMs the step runs.
-    """
-    ws, model = trainer.ws, trainer.model
-    n = ws.rows
-    grads = trainer.grads
-    dWs, _ = model.views(grads)
-
-    def gemms() -> None:
-        for l in range(model.n_layers):
-            np.matmul(ws.A[l][:n], model.weights[l], out=ws.Z[l][:n])
-        for l in reversed(range(model.n_layers)):
-            dZ = ws.delta(0, n, model.sizes[l + 1])
-            np.matmul(ws.A[l][:n].T, dZ, out=dWs[l])
-            if l > 0 or first_layer_dA:
-                np.matmul(dZ, model.weights[l].T, out=ws.delta(1, n, model.sizes[l]))
-
-    return time_call(gemms)
 
 
 def run_bench(layers: list[int], batch: int, dtype: str = default("model.dtype"), threads: int = default("run.threads"),

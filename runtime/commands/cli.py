@@ -166,6 +166,8 @@ def build_parser() -> argparse.ArgumentParser:
                    help="instead of the process counts: compare these ranks × threads layouts, e.g. 1x2,2x1")
     p.add_argument("--network", default=None, metavar="BW,LAT",
                    help="project to this network, e.g. 100Gb/s,2us (default: the measured one)")
+    p.add_argument("--project-nodes", default=None, metavar="N1,N2,…",
+                   help="with --layouts: node counts to project every layout to (default 1,2,4,16,64)")
     p.add_argument("--project", default="8,16,64,256,1024", metavar="P1,P2,…", help="process counts to project to")
     p.add_argument("--out-dir", type=Path, default=Path("scaling"), metavar="DIR",
                    help="folder for scaling.json, scaling.csv, the plots and logs")

@@ -24,6 +24,7 @@ from shardmill.config import Job, load_job
 from shardmill.errors import JobError
 from shardmill.parallel.launch import run_ranks
 from shardmill.scaling import costmodel
+from shardmill.scaling.layoutmodel import DEFAULT_NODES, check_fittable
 from shardmill.scaling.layouts import compare_layouts, parse_layouts
 from shardmill.scaling.layouts import text_table as layouts_table
 from shardmill.scaling.study import build_study, write_study
@@ -37,14 +38,15 @@ class RunFailed(Exception):
         self.code = code
 
 
-def parse_counts(text: str, option: str) -> list[int]:
-    """Comma-separated process counts such as "1,2,4" as a sorted list of distinct ints ≥ 1."""
+def parse_counts(text: str, option: str, what: str = "process counts") -> list[int]:
+    """Comma-separated counts (`what`: process counts, node counts) such as "1,2,4" as a sorted list of distinct
+    ints ≥ 1."""
     try:
         counts = [int(part) for part in str(text).split(",") if part.strip()]
     except ValueError:
         counts = []
     if not counts or min(counts) < 1:
-        raise JobError(f"`{option}` must be comma-separated process counts ≥ 1 like 1,2,4; got {text!r}")
+        raise JobError(f"`{option}` must be comma-separated {what} ≥ 1 like 1,2,4; got {text!r}")
     return sorted(set(counts))
 
 
@@ -73,6 +75,7 @@ def cmd_scale(args: argparse.Namespace, job: Job | None = None) -> int:
         raise JobError(f"`--sizes` must include 1, the serial baseline of speedup and efficiency; got {args.sizes!r}")
     project_to = parse_counts(args.project, "--project")
     network = parse_network_option(args.network)
+    nodes = project_nodes(getattr(args, "project_nodes", None), layouts)
     if Comm().size > 1:
         raise JobError("`shardmill scale` starts its own mpiexec runs; start it as one process, without mpiexec")
     sets = list(getattr(args, "sets", []))
@@ -88,7 +91,7 @@ def cmd_scale(args: argparse.Namespace, job: Job | None = None) -> int:
     (out / "logs").mkdir(parents=True, exist_ok=True)
 
     if layouts is not None:
-        return scale_layouts(args, job, layouts, out, timeout, sets)
+        return scale_layouts(args, job, layouts, out, timeout, sets, nodes, network)
     raws: dict[int, dict[str, Any]] = {}
     bar = _progress(len(ranks), show=not getattr(args, "no_progress", False))
     try:
@@ -116,9 +119,27 @@ def cmd_scale(args: argparse.Namespace, job: Job | None = None) -> int:
     return 0
 
 
+def project_nodes(text: str | None, layouts: list[tuple[int, int]] | None) -> list[int] | None:
+    """`--project-nodes` as node counts (default `layoutmodel.DEFAULT_NODES` with `--layouts`, None without).
+
+    JobError before any run when given without `--layouts`, or when the layouts hold fewer than two of one process
+    (the threaded compute term is fitted to those); without the option such layouts only skip the projection.
+    """
+    if text is None:
+        return list(DEFAULT_NODES) if layouts is not None else None
+    if layouts is None:
+        raise JobError(f"`--project-nodes` projects the layouts of `--layouts`, which was not given; got "
+                       f"--project-nodes {text!r}")
+    counts = parse_counts(text, "--project-nodes", "node counts")
+    check_fittable(layouts)
+    return counts
+
+
 def scale_layouts(args: argparse.Namespace, job: Job, layouts: list[tuple[int, int]], out: Path, timeout: float,
-                  sets: list[str]) -> int:
-    """`scale --layouts`: each ranks × threads layout timed at the job's global batch; the table, the best."""
+                  sets: list[str], nodes: list[int] | None = None,
+                  network: tuple[float, float] | None = None) -> int:
+    """`scale --layouts`: each ranks × threads layout timed at the job's global batch (with its GEMM floor); the
+    table, the best, and each layout projected to `nodes` node counts."""
     if job.run.global_batch < max(P for P, _ in layouts):
         raise JobError(f"`run.global_batch` = {job.run.global_batch} is smaller than the largest process count "
                        f"{max(P for P, _ in layouts)} of `--layouts`")
@@ -126,12 +147,12 @@ def scale_layouts(args: argparse.Namespace, job: Job, layouts: list[tuple[int, i
 
     def one(P: int, T: int, tag: str) -> dict[str, Any]:
         raw = run_point(Path(args.job), P, job.run.global_batch, args.steps, T, args.pin, out, timeout, bar, sets,
-                        tag=tag)
+                        tag=tag, gemm_floor=True)
         bar.update(1)
         return raw
 
     try:
-        result = compare_layouts(job, layouts, args.steps, out, one)
+        result = compare_layouts(job, layouts, args.steps, out, one, nodes, network, args.network)
     except RunFailed as failure:
         bar.close()
         print(f"shardmill: error: {failure}", file=sys.stderr, flush=True)
@@ -150,19 +171,19 @@ def _progress(total: int, show: bool):
 
 
 def worker_args(job: Path, global_batch: int, steps: int, threads: int, pin: bool, result: Path,
-                sets: list[str] | tuple[str, ...] = ()) -> list[str]:
-    """Python arguments of one run: `-m shardmill.scaling.worker` with these settings (paths made absolute) and
-    the job's --set assignments."""
+                sets: list[str] | tuple[str, ...] = (), gemm_floor: bool = False) -> list[str]:
+    """Python arguments of one run: `-m shardmill.scaling.worker` with these settings (paths made absolute), the
+    job's --set assignments and, with `gemm_floor`, the GEMM floor timed too (`scale --layouts`)."""
     args = ["-P", "-m", "shardmill.scaling.worker", "--job", str(job.resolve()), "--global-batch", str(global_batch),
             "--steps", str(steps), "--threads", str(threads), "--result", str(result.resolve())]
     for text in sets:
         args += ["--set", text]
-    return args + (["--pin"] if pin else [])
+    return args + (["--pin"] if pin else []) + (["--gemm-floor"] if gemm_floor else [])
 
 
 def run_point(job: Path, p: int, global_batch: int, steps: int, threads: int, pin: bool, out: Path,
               timeout: float, bar: Any = None, sets: list[str] | tuple[str, ...] = (),
-              tag: str | None = None) -> dict[str, Any]:
+              tag: str | None = None, gemm_floor: bool = False) -> dict[str, Any]:
     """Run the worker on p processes and return what its rank 0 wrote (see `worker.run_worker`).
 
     Output of all ranks goes to out/logs/TAG.log (TAG: pP unless given), the record to out/runs/TAG.json. A run
@@ -181,8 +202,9 @@ def run_point(job: Path, p: int, global_batch: int, steps: int, threads: int, pi
 
     with open(log_path, "w") as log, _sigterm_as_interrupt():
         try:
-            done = run_ranks(p, worker_args(job, global_batch, steps, threads, pin, result, sets), threads=threads,
-                             timeout=timeout, stdout=log, stderr=subprocess.STDOUT, while_running=show)
+            done = run_ranks(p, worker_args(job, global_batch, steps, threads, pin, result, sets, gemm_floor),
+                             threads=threads, timeout=timeout, stdout=log, stderr=subprocess.STDOUT,
+                             while_running=show)
         except subprocess.TimeoutExpired:
             raise RunFailed(f"the {p}-process run ran past {timeout:g} s and was stopped; see {log_path}",
                             124) from None

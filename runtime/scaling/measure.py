@@ -1,4 +1,5 @@
-"""What the cost model is fitted to, measured on this machine: allreduce times per message size, and γ.
+"""What the cost model is fitted to, measured on this machine: allreduce times per message size, γ, and the GEMM
+floor of a step (the BLAS part of the threaded compute term, `layoutmodel.py`).
 
 Timed the shardmill way (`shardmill.timing`): a barrier before each call, the slowest rank's seconds, the
 median over repetitions. The formulas these numbers feed are in `costmodel.py`, which needs no MPI.
@@ -11,7 +12,7 @@ from typing import Any
 
 import numpy as np
 from shardmill.scaling.costmodel import check_non_negative
-from shardmill.timing import median, repeat_times
+from shardmill.timing import median, repeat_times, time_call
 
 MESSAGE_SIZES: tuple[int, ...] = tuple(4096 * 4**k for k in range(8))
 """Allreduce message sizes timed at every P > 1, bytes: 4 KiB, 16 KiB, …, 64 MiB (eight sizes)."""
@@ -101,3 +102,29 @@ def time_allreduce(comm: Any, sizes: tuple[int, ...], repeats: int, budget_s: fl
         spent += sum(timing["times_s"]) * (repeats + 1) / repeats  # the warm-up call costs about one more
         timings.append(timing)
     return timings, []
+
+
+def gemm_floor_step(trainer: Any, first_layer_dA: bool = True) -> float:
+    """Seconds for the GEMMs of one step on this rank's local batch shapes, at BLAS's current thread count.
+
+    trainer: a `training.trainer.Trainer` (its workspace, model and gradient buffer are used, not imported here).
+
+    Times the three GEMMs per layer (Z = A W, dW = Aᵀ dZ, dA = dZ Wᵀ). With ``first_layer_dA`` it includes
+    the first layer's dA (the gradient with respect to the inputs), which training never needs: that floor
+    is *more* work than the step does. Without it, the floor is exactly the GEMMs the step runs.
+    """
+    ws, model = trainer.ws, trainer.model
+    n = ws.rows
+    grads = trainer.grads
+    dWs, _ = model.views(grads)
+
+    def gemms() -> None:
+        for l in range(model.n_layers):
+            np.matmul(ws.A[l][:n], model.weights[l], out=ws.Z[l][:n])
+        for l in reversed(range(model.n_layers)):
+            dZ = ws.delta(0, n, model.sizes[l + 1])
+            np.matmul(ws.A[l][:n].T, dZ, out=dWs[l])
+            if l > 0 or first_layer_dA:
+                np.matmul(dZ, model.weights[l].T, out=ws.delta(1, n, model.sizes[l]))
+
+    return time_call(gemms)

@@ -29,7 +29,7 @@ from typing import Any
 
 import numpy as np
 from shardmill.config import Job
-from shardmill.scaling import costmodel
+from shardmill.scaling import costmodel, fitting
 from shardmill.scaling.measure import COMM_BUDGET_S
 from shardmill.scaling.worker import WARMUP_STEPS
 from shardmill.timing import PHASES
@@ -155,8 +155,8 @@ EXTRA_ASSUMPTIONS: list[str] = [
 """What this study adds to costmodel.ASSUMPTIONS, one sentence each."""
 
 
-def fit_record(fit: costmodel.Fit) -> dict[str, Any]:
-    """A costmodel.Fit as plain JSON values (bandwidth None when β = 0)."""
+def fit_record(fit: fitting.Fit) -> dict[str, Any]:
+    """A fitting.Fit as plain JSON values (bandwidth None when β = 0)."""
     bandwidth = fit.bandwidth_bytes_per_s
     return {
         "algorithm": fit.algorithm,
@@ -174,11 +174,26 @@ def fit_record(fit: costmodel.Fit) -> dict[str, Any]:
     }
 
 
-def _cheapest_rms_error(fit: costmodel.Fit) -> float:
+def _cheapest_rms_error(fit: fitting.Fit) -> float:
     """RMS relative error of best_allreduce with the fitted α, β, γ against the fitted times."""
     errors = [(costmodel.best_allreduce(fit.p, n, fit.alpha, fit.beta, fit.gamma)[1] - t) / t
               for n, t in zip(fit.sizes_bytes, fit.times_s, strict=True)]
     return float(np.sqrt(np.mean(np.square(errors))))
+
+
+def network_fit(raw: dict[str, Any]) -> tuple[list[fitting.Fit], list[float], int]:
+    """α and β fitted to one run's allreduce medians with each algorithm's coefficients, and the one to keep.
+
+    raw: a worker record with P > 1 and its "allreduce" timings. Returns the fits (one per costmodel.ALGORITHMS),
+    each one's RMS relative error when every size is priced with the cheapest algorithm, and the index of the
+    smallest (see `communication_model`).
+    """
+    sizes = [m["n_bytes"] for m in raw["allreduce"]]
+    times = [m["median_s"] for m in raw["allreduce"]]
+    candidates = [fitting.fit_alpha_beta(raw["p"], sizes, times, algorithm=name, gamma=raw["gamma_s_per_byte"])
+                  for name in costmodel.ALGORITHMS]
+    cheapest_errors = [_cheapest_rms_error(f) for f in candidates]
+    return candidates, cheapest_errors, min(range(len(candidates)), key=lambda i: cheapest_errors[i])
 
 
 def communication_model(points: list[dict[str, Any]], raws: dict[int, dict[str, Any]], mode: str,
@@ -219,14 +234,8 @@ def communication_model(points: list[dict[str, Any]], raws: dict[int, dict[str, 
                     reason="no process count above 1 was measured, so there is no allreduce to fit alpha and "
                            "beta to; add one to --ranks, e.g. --ranks 1,2")
     largest = max(comm_ps)
-    timings = raws[largest]["allreduce"]
-    sizes = [m["n_bytes"] for m in timings]
-    times = [m["median_s"] for m in timings]
     gamma = raws[largest]["gamma_s_per_byte"]
-    candidates = [costmodel.fit_alpha_beta(largest, sizes, times, algorithm=name, gamma=gamma)
-                  for name in costmodel.ALGORITHMS]
-    cheapest_errors = [_cheapest_rms_error(f) for f in candidates]
-    choice = min(range(len(candidates)), key=lambda i: cheapest_errors[i])
+    candidates, cheapest_errors, choice = network_fit(raws[largest])
     fit = candidates[choice]
     ps = sorted(set(project_to) | set(raws))
     measured = {point["p"]: point for point in points}

@@ -1,6 +1,7 @@
 """One run of a scaling study on P processes: what `mpiexec -n P python -m shardmill.scaling.worker …` runs.
 
-    pin (optional) → Trainer(job) → warm-up → N timed steps → the exchange alone → per-rank record
+    pin (optional) → Trainer(job) → warm-up → N timed steps → the exchange alone → the GEMM floor (optional,
+    `scale --layouts`) → per-rank record
     → gather to rank 0 → allreduce timings over MESSAGE_SIZES and the reduction cost γ → rank 0 writes runs/pP.json
 
 Started by the driver (`driver.run_point`), one process per rank; reads the job, writes one JSON file.
@@ -19,7 +20,13 @@ from typing import Any
 from shardmill.config import load_job
 from shardmill.errors import JobError
 from shardmill.parallel.exchange import resolve_update
-from shardmill.scaling.measure import COMM_BUDGET_S, MESSAGE_SIZES, measure_reduction_gamma, time_allreduce
+from shardmill.scaling.measure import (
+    COMM_BUDGET_S,
+    MESSAGE_SIZES,
+    gemm_floor_step,
+    measure_reduction_gamma,
+    time_allreduce,
+)
 from shardmill.timing import median, repeat_times
 
 WARMUP_STEPS = 2
@@ -114,14 +121,17 @@ def memory() -> dict[str, int]:
 
 
 def run_worker(job_path: Path, global_batch: int, steps: int, threads: int, pin: bool, result: Path,
-               comm_repeats: int = 5, sets: list[str] | tuple[str, ...] = ()) -> int:
+               comm_repeats: int = 5, sets: list[str] | tuple[str, ...] = (), gemm_floor: bool = False) -> int:
     """Time `steps` training steps of the job on every rank of MPI.COMM_WORLD; rank 0 writes `result` (JSON).
 
     Pinning happens before the trainer is built. After the kernel warm-up and WARMUP_STEPS untimed steps
     the phase timer is reset and the timed steps run between a barrier and the last step's end. Then the
     exchange is timed alone (`exchange_alone`), every rank's record is gathered once to rank 0 (lowercase
     gather: a small control message after timing), the allreduce is timed over MESSAGE_SIZES (P > 1) and
-    rank 0 measures γ at the message size.
+    rank 0 measures γ at the message size. With `gemm_floor` each rank also times the GEMMs its step runs
+    (`measure.gemm_floor_step` without the first layer's input gradient, BLAS at the run's threads; median of
+    `comm_repeats` after one untimed call): its record's gemm_floor_s, seconds per step, the BLAS part of
+    the threaded compute term (`layoutmodel.py`).
     """
     from shardmill.parallel.comm import Comm, library
     from shardmill.parallel.exchange import blas_threads
@@ -147,6 +157,8 @@ def run_worker(job_path: Path, global_batch: int, steps: int, threads: int, pin:
             trainer.step(*divmod(step, per_epoch))  # wraps around the epoch when steps exceed it
         wall_s = time.perf_counter() - begin
         alone = exchange_alone(trainer, comm_repeats)
+        floor = {"gemm_floor_s": median([gemm_floor_step(trainer, first_layer_dA=False)
+                                         for _ in range(comm_repeats + 1)][1:])} if gemm_floor else {}
     rows = sum(part.size for part, _ in trainer.exchange.parts(trainer.sampler.batch(0, 0)))  # this rank's rows
     record = {
         "rank": comm.rank,
@@ -158,6 +170,7 @@ def run_worker(job_path: Path, global_batch: int, steps: int, threads: int, pin:
         "optimizer_state_bytes": optimizer_state_bytes(trainer),
         **memory(),
         **placement(pinned),
+        **floor,
     }
     records = comm.gather_object(record)
     dtype = trainer.model.dtype
@@ -208,11 +221,13 @@ def worker_main(argv: list[str] | None = None) -> int:
     parser.add_argument("--result", type=Path, required=True)
     parser.add_argument("--comm-repeats", type=int, default=5)
     parser.add_argument("--set", action="append", default=[], dest="sets")
+    parser.add_argument("--gemm-floor", action="store_true")
     args = parser.parse_args(argv)
     from shardmill.parallel.comm import run_guarded
 
     return run_guarded(lambda: run_worker(args.job, args.global_batch, args.steps, args.threads, args.pin,
-                                          args.result, args.comm_repeats, args.sets), user_errors=(JobError,))
+                                          args.result, args.comm_repeats, args.sets, args.gemm_floor),
+                           user_errors=(JobError,))
 
 
 if __name__ == "__main__":

@@ -72,6 +72,7 @@ def test_array_misuse_is_one_line(tmp_path: Path, data: dict, arrays, words: str
 def test_arrays_that_differ_between_ranks_are_refused_on_every_rank(tmp_path: Path) -> None:
     script = tmp_path / "differ.py"
     script.write_text(textwrap.dedent(f"""
+        import sys
         import numpy as np, shardmill as sm
         from shardmill.parallel.comm import Comm
         X = np.random.default_rng(Comm().rank).normal(size=(40, 4))   # another draw on each rank
@@ -80,7 +81,7 @@ def test_arrays_that_differ_between_ranks_are_refused_on_every_rank(tmp_path: Pa
         try:
             sm.train(job, inputs=X, targets=y, progress=False)
         except sm.JobError as err:
-            print("refused:", err)
+            sys.stdout.write(f"refused: {err}\n")  # one write: the two ranks' lines must not interleave
     """))
     done = run_mpi(2, [str(script)], timeout=120)
     assert done.returncode == 0, done.stderr

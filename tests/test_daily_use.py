@@ -81,7 +81,7 @@ def test_arrays_that_differ_between_ranks_are_refused_on_every_rank(tmp_path: Pa
         try:
             sm.train(job, inputs=X, targets=y, progress=False)
         except sm.JobError as err:
-            sys.stdout.write(f"refused: {err}\n")  # one write: the two ranks' lines must not interleave
+            sys.stdout.write(f"refused: {{err}}\\n")  # one write: the two ranks' lines must not interleave
     """))
     done = run_mpi(2, [str(script)], timeout=120)
     assert done.returncode == 0, done.stderr

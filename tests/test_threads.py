@@ -18,7 +18,7 @@ from helpers import epoch_metrics, make_classification, run_mpi
 from shardmill.config import job_from_dict
 from shardmill.parallel.comm import Comm
 from shardmill.training.trainer import Trainer
-from shardmill.training.verify import compare, serial_gradient
+from shardmill.training.verify import compare, format_report, serial_gradient, verify
 from threadpoolctl import threadpool_limits
 
 SCRIPTS = Path(__file__).parent / "mpi_scripts"
@@ -92,6 +92,17 @@ def test_fast_mode_across_threads_is_within_the_verify_bound(data_dir: Path, tmp
     _, abs_sums = serial_gradient(trainer, rows)
     report = compare(trainer.model, gradients[1], gradients[0], abs_sums, rows.size)
     assert max(row["bound_ratio"] for row in report) <= 1.0, report
+
+
+def test_verify_compares_a_threaded_layout_and_names_it(data_dir: Path, tmp_path: Path) -> None:
+    """`shardmill verify` with `run.threads = 2` checks the 1×2 layout's gradient (BLAS and kernels on two
+    threads) against the serial float64 one within Higham's bound (2002, §4.2), and says which layout it compared."""
+    tables = job_tables(data_dir, "float32", {"method": "adam"}, {}, 2, tmp_path / "run", reduction="fast")
+    tables["model"]["layers"] = [784, 512, 10]  # 128·784·512 multiply-adds: large enough for threads
+    report = verify(job_from_dict(tables, base=str(data_dir)), batches=1)
+    assert report["threads"] == 2 and report["threads_used"] == 2
+    assert report["verdict"] == "agree" and report["max_bound_ratio"] > 0  # compared, and not trivially equal
+    assert format_report(report).startswith("verify: 1 process(es) × 2 thread(s), G = 128")
 
 
 @pytest.mark.parametrize("exact_format", ["wide", "narrow"])

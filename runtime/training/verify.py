@@ -165,7 +165,8 @@ def verify(job: Job, comm: Comm | None = None, batches: int = 3, trajectory: int
         trainer = Trainer(job, comm)
         warm_up_kernels(trainer)
         batches = min(batches, trainer.sampler.steps_per_epoch)
-        report: dict[str, Any] = {"processes": comm.size, "global_batch": job.run.global_batch,
+        report: dict[str, Any] = {"processes": comm.size, "threads": job.run.threads,
+                                  "threads_used": blas_threads(job, comm.size), "global_batch": job.run.global_batch,
                                   "reduction": job.run.reduction, "dtype": trainer.model.dtype.name,
                                   "bound": "2·γ_{G−1}·Σ|x_i| (Higham 2002, §4.2)", "batches": []}
         if job.run.reduction == "exact" and job.run.exact_format != "wide":
@@ -210,7 +211,8 @@ def _trajectory(job: Job, comm: Comm, steps: int) -> list[dict[str, float]] | No
 def format_report(report: dict[str, Any]) -> str:
     """A readable table: one line per tensor of each batch, then the verdict."""
     width = max([6, *(len(t["tensor"]) for b in report["batches"] for t in b["tensors"])])  # E_<column> names
-    lines = [f"verify: {report['processes']} process(es), G = {report['global_batch']}, "
+    threads = report.get("threads_used", 1)  # the layout compared with the serial gradient: P × T
+    lines = [f"verify: {report['processes']} process(es) × {threads} thread(s), G = {report['global_batch']}, "
              f"{report['reduction']} reduction, {report['dtype']}; bound {report['bound']}",
              f"{'batch':>5}  {'tensor':<{width}} {'max |Δ|':>11} {'max rel Δ':>11} {'Δ / bound':>10}"]
     for b in report["batches"]:

@@ -83,33 +83,60 @@ def adam(params, grads, m, v, lr, beta1, beta2, eps, step, l2, decay):
 
 
 @njit(cache=True, nogil=True)
-def sum_squares(x):
-    """Σ x_i² accumulated in float64 (the square of the global gradient norm). x: (n,).
-
-    A scalar loop: the sum runs left to right, one rounding per term, and a vector loop would add in
-    another order (other bits), which LLVM does only under fast-math reassociation. It runs only when the
-    global-norm clip is on (or for health diagnostics).
-    """
-    total = 0.0
-    for i in range(x.size):
+def squares(x, lo, hi):
+    """Σ x_i² over x[lo:hi] in float64, in an order fixed by the range alone: eight running sums (element lo + 8k + j
+    goes to sum j), each left to right, joined as ((s0 + s1) + (s2 + s3)) + ((s4 + s5) + (s6 + s7)), then the last
+    (hi − lo) mod 8 elements left to right. The same bits wherever the range lies and on any machine; eight
+    independent sums let the compiler use vector registers without reassociating (the old single left-to-right sum
+    was one add's latency per element: 1.15 ms for the mid model's 1.86 M parameters, against 0.26 for np.dot)."""
+    s0 = s1 = s2 = s3 = s4 = s5 = s6 = s7 = 0.0
+    i = lo
+    while i + 8 <= hi:
+        x0, x1, x2, x3 = np.float64(x[i]), np.float64(x[i + 1]), np.float64(x[i + 2]), np.float64(x[i + 3])
+        x4, x5, x6, x7 = np.float64(x[i + 4]), np.float64(x[i + 5]), np.float64(x[i + 6]), np.float64(x[i + 7])
+        s0 += x0 * x0
+        s1 += x1 * x1
+        s2 += x2 * x2
+        s3 += x3 * x3
+        s4 += x4 * x4
+        s5 += x5 * x5
+        s6 += x6 * x6
+        s7 += x7 * x7
+        i += 8
+    total = ((s0 + s1) + (s2 + s3)) + ((s4 + s5) + (s6 + s7))
+    while i < hi:
         xi = np.float64(x[i])  # numba's float() would keep a float32 element in float32
         total += xi * xi
+        i += 1
     return total
 
 
 @njit(cache=True, nogil=True)
+def sum_squares(x):
+    """Σ x_i² in float64 over the whole of x (:func:`squares`), (n,) → float. Runs when the global-norm clip is on
+    and for health diagnostics; ``threaded.sum_squares`` is the blocked form over the kernel threads."""
+    return squares(x, 0, x.size)
+
+
+@njit(cache=True, nogil=True)
 def block_sum_squares(x, block, out):
-    """out[b] = Σ x_i² over x[b·block:(b+1)·block] (the last block may be short), each a left-to-right float64 sum.
+    """out[b] = Σ x_i² over x[b·block:(b+1)·block] (the last block may be short), each by :func:`squares`.
 
     x: (n,); out: (⌈n / block⌉,) float64. A block's sum depends only on its own values, wherever it lies.
     """
     n = x.size
     for b in range(out.size):
-        total = 0.0
-        for i in range(b * block, min((b + 1) * block, n)):
-            xi = np.float64(x[i])
-            total += xi * xi
-        out[b] = total
+        chunk = x[b * block:min((b + 1) * block, n)]
+        out[b] = squares(chunk, 0, chunk.size)
+
+
+@njit(cache=True, nogil=True)
+def ordered_sum(values):
+    """Σ values_i left to right in float64: the block sums joined in block order. values: (k,)."""
+    total = 0.0
+    for i in range(values.size):
+        total += values[i]
+    return total
 
 
 @njit(cache=True, nogil=True)

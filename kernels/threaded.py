@@ -84,6 +84,23 @@ def adam_blocks(params, grads, m, v, lr, beta1, beta2, eps, step, l2, decay):
         optim.adam(params[lo:hi], grads[lo:hi], m[lo:hi], v[lo:hi], lr, beta1, beta2, eps, step, l2, decay)
 
 
+@njit(cache=True, nogil=True, parallel=True)
+def squares_blocks(x, block, out):
+    """:func:`optim.block_sum_squares` with its blocks over the threads (each block's sum alone: the same bits)."""
+    n = x.size
+    for b in prange(out.size):
+        chunk = x[b * block:min((b + 1) * block, n)]
+        out[b] = optim.squares(chunk, 0, chunk.size)
+
+
+@njit(cache=True, nogil=True, parallel=True)
+def scale_blocks(x, factor):
+    n = x.size
+    for k in prange((n + BLOCK_ELEMENTS - 1) // BLOCK_ELEMENTS):
+        lo = k * BLOCK_ELEMENTS
+        optim.scale(x[lo:min(n, lo + BLOCK_ELEMENTS)], factor)
+
+
 # --- dispatch: the same arguments as the serial kernels ------------------------------------------------------------
 
 def bias_forward(Z: np.ndarray, b: np.ndarray, A: np.ndarray, code: int) -> None:
@@ -163,6 +180,31 @@ def adam(params: np.ndarray, grads: np.ndarray, m: np.ndarray, v: np.ndarray, lr
         optim.adam(params, grads, m, v, lr, beta1, beta2, eps, step, l2, decay)
 
 
+def block_sum_squares(x: np.ndarray, block: int, out: np.ndarray) -> None:
+    """out[b] = Σ x_i² over block b of ``block`` elements (``optim.block_sum_squares``); x: (n,), out:
+    (⌈n / block⌉,) float64."""
+    if parallel(x.size):
+        squares_blocks(x, block, out)
+    else:
+        optim.block_sum_squares(x, block, out)
+
+
+def sum_squares(x: np.ndarray) -> float:
+    """Σ x_i² in float64 (the square of the global gradient norm): blocks of :data:`BLOCK_ELEMENTS` summed alone
+    (over the threads for large arrays), then joined in block order; the same bits for every T. x: (n,)."""
+    out = np.empty(-(-x.size // BLOCK_ELEMENTS))
+    block_sum_squares(x, BLOCK_ELEMENTS, out)
+    return float(optim.ordered_sum(out))
+
+
+def scale(x: np.ndarray, factor: float) -> None:
+    """x ← factor·x in place (``optim.scale``: the global-norm clip), over the threads for large arrays."""
+    if parallel(x.size):
+        scale_blocks(x, factor)
+    else:
+        optim.scale(x, factor)
+
+
 def warm_up(dtype: np.dtype) -> None:
     """Compile (or load from Numba's cache) the parallel forms for ``dtype`` when kernels run on threads."""
     if threads() < 2:
@@ -172,3 +214,6 @@ def warm_up(dtype: np.dtype) -> None:
     activation_blocks(Z, b, Z, Z, activations.RELU, 1, False)
     activation_blocks(Z, b, Z, Z.copy(), activations.RELU, 1, True)
     backward_sums_blocks(Z, Z, Z.copy(), activations.RELU, 1, np.zeros((2, 2), dtype=dtype), b)
+    flat = np.zeros(4, dtype=dtype)
+    squares_blocks(flat, 2, np.zeros(2))
+    scale_blocks(flat, dtype.type(1.0))

@@ -140,3 +140,32 @@ def test_fused_backward_of_no_rows_gives_a_zero_bias_gradient():
     db = np.full(4, np.nan, np.float32)
     threaded.backward_sums(Z, Z, Z.copy(), act.RELU, db)
     assert db.tolist() == [0.0] * 4
+
+
+@pytest.mark.parametrize("dtype", [np.float32, np.float64])
+@pytest.mark.parametrize("n", [0, 7, 8, 9, 1000, 3 * dispatch.MIN_ELEMENTS + 77])
+def test_sum_of_squares_is_within_the_recursive_summation_bound_and_has_one_set_of_bits(dtype, n, two_threads):
+    """Σ x² for the global-norm clip, blocked and over the threads: within Higham's bound for a float64 sum of n
+    terms, γ_(n−1)·Σ x² (Higham 2002, §4.2; the squares of float32 and float64 values are exact or one rounding
+    in float64, covered by γ_n), against math.fsum (correctly rounded); the same bits on one thread and on two; a
+    range's sum does not depend on where it lies."""
+    import math
+
+    x = draws(n, dtype, 31)
+    exact = math.fsum(float(v) * float(v) for v in x)
+    u = np.finfo(np.float64).eps / 2
+    gamma = (n + 1) * u / (1 - (n + 1) * u)
+    serial, par = optim.sum_squares(x), threaded.sum_squares(x)
+    assert abs(serial - exact) <= gamma * exact and abs(par - exact) <= gamma * exact
+    dispatch.use_threads(1)
+    assert threaded.sum_squares(x) == par  # blocked on one thread: the same bits as on two
+    if n > 20:
+        assert optim.squares(x, 5, n - 3) == optim.sum_squares(x[5:n - 3].copy())
+
+
+def test_clip_scale_blocks_match_the_serial_kernel(two_threads):
+    x = draws(3 * dispatch.MIN_ELEMENTS + 5, np.float32, 32)
+    serial, par = x.copy(), x.copy()
+    optim.scale(serial, np.float32(0.37))
+    threaded.scale(par, np.float32(0.37))
+    assert dispatch.parallel(x.size) and serial.tobytes() == par.tobytes()

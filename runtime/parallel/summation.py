@@ -22,7 +22,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 from shardmill.data.rows import block_range, shard
 from shardmill.errors import JobError
-from shardmill.kernels import exactsum
+from shardmill.kernels import exactsum, threaded
 from shardmill.kernels import optim as kernels_optim
 from shardmill.parallel.collectives import Collective
 from shardmill.parallel.exactformats import FORMATS
@@ -38,11 +38,11 @@ if TYPE_CHECKING:  # the cost model reads the statements below without MPI
 def block_sums_of_squares(values: np.ndarray) -> np.ndarray:
     """Σ v² of each consecutive block of :data:`BLOCK` elements (the last may be short), float64, (blocks,).
 
-    Each block is summed alone in float64, left to right (``kernels.optim.block_sum_squares``), so a block has
+    Each block is summed alone in float64 in a fixed order (``kernels.optim.squares``), so a block has
     the same sum wherever it lies in a slice.
     """
     sums = np.empty(-(-values.size // BLOCK))
-    kernels_optim.block_sum_squares(values, BLOCK, sums)
+    threaded.block_sum_squares(values, BLOCK, sums)
     return sums
 
 
@@ -208,7 +208,7 @@ class MessageSum:
 
     def sum_squares(self) -> float:
         """Σ g² over the whole reduced gradient (for the global-norm clip), the same on every rank."""
-        total = np.array([kernels_optim.sum_squares(self.owned_gradient())])
+        total = np.array([threaded.sum_squares(self.owned_gradient())])
         if self.ownership.sharded:
             self.comm.allreduce_sum(total)
         return float(total[0])

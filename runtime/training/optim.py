@@ -6,7 +6,6 @@ import math
 
 import numpy as np
 from shardmill.config import OptimizerSpec
-from shardmill.kernels import optim as kernels
 from shardmill.kernels import threaded
 
 STATE_NAMES = {"sgd": (), "momentum": ("velocity",), "nesterov": ("velocity",), "adam": ("m", "v"),
@@ -53,9 +52,9 @@ class Optimizer:
         if not self.clips:
             return
         limit = self.spec.clip_global_norm
-        norm = math.sqrt(kernels.sum_squares(grads) if sum_squares is None else sum_squares)
+        norm = math.sqrt(threaded.sum_squares(grads) if sum_squares is None else sum_squares)
         if norm > limit:
-            kernels.scale(grads, limit / norm)
+            threaded.scale(grads, limit / norm)
 
     def step(self, params: np.ndarray, grads: np.ndarray, total_steps: int) -> float:
         """Apply one update in place to ``params`` (and the state) from ``grads``; returns the learning rate used."""

@@ -32,7 +32,9 @@ def warm_up_kernels(trainer: Trainer) -> float:
         for _ in trainer.ws.backward(rows.size, grads):
             pass
         scratch = Optimizer(trainer.job.optimizer, grads.size, grads.dtype)
-        kernels_optim.sum_squares(grads)
+        kernels_optim.sum_squares(grads)  # the serial forms (the blocked ones call them)
+        kernels_optim.block_sum_squares(grads, 256, np.zeros(-(-grads.size // 256)))
+        kernels_optim.ordered_sum(np.zeros(2))
         kernels_optim.scale(grads, 1.0)
         scratch.step(trainer.model.params.copy(), grads, 1)
         trainer.exchange.warm_up()

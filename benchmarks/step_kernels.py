@@ -67,15 +67,11 @@ class Clock:
                 self.depth = 0
         return call
 
-    def entering(self, phase: str, fn: Callable[..., Any], after: str | None = None) -> Callable[..., Any]:
-        """``fn`` that sets the phase to ``phase`` on entry (and to ``after`` on return, if given)."""
+    def entering(self, phase: str, fn: Callable[..., Any]) -> Callable[..., Any]:
+        """``fn`` that sets the phase to ``phase`` when it is called (a generator: when it is created)."""
         def call(*args: Any, **kwargs: Any) -> Any:
             self.phase = phase
-            try:
-                return fn(*args, **kwargs)
-            finally:
-                if after is not None:
-                    self.phase = after
+            return fn(*args, **kwargs)
         return call
 
 
@@ -106,8 +102,17 @@ def instrument(trainer: Any, clock: Clock) -> None:
         object.__setattr__(entry, "kernel", clock.timed(f"loss.{entry.kernel.__name__}", entry.kernel))
     np.matmul = clock.timed("gemm", np.matmul)
     trainer.take_inputs = clock.entering("data", trainer.take_inputs)
-    Workspace.forward_loss = clock.entering("forward", Workspace.forward_loss, after="backward")
+    Workspace.forward_loss = clock.entering("forward", Workspace.forward_loss)  # quality_sum follows: forward too
+    Workspace.backward = clock.entering("backward", Workspace.backward)
     trainer.optimizer.step = clock.entering("update", trainer.optimizer.step)
+
+
+def kernel_signatures() -> int:
+    """How many compiled specialisations our kernel modules hold (a change means something compiled)."""
+    from shardmill.kernels import activations, data, layers, losses, optim, threaded
+
+    return sum(len(getattr(value, "signatures", ())) for module in (threaded, layers, activations, losses, data, optim)
+               for value in vars(module).values())
 
 
 def phase_floors(trainer: Any, repeats: int) -> dict[str, float]:
@@ -200,6 +205,7 @@ def child(threads: int, steps: int) -> dict[str, Any]:
         wake = wake_cost()  # before the wrappers: its GEMMs are not the step's
         clock = Clock()
         instrument(trainer, clock)
+        compiled = kernel_signatures()
         trainer.step(0, 0)  # the wrappers' first calls
         clock.totals.clear()
         clock.calls.clear()
@@ -207,6 +213,8 @@ def child(threads: int, steps: int) -> dict[str, Any]:
         for s in range(steps):
             trainer.step(0, s % spe)
         phase_s, _ = trainer.reduce_phases()
+        if kernel_signatures() != compiled:  # a kernel compiled under the wrappers would time its compilation
+            raise RuntimeError("a kernel compiled during the timed steps; warm up more steps")
     per_step = 1e3 / steps
     result: dict[str, Any] = {"threads": threads, "threads_used": blas_threads(job, comm.size),
                               "parallel_loop_us": wake, "phases": {}}

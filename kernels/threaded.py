@@ -30,6 +30,10 @@ SUM_BLOCK_ELEMENTS = 16384
 """Values per block of the fused activation backward and bias gradient (64 KiB of float32: a block's sums are
 formed while it is in cache; 32 blocks of a (512, 1024) delta, whose partial sums cost 1/16 of the pass to join)."""
 
+MAX_SUM_BLOCKS = 64
+"""At most this many blocks per fused bias gradient: a wide layer's blocks hold more rows, so the block sums (the
+workspace's scratch, MAX_SUM_BLOCKS × width) stay small against the delta and cheap to join."""
+
 # --- the parallel forms: each runs the serial kernel on fixed blocks --------------------------------------------
 
 @njit(cache=True, nogil=True, parallel=True)
@@ -119,24 +123,29 @@ def backward(Z: np.ndarray, A: np.ndarray, D: np.ndarray, code: int) -> None:
         activations.backward(Z, A, D, code)
 
 
-def backward_sums(Z: np.ndarray, A: np.ndarray, D: np.ndarray, code: int, db: np.ndarray) -> None:
-    """D ← f'(Z) ⊙ D and db = Σ_rows D, fused (``activations.backward_sums``); Z, A, D: (n, m), db: (m,). Blocks of
-    :func:`sum_rows` rows: the same bits on one thread and on many."""
+def backward_sums(Z: np.ndarray, A: np.ndarray, D: np.ndarray, code: int, db: np.ndarray,
+                  scratch: np.ndarray) -> None:
+    """D ← f'(Z) ⊙ D and db = Σ_rows D, fused (``activations.backward_sums``); Z, A, D: (n, m), db: (m,).
+    ``scratch``: (≥ MAX_SUM_BLOCKS · m,) in D's dtype, for the blocks' sums (the workspace's: nothing is allocated
+    in the step). Blocks of :func:`sum_rows` rows: the same bits on one thread and on many."""
     n, m = Z.shape
-    rows = sum_rows(m)
-    partial = np.empty((max(1, -(-n // rows)), m), dtype=D.dtype)
+    rows = sum_rows(n, m)
+    blocks = -(-n // rows)
     if n == 0:
         db[:] = 0
-    elif parallel(Z.size):
+        return
+    partial = scratch[:blocks * m].reshape(blocks, m)
+    if parallel(Z.size):
         backward_sums_blocks(Z, A, D, code, rows, partial, db)
     else:
         activations.backward_sums(Z, A, D, code, rows, partial, db)
 
 
-def sum_rows(columns: int) -> int:
-    """Rows per block of :func:`backward_sums`: :data:`SUM_BLOCK_ELEMENTS` values, whole rows; the shape alone
-    decides (never T), so the sums' bits do not depend on the thread count."""
-    return max(1, SUM_BLOCK_ELEMENTS // max(columns, 1))
+def sum_rows(n: int, columns: int) -> int:
+    """Rows per block of :func:`backward_sums` for an (n, columns) delta: :data:`SUM_BLOCK_ELEMENTS` values of whole
+    rows, but never more than :data:`MAX_SUM_BLOCKS` blocks (wide layers). The shape alone decides, never T, so
+    the sums' bits do not depend on the thread count."""
+    return max(1, SUM_BLOCK_ELEMENTS // max(columns, 1), -(-n // MAX_SUM_BLOCKS))
 
 
 def column_sums(dZ: np.ndarray, db: np.ndarray) -> None:
@@ -216,4 +225,4 @@ def warm_up(dtype: np.dtype) -> None:
     backward_sums_blocks(Z, Z, Z.copy(), activations.RELU, 1, np.zeros((2, 2), dtype=dtype), b)
     flat = np.zeros(4, dtype=dtype)
     squares_blocks(flat, 2, np.zeros(2))
-    scale_blocks(flat, dtype.type(1.0))
+    scale_blocks(flat, 1.0)  # a Python float, as the clip passes it

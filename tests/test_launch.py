@@ -10,6 +10,7 @@ import json
 import os
 import subprocess
 import sys
+import textwrap
 import time
 from pathlib import Path
 
@@ -135,8 +136,18 @@ def test_importing_shardmill_sets_the_thread_waits_before_numpy_loads() -> None:
     ranks the launcher starts. The libraries read them once, when they load: GNU OpenMP's manual says so of
     GOMP_SPINCOUNT; OpenBLAS reads OPENBLAS_THREAD_TIMEOUT in its start-up scan of the environment (its source, from
     memory). So the package sets them before it imports numpy; a value the user set wins."""
-    code = ("import json, os, sys; import shardmill; "
-            f"print(json.dumps({{k: os.environ.get(k) for k in {sorted(THREAD_WAITS)!r}}}))")
+    code = textwrap.dedent(f"""
+        import importlib.abc, json, os, sys
+        seen = {{}}
+        class Watch(importlib.abc.MetaPathFinder):  # notes the variables when numpy starts to load
+            def find_spec(self, name, path, target=None):
+                if name == "numpy" and not seen:
+                    seen.update({{k: os.environ.get(k) for k in {sorted(THREAD_WAITS)!r}}})
+                return None
+        sys.meta_path.insert(0, Watch())
+        import shardmill
+        print(json.dumps(seen))
+    """)
     env = {k: v for k, v in os.environ.items() if k not in THREAD_WAITS}
     out = subprocess.run([sys.executable, "-c", code], env=env, capture_output=True, text=True, check=True).stdout
     assert json.loads(out) == THREAD_WAITS

@@ -103,6 +103,7 @@ from shardmill.scaling.layoutmodel import (  # noqa: E402
     amdahl_speedup,
     best_per_node_count,
     check_fittable,
+    effective_threads,
     fit_layouts,
     fit_threaded_compute,
     project_layouts,
@@ -267,3 +268,36 @@ def test_project_nodes_are_read_as_node_counts() -> None:
     assert project_nodes("64,1,4", [(1, 1), (1, 2)]) == [1, 4, 64]
     with pytest.raises(JobError, match=r"`--project-nodes` must be comma-separated node counts ≥ 1 like 1,2,4; got"):
         project_nodes("0,2", [(1, 1), (1, 2)])
+
+
+def test_rows_with_more_ranks_than_rows_are_marked_and_never_best() -> None:
+    """A rank needs at least one row of the global batch (data parallelism splits the batch's rows, common
+    practice): at 64 nodes of 2×1 (128 ranks) a batch of 100 rows cannot run, so it is marked and not chosen."""
+    from shardmill.scaling.layouts import projection_lines
+
+    rows = project_layouts(COMPUTE, [(1, 1), (2, 1)], [1, 64], 100, (Collective("allreduce", 4e6),), ALPHA, BETA,
+                           GAMMA, "replicated")
+    runnable = {(row["layout"], row["nodes"]): row["runnable"] for row in rows}
+    assert runnable == {("1x1", 1): True, ("1x1", 64): True, ("2x1", 1): True, ("2x1", 64): False}
+    best = best_per_node_count(rows)
+    assert best["64"] == "1x1"
+    fit = {"serial_fraction": 0.2, "points": [{"relative_error": 0.0}]}
+    lines = projection_lines({"available": True, "global_batch": 100, "network": {"name": "given"}, "rows": rows,
+                              "best": best, "fit": fit})
+    marked = [line for line in lines if line.split()[:2] == ["64", "2x1"]]
+    assert len(marked) == 1 and marked[0].endswith("!")
+
+
+def test_exact_mode_lanes_are_capped_by_the_chunks_of_a_rank() -> None:
+    """Exact mode's threads take whole chunks (run.exact_chunk rows each): 256 rows in chunks of 32 are 8 chunks,
+    so 4 ranks hold 2 each and a fourth lane would have nothing to take."""
+    job = job_from_dict({"model": {"layers": [8, 16, 2]},
+                         "run": {"global_batch": 256, "reduction": "exact", "exact_chunk": 32}})
+    assert [effective_threads(job, 4, R) for R in (1, 2, 4, 8, 16)] == [4, 4, 2, 1, 1]
+
+
+def test_the_fit_without_two_single_process_layouts_says_so() -> None:
+    job = job_from_dict({"model": {"layers": [4, 8, 2]}, "run": {"global_batch": 64}})
+    seconds = {"data": 1e-5, "forward": 2e-5, "backward": 3e-5, "update": 1e-5}
+    with pytest.raises(ValueError, match=r"two or more measured layouts of one process.*got '1x2'"):
+        fit_layouts(job, {(1, 2): worker_record(2, seconds)})

@@ -108,7 +108,7 @@ def test_dispatched_row_kernels_match_the_serial_kernels_above_the_threshold(two
 
 @pytest.mark.parametrize("dtype", [np.float32, np.float64])
 @pytest.mark.parametrize("code", [act.RELU, act.TANH, act.IDENTITY])
-@pytest.mark.parametrize("shape", [(512, 1024), (700, 513), (3, 5), (1, 1024)])
+@pytest.mark.parametrize("shape", [(512, 1024), (700, 513), (3, 5), (1, 1024), (96, 20000)])
 def test_fused_backward_and_bias_gradient_match_numpy_and_have_one_set_of_bits(dtype, code, shape, two_threads):
     """D ← f'(Z) ⊙ D and db = Σ_rows D in one pass over fixed blocks: against NumPy's elementwise product and
     ``np.sum(axis=0)`` in float64 (the textbook bias gradient, common practice), and bit for bit between the serial
@@ -120,14 +120,15 @@ def test_fused_backward_and_bias_gradient_match_numpy_and_have_one_set_of_bits(d
                   act.IDENTITY: np.ones(shape)}[code]
     expected = derivative * D0.astype(np.float64)
     Ds, dbs = D0.copy(), np.full(shape[1], np.nan, dtype)
-    rows = threaded.sum_rows(shape[1])
+    rows = threaded.sum_rows(*shape)
     act.backward_sums(Z, A, Ds, code, rows, np.empty((-(-shape[0] // rows), shape[1]), dtype), dbs)
     tol = 1e-5 if dtype == np.float32 else 1e-12
     np.testing.assert_allclose(Ds, expected, rtol=tol, atol=tol)
     np.testing.assert_allclose(dbs, expected.sum(axis=0), rtol=tol, atol=tol * np.abs(expected).sum(axis=0).max())
     Dp, dbp = D0.copy(), np.full(shape[1], np.nan, dtype)
     assert dispatch.parallel(Z.size) == (Z.size >= dispatch.MIN_ELEMENTS)
-    threaded.backward_sums(Z, A, Dp, code, dbp)  # the threaded form for the large shapes, serial for the small
+    scratch = np.full(threaded.MAX_SUM_BLOCKS * shape[1], np.nan, dtype)
+    threaded.backward_sums(Z, A, Dp, code, dbp, scratch)  # threaded for the large shapes, serial for the small
     assert Ds.tobytes() == Dp.tobytes() and dbs.tobytes() == dbp.tobytes()
     Dq, dbq = D0.copy(), np.empty(shape[1], dtype)
     partial = np.empty((-(-shape[0] // rows), shape[1]), dtype)
@@ -136,9 +137,10 @@ def test_fused_backward_and_bias_gradient_match_numpy_and_have_one_set_of_bits(d
 
 
 def test_fused_backward_of_no_rows_gives_a_zero_bias_gradient():
+    """An empty sum is 0 (common practice): a shard or chunk of no rows adds nothing to the bias gradient."""
     Z = np.zeros((0, 4), np.float32)
     db = np.full(4, np.nan, np.float32)
-    threaded.backward_sums(Z, Z, Z.copy(), act.RELU, db)
+    threaded.backward_sums(Z, Z, Z.copy(), act.RELU, db, np.zeros(threaded.MAX_SUM_BLOCKS * 4, np.float32))
     assert db.tolist() == [0.0] * 4
 
 
@@ -164,8 +166,10 @@ def test_sum_of_squares_is_within_the_recursive_summation_bound_and_has_one_set_
 
 
 def test_clip_scale_blocks_match_the_serial_kernel(two_threads):
+    """x ← c·x element by element (the global-norm clip, common practice): the blocks give the serial bits, with
+    the factor a Python float as the clip passes it."""
     x = draws(3 * dispatch.MIN_ELEMENTS + 5, np.float32, 32)
     serial, par = x.copy(), x.copy()
-    optim.scale(serial, np.float32(0.37))
-    threaded.scale(par, np.float32(0.37))
+    optim.scale(serial, 0.37)
+    threaded.scale(par, 0.37)
     assert dispatch.parallel(x.size) and serial.tobytes() == par.tobytes()

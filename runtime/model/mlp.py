@@ -323,6 +323,7 @@ class Workspace:
         self._zero_bias = np.zeros(sizes[-1], dtype=dt)
         self._scratch = np.zeros((2, width))  # the norm's forward row sums, float64
         self._row_sums = np.zeros((2, width), dtype=dt)  # its backward row sums, in the dtype
+        self._block_sums = np.zeros(threaded.MAX_SUM_BLOCKS * width, dtype=dt)  # the fused bias gradient's blocks
         # verify's: when set, (rows, m) buffers per normed hidden layer that backward fills with ∂loss/∂H (after
         # dropout) before the norm kernel overwrites it
         self.norm_input: dict[int, np.ndarray] | None = None
@@ -445,7 +446,7 @@ class Workspace:
         elif m.skips[h]:
             layers.copy_rows(D, self.saved(n, width))
         if not m.has_norm(h):
-            threaded.backward_sums(self.Z[h][:n], self.H[h][:n], D, m.hidden_codes[h], db)
+            threaded.backward_sums(self.Z[h][:n], self.H[h][:n], D, m.hidden_codes[h], db, self._block_sums)
             return D, True
         if self.norm_input is not None:
             self.norm_input[h][:n] = D

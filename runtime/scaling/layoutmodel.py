@@ -174,9 +174,11 @@ def compute_parts(raw: dict[str, Any]) -> dict[str, float]:
 
 def effective_threads(job: Job, threads: int, ranks: int) -> int:
     """The threads a rank of a P×T layout works with on `ranks` ranks: T, or 1 where fast mode's BLAS and kernels
-    stay at one thread for this size (`parallel.exchange.blas_threads`); exact mode's lanes use all T."""
-    if job.run.reduction != "fast":
-        return threads
+    stay at one thread for this size (`parallel.exchange.blas_threads`); exact mode's lanes use T, at most the
+    rank's ⌈chunks / ranks⌉ chunks of `run.exact_chunk` rows."""
+    if job.run.reduction != "fast":  # lanes over whole chunks: no more than a rank's chunks
+        chunks = -(-job.run.global_batch // job.run.exact_chunk)
+        return max(1, min(threads, -(-chunks // ranks)))
     return blas_threads(dataclasses.replace(job, run=dataclasses.replace(job.run, threads=threads)), ranks)
 
 
@@ -188,6 +190,10 @@ def fit_layouts(job: Job, raws: Mapping[tuple[int, int], dict[str, Any]]) -> Thr
     at that same count. ValueError as `fit_threaded_compute` without two single-process layouts.
     """
     single = sorted((T, raw) for (P, T), raw in raws.items() if P == 1)
+    if len(single) < 2:
+        given = ",".join(f"{P}x{T}" for P, T in raws)
+        raise ValueError(f"two or more measured layouts of one process with distinct T are needed, such as "
+                         f"1x1,1x2; got {given!r}")
     counts = [effective_threads(job, T, 1) for T, _ in single]
     parts = [compute_parts(raw) for _, raw in single]
     names = list(parts[0]) if parts else []
@@ -230,15 +236,19 @@ def project_layouts(compute: ThreadedCompute, layouts: Sequence[tuple[int, int]]
                          "compute_s": row["compute_s"], "update_s": row["update_s"], "update": row["update"],
                          "comm_s": row["comm_s"], "algorithm": row["algorithm"], "step_s": row["step_s"],
                          "samples_per_s": samples_per_s,
-                         "efficiency_per_core": samples_per_s / (R * T * serial_rate)})
+                         "efficiency_per_core": samples_per_s / (R * T * serial_rate),
+                         "runnable": R <= global_batch})  # a rank needs one row of the global batch at least
     return rows
 
 
 def best_per_node_count(rows: Sequence[dict[str, Any]]) -> dict[str, str]:
-    """Node count (as text, a JSON key) → the layout with the most samples/s there (the first of equals)."""
+    """Node count (as text, a JSON key) → the layout with the most samples/s there (the first of equals), among
+    the rows that can run (`runnable`: no more ranks than rows in the global batch)."""
     best: dict[str, dict[str, Any]] = {}
     for row in rows:
         key = str(row["nodes"])
+        if not row.get("runnable", True):
+            continue
         if key not in best or row["samples_per_s"] > best[key]["samples_per_s"]:
             best[key] = row
     return {key: row["layout"] for key, row in best.items()}

@@ -87,8 +87,8 @@ def recommendation(best: dict[str, Any], projection: dict[str, Any] | None = Non
     text = (f"{best['layout']}: {best['samples_per_s']:,.0f} samples/s, {best['resident_mib_per_node']:,.0f} MiB "
             f"resident per node; ask for it with `--ntasks-per-node={best['processes']} "
             f"--cpus-per-task={best['threads']}` and run.threads = {best['threads']}")
-    if projection and projection["available"]:
-        largest = max(projection["nodes"])
+    if projection and projection["available"] and projection["best"]:
+        largest = max(int(nodes) for nodes in projection["best"])  # the largest node count some layout can run at
         layout = projection["best"][str(largest)]
         row = next(r for r in projection["rows"] if r["nodes"] == largest and r["layout"] == layout)
         text += (f"; projected to {largest} nodes the best is {layout} ({row['samples_per_s']:,.0f} samples/s, "
@@ -116,10 +116,11 @@ def projection_lines(projection: dict[str, Any]) -> list[str]:
         return [f"no projection to many nodes: {projection['reason']}"]
     fit = projection["fit"]
     lines = [f"projected to more nodes (strong scaling, G = {projection['global_batch']}; threaded compute: serial "
-             f"fraction {fit['serial_fraction']:.3f}; network {projection['network']['name']}; * extrapolated T)",
+             f"fraction {fit['serial_fraction']:.3f}; network {projection['network']['name']}; * extrapolated T; "
+             f"! more ranks than rows, cannot run)",
              f"{'nodes':>7} {'layout':>7} {'ranks':>7} {'step ms':>9} {'samples/s':>11} {'eff/core':>9}"]
     for row in projection["rows"]:
-        mark = "*" if row["extrapolated"] else " "
+        mark = "!" if not row.get("runnable", True) else "*" if row["extrapolated"] else " "
         lines.append(f"{row['nodes']:>7} {row['layout']:>7} {row['ranks']:>7} {1e3 * row['step_s']:>9.2f} "
                      f"{row['samples_per_s']:>11,.0f} {row['efficiency_per_core']:>9.3f}{mark}")
     lines.append("best per node count: " + ", ".join(f"{n}: {layout}" for n, layout in projection["best"].items()))

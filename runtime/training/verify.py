@@ -165,8 +165,9 @@ def verify(job: Job, comm: Comm | None = None, batches: int = 3, trajectory: int
         trainer = Trainer(job, comm)
         warm_up_kernels(trainer)
         batches = min(batches, trainer.sampler.steps_per_epoch)
+        used = len(trainer.lanes.lanes) if trainer.lanes is not None else blas_threads(job, comm.size)  # exact: lanes
         report: dict[str, Any] = {"processes": comm.size, "threads": job.run.threads,
-                                  "threads_used": blas_threads(job, comm.size), "global_batch": job.run.global_batch,
+                                  "threads_used": used, "global_batch": job.run.global_batch,
                                   "reduction": job.run.reduction, "dtype": trainer.model.dtype.name,
                                   "bound": "2·γ_{G−1}·Σ|x_i| (Higham 2002, §4.2)", "batches": []}
         if job.run.reduction == "exact" and job.run.exact_format != "wide":

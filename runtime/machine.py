@@ -38,3 +38,51 @@ def numba_cache_dir() -> str:
     if config.CACHE_DIR:
         return str(config.CACHE_DIR)
     return os.path.join(os.path.dirname(kernels.__file__), "__pycache__")
+
+
+class OtherLoad:
+    """How much of the machine other processes used while a run of ours went on: start it, run, then
+    :meth:`fraction`.
+
+    The machine's busy CPU seconds come from /proc/stat (every core's user, nice, system, irq and softirq time);
+    ours are this process's and its waited-for descendants' (``getrusage``: mpiexec and the ranks it waited for).
+    fraction = (machine busy − ours) / (wall seconds · cores), clipped to [0, 1]; None where /proc/stat is absent.
+    """
+
+    def __init__(self) -> None:
+        self.start = self.sample()
+
+    @staticmethod
+    def sample() -> tuple[float, float, float] | None:
+        """(machine busy CPU seconds, our CPU seconds, monotonic seconds) now, or None without /proc/stat."""
+        import resource
+        import time
+
+        try:
+            with open("/proc/stat") as stat:
+                fields = stat.readline().split()
+        except OSError:
+            return None
+        if not fields or fields[0] != "cpu":
+            return None
+        user, nice, system, _idle, _iowait, irq, softirq = (int(v) for v in fields[1:8])
+        busy = (user + nice + system + irq + softirq) / os.sysconf("SC_CLK_TCK")
+        ours = sum(u.ru_utime + u.ru_stime for u in (resource.getrusage(resource.RUSAGE_SELF),
+                                                     resource.getrusage(resource.RUSAGE_CHILDREN)))
+        return busy, ours, time.monotonic()
+
+    def fraction(self) -> float | None:
+        """Share of all cores' time since the start that other processes used, in [0, 1]; None if unknown."""
+        end = self.sample()
+        if self.start is None or end is None:
+            return None
+        return other_fraction(end[0] - self.start[0], end[1] - self.start[1], end[2] - self.start[2],
+                              os.cpu_count() or 1)
+
+
+def other_fraction(busy_s: float, ours_s: float, wall_s: float, cores: int) -> float:
+    """(busy_s − ours_s) / (wall_s · cores), clipped to [0, 1]: the machine's busy CPU seconds that were not ours,
+    as a share of every core's time over wall_s seconds (0 for a run of no duration)."""
+    if wall_s <= 0 or cores < 1:
+        return 0.0
+    return min(1.0, max(0.0, (busy_s - ours_s) / (wall_s * cores)))

@@ -49,6 +49,7 @@ def test_scale_layouts_runs_each_layout_and_names_the_best(tmp_path) -> None:
     result = json.loads((out / "layouts.json").read_text())
     assert [row["layout"] for row in result["layouts"]] == ["1x1", "1x2", "2x1"]
     assert all(row["samples_per_s"] > 0 and row["resident_mib_per_rank"] > 10 for row in result["layouts"])
+    assert all(row["other_load"] is None or 0.0 <= row["other_load"] <= 1.0 for row in result["layouts"])
     assert result["best"] in {"1x1", "1x2", "2x1"} and f"best layout {result['best']}" in done.stdout
     assert {(out / "runs" / f"{tag}.json").is_file() for tag in ("p1t1", "p1t2", "p2t1")} == {True}
     assert all(json.loads((out / "runs" / f"{tag}.json").read_text())["ranks"][0]["gemm_floor_s"] > 0
@@ -301,3 +302,58 @@ def test_the_fit_without_two_single_process_layouts_says_so() -> None:
     seconds = {"data": 1e-5, "forward": 2e-5, "backward": 3e-5, "update": 1e-5}
     with pytest.raises(ValueError, match=r"two or more measured layouts of one process.*got '1x2'"):
         fit_layouts(job, {(1, 2): worker_record(2, seconds)})
+
+
+def test_the_table_warns_when_other_processes_took_the_cores(tmp_path) -> None:
+    from shardmill.config import job_from_dict
+    from shardmill.scaling.layouts import OTHER_LOAD_LIMIT, text_table
+
+    job = job_from_dict({"model": {"layers": [4, 8, 2]}, "run": {"global_batch": 64}})
+    loads = {(1, 1): 0.01, (1, 2): 2 * OTHER_LOAD_LIMIT, (2, 1): None}
+    result = compare_layouts(job, list(loads), 10, tmp_path,
+                             lambda P, T, tag: dict(record(P, 1.0), other_load=loads[(P, T)]))
+    warnings = [line for line in text_table(result).splitlines() if line.startswith("warning: other processes")]
+    assert len(warnings) == 1 and "while 1x2 ran" in warnings[0] and "20%" in warnings[0]
+    quiet = compare_layouts(job, list(loads), 10, tmp_path, lambda P, T, tag: dict(record(P, 1.0), other_load=0.0))
+    assert not any(line.startswith("warning: other") for line in text_table(quiet).splitlines())
+
+
+def test_other_load_is_the_busy_time_that_was_not_ours() -> None:
+    """(machine busy − ours) / (wall · cores) (the accounting of /proc/stat and getrusage, proc(5) and
+    getrusage(2)), clipped to [0, 1]."""
+    from shardmill.machine import other_fraction
+
+    assert other_fraction(busy_s=3.0, ours_s=2.0, wall_s=1.0, cores=2) == pytest.approx(0.5)
+    assert other_fraction(busy_s=1.9, ours_s=2.0, wall_s=1.0, cores=2) == 0.0  # tick rounding below ours
+    assert other_fraction(busy_s=9.0, ours_s=0.0, wall_s=1.0, cores=2) == 1.0
+    assert other_fraction(busy_s=1.0, ours_s=0.0, wall_s=0.0, cores=2) == 0.0
+
+
+def test_a_busy_process_we_did_not_start_counts_and_our_own_work_does_not() -> None:
+    """A busy child not yet waited for is not ours by getrusage(2)'s rule (only waited-for descendants count), so
+    it stands in for another user's process: about one core's share. Our own busy loop adds nothing."""
+    import os
+    import subprocess
+    import sys
+    import time
+
+    from shardmill.machine import OtherLoad
+
+    if OtherLoad.sample() is None:
+        pytest.skip("no /proc/stat on this system")
+    cores = os.cpu_count() or 1
+    spin = "import time\nend = time.time() + 1.5\nwhile time.time() < end: pass"
+    child = subprocess.Popen([sys.executable, "-c", spin])
+    try:
+        time.sleep(0.3)  # the child is running
+        load = OtherLoad()
+        time.sleep(0.8)
+        seen = load.fraction()
+    finally:
+        child.wait()
+    assert seen is not None and 0.4 / cores <= seen <= 1.0
+    load = OtherLoad()
+    end = time.perf_counter() + 0.5
+    while time.perf_counter() < end:  # our own work
+        pass
+    assert load.fraction() < 0.5 / cores + 0.15  # ours (1 / cores of the time) is subtracted; room for other load

@@ -22,6 +22,7 @@ from typing import Any
 
 from shardmill.config import Job, load_job
 from shardmill.errors import JobError
+from shardmill.machine import OtherLoad
 from shardmill.parallel.launch import run_ranks
 from shardmill.scaling import costmodel
 from shardmill.scaling.layoutmodel import DEFAULT_NODES, check_fittable
@@ -200,6 +201,7 @@ def run_point(job: Path, p: int, global_batch: int, steps: int, threads: int, pi
         if bar is not None:
             bar.set_postfix_str(f"P={p} G={global_batch} {elapsed:.0f} s", refresh=True)
 
+    load = OtherLoad()
     with open(log_path, "w") as log, _sigterm_as_interrupt():
         try:
             done = run_ranks(p, worker_args(job, global_batch, steps, threads, pin, result, sets, gemm_floor),
@@ -217,7 +219,9 @@ def run_point(job: Path, p: int, global_batch: int, steps: int, threads: int, pi
         tail = "\n".join(text.splitlines()[-20:])
         raise RunFailed(f"the {p}-process run failed with exit status {done.returncode}; end of {log_path}:\n"
                         f"{tail}", 1)
-    return json.loads(result.read_text())
+    record = json.loads(result.read_text())
+    record["other_load"] = load.fraction()  # other processes' share of the cores meanwhile (None: unknown)
+    return record
 
 
 @contextlib.contextmanager

@@ -23,6 +23,11 @@ from shardmill.config import Job
 from shardmill.errors import JobError
 from shardmill.scaling.layoutmodel import layout_projection
 
+OTHER_LOAD_LIMIT = 0.10
+"""Above this share of the cores used by other processes during a layout's run, the table warns: measured on the
+2-core VM, 1×2 of 64-256-256-4 ran 5× slower than 1×1 while a test suite ran beside it, 1.14× faster on idle cores
+(benchmarks/README.md)."""
+
 LAYOUT = re.compile(r"^\s*(\d+)\s*[x×]\s*(\d+)\s*$")
 
 FIT_ERROR_LIMIT = 0.15
@@ -48,7 +53,8 @@ def layout_row(P: int, T: int, raw: dict[str, Any]) -> dict[str, Any]:
     rss = [rank["rss_bytes"] for rank in raw["ranks"]]
     return {"layout": f"{P}x{T}", "processes": P, "threads": T, "cores": P * T,
             "samples_per_s": raw["global_batch"] * raw["steps"] / wall, "step_ms": 1e3 * wall / raw["steps"],
-            "resident_mib_per_rank": max(rss) / 2**20, "resident_mib_per_node": sum(rss) / 2**20}
+            "resident_mib_per_rank": max(rss) / 2**20, "resident_mib_per_node": sum(rss) / 2**20,
+            "other_load": raw.get("other_load")}
 
 
 def compare_layouts(job: Job, layouts: list[tuple[int, int]], steps: int, out: Path,
@@ -103,6 +109,12 @@ def text_table(result: dict[str, Any]) -> str:
         efficiency = "" if row["efficiency_per_core"] is None else f"{row['efficiency_per_core']:.3f}"
         lines.append(f"{row['layout']:>7} {row['samples_per_s']:>11,.0f} {row['step_ms']:>9.2f} {efficiency:>9} "
                      f"{row['resident_mib_per_rank']:>9.0f} {row['resident_mib_per_node']:>9.0f}")
+    busy = [row for row in result["layouts"] if (row.get("other_load") or 0.0) > OTHER_LOAD_LIMIT]
+    if busy:
+        worst = max(busy, key=lambda row: row["other_load"])
+        lines.append(f"warning: other processes used {100 * worst['other_load']:.0f}% of the cores while "
+                     f"{', '.join(row['layout'] for row in busy)} ran (limit {100 * OTHER_LOAD_LIMIT:.0f}%): a "
+                     f"process with several threads loses most to that; rerun on idle cores")
     projection = result.get("projection")
     if projection is not None:
         lines += projection_lines(projection)

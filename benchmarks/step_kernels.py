@@ -22,7 +22,7 @@ during which the kernels' threads went to sleep: the price of each hand-over fro
 ``triad_us``, STREAM's triad over the values of one (512, 1024) layer on the kernel threads, whose T2 / T1 is the
 most any kernel that streams its arrays through memory can gain from a second thread here.
 
-Usage: ``python benchmarks/step_kernels.py [--quick] [--rounds N] [--steps N]``.
+Usage: ``python benchmarks/step_kernels.py [--quick] [--rounds N] [--steps N] [--layers W0,W1,… --batch G]``.
 """
 
 from __future__ import annotations
@@ -183,7 +183,7 @@ def wake_cost(repeats: int = 200) -> dict[str, float]:
     return {"hot_us": 1e6 * median(hot), "after_gemm_us": 1e6 * median(after_gemm), "triad_us": stream_triad_us()}
 
 
-def child(threads: int, steps: int) -> dict[str, Any]:
+def child(threads: int, steps: int, layers: list[int], batch: int) -> dict[str, Any]:
     """One thread count: the instrumented steps, per phase and kernel, in ms per step."""
     from shardmill.commands.bench import synthetic_dataset
     from shardmill.config import job_from_dict
@@ -192,12 +192,12 @@ def child(threads: int, steps: int) -> dict[str, Any]:
     from shardmill.training.trainer import Trainer
     from threadpoolctl import threadpool_limits
 
-    job = job_from_dict({"model": {"layers": MID_MODEL, "dtype": "float32"},
+    job = job_from_dict({"model": {"layers": layers, "dtype": "float32"},
                          "optimizer": {"method": "adam", "learning_rate": 1e-4},
-                         "run": {"global_batch": BATCH, "threads": threads, "epochs": 1}})
+                         "run": {"global_batch": batch, "threads": threads, "epochs": 1}})
     comm = Comm()
     with threadpool_limits(limits=blas_threads(job, comm.size), user_api="blas"):
-        trainer = Trainer(job, comm, dataset=synthetic_dataset(MID_MODEL, job.model.loss, 4 * BATCH, "float32"))
+        trainer = Trainer(job, comm, dataset=synthetic_dataset(layers, job.model.loss, 4 * batch, "float32"))
         spe = trainer.sampler.steps_per_epoch
         for s in range(5):
             trainer.step(0, s % spe)
@@ -271,10 +271,13 @@ def main() -> None:
     parser.add_argument("--quick", action="store_true", help="one round of 20 steps")
     parser.add_argument("--rounds", type=int, default=3)
     parser.add_argument("--steps", type=int, default=40)
+    parser.add_argument("--layers", default=",".join(map(str, MID_MODEL)), help="layer widths (default: the mid model)")
+    parser.add_argument("--batch", type=int, default=BATCH, help="global batch G (default: 512)")
     parser.add_argument("--child", type=int, default=0, help=argparse.SUPPRESS)
     args = parser.parse_args()
+    layers = [int(width) for width in args.layers.split(",")]
     if args.child:
-        print(json.dumps(child(args.child, args.steps)))
+        print(json.dumps(child(args.child, args.steps, layers, args.batch)))
         return
     rounds, steps = (1, 20) if args.quick else (args.rounds, args.steps)
     begin, meter = time.time(), LoadMeter()
@@ -282,10 +285,11 @@ def main() -> None:
     for r in range(rounds):
         for threads in ((1, 2) if r % 2 == 0 else (2, 1)):
             log(f"round {r + 1}/{rounds}: T = {threads}")
-            runs[threads].append(run_child([__file__, "--child", str(threads), "--steps", str(steps)], timeout=600))
+            runs[threads].append(run_child([__file__, "--child", str(threads), "--steps", str(steps), "--layers",
+                                            args.layers, "--batch", str(args.batch)], timeout=600))
     summary = summarise(runs)
     ratio = summary["forward_backward_outside_blas_ms"]["T2_over_T1"]
-    result = {"benchmark": "step_kernels", "layers": MID_MODEL, "global_batch": BATCH, "dtype": "float32",
+    result = {"benchmark": "step_kernels", "layers": layers, "global_batch": args.batch, "dtype": "float32",
               "method": "adam", "rounds": rounds, "steps": steps, "statistic": "median over rounds",
               **summary, "targets": TARGETS,
               "met": {"forward_backward_outside_blas": ratio is not None

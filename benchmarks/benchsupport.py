@@ -49,19 +49,11 @@ class LoadMeter:
 
     @staticmethod
     def _sample() -> tuple[float, float, float] | None:
-        import resource
-        from time import perf_counter
+        """(monotonic s, machine busy CPU s, our CPU s), from the package's own meter (``shardmill.machine``)."""
+        from shardmill.machine import OtherLoad
 
-        try:
-            with open("/proc/stat") as stat:
-                fields = [int(x) for x in stat.readline().split()[1:]]
-        except OSError:
-            return None
-        ticks = os.sysconf("SC_CLK_TCK")
-        busy = (sum(fields[:8]) - fields[3] - fields[4]) / ticks  # all but idle and iowait
-        own = sum(getattr(resource.getrusage(who), f) for who in (resource.RUSAGE_SELF, resource.RUSAGE_CHILDREN)
-                  for f in ("ru_utime", "ru_stime"))
-        return perf_counter(), busy, own
+        sample = OtherLoad.sample()
+        return None if sample is None else (sample[2], sample[0], sample[1])
 
     def stop(self, sum_over_ranks: Callable[[float], float] | None = None) -> dict[str, Any]:
         """{"background_cpu_fraction": …, "wall_s": …} since construction.

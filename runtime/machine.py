@@ -44,7 +44,8 @@ class OtherLoad:
     """How much of the machine other processes used while a run of ours went on: start it, run, then
     :meth:`fraction`.
 
-    The machine's busy CPU seconds come from /proc/stat (every core's user, nice, system, irq and softirq time);
+    The machine's busy CPU seconds come from /proc/stat (every core's time but idle and I/O wait; steal, the
+    hypervisor's, counts as others');
     ours are this process's and its waited-for descendants' (``getrusage``: mpiexec and the ranks it waited for).
     fraction = (machine busy − ours) / (wall seconds · cores), clipped to [0, 1]; None where /proc/stat is absent.
     """
@@ -65,8 +66,8 @@ class OtherLoad:
             return None
         if not fields or fields[0] != "cpu":
             return None
-        user, nice, system, _idle, _iowait, irq, softirq = (int(v) for v in fields[1:8])
-        busy = (user + nice + system + irq + softirq) / os.sysconf("SC_CLK_TCK")
+        ticks = [int(v) for v in fields[1:9]]  # user nice system idle iowait irq softirq steal
+        busy = (sum(ticks) - ticks[3] - ticks[4]) / os.sysconf("SC_CLK_TCK")  # all but idle and iowait
         ours = sum(u.ru_utime + u.ru_stime for u in (resource.getrusage(resource.RUSAGE_SELF),
                                                      resource.getrusage(resource.RUSAGE_CHILDREN)))
         return busy, ours, time.monotonic()

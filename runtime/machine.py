@@ -56,13 +56,14 @@ class OtherLoad:
     @staticmethod
     def sample() -> tuple[float, float, float] | None:
         """(machine busy CPU seconds, our CPU seconds, monotonic seconds) now, or None without /proc/stat."""
-        import resource
         import time
 
         try:
+            import resource  # Unix only
+
             with open("/proc/stat") as stat:
                 fields = stat.readline().split()
-        except OSError:
+        except (ImportError, OSError):
             return None
         if not fields or fields[0] != "cpu":
             return None

@@ -116,25 +116,12 @@ def kernel_signatures() -> int:
 
 
 def phase_floors(trainer: Any, repeats: int) -> dict[str, float]:
-    """Seconds of the forward and backward GEMMs alone (median of ``repeats``), the step's own buffers."""
-    import numpy as np
+    """Seconds of the forward and backward GEMMs alone (median of ``repeats``; ``scaling.measure.floor_gemms``
+    without the first layer's input gradient, which the step never forms), the step's own buffers."""
+    from shardmill.scaling.measure import floor_gemms
     from shardmill.timing import time_call
 
-    ws, model = trainer.ws, trainer.model
-    n = ws.rows
-    dWs, _ = model.views(trainer.grads)
-
-    def forward() -> None:
-        for l in range(model.n_layers):
-            np.matmul(ws.A[l][:n], model.weights[l], out=ws.Z[l][:n])
-
-    def backward() -> None:
-        for l in reversed(range(model.n_layers)):
-            dZ = ws.delta(0, n, model.sizes[l + 1])
-            np.matmul(ws.A[l][:n].T, dZ, out=dWs[l])
-            if l > 0:
-                np.matmul(dZ, model.weights[l].T, out=ws.delta(1, n, model.sizes[l]))
-
+    forward, backward = floor_gemms(trainer, first_layer_dA=False)
     return {"forward": median([time_call(forward) for _ in range(repeats)]),
             "backward": median([time_call(backward) for _ in range(repeats)])}
 

@@ -7,7 +7,7 @@ median over repetitions. The formulas these numbers feed are in `costmodel.py`, 
 
 from __future__ import annotations
 
-from collections.abc import Iterable
+from collections.abc import Callable, Iterable
 from typing import Any
 
 import numpy as np
@@ -104,27 +104,43 @@ def time_allreduce(comm: Any, sizes: tuple[int, ...], repeats: int, budget_s: fl
     return timings, []
 
 
-def gemm_floor_step(trainer: Any, first_layer_dA: bool = True) -> float:
-    """Seconds for the GEMMs of one step on this rank's local batch shapes, at BLAS's current thread count.
+def floor_gemms(trainer: Any, first_layer_dA: bool = True) -> tuple[Callable[[], None], Callable[[], None]]:
+    """The GEMMs of one step on this rank's local batch shapes, as two calls: the forward pass's (Z = A W per
+    layer) and the backward pass's (dW = Aᵀ dZ per layer, dA = dZ Wᵀ above the first layer, and the first layer's
+    too with ``first_layer_dA``), into the trainer's own buffers.
 
     trainer: a `training.trainer.Trainer` (its workspace, model and gradient buffer are used, not imported here).
-
-    Times the three GEMMs per layer (Z = A W, dW = Aᵀ dZ, dA = dZ Wᵀ). With ``first_layer_dA`` it includes
-    the first layer's dA (the gradient with respect to the inputs), which training never needs: that floor
-    is *more* work than the step does. Without it, the floor is exactly the GEMMs the step runs.
     """
     ws, model = trainer.ws, trainer.model
     n = ws.rows
-    grads = trainer.grads
-    dWs, _ = model.views(grads)
+    dWs, _ = model.views(trainer.grads)
 
-    def gemms() -> None:
+    def forward() -> None:
         for l in range(model.n_layers):
             np.matmul(ws.A[l][:n], model.weights[l], out=ws.Z[l][:n])
+
+    def backward() -> None:
         for l in reversed(range(model.n_layers)):
             dZ = ws.delta(0, n, model.sizes[l + 1])
             np.matmul(ws.A[l][:n].T, dZ, out=dWs[l])
             if l > 0 or first_layer_dA:
                 np.matmul(dZ, model.weights[l].T, out=ws.delta(1, n, model.sizes[l]))
+
+    return forward, backward
+
+
+def gemm_floor_step(trainer: Any, first_layer_dA: bool = True) -> float:
+    """Seconds for the GEMMs of one step (:func:`floor_gemms`, forward then backward), at BLAS's current thread
+    count.
+
+    With ``first_layer_dA`` it includes the first layer's dA (the gradient with respect to the inputs), which
+    training never needs: that floor is *more* work than the step does. Without it, the floor is exactly the GEMMs
+    the step runs.
+    """
+    forward, backward = floor_gemms(trainer, first_layer_dA)
+
+    def gemms() -> None:
+        forward()
+        backward()
 
     return time_call(gemms)
